@@ -1,8 +1,8 @@
-"""Pure science functions: light, marine heatwaves and cold spells.
+"""Pure science functions: light, marine heatwaves and cold spells, metabolic rates.
 
 Rule: nothing in this package reads a clock, keeps global state or does I/O, except the CSV
 loaders of :mod:`controller.science.heatwave`, which read only the file they are given. The
-modules are public (``controller.science.light``, ``controller.science.heatwave``); their names
+modules are public (``controller.science.light``, ``.heatwave``, ``.rates``); their names
 are also re-exported here.
 """
 
@@ -33,15 +33,30 @@ from controller.science.light import (
     half_sine_peak_for_dli,
     sun_elevation_deg,
 )
+from controller.science.rates import (
+    BOLTZMANN_EV_PER_K,
+    ZERO_CELSIUS_K,
+    arrhenius_factor,
+    jassby_platt,
+    platt,
+    platt_optimum,
+    q10_equivalent,
+    q10_factor,
+    q10_from_rates,
+    webb,
+)
 
 __all__ = [
+    "BOLTZMANN_EV_PER_K",
     "CATEGORY_MULTIPLES",
     "DAYS_IN_CLIMATOLOGY_YEAR",
     "FEB29_DOY",
     "SECONDS_PER_DAY",
+    "ZERO_CELSIUS_K",
     "Category",
     "Climatology",
     "ExtremeEvent",
+    "arrhenius_factor",
     "attenuation_factor",
     "beer_lambert",
     "category_multiple",
@@ -54,8 +69,15 @@ __all__ = [
     "dli_of_half_sine",
     "half_sine_daylight",
     "half_sine_peak_for_dli",
+    "jassby_platt",
     "leap_day_of_year",
     "load_climatology_csv",
     "load_series_csv",
+    "platt",
+    "platt_optimum",
+    "q10_equivalent",
+    "q10_factor",
+    "q10_from_rates",
     "sun_elevation_deg",
+    "webb",
 ]
