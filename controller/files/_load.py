@@ -337,10 +337,11 @@ def _problems_from_validation(
         path, dropped = _data_path(loc, data, err["type"])
         if err["type"] == "union_tag_invalid":
             key = str((err.get("ctx") or {}).get("discriminator", "")).strip("'\"")
-            if key and isinstance(err.get("input"), Mapping) and key in err["input"]:
+            node = err.get("input")
+            if key and path[-1:] != (key,) and isinstance(node, Mapping) and key in node:
                 path = (*path, key)
-        message, shown = _message(err, loc, model)
-        fills = _fills(err["type"], loc, model, message)
+        message, shown = _message(err, loc, model, data)
+        fills = _fills(err["type"], loc, model, message, data)
         known = by_path.get(path)
         if known is None:
             by_path[path] = _Problem(path, err["type"], [message], shown, dropped, fills)
@@ -362,12 +363,12 @@ def _problems_from_validation(
 
 
 def _fills(
-    kind: str, loc: tuple[str | int, ...], model: type[BaseModel], message: str
+    kind: str, loc: tuple[str | int, ...], model: type[BaseModel], message: str, data: Any
 ) -> str | None:
     """Which model field a missing key, or the suggestion for an unknown key, stands for."""
     if kind not in {"missing", "extra_forbidden"} or not loc:
         return None
-    keys = allowed_keys(model, loc[:-1]) or {}
+    keys = allowed_keys(model, loc[:-1], data) or {}
     if kind == "missing":
         return keys.get(str(loc[-1]))
     found = _SUGGESTED.search(message)
@@ -404,7 +405,7 @@ def _data_path(loc: tuple[str | int, ...], data: Any, kind: str) -> tuple[TomlPa
 
 
 def _message(
-    err: Mapping[str, Any], loc: tuple[str | int, ...], model: type[BaseModel]
+    err: Mapping[str, Any], loc: tuple[str | int, ...], model: type[BaseModel], data: Any
 ) -> tuple[str, str | None]:
     """A user-facing message for one pydantic error, and the offending input shown short."""
     kind: str = err["type"]
@@ -419,16 +420,18 @@ def _message(
     if kind == "missing":
         return "required key is missing here", None
     if kind == "extra_forbidden":
-        key = loc[-1] if loc else ""
-        return _unknown_key_message(str(key), allowed_keys(model, loc[:-1])), None
+        allowed = allowed_keys(model, loc[:-1], data) if loc else None
+        if allowed is None and not msg.startswith("Extra inputs"):
+            return msg, None  # the model already wrote its own message
+        return _unknown_key_message(str(loc[-1] if loc else ""), allowed), None
     if kind in {"value_error", "assertion_error"}:
         return re.sub(r"^(Value|Assertion) error, ", "", msg), None
-    if kind == "union_tag_invalid":
-        tag = str(ctx.get("tag", ""))
+    if kind == "union_tag_invalid" and "tag" in ctx:
+        tag = str(ctx["tag"])
         expected = _QUOTED.findall(str(ctx.get("expected_tags", "")))
         text = f"unknown kind {tag!r}; expected one of {', '.join(expected)}"
         return _with_suggestion(text, tag, expected), None
-    if kind == "literal_error" and isinstance(value, str):
+    if kind in {"literal_error", "enum"} and isinstance(value, str):
         expected = _QUOTED.findall(str(ctx.get("expected", "")))
         return _with_suggestion(f"{msg} (got {shown})", value, expected), None
     return msg, shown

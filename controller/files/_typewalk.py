@@ -116,7 +116,33 @@ def _step(tp: Any, part: str | int) -> list[Any]:
     return []
 
 
-def allowed_keys(model: type[BaseModel], loc: Sequence[str | int]) -> dict[str, str] | None:
+def _matches_data(model: type[BaseModel], node: Any) -> bool | None:
+    """Whether the table ``node`` carries a tag (a Literal-typed key) naming ``model``.
+
+    ``None`` when ``node`` has none of the model's tag keys, so nothing can be said.
+    """
+    if not isinstance(node, Mapping):
+        return None
+    verdict: bool | None = None
+    for key, name in model_keys(model).items():
+        values = _literal_values(model.model_fields[name].annotation)
+        if values and key in node:
+            if node[key] not in values:
+                return False
+            verdict = True
+    return verdict
+
+
+def _members(tp: Any, node: Any) -> list[Any]:
+    """Members of ``tp``; among models, those whose tag matches ``node`` when any does."""
+    members = _expand(tp)
+    tagged = [m for m in members if _is_model(m) and _matches_data(m, node)]
+    return tagged or members
+
+
+def allowed_keys(
+    model: type[BaseModel], loc: Sequence[str | int], data: Any = None
+) -> dict[str, str] | None:
     """Keys accepted by the table at ``loc`` inside ``model``.
 
     Parameters
@@ -126,6 +152,9 @@ def allowed_keys(model: type[BaseModel], loc: Sequence[str | int]) -> dict[str, 
     loc
         A pydantic error location up to (not including) the offending key; may contain the
         union tags pydantic inserts.
+    data
+        The parsed document, optional: when given, union members are narrowed by the tag
+        written in the table (``kind = "ramp"`` selects the ramp block's keys).
 
     Returns
     -------
@@ -135,19 +164,30 @@ def allowed_keys(model: type[BaseModel], loc: Sequence[str | int]) -> dict[str, 
         model.
     """
     current: list[Any] = [model]
+    node: Any = data
     for part in loc:
         nxt: list[Any] = []
         for tp in current:
-            for member in _expand(tp):
+            for member in _members(tp, node):
                 nxt.extend(_step(member, part))
         if not nxt:
             # An unrecognised element (e.g. a plain-union member name): stay where we are.
             continue
         current = nxt
+        node = _child(node, part)
     keys: dict[str, str] = {}
     for tp in current:
-        for member in _expand(tp):
+        for member in _members(tp, node):
             if _is_model(member):
                 for key, name in model_keys(member).items():
                     keys.setdefault(key, f"{member.__qualname__}.{name}")
     return keys or None
+
+
+def _child(node: Any, part: str | int) -> Any:
+    """The data under ``part``; a union tag (absent from the table) leaves ``node`` as it is."""
+    if isinstance(node, Mapping):
+        return node[part] if part in node else node
+    if isinstance(node, list) and isinstance(part, int) and 0 <= part < len(node):
+        return node[part]
+    return None

@@ -7,6 +7,7 @@ and a model validator.
 
 from __future__ import annotations
 
+from enum import StrEnum
 from typing import Annotated, Literal, Self
 
 from pydantic import AliasChoices, Field, model_validator
@@ -14,7 +15,7 @@ from pydantic import AliasChoices, Field, model_validator
 from controller._model import FileModel
 from controller.errors import SquallError
 
-__all__ = ["Doc", "Group", "Hold", "Phase", "Programs", "Ramp", "Site"]
+__all__ = ["Doc", "Group", "Hold", "Phase", "Programs", "Ramp", "Role", "Site"]
 
 
 class Hold(FileModel):
@@ -61,10 +62,17 @@ class Phase(FileModel):
     groups: dict[str, Programs] = Field(default_factory=dict)
 
 
+class Role(StrEnum):
+    """Role of a group."""
+
+    TREATMENT = "treatment"
+    CONTROL = "control"
+
+
 class Group(FileModel):
     """Treatment or control."""
 
-    role: Literal["treatment", "control"]
+    role: Role
     chambers: list[str] = Field(min_length=1)
 
 

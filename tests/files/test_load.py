@@ -96,6 +96,19 @@ BROKEN: list[tuple[str, str, str, str]] = [
     ),
     (
         "literal with suggestion",
+        'format = "toy/1"',
+        'format = "toy/l"',
+        "1: format: Input should be 'toy/1' (got 'toy/l'); did you mean 'toy/1'?",
+    ),
+    (
+        "ramp keys only, chosen by the block's kind",
+        "rate_per_h = 0.5",
+        "rate_per_h = 0.5, valu = 1",
+        "22: phases.0.programs.temperature.1.valu: unknown key 'valu'; "
+        "allowed here: from, kind, rate_per_h, to",
+    ),
+    (
+        "enum with suggestion",
         'role = "control"',
         'role = "contrl"',
         "13: groups.ambient.role: Input should be 'treatment' or 'control' (got 'contrl'); "
