@@ -1,0 +1,337 @@
+"""Read a run log into pandas, also while its run is still writing it.
+
+Rules of this module
+--------------------
+- Readers open the log read-only. In WAL mode a reader sees the last committed state and
+  never blocks the writer (nor is blocked by it); each call is one consistent snapshot.
+- Frame columns and dtypes come from the record classes (:mod:`._records`) through
+  :mod:`._columns`: floats are ``float64`` (NaN where NULL), UTC times are tz-aware
+  ``datetime64[ns, UTC]`` rounded to the microsecond, enums and few-valued text are
+  categories, other text is the ``string`` dtype. Every frame is indexed by ``seq``, the row
+  id (write order), which live watchers pass back to :meth:`RunLogReader.tail`.
+- Anything wrong with the file (missing, not a log, newer schema, damaged) is a
+  :class:`SquallError` naming the file.
+"""
+
+from __future__ import annotations
+
+import difflib
+import sqlite3
+from collections.abc import Sequence
+from pathlib import Path
+from types import TracebackType
+from typing import Any, Self
+
+import numpy as np
+import pandas as pd
+
+from controller.errors import SquallError
+
+from ._columns import Column, ValueKind, columns_of
+from ._records import (
+    AlarmRecord,
+    AuditRecord,
+    ChamberRecord,
+    EventRecord,
+    RunLogInfo,
+    RunMeta,
+    SampleRow,
+    SessionRecord,
+    WindowRecord,
+)
+from ._schema import open_log, read_end, read_meta
+
+__all__ = ["RunLogReader", "frame_columns", "frame_dtypes"]
+
+_SAMPLE_COLS = columns_of(SampleRow)
+_SAMPLE_BY_FRAME_NAME = {c.frame_name: c for c in _SAMPLE_COLS}
+
+
+def _dtype(column: Column) -> Any:
+    """pandas dtype of a column in frames."""
+    kind = column.kind
+    if kind is ValueKind.FLOAT:
+        return np.dtype("float64")
+    if kind is ValueKind.UTC:
+        return pd.DatetimeTZDtype(unit="ns", tz="UTC")
+    if kind is ValueKind.INT:
+        return pd.Int64Dtype() if column.nullable else np.dtype("int64")
+    if kind is ValueKind.BOOL:
+        return pd.BooleanDtype() if column.nullable else np.dtype("bool")
+    if kind is ValueKind.ENUM and column.enum is not None:
+        return pd.CategoricalDtype([m.value for m in column.enum])
+    if column.category:
+        return pd.CategoricalDtype()
+    return pd.StringDtype()
+
+
+def frame_columns(record: type) -> list[str]:
+    """Frame column names of a record class, in order (``utc_s`` shown as ``time``).
+
+    Parameters
+    ----------
+    record
+        A record class such as :class:`SampleRow`.
+    """
+    return [c.frame_name for c in columns_of(record)]
+
+
+def frame_dtypes(record: type) -> dict[str, Any]:
+    """pandas dtypes of a record class's frame columns (categories of free text are open).
+
+    Parameters
+    ----------
+    record
+        A record class such as :class:`SampleRow`.
+    """
+    return {c.frame_name: _dtype(c) for c in columns_of(record)}
+
+
+def _series_values(column: Column, values: Sequence[Any]) -> Any:
+    """Convert one column's stored values (a tuple) to an array of the frame dtype."""
+    kind = column.kind
+    if kind is ValueKind.FLOAT:
+        return np.array(values, dtype="float64")  # None becomes NaN
+    if kind is ValueKind.UTC:
+        seconds = np.array(values, dtype="float64")
+        return pd.DatetimeIndex(pd.to_datetime(seconds, unit="s", utc=True)).round("us")
+    if kind is ValueKind.ENUM or column.category:
+        return pd.Categorical(values, dtype=_dtype(column))
+    if kind is ValueKind.BOOL and not column.nullable:
+        return np.array(values, dtype="bool")
+    if kind is ValueKind.INT and not column.nullable:
+        return np.array(values, dtype="int64")
+    return pd.array(list(values), dtype=_dtype(column))
+
+
+def _frame(rows: list[tuple[Any, ...]], columns: Sequence[Column]) -> pd.DataFrame:
+    """Build a frame from ``(seq, value, value, …)`` rows; ``seq`` becomes the index."""
+    if rows:
+        transposed: list[Sequence[Any]] = list(zip(*rows, strict=True))
+    else:
+        transposed = [() for _ in range(len(columns) + 1)]
+    index = pd.Index(np.array(transposed[0], dtype="int64"), name="seq")
+    data = {
+        c.frame_name: _series_values(c, values)
+        for c, values in zip(columns, transposed[1:], strict=True)
+    }
+    frame = pd.DataFrame(data, index=index)
+    if frame.columns.size == 0:  # no columns: keep the (empty) shape explicit
+        frame = pd.DataFrame(index=index)
+    return frame
+
+
+class RunLogReader:
+    """Read-only view of one run log.
+
+    Parameters
+    ----------
+    path
+        The log file.
+
+    Raises
+    ------
+    SquallError
+        Missing file, not a squall run log, incomplete, or a newer log schema.
+    """
+
+    def __init__(self, path: str | Path) -> None:
+        self._path = Path(path)
+        self._conn: sqlite3.Connection | None = None
+        self._conn, self._version = open_log(self._path, readonly=True)
+
+    @property
+    def path(self) -> Path:
+        """The log file."""
+        return self._path
+
+    @property
+    def schema_version(self) -> int:
+        """Log schema version of the file, dimensionless."""
+        return self._version
+
+    def close(self) -> None:
+        """Close the connection (idempotent)."""
+        if self._conn is not None:
+            self._conn.close()
+            self._conn = None
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+    def _fetch(self, sql: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
+        """Run one query, turning SQLite errors into SquallError naming the file."""
+        if self._conn is None:
+            raise RuntimeError(f"run log reader for {self._path} is closed")
+        try:
+            return self._conn.execute(sql, tuple(params)).fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise SquallError(f"cannot read run log: {exc}", file=self._path) from exc
+
+    # -- metadata ---------------------------------------------------------------------------
+
+    def meta(self) -> RunMeta:
+        """The run's metadata (protocol and rig text, start, clock, chambers, version)."""
+        if self._conn is None:
+            raise RuntimeError(f"run log reader for {self._path} is closed")
+        return read_meta(self._conn, self._path)
+
+    def info(self) -> RunLogInfo:
+        """Metadata plus whether and how the run ended, sessions and sample count."""
+        meta = self.meta()
+        assert self._conn is not None
+        end = read_end(self._conn, self._path)
+        sessions = self._fetch("SELECT count(*) FROM sessions")[0][0]
+        # rows are never deleted, so the largest row id is the number of samples
+        samples = self._fetch("SELECT coalesce(max(seq), 0) FROM samples")[0][0]
+        return RunLogInfo(
+            meta=meta,
+            end=end,
+            schema_version=self._version,
+            sessions=int(sessions),
+            samples=int(samples),
+        )
+
+    def chambers(self) -> tuple[ChamberRecord, ...]:
+        """The rig's chambers as they were at the start of the run, in rig order."""
+        return self.meta().chambers
+
+    def last_rowid(self) -> int:
+        """Row id of the newest committed sample, 0 when there is none."""
+        return int(self._fetch("SELECT coalesce(max(seq), 0) FROM samples")[0][0])
+
+    # -- samples ----------------------------------------------------------------------------
+
+    def samples(
+        self,
+        chamber: str | Sequence[str] | None = None,
+        columns: Sequence[str] | None = None,
+        t_from: float | None = None,
+        t_to: float | None = None,
+    ) -> pd.DataFrame:
+        """Sample rows as a frame indexed by ``seq``, in write order.
+
+        Parameters
+        ----------
+        chamber
+            One chamber id or several; None for all.
+        columns
+            Frame column names to return (see :func:`frame_columns`); None for all.
+        t_from
+            Only rows with clock time ``t_s >= t_from``, s.
+        t_to
+            Only rows with clock time ``t_s < t_to``, s.
+
+        Returns
+        -------
+        pandas.DataFrame
+            One row per chamber per logged tick; ``time`` is tz-aware UTC.
+
+        Raises
+        ------
+        SquallError
+            An unknown column name.
+        """
+        cols = self._sample_columns(columns)
+        where: list[str] = []
+        params: list[Any] = []
+        if chamber is not None:
+            ids = [chamber] if isinstance(chamber, str) else list(chamber)
+            where.append(f"chamber IN ({', '.join('?' for _ in ids)})")
+            params += ids
+        if t_from is not None:
+            where.append("t_s >= ?")
+            params.append(float(t_from))
+        if t_to is not None:
+            where.append("t_s < ?")
+            params.append(float(t_to))
+        return self._sample_frame(cols, where, params, limit=None)
+
+    def tail(self, since_rowid: int, limit: int | None = None) -> pd.DataFrame:
+        """Samples written after row ``since_rowid``, for live watchers.
+
+        Parameters
+        ----------
+        since_rowid
+            Row id already seen (0 for everything); pass back ``frame.index[-1]``.
+        limit
+            At most this many rows (the oldest first), dimensionless; None for all.
+
+        Returns
+        -------
+        pandas.DataFrame
+            Same columns as :meth:`samples`, indexed by ``seq``.
+        """
+        return self._sample_frame(_SAMPLE_COLS, ["seq > ?"], [int(since_rowid)], limit=limit)
+
+    def _sample_columns(self, columns: Sequence[str] | None) -> tuple[Column, ...]:
+        if columns is None:
+            return _SAMPLE_COLS
+        if isinstance(columns, str):
+            columns = [columns]
+        picked: list[Column] = []
+        for name in columns:
+            col = _SAMPLE_BY_FRAME_NAME.get(name)
+            if col is None:
+                close = difflib.get_close_matches(name, list(_SAMPLE_BY_FRAME_NAME), n=1)
+                hint = f"; did you mean {close[0]!r}?" if close else ""
+                raise SquallError(
+                    f"unknown sample column {name!r}{hint} (known: "
+                    f"{', '.join(_SAMPLE_BY_FRAME_NAME)})",
+                    field="columns",
+                )
+            picked.append(col)
+        return tuple(picked)
+
+    def _sample_frame(
+        self,
+        cols: Sequence[Column],
+        where: list[str],
+        params: list[Any],
+        *,
+        limit: int | None,
+    ) -> pd.DataFrame:
+        select = ", ".join(["seq", *(c.name for c in cols)])
+        sql = f"SELECT {select} FROM samples"
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        sql += " ORDER BY seq"
+        if limit is not None:
+            sql += " LIMIT ?"
+            params = [*params, int(limit)]
+        return _frame(self._fetch(sql, params), cols)
+
+    # -- rare tables ------------------------------------------------------------------------
+
+    def _table(self, table: str, record: type) -> pd.DataFrame:
+        cols = columns_of(record)
+        select = ", ".join(["seq", *(c.name for c in cols)])
+        return _frame(self._fetch(f"SELECT {select} FROM {table} ORDER BY seq"), cols)
+
+    def alarms(self) -> pd.DataFrame:
+        """Alarm raises, clears and acknowledgements (columns of :class:`AlarmRecord`)."""
+        return self._table("alarms", AlarmRecord)
+
+    def events(self) -> pd.DataFrame:
+        """Run events: start, stop, gaps, phase changes, holds (:class:`EventRecord`)."""
+        return self._table("events", EventRecord)
+
+    def windows(self) -> pd.DataFrame:
+        """Closed incubation windows (columns of :class:`WindowRecord`)."""
+        return self._table("windows", WindowRecord)
+
+    def audit(self) -> pd.DataFrame:
+        """Operator commands and notes (columns of :class:`AuditRecord`)."""
+        return self._table("audit", AuditRecord)
+
+    def sessions(self) -> pd.DataFrame:
+        """Writer sessions: the start and every resume (columns of :class:`SessionRecord`)."""
+        return self._table("sessions", SessionRecord)

@@ -1,0 +1,559 @@
+"""Crash-safe writer of one run log: batched commits driven by the caller's clock time.
+
+Rules of this module
+--------------------
+- The writer never reads a clock. Every record carries the run's clock time (``t_s``); the
+  writer commits when the clock time of the data it is given is at least
+  ``commit_interval_s`` past that of the last commit, so a crash loses at most that much.
+- Alarms, events, closed windows and operator actions are rare and precious: they are
+  committed at once, together with any samples still pending.
+- A failed write (disk full, I/O error) rolls back what was not yet committed and raises
+  :class:`RuntimeFailure`; committed data is never touched (SQLite transactions are atomic,
+  and in WAL mode an unfinished commit is ignored on recovery). The writer stays usable, so
+  the caller can keep controlling chambers and retry.
+- One writer per log: a second one (another controller, another process) is refused through
+  an advisory lock on ``<log>.lock``, which the kernel releases if the writer's process dies.
+- A run is *finished* only by :meth:`RunLogWriter.finish`. A log without that mark is
+  interrupted (or still being written) and may be continued by :meth:`RunLogWriter.resume`.
+- Not thread-safe: use a writer from one thread at a time (any one thread).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import math
+import os
+import sqlite3
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from types import TracebackType
+from typing import Any, Self
+
+from controller import __version__
+from controller.errors import RuntimeFailure, SquallError
+
+from ._columns import columns_of, insert_sql, row_getter
+from ._records import (
+    AlarmRecord,
+    AuditRecord,
+    EventKind,
+    EventRecord,
+    IncubationState,
+    ResumePoint,
+    RunEnd,
+    RunMeta,
+    SampleRow,
+    SessionRecord,
+    WindowRecord,
+)
+from ._schema import SCHEMA_VERSION, create_schema, open_log, read_end, read_meta, run_columns
+
+__all__ = ["RunLogWriter"]
+
+_SAMPLE_COLS = columns_of(SampleRow)
+_SAMPLE_SQL = insert_sql("samples", _SAMPLE_COLS)
+_SAMPLE_ROW = row_getter(_SAMPLE_COLS)
+
+_RARE_TABLES: dict[type, str] = {
+    AlarmRecord: "alarms",
+    EventRecord: "events",
+    WindowRecord: "windows",
+    AuditRecord: "audit",
+    SessionRecord: "sessions",
+}
+_RARE_SQL = {rec: insert_sql(table, columns_of(rec)) for rec, table in _RARE_TABLES.items()}
+_RARE_ROW = {rec: row_getter(columns_of(rec)) for rec in _RARE_TABLES}
+
+#: Largest size the -wal file is truncated back to after a checkpoint, bytes.
+_JOURNAL_SIZE_LIMIT_B = 64 * 1024 * 1024
+
+
+def _configure(conn: sqlite3.Connection, *, durable: bool) -> None:
+    """Per-connection settings of a writing connection."""
+    # WAL with synchronous=NORMAL: a commit appends its pages and a commit record to the -wal
+    # file without fsync; only checkpoints fsync. A commit that returned sits in the OS page
+    # cache, so it survives the *process* dying (crash, SIGKILL, OOM kill): the kernel writes
+    # it out anyway. A power cut or kernel panic may lose the commits made since the last
+    # checkpoint (at most ~4 MB of pages with the default autocheckpoint), but never corrupts
+    # the file: frames after the last complete commit record are ignored on recovery. FULL
+    # (``durable=True``) fsyncs every commit, i.e. about once a second, which bounds loss on
+    # power cuts too, at the price of an fsync (milliseconds, more on SD cards) per commit.
+    conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
+    conn.execute(f"PRAGMA journal_size_limit = {_JOURNAL_SIZE_LIMIT_B}")
+
+
+class _WriterLock:
+    """Exclusive advisory lock on ``<log>.lock`` held while a writer is open."""
+
+    def __init__(self, log_path: Path) -> None:
+        self.path = log_path.with_name(log_path.name + ".lock")
+        try:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise SquallError(
+                f"cannot create the run log's lock file {self.path.name}: {exc.strerror}",
+                file=log_path,
+            ) from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "unknown"
+            os.close(fd)
+            raise SquallError(
+                f"run log is being written by another squall process (pid {holder}); "
+                "stop that run first or choose another log file",
+                file=log_path,
+            ) from None
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+        self._fd: int | None = fd
+
+    def release(self) -> None:
+        """Release the lock (the lock file stays; it is harmless when unlocked)."""
+        if self._fd is not None:
+            fcntl.flock(self._fd, fcntl.LOCK_UN)
+            os.close(self._fd)
+            self._fd = None
+
+
+def _refuse_existing(path: Path) -> None:
+    """Raise SquallError unless ``path`` is free for a new log (absent or empty)."""
+    if not path.exists() or (path.is_file() and path.stat().st_size == 0):
+        return
+    conn, _ = open_log(path, readonly=True)  # SquallError for anything that is not a log
+    try:
+        end = read_end(conn, path)
+    finally:
+        conn.close()
+    if end is not None:
+        raise SquallError(
+            f"already holds a finished run ({end.end_reason.value}); refusing to overwrite "
+            "it: choose another log file",
+            file=path,
+        )
+    raise SquallError(
+        "already holds an interrupted run; resume it (squall run --resume LOG) or choose "
+        "another log file",
+        file=path,
+    )
+
+
+def _remove_db_files(path: Path) -> None:
+    """Delete a log and its -wal/-shm companions, ignoring ones that are absent."""
+    for suffix in ("", "-wal", "-shm"):
+        with contextlib.suppress(FileNotFoundError):
+            os.remove(f"{path}{suffix}")
+
+
+def _create(path: Path, meta: RunMeta, *, durable: bool) -> sqlite3.Connection:
+    """Create a new log at ``path`` (absent or empty) and return its writing connection."""
+    existed = path.exists()
+    try:
+        conn = sqlite3.connect(path, isolation_level=None, timeout=10.0, check_same_thread=False)
+    except sqlite3.Error as exc:
+        raise SquallError(f"cannot create run log: {exc}", file=path) from exc
+    try:
+        mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+        if mode != "wal":
+            raise RuntimeFailure(
+                f"run log {path}: the file system does not support SQLite's WAL mode "
+                f"(got journal mode {mode!r}); put the log on a local disk"
+            )
+        _configure(conn, durable=durable)
+        create_schema(conn, meta)
+    except sqlite3.Error as exc:
+        conn.close()
+        if not existed:
+            _remove_db_files(path)
+        raise RuntimeFailure(f"run log {path}: could not create it: {exc}") from exc
+    except BaseException:
+        conn.close()
+        if not existed:
+            _remove_db_files(path)
+        raise
+    return conn
+
+
+def _resume_point(conn: sqlite3.Connection, session: int, n_chambers: int) -> ResumePoint:
+    """Read where the run stopped from the last committed rows (no full-table scans)."""
+    last = conn.execute(
+        "SELECT seq, t_s, utc_s, elapsed_s FROM samples ORDER BY seq DESC LIMIT 1"
+    ).fetchone()
+    phases: dict[str, str] = {}
+    closed: list[str] = []
+    # The last few ticks hold every chamber's last row; reading them avoids a GROUP BY scan.
+    recent = conn.execute(
+        "SELECT chamber, phase, incubation FROM samples ORDER BY seq DESC LIMIT ?",
+        (max(64, 4 * n_chambers),),
+    ).fetchall()
+    for chamber, phase, incubation in recent:
+        if chamber not in phases:
+            phases[chamber] = phase
+            if incubation == IncubationState.CLOSED.value:
+                closed.append(chamber)
+    hold = conn.execute(
+        "SELECT kind FROM events WHERE kind IN (?, ?) ORDER BY seq DESC LIMIT 1",
+        (EventKind.HOLD.value, EventKind.HOLD_END.value),
+    ).fetchone()
+    return ResumePoint(
+        session=session,
+        last_seq=int(last[0]) if last else 0,
+        last_t_s=last[1] if last else None,
+        last_utc_s=last[2] if last else None,
+        last_elapsed_s=last[3] if last else None,
+        phases=phases,
+        closed=tuple(sorted(closed)),
+        held=hold is not None and hold[0] == EventKind.HOLD.value,
+    )
+
+
+class RunLogWriter:
+    """Write one run's log: samples every tick, alarms, events, windows and audit records.
+
+    Parameters
+    ----------
+    path
+        The log file to create. It must not exist yet (or be empty): an existing log, finished
+        or not, is never overwritten (see :meth:`resume`).
+    meta
+        The run's metadata, stored once.
+    commit_interval_s
+        Commit when the data's clock time is at least this far past the last commit, s
+        (0 commits every call). This bounds what a crash can lose.
+    durable
+        fsync every commit (SQLite ``synchronous=FULL``) so a power cut, not only a process
+        crash, loses at most ``commit_interval_s`` of data.
+
+    Raises
+    ------
+    SquallError
+        ``path`` holds a log or another file, another process writes it, or it cannot be
+        created there.
+    RuntimeFailure
+        The log could not be written (disk full, I/O error, no WAL support).
+    """
+
+    def __init__(
+        self,
+        path: str | Path,
+        *,
+        meta: RunMeta,
+        commit_interval_s: float = 1.0,
+        durable: bool = False,
+    ) -> None:
+        path = Path(path)
+        _check_interval(commit_interval_s)
+        _refuse_existing(path)
+        lock = _WriterLock(path)
+        try:
+            _refuse_existing(path)  # again: another process may have created it meanwhile
+            conn = _create(path, meta, durable=durable)
+        except BaseException:
+            lock.release()
+            raise
+        self._setup(path, conn, lock, meta, commit_interval_s, resume_point=None)
+        first = SessionRecord(software_version=__version__, first_sample_seq=1, resumed=False)
+        self._insert_now(first, None, "record the session")
+
+    @classmethod
+    def resume(
+        cls, path: str | Path, *, commit_interval_s: float = 1.0, durable: bool = False
+    ) -> Self:
+        """Continue an interrupted run's log, appending after its last committed rows.
+
+        The new session is recorded in table ``sessions``; the caller records the gap as an
+        :class:`EventRecord` of kind ``gap`` once it knows the time (the writer reads no
+        clock). Samples not later (in UTC) than the last logged one are refused, so nothing
+        is logged twice.
+
+        Parameters
+        ----------
+        path
+            An interrupted run log.
+        commit_interval_s
+            As for the constructor, s.
+        durable
+            As for the constructor.
+
+        Raises
+        ------
+        SquallError
+            Not a log, a newer or older schema, already finished, or being written.
+        """
+        path = Path(path)
+        _check_interval(commit_interval_s)
+        probe, _ = open_log(path, readonly=True)  # a clear error before creating a lock file
+        probe.close()
+        lock = _WriterLock(path)
+        conn: sqlite3.Connection | None = None
+        try:
+            conn, version = open_log(path, readonly=False)
+            if version != SCHEMA_VERSION:
+                raise SquallError(
+                    f"run log uses log schema {version}; resume it with the squall version "
+                    "that started it",
+                    file=path,
+                )
+            meta = read_meta(conn, path)
+            end = read_end(conn, path)
+            if end is not None:
+                raise SquallError(
+                    f"run already finished ({end.end_reason.value}); there is nothing to "
+                    "resume: start a new run with another log file",
+                    file=path,
+                )
+            _configure(conn, durable=durable)
+            session = conn.execute("SELECT count(*) FROM sessions").fetchone()[0] + 1
+            point = _resume_point(conn, session, len(meta.chambers))
+        except sqlite3.Error as exc:
+            if conn is not None:
+                conn.close()
+            lock.release()
+            raise SquallError(f"cannot resume run log: {exc}", file=path) from exc
+        except BaseException:
+            if conn is not None:
+                conn.close()
+            lock.release()
+            raise
+        writer = cls.__new__(cls)
+        writer._setup(path, conn, lock, meta, commit_interval_s, resume_point=point)
+        writer._insert_now(
+            SessionRecord(
+                software_version=__version__, first_sample_seq=point.last_seq + 1, resumed=True
+            ),
+            None,
+            "record the resumed session",
+        )
+        return writer
+
+    def _setup(
+        self,
+        path: Path,
+        conn: sqlite3.Connection,
+        lock: _WriterLock,
+        meta: RunMeta,
+        commit_interval_s: float,
+        *,
+        resume_point: ResumePoint | None,
+    ) -> None:
+        self._path = path
+        self._conn: sqlite3.Connection | None = conn
+        self._lock = lock
+        self._meta = meta
+        self._interval_s = float(commit_interval_s)
+        self._resume_point = resume_point
+        self._not_after_utc_s = resume_point.last_utc_s if resume_point else None
+        self._pending = 0
+        self._last_commit_t_s: float | None = None
+        self._last_t_s: float | None = None
+
+    # -- properties -------------------------------------------------------------------------
+
+    @property
+    def path(self) -> Path:
+        """The log file."""
+        return self._path
+
+    @property
+    def meta(self) -> RunMeta:
+        """The run's metadata (read back from the log when resuming)."""
+        return self._meta
+
+    @property
+    def resume_point(self) -> ResumePoint | None:
+        """Where the interrupted run stopped; None for a new log."""
+        return self._resume_point
+
+    @property
+    def pending_rows(self) -> int:
+        """Rows written since the last commit (lost if the process died now), dimensionless."""
+        return self._pending
+
+    @property
+    def last_commit_t_s(self) -> float | None:
+        """Clock time of the newest committed data, s; None before the first commit."""
+        return self._last_commit_t_s
+
+    @property
+    def closed(self) -> bool:
+        """Whether :meth:`close` or :meth:`finish` was called."""
+        return self._conn is None
+
+    # -- writing ----------------------------------------------------------------------------
+
+    def append_samples(self, rows: Sequence[SampleRow]) -> None:
+        """Append one tick's sample rows (or several ticks'); commit if the interval passed.
+
+        Parameters
+        ----------
+        rows
+            Sample rows in time order; the commit decision uses the last row's ``t_s`` (s).
+
+        Raises
+        ------
+        RuntimeFailure
+            The rows could not be written; uncommitted rows were dropped.
+        ValueError
+            After a resume: a row is not later (UTC) than the log's last sample.
+        """
+        if not rows:
+            return
+        conn = self._open_conn()
+        if self._not_after_utc_s is not None:
+            first = rows[0].utc_s
+            if not first > self._not_after_utc_s:
+                raise ValueError(
+                    f"sample at UTC {first} s is not after the last logged sample "
+                    f"({self._not_after_utc_s} s): it would log that time twice"
+                )
+            self._not_after_utc_s = None
+        with self._io(f"append {len(rows)} sample row(s)", len(rows)):
+            if not conn.in_transaction:
+                conn.execute("BEGIN")
+            conn.executemany(_SAMPLE_SQL, map(_SAMPLE_ROW, rows))
+        self._pending += len(rows)
+        self._after_write(rows[-1].t_s)
+
+    def record_alarm(self, alarm: AlarmRecord) -> None:
+        """Write an alarm raise/clear/ack and commit at once."""
+        self._insert_now(alarm, alarm.t_s, f"record alarm {alarm.code!r}")
+
+    def record_event(self, event: EventRecord) -> None:
+        """Write a run event and commit at once."""
+        self._insert_now(event, event.t_s, f"record event {event.kind.value!r}")
+
+    def record_window(self, window: WindowRecord) -> None:
+        """Write a closed incubation window (when it ends) and commit at once."""
+        self._insert_now(window, window.end_t_s, f"record a window of {window.chamber!r}")
+
+    def record_audit(self, entry: AuditRecord) -> None:
+        """Write an operator command or note and commit at once."""
+        self._insert_now(entry, entry.t_s, f"record operator command {entry.command!r}")
+
+    def flush(self) -> None:
+        """Commit everything written so far.
+
+        Raises
+        ------
+        RuntimeFailure
+            The commit failed; uncommitted rows were dropped.
+        """
+        conn = self._open_conn()
+        if conn.in_transaction:
+            with self._io("commit", 0):
+                conn.execute("COMMIT")
+        self._pending = 0
+        if self._last_t_s is not None:
+            self._last_commit_t_s = self._last_t_s
+
+    def finish(self, end: RunEnd) -> None:
+        """Mark the run finished (no resume possible), commit and close.
+
+        Parameters
+        ----------
+        end
+            When and why the run ended.
+        """
+        conn = self._open_conn()
+        _, end_cols = run_columns()
+        assignments = ", ".join(f"{c.name} = ?" for c in end_cols)
+        with self._io("mark the run finished", 0):
+            if not conn.in_transaction:
+                conn.execute("BEGIN")
+            conn.execute(
+                f"UPDATE run SET {assignments} WHERE id = 1",
+                tuple(getattr(end, c.name) for c in end_cols),
+            )
+        self._see(end.end_t_s)
+        self.close()
+
+    def close(self) -> None:
+        """Commit what is pending and close; the run stays resumable (not finished)."""
+        if self._conn is None:
+            return
+        try:
+            self.flush()
+        finally:
+            self._conn.close()
+            self._conn = None
+            self._lock.release()
+
+    def __enter__(self) -> Self:
+        return self
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        self.close()
+
+    # -- internals --------------------------------------------------------------------------
+
+    def _open_conn(self) -> sqlite3.Connection:
+        if self._conn is None:
+            raise RuntimeError(f"run log writer for {self._path} is closed")
+        return self._conn
+
+    def _insert_now(self, record: Any, t_s: float | None, what: str) -> None:
+        """Insert one rare record and commit together with pending samples."""
+        conn = self._open_conn()
+        kind = type(record)
+        with self._io(what, 1):
+            if not conn.in_transaction:
+                conn.execute("BEGIN")
+            conn.execute(_RARE_SQL[kind], _RARE_ROW[kind](record))
+        if t_s is not None:
+            self._see(t_s)
+        self.flush()
+
+    def _see(self, t_s: float) -> None:
+        """Remember the clock time of the latest data handed in, s."""
+        self._last_t_s = t_s
+
+    def _after_write(self, t_s: float) -> None:
+        """Commit when the clock time moved ``commit_interval_s`` past the last commit."""
+        self._see(t_s)
+        if self._last_commit_t_s is None:
+            self._last_commit_t_s = t_s  # the interval counts from the first data
+        dt_s = t_s - self._last_commit_t_s
+        # dt_s < 0: the clock went back (a bug or a new clock); commit rather than wait.
+        if dt_s >= self._interval_s or dt_s < 0:
+            self.flush()
+
+    @contextlib.contextmanager
+    def _io(self, what: str, batch: int) -> Iterator[None]:
+        """Turn SQLite failures into RuntimeFailure after rolling back uncommitted rows."""
+        try:
+            yield
+        except (sqlite3.IntegrityError, sqlite3.ProgrammingError, sqlite3.InterfaceError):
+            self._abandon()  # a malformed record is a bug: re-raise it unchanged
+            raise
+        except sqlite3.Error as exc:
+            lost = self._pending + batch
+            self._abandon()
+            upto = (
+                f" (up to clock time {self._last_commit_t_s:g} s)"
+                if self._last_commit_t_s is not None
+                else ""
+            )
+            raise RuntimeFailure(
+                f"run log {self._path}: could not {what}: {exc}. The {lost} row(s) not yet "
+                f"committed were dropped; everything committed earlier{upto} is intact."
+            ) from exc
+
+    def _abandon(self) -> None:
+        """Roll back the open transaction, if SQLite has not already done so."""
+        conn = self._conn
+        if conn is not None and conn.in_transaction:
+            with contextlib.suppress(sqlite3.Error):
+                conn.execute("ROLLBACK")
+        self._pending = 0
+
+
+def _check_interval(commit_interval_s: float) -> None:
+    """Refuse a negative or non-finite commit interval (a programming error)."""
+    if not (math.isfinite(commit_interval_s) and commit_interval_s >= 0):
+        raise ValueError(f"commit_interval_s must be >= 0 s, got {commit_interval_s!r}")
