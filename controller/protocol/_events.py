@@ -19,7 +19,6 @@ Rules
 
 from __future__ import annotations
 
-from enum import StrEnum
 from typing import Annotated, Literal, Self
 
 from pydantic import Field, model_validator
@@ -28,6 +27,7 @@ from controller._model import FileModel
 from controller.protocol._blocks import check_baseline_years, exactly_one
 from controller.protocol._durations import Duration, Offset
 from controller.protocol._errors import raise_at
+from controller.science.heatwave import Category
 
 __all__ = [
     "Category",
@@ -36,15 +36,6 @@ __all__ = [
     "HeatwaveEvent",
     "StormEvent",
 ]
-
-
-class Category(StrEnum):
-    """Marine heatwave / cold-spell category (Hobday et al. 2018)."""
-
-    MODERATE = "moderate"
-    STRONG = "strong"
-    SEVERE = "severe"
-    EXTREME = "extreme"
 
 
 class _EventBase(FileModel):
