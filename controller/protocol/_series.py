@@ -20,9 +20,11 @@ from __future__ import annotations
 
 import csv
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime
 from pathlib import Path
+from typing import TypeVar
 
 import numpy as np
 
@@ -33,6 +35,7 @@ from controller.science.heatwave import load_series_csv as load_daily_series_csv
 __all__ = ["ReplaySeries", "SeriesFiles", "load_replay_csv"]
 
 _MISSING = {"", "nan", "na", "n/a", "null"}
+_T = TypeVar("_T")
 
 
 @dataclass(frozen=True)
@@ -204,7 +207,7 @@ class SeriesFiles:
         return self._cache[key]  # type: ignore[return-value]
 
     @staticmethod
-    def _guard(action, where: str, file: Path | None = None):  # type: ignore[no-untyped-def]
+    def _guard(action: Callable[[], _T], where: str, file: Path | None = None) -> _T:
         try:
             return action()
         except SquallError as exc:
