@@ -1,5 +1,38 @@
-"""Rig files: what chambers exist, how they are wired, what they can physically do."""
+"""Rig files: what chambers exist, how they are wired, what they can physically do, and how the
+simulator should behave when it stands in for them."""
 
 from controller.rig._models import Chamber, ChamberLimits, Rig
+from controller.rig._sim import (
+    COMM_DEVICES,
+    SENSORS,
+    Bath,
+    BiologySim,
+    ChamberSim,
+    Fault,
+    FaultKind,
+    LampSim,
+    OptodeSim,
+    PumpSim,
+    RackSim,
+    SensorSim,
+    ThermalSim,
+)
 
-__all__ = ["Chamber", "ChamberLimits", "Rig"]
+__all__ = [
+    "COMM_DEVICES",
+    "SENSORS",
+    "Bath",
+    "BiologySim",
+    "Chamber",
+    "ChamberLimits",
+    "ChamberSim",
+    "Fault",
+    "FaultKind",
+    "LampSim",
+    "OptodeSim",
+    "PumpSim",
+    "RackSim",
+    "Rig",
+    "SensorSim",
+    "ThermalSim",
+]

@@ -3,6 +3,9 @@
 
 Rule: a chamber that names a ``bath`` shares one water body (one thermal node) with every other
 chamber naming the same bath, so all of them must be given the same temperature program.
+Simulator parameters live in :mod:`controller.rig._sim`; cross-references (bath names, fault
+chambers, duplicate ids) are checked here and reported as :class:`SquallError` with the dotted
+field path, so the file loader can point at the line.
 """
 
 from __future__ import annotations
@@ -12,6 +15,8 @@ from typing import Self
 from pydantic import Field, model_validator
 
 from controller._model import FileModel
+from controller.errors import SquallError
+from controller.rig._sim import Bath, ChamberSim, RackSim
 
 __all__ = ["Chamber", "ChamberLimits", "Rig"]
 
@@ -65,7 +70,22 @@ class Chamber(FileModel):
         description="Shared water bath this chamber sits in; chambers in one bath share one "
         "temperature program.",
     )
+    salinity: float = Field(
+        35.0, ge=0, le=42, description="Practical salinity of the chamber water (PSS-78)."
+    )
     limits: ChamberLimits = Field(default_factory=ChamberLimits)
+    sim: ChamberSim = Field(
+        default_factory=ChamberSim, description="Simulator parameters of this chamber."
+    )
+
+    @model_validator(mode="after")
+    def _thermal_belongs_to_bath(self) -> Self:
+        if self.bath is not None and self.sim.thermal is not None:
+            raise ValueError(
+                f"chamber {self.id!r} sits in bath {self.bath!r}: give its thermal parameters "
+                "under [baths.thermal] of that bath, not [chambers.sim.thermal]"
+            )
+        return self
 
 
 class Rig(FileModel):
@@ -74,14 +94,53 @@ class Rig(FileModel):
     name: str = Field(min_length=1, description="Human-readable rig name.")
     chambers: list[Chamber] = Field(min_length=1, description="Every chamber of the rig.")
 
+    baths: list[Bath] = Field(
+        default_factory=list,
+        description="Shared water baths; when any is given, every bath a chamber names must be "
+        "defined here.",
+    )
+    sim: RackSim = Field(default_factory=RackSim, description="Rack-wide simulator settings.")
+
     @model_validator(mode="after")
-    def _unique_ids(self) -> Self:
+    def _cross_references(self) -> Self:
         seen: set[str] = set()
-        for chamber in self.chambers:
+        for i, chamber in enumerate(self.chambers):
             if chamber.id in seen:
-                raise ValueError(f"chamber id {chamber.id!r} appears twice")
+                raise SquallError(
+                    f"chamber id {chamber.id!r} appears twice", field=f"chambers.{i}.id"
+                )
             seen.add(chamber.id)
+        bath_ids: set[str] = set()
+        for i, bath in enumerate(self.baths):
+            if bath.id in bath_ids:
+                raise SquallError(f"bath id {bath.id!r} appears twice", field=f"baths.{i}.id")
+            bath_ids.add(bath.id)
+        named = {c.bath for c in self.chambers if c.bath is not None}
+        if self.baths:
+            for i, chamber in enumerate(self.chambers):
+                if chamber.bath is not None and chamber.bath not in bath_ids:
+                    raise SquallError(
+                        f"bath {chamber.bath!r} is not defined under [[baths]] "
+                        f"(defined: {', '.join(sorted(bath_ids))})",
+                        field=f"chambers.{i}.bath",
+                    )
+            for i, bath in enumerate(self.baths):
+                if bath.id not in named:
+                    raise SquallError(f"no chamber sits in bath {bath.id!r}", field=f"baths.{i}.id")
+        for i, fault in enumerate(self.sim.faults):
+            if fault.chamber is not None and fault.chamber not in seen:
+                raise SquallError(
+                    f"fault names chamber {fault.chamber!r}, which the rig does not have",
+                    field=f"sim.faults.{i}.chamber",
+                )
         return self
+
+    def bath(self, bath_id: str) -> Bath | None:
+        """Return the defined bath with this id, or ``None`` when it is not defined."""
+        for bath in self.baths:
+            if bath.id == bath_id:
+                return bath
+        return None
 
     def chamber(self, chamber_id: str) -> Chamber:
         """Return the chamber with this id; raise ``KeyError`` if there is none."""
