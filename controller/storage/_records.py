@@ -349,10 +349,9 @@ class ResumePoint:
     ----------
     session
         Number of the new writer session (2 for the first resume), dimensionless.
-    samples
-        Number of sample rows already in the log, dimensionless.
     last_seq
-        Row id of the last sample, 0 when there is none.
+        Row id of the last sample, which is also the number of samples in the log (rows are
+        never deleted); 0 when there is none.
     last_t_s
         Clock time of the last sample, s (on the old session's clock); None without samples.
     last_utc_s
@@ -368,7 +367,6 @@ class ResumePoint:
     """
 
     session: int
-    samples: int
     last_seq: int
     last_t_s: float | None
     last_utc_s: float | None

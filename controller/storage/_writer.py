@@ -101,7 +101,7 @@ class _WriterLock:
             holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "unknown"
             os.close(fd)
             raise SquallError(
-                f"run log is being written by another squall process (pid {holder}); "
+                f"run log is being written by another writer (process {holder}); "
                 "stop that run first or choose another log file",
                 file=log_path,
             ) from None
