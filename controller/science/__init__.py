@@ -1,9 +1,9 @@
-"""Pure science functions: light, marine heatwaves and cold spells, metabolic rates.
+"""Pure science functions: light, heatwaves and cold spells, metabolic rates, oxygen, optodes.
 
 Rule: nothing in this package reads a clock, keeps global state or does I/O, except the CSV
 loaders of :mod:`controller.science.heatwave`, which read only the file they are given. The
-modules are public (``controller.science.light``, ``.heatwave``, ``.rates``); their names
-are also re-exported here.
+modules are public (``controller.science.light``, ``.heatwave``, ``.rates``, ``.oxygen``,
+``.optode``); their names are also re-exported here.
 """
 
 from controller.science.heatwave import (
@@ -33,6 +33,29 @@ from controller.science.light import (
     half_sine_peak_for_dli,
     sun_elevation_deg,
 )
+from controller.science.optode import (
+    OptodeCalibration,
+    SignalKind,
+    calibrate_two_point,
+    concentration_from_lifetime,
+    concentration_from_phase,
+    concentration_from_signal,
+    lifetime_from_concentration,
+    phase_from_concentration,
+    signal_from_concentration,
+)
+from controller.science.oxygen import (
+    O2_MOLAR_MASS_G_PER_MOL,
+    O2_MOLAR_VOLUME_L_PER_MOL,
+    O2_MOLE_FRACTION,
+    STANDARD_PRESSURE_HPA,
+    UNITS,
+    convert,
+    normalise_unit,
+    seawater_density_kg_m3,
+    solubility,
+    water_vapour_pressure_hpa,
+)
 from controller.science.rates import (
     BOLTZMANN_EV_PER_K,
     ZERO_CELSIUS_K,
@@ -51,17 +74,29 @@ __all__ = [
     "CATEGORY_MULTIPLES",
     "DAYS_IN_CLIMATOLOGY_YEAR",
     "FEB29_DOY",
+    "O2_MOLAR_MASS_G_PER_MOL",
+    "O2_MOLAR_VOLUME_L_PER_MOL",
+    "O2_MOLE_FRACTION",
     "SECONDS_PER_DAY",
+    "STANDARD_PRESSURE_HPA",
+    "UNITS",
     "ZERO_CELSIUS_K",
     "Category",
     "Climatology",
     "ExtremeEvent",
+    "OptodeCalibration",
+    "SignalKind",
     "arrhenius_factor",
     "attenuation_factor",
     "beer_lambert",
+    "calibrate_two_point",
     "category_multiple",
     "category_name",
     "climatology",
+    "concentration_from_lifetime",
+    "concentration_from_phase",
+    "concentration_from_signal",
+    "convert",
     "daily_light_integral",
     "daily_series",
     "detect",
@@ -71,13 +106,20 @@ __all__ = [
     "half_sine_peak_for_dli",
     "jassby_platt",
     "leap_day_of_year",
+    "lifetime_from_concentration",
     "load_climatology_csv",
     "load_series_csv",
+    "normalise_unit",
+    "phase_from_concentration",
     "platt",
     "platt_optimum",
     "q10_equivalent",
     "q10_factor",
     "q10_from_rates",
+    "seawater_density_kg_m3",
+    "signal_from_concentration",
+    "solubility",
     "sun_elevation_deg",
+    "water_vapour_pressure_hpa",
     "webb",
 ]
