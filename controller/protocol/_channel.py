@@ -11,9 +11,11 @@ Rules
   product of two lines is a parabola): intervals are subdivided until the chord error is at
   most ``tol`` (the error of a product of two lines over an interval is |Δa·Δb|/4 at its
   middle, and n equal pieces divide it by n²).
-- Channels are immutable (read-only arrays). Evaluation tables for fast sampling (one
-  intercept and one slope per interval, so a value costs one search, two gathers, one
-  multiply and one add) are built once, when the channel is made.
+- Channels are immutable (read-only arrays). Evaluation tables for fast sampling (start time,
+  start value and slope of every stretch, so a value is v0 + m·(t - t0), exact at
+  breakpoints) are built once, when the channel is made. For sorted sample times the stretch
+  index comes from searching the breakpoints among the times (n log N for n breakpoints,
+  N times) and expanding with ``numpy.repeat``; unsorted times use ``numpy.searchsorted``.
 """
 
 from __future__ import annotations
@@ -56,7 +58,8 @@ class Channel:
 
     t_s: FloatArray
     v: FloatArray
-    _intercept: FloatArray = field(init=False, repr=False)
+    _seg_t: FloatArray = field(init=False, repr=False)
+    _seg_v: FloatArray = field(init=False, repr=False)
     _slope: FloatArray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -71,10 +74,18 @@ class Channel:
         dt = np.diff(t)
         dv = np.diff(v)
         slope = np.divide(dv, dt, out=np.zeros_like(dv), where=dt > 0)
-        intercept = v[:-1] - slope * t[:-1]
-        intercept = np.concatenate(([v[0]], intercept, [v[-1]]))
+        # table entry i serves times with t[i-1] <= x < t[i]: start point and slope of that
+        # stretch; entry 0 (before the first breakpoint) and entry n (after the last) are flat
+        seg_t = np.concatenate(([t[0]], t))
+        seg_v = np.concatenate(([v[0]], v))
         slope = np.concatenate(([0.0], slope, [0.0]))
-        for name, array in (("t_s", t), ("v", v), ("_intercept", intercept), ("_slope", slope)):
+        for name, array in (
+            ("t_s", t),
+            ("v", v),
+            ("_seg_t", seg_t),
+            ("_seg_v", seg_v),
+            ("_slope", slope),
+        ):
             array.setflags(write=False)
             object.__setattr__(self, name, array)
 
@@ -104,11 +115,20 @@ class Channel:
             Values in the channel's unit.
         """
         x = np.asarray(t_s, dtype=np.float64)
-        index = np.searchsorted(self.t_s, x, side="right")
-        result = np.take(self._slope, index, out=out)
-        np.multiply(result, x, out=result)
-        result += np.take(self._intercept, index)
+        index = self._stretch_index(x)
+        result = np.subtract(x, np.take(self._seg_t, index), out=out)
+        result *= np.take(self._slope, index)
+        result += np.take(self._seg_v, index)
         return result
+
+    def _stretch_index(self, x: FloatArray) -> npt.NDArray[np.intp]:
+        """Number of breakpoints at or before each time (the table entry serving it)."""
+        if x.ndim == 1 and x.size > 4 * self.t_s.size and bool(np.all(x[1:] >= x[:-1])):
+            # sorted times: search the few breakpoints among the many times, then expand
+            first = np.searchsorted(x, self.t_s, side="left")
+            counts = np.diff(np.concatenate(([0], first, [x.size])))
+            return np.repeat(np.arange(self.t_s.size + 1), counts)
+        return np.searchsorted(self.t_s, x, side="right")
 
     def max_abs_slope(self) -> tuple[float, float]:
         """Steepest sloped stretch (steps excluded).

@@ -141,8 +141,9 @@ def half_sine_days(
 
     def func(t: FloatArray) -> FloatArray:
         since = np.mod(t + tod0_s, DAY_S) - sunrise_s
-        lit = (since >= 0) & (since <= length)
-        return np.where(lit, peak * np.sin(np.pi * np.clip(since, 0, length) / length), 0.0)
+        lit = (since > 0) & (since < length)
+        value = peak * np.sin(np.pi * (np.clip(since, 0, length) / length))
+        return np.where(lit, np.maximum(value, 0.0), 0.0)
 
     days = _day_starts(tod0_s, t0_s, t1_s)
     fractions = np.linspace(0.0, 1.0, n + 1)

@@ -1,0 +1,1 @@
+"""Tests of the protocol package: models, durations, compiler, evaluation, derived metrics."""
