@@ -50,7 +50,7 @@ class _EventBase(FileModel):
         description="A phase name (the event starts at that phase's start) or a duration from "
         "the start of the experiment, e.g. '4d'.",
     )
-    offset: Offset = Field(0.0, description="Added to `starts`, e.g. '2d'.")
+    offset: Offset = Field("0s", description="Added to `starts`, e.g. '2d'.")
 
 
 class _TemperatureExtreme(_EventBase):
@@ -178,7 +178,7 @@ class StormEvent(_EventBase):
         "multiplied by exp(-kd_rise_per_m * site.depth_m).",
     )
     ramp: Offset = Field(
-        0.0, description="How long turbidity (and cooling) take to build and to clear."
+        "0s", description="How long turbidity (and cooling) take to build and to clear."
     )
     flow_peak_cm_s: float | None = Field(
         None, gt=0, le=200, description="Highest flow of the pulses, cm s-1."
