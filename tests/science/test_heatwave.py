@@ -203,7 +203,9 @@ def test_event_takes_its_highest_daily_category(peak_c: float, name: str) -> Non
 # --- cold spells ----------------------------------------------------------------------------
 
 
-def _seasonal_series(seed: int, start: str = "1990-01-01", end: str = "1999-12-31"):
+def _seasonal_series(
+    seed: int, start: str = "1990-01-01", end: str = "1999-12-31"
+) -> tuple[pd.DatetimeIndex, np.ndarray]:
     dates = pd.date_range(start, end, freq="D")
     rng = np.random.default_rng(seed)
     doy = dates.day_of_year.to_numpy()
@@ -251,7 +253,15 @@ def test_synthetic_cold_spell() -> None:
 # --- climatology ----------------------------------------------------------------------------
 
 
-def _loop_climatology(dates, temps, y0, y1, pct, half, width):
+def _loop_climatology(
+    dates: pd.DatetimeIndex,
+    temps: np.ndarray,
+    y0: int,
+    y1: int,
+    pct: float,
+    half: int,
+    width: int,
+) -> tuple[np.ndarray, np.ndarray]:
     """Direct transcription of the method (reference notes §4), one day of year at a time."""
     index = pd.DatetimeIndex(dates)
     doy = index.day_of_year.to_numpy() + ((~index.is_leap_year) & (index.month > 2))
