@@ -222,7 +222,9 @@ class Readings:
     level_ok
         Level switch: True normal, False low (leak); None when not read or not fitted.
     comm_ok
-        True when every device of the chamber answered this tick; False or None otherwise.
+        True when every device of the chamber answered this tick; False when one did not;
+        None when not polled. Only True refreshes the comm-loss timer, so a runtime that
+        polls less often than every tick must pass True on ticks after a good poll.
     e_stop
         True while the emergency stop is pressed; None when not read or not fitted.
     """
