@@ -5,9 +5,10 @@ segment of ``n`` equal sub-steps of ``h`` seconds, inputs that are constant over
 and returns the trajectory at the sub-step boundaries as arrays of shape ``(n + 1, ...)`` or
 ``(n, ...)``, so whole segments are computed at once instead of one Python step at a time.
 The thermal node is linear with constant input, so its closed form
-T(t) = T∞ + (T0 − T∞)·e^(−t/τ) is exact at any step length; processes driven by the
-temperature (oxygen, sensor lags) hold their driving values over each sub-step (zero-order
-hold) and are integrated exactly under that hold.
+T(t) = T∞ + (T0 − T∞)·e^(−t/τ) is exact at any step length. Oxygen holds its driving
+temperature and light over each sub-step (zero-order hold) and is integrated exactly under
+that hold; sensor lags take their input as linear between sub-step boundaries (first-order
+hold), which is exact for ramps.
 """
 
 from __future__ import annotations
@@ -58,9 +59,10 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
     Notes
     -----
     Uses y_k = a^k·(y0 + Σ_(j≤k) a^(−j)·u_j), cut into chunks short enough that a^(−j) stays
-    below e^500. Columns with a ≤ 1e-15 forget their past within one step: y_k = u_k. With ``floor``, columns with a = 1 use the reflection
-    y_k = x_k − min(0, min_(j≤k) x_j) of the unfloored sum x (exact); other columns that would
-    dip below zero are stepped one by one.
+    below e^500. Columns with a ≤ 1e-15 forget their past within one step: y_k = u_k.
+    With ``floor``, columns with a = 1 use the reflection y_k = x_k − min(0, min_(j≤k) x_j)
+    of the unfloored sum x (exact); other columns that would dip below zero are stepped one
+    by one.
     """
     n = u.shape[0]
     if a.size and a.min() > _NEGLIGIBLE:

@@ -32,8 +32,12 @@ def test_par_at_full_defaults_to_the_chamber_limit() -> None:
 
 
 def test_lamp_warms_up_with_a_first_order_response() -> None:
-    lamp = {"par_at_full_drive": 1000.0, "curve_shape": 0.0, "warmup_tau_s": 120.0,
-            "cold_output_fraction": 0.6}
+    lamp = {
+        "par_at_full_drive": 1000.0,
+        "curve_shape": 0.0,
+        "warmup_tau_s": 120.0,
+        "cold_output_fraction": 0.6,
+    }
     r = rack(chamber(sim={"lamp": lamp}))
     r.set_outputs("C1", lamp_pct=100.0)
     assert r.truth("C1").par == pytest.approx(600.0)
@@ -45,8 +49,12 @@ def test_lamp_warms_up_with_a_first_order_response() -> None:
 
 
 def test_lamp_loses_output_with_hours_lit() -> None:
-    lamp = {"par_at_full_drive": 1000.0, "curve_shape": 0.0, "ageing_pct_per_1000_h": 5.0,
-            "lamp_hours_h": 1000.0}
+    lamp = {
+        "par_at_full_drive": 1000.0,
+        "curve_shape": 0.0,
+        "ageing_pct_per_1000_h": 5.0,
+        "lamp_hours_h": 1000.0,
+    }
     r = rack(chamber(sim={"lamp": lamp}))
     r.set_outputs("C1", lamp_pct=100.0)
     assert r.truth("C1").par == pytest.approx(950.0)

@@ -14,8 +14,15 @@ K_BOLTZMANN_EV_K = 8.617333262e-5  # CODATA 2018, exact
 
 def _bio_rack(temp_c: float, **biology: float):  # type: ignore[no-untyped-def]
     """One closed chamber held at ``temp_c`` (huge heat capacity, room at the same temperature)."""
-    bio = {"gpp_max_umol_m2_h": 2000.0, "ik_umol_m2_s": 250.0, "resp_umol_m2_h": 900.0,
-           "ea_gpp_ev": 0.32, "ea_resp_ev": 0.65, "t_ref_c": 20.0, **biology}
+    bio = {
+        "gpp_max_umol_m2_h": 2000.0,
+        "ik_umol_m2_s": 250.0,
+        "resp_umol_m2_h": 900.0,
+        "ea_gpp_ev": 0.32,
+        "ea_resp_ev": 0.65,
+        "t_ref_c": 20.0,
+        **biology,
+    }
     return rack(
         chamber(
             sim={
@@ -89,8 +96,9 @@ def test_net_production_turns_negative_in_a_hot_chamber() -> None:
 
 def test_thermal_stress_cuts_production_above_the_threshold() -> None:
     plain = _bio_rack(30.0)
-    stressed = _bio_rack(30.0, stress_threshold_c=26.0, stress_gpp_loss_per_c=0.1,
-                         stress_resp_gain_per_c=0.05)
+    stressed = _bio_rack(
+        30.0, stress_threshold_c=26.0, stress_gpp_loss_per_c=0.1, stress_resp_gain_per_c=0.05
+    )
     for r in (plain, stressed):
         r.set_outputs("C1", lamp_pct=50.0)
     a, b = plain.truth("C1"), stressed.truth("C1")

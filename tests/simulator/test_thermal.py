@@ -7,7 +7,6 @@ import math
 import gsw
 import numpy as np
 import pytest
-
 from sim_rigs import chamber, rack, thermal
 
 # Lumped-model check, 100 L seawater (S = 35) at 20 °C: C = 409.51 kJ/K from TEOS-10 density
@@ -105,8 +104,9 @@ def test_energy_is_conserved_over_a_run_with_every_heat_path() -> None:
         chamber(
             salinity=30.0,
             sim={
-                "thermal": thermal(ua_w_k=7.0, heater_max_w=250.0, chiller_max_w=180.0,
-                                   dead_time_s=30.0),
+                "thermal": thermal(
+                    ua_w_k=7.0, heater_max_w=250.0, chiller_max_w=180.0, dead_time_s=30.0
+                ),
                 "pump": {"flush_at_full_drive_l_h": 24.0},
             },
         ),
@@ -161,8 +161,12 @@ def test_chiller_cools_below_room() -> None:
 
 
 def test_shared_bath_is_one_thermal_node_driven_by_its_first_chamber() -> None:
-    bath = {"id": "tank", "water_volume_l": 80.0, "salinity": 35.0,
-            "thermal": thermal(ua_w_k=20.0, heater_max_w=400.0)}
+    bath = {
+        "id": "tank",
+        "water_volume_l": 80.0,
+        "salinity": 35.0,
+        "thermal": thermal(ua_w_k=20.0, heater_max_w=400.0),
+    }
     r = rack(
         chamber("C1", bath="tank", salinity=35.0),
         chamber("C2", bath="tank", salinity=35.0),
