@@ -207,12 +207,21 @@ class CompiledProtocol:
     def source_at(self, group: str, variable: str, t_s: float) -> str | None:
         """Path of the block or event driving ``variable`` of ``group`` at ``t_s`` (s).
 
-        Events win over blocks (they are the later overlay); ``None`` if nothing is recorded.
+        Events win over blocks (they are the later overlay); among blocks the one that starts
+        last wins, so at a boundary the block that begins there is named (right-continuous,
+        like the channels) and inside a repeat the inner block is named.
+        ``None`` if nothing is recorded.
         """
-        found: str | None = None
+        best: Source | None = None
         for source in self.sources:
-            if source.group == group and source.variable == variable:
-                if source.t0_s <= t_s <= source.t1_s:
-                    if found is None or source.field.startswith("events"):
-                        found = source.field
-        return found
+            if source.group != group or source.variable != variable:
+                continue
+            if not source.t0_s <= t_s <= source.t1_s:
+                continue
+            if best is None:
+                best = source
+                continue
+            event, best_event = source.field.startswith("events"), best.field.startswith("events")
+            if (event, source.t0_s) > (best_event, best.t0_s):
+                best = source
+        return best.field if best is not None else None

@@ -19,6 +19,7 @@ Rules
 
 from __future__ import annotations
 
+from enum import StrEnum
 from typing import Annotated, Literal, Self
 
 from pydantic import Field, model_validator
@@ -27,7 +28,6 @@ from controller._model import FileModel
 from controller.protocol._blocks import check_baseline_years, exactly_one
 from controller.protocol._durations import Duration, Offset
 from controller.protocol._errors import raise_at
-from controller.science.heatwave import Category
 
 __all__ = [
     "Category",
@@ -36,6 +36,19 @@ __all__ = [
     "HeatwaveEvent",
     "StormEvent",
 ]
+
+
+class Category(StrEnum):
+    """Size of a heatwave or cold spell as a Hobday et al. (2018) category.
+
+    The values are the keys of :data:`controller.science.heatwave.CATEGORY_MULTIPLES`
+    (1x..4x of thresh - seas); kept here so reading a protocol does not load the science stack.
+    """
+
+    MODERATE = "moderate"
+    STRONG = "strong"
+    SEVERE = "severe"
+    EXTREME = "extreme"
 
 
 class _EventBase(FileModel):
