@@ -21,9 +21,7 @@ Rules of this module
 from __future__ import annotations
 
 import contextlib
-import fcntl
 import math
-import os
 import sqlite3
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -34,12 +32,11 @@ from controller import __version__
 from controller.errors import RuntimeFailure, SquallError
 
 from ._columns import columns_of, insert_sql, row_getter
+from ._opening import WriterLock, configure, create_log, refuse_existing, resume_point
 from ._records import (
     AlarmRecord,
     AuditRecord,
-    EventKind,
     EventRecord,
-    IncubationState,
     ResumePoint,
     RunEnd,
     RunMeta,
@@ -47,7 +44,7 @@ from ._records import (
     SessionRecord,
     WindowRecord,
 )
-from ._schema import SCHEMA_VERSION, create_schema, open_log, read_end, read_meta, run_columns
+from ._schema import SCHEMA_VERSION, open_log, read_end, read_meta, run_columns
 
 __all__ = ["RunLogWriter"]
 
@@ -64,148 +61,6 @@ _RARE_TABLES: dict[type, str] = {
 }
 _RARE_SQL = {rec: insert_sql(table, columns_of(rec)) for rec, table in _RARE_TABLES.items()}
 _RARE_ROW = {rec: row_getter(columns_of(rec)) for rec in _RARE_TABLES}
-
-#: Largest size the -wal file is truncated back to after a checkpoint, bytes.
-_JOURNAL_SIZE_LIMIT_B = 64 * 1024 * 1024
-
-
-def _configure(conn: sqlite3.Connection, *, durable: bool) -> None:
-    """Per-connection settings of a writing connection."""
-    # WAL with synchronous=NORMAL: a commit appends its pages and a commit record to the -wal
-    # file without fsync; only checkpoints fsync. A commit that returned sits in the OS page
-    # cache, so it survives the *process* dying (crash, SIGKILL, OOM kill): the kernel writes
-    # it out anyway. A power cut or kernel panic may lose the commits made since the last
-    # checkpoint (at most ~4 MB of pages with the default autocheckpoint), but never corrupts
-    # the file: frames after the last complete commit record are ignored on recovery. FULL
-    # (``durable=True``) fsyncs every commit, i.e. about once a second, which bounds loss on
-    # power cuts too, at the price of an fsync (milliseconds, more on SD cards) per commit.
-    conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
-    conn.execute(f"PRAGMA journal_size_limit = {_JOURNAL_SIZE_LIMIT_B}")
-
-
-class _WriterLock:
-    """Exclusive advisory lock on ``<log>.lock`` held while a writer is open."""
-
-    def __init__(self, log_path: Path) -> None:
-        self.path = log_path.with_name(log_path.name + ".lock")
-        try:
-            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
-        except OSError as exc:
-            raise SquallError(
-                f"cannot create the run log's lock file {self.path.name}: {exc.strerror}",
-                file=log_path,
-            ) from exc
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "unknown"
-            os.close(fd)
-            raise SquallError(
-                f"run log is being written by another writer (process {holder}); "
-                "stop that run first or choose another log file",
-                file=log_path,
-            ) from None
-        os.ftruncate(fd, 0)
-        os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
-        self._fd: int | None = fd
-
-    def release(self) -> None:
-        """Release the lock (the lock file stays; it is harmless when unlocked)."""
-        if self._fd is not None:
-            fcntl.flock(self._fd, fcntl.LOCK_UN)
-            os.close(self._fd)
-            self._fd = None
-
-
-def _refuse_existing(path: Path) -> None:
-    """Raise SquallError unless ``path`` is free for a new log (absent or empty)."""
-    if not path.exists() or (path.is_file() and path.stat().st_size == 0):
-        return
-    conn, _ = open_log(path, readonly=True)  # SquallError for anything that is not a log
-    try:
-        end = read_end(conn, path)
-    finally:
-        conn.close()
-    if end is not None:
-        raise SquallError(
-            f"already holds a finished run ({end.end_reason.value}); refusing to overwrite "
-            "it: choose another log file",
-            file=path,
-        )
-    raise SquallError(
-        "already holds an interrupted run; resume it (squall run --resume LOG) or choose "
-        "another log file",
-        file=path,
-    )
-
-
-def _remove_db_files(path: Path) -> None:
-    """Delete a log and its -wal/-shm companions, ignoring ones that are absent."""
-    for suffix in ("", "-wal", "-shm"):
-        with contextlib.suppress(FileNotFoundError):
-            os.remove(f"{path}{suffix}")
-
-
-def _create(path: Path, meta: RunMeta, *, durable: bool) -> sqlite3.Connection:
-    """Create a new log at ``path`` (absent or empty) and return its writing connection."""
-    existed = path.exists()
-    try:
-        conn = sqlite3.connect(path, isolation_level=None, timeout=10.0, check_same_thread=False)
-    except sqlite3.Error as exc:
-        raise SquallError(f"cannot create run log: {exc}", file=path) from exc
-    try:
-        mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-        if mode != "wal":
-            raise RuntimeFailure(
-                f"run log {path}: the file system does not support SQLite's WAL mode "
-                f"(got journal mode {mode!r}); put the log on a local disk"
-            )
-        _configure(conn, durable=durable)
-        create_schema(conn, meta)
-    except sqlite3.Error as exc:
-        conn.close()
-        if not existed:
-            _remove_db_files(path)
-        raise RuntimeFailure(f"run log {path}: could not create it: {exc}") from exc
-    except BaseException:
-        conn.close()
-        if not existed:
-            _remove_db_files(path)
-        raise
-    return conn
-
-
-def _resume_point(conn: sqlite3.Connection, session: int, n_chambers: int) -> ResumePoint:
-    """Read where the run stopped from the last committed rows (no full-table scans)."""
-    last = conn.execute(
-        "SELECT seq, t_s, utc_s, elapsed_s FROM samples ORDER BY seq DESC LIMIT 1"
-    ).fetchone()
-    phases: dict[str, str] = {}
-    closed: list[str] = []
-    # The last few ticks hold every chamber's last row; reading them avoids a GROUP BY scan.
-    recent = conn.execute(
-        "SELECT chamber, phase, incubation FROM samples ORDER BY seq DESC LIMIT ?",
-        (max(64, 4 * n_chambers),),
-    ).fetchall()
-    for chamber, phase, incubation in recent:
-        if chamber not in phases:
-            phases[chamber] = phase
-            if incubation == IncubationState.CLOSED.value:
-                closed.append(chamber)
-    hold = conn.execute(
-        "SELECT kind FROM events WHERE kind IN (?, ?) ORDER BY seq DESC LIMIT 1",
-        (EventKind.HOLD.value, EventKind.HOLD_END.value),
-    ).fetchone()
-    return ResumePoint(
-        session=session,
-        last_seq=int(last[0]) if last else 0,
-        last_t_s=last[1] if last else None,
-        last_utc_s=last[2] if last else None,
-        last_elapsed_s=last[3] if last else None,
-        phases=phases,
-        closed=tuple(sorted(closed)),
-        held=hold is not None and hold[0] == EventKind.HOLD.value,
-    )
 
 
 class RunLogWriter:
@@ -244,17 +99,18 @@ class RunLogWriter:
     ) -> None:
         path = Path(path)
         _check_interval(commit_interval_s)
-        _refuse_existing(path)
-        lock = _WriterLock(path)
+        refuse_existing(path, probe_lock=True)
+        lock = WriterLock(path)
         try:
-            _refuse_existing(path)  # again: another process may have created it meanwhile
-            conn = _create(path, meta, durable=durable)
+            # again, under the lock: another process may have created it meanwhile
+            refuse_existing(path, probe_lock=False)
+            conn = create_log(path, meta, durable=durable)
         except BaseException:
             lock.release()
             raise
         self._setup(path, conn, lock, meta, commit_interval_s, resume_point=None)
         first = SessionRecord(software_version=__version__, first_sample_seq=1, resumed=False)
-        self._insert_now(first, None, "record the session")
+        self._insert_or_discard(first, "record the session")
 
     @classmethod
     def resume(
@@ -285,7 +141,7 @@ class RunLogWriter:
         _check_interval(commit_interval_s)
         probe, _ = open_log(path, readonly=True)  # a clear error before creating a lock file
         probe.close()
-        lock = _WriterLock(path)
+        lock = WriterLock(path)
         conn: sqlite3.Connection | None = None
         try:
             conn, version = open_log(path, readonly=False)
@@ -303,9 +159,9 @@ class RunLogWriter:
                     "resume: start a new run with another log file",
                     file=path,
                 )
-            _configure(conn, durable=durable)
+            configure(conn, durable=durable)
             session = conn.execute("SELECT count(*) FROM sessions").fetchone()[0] + 1
-            point = _resume_point(conn, session, len(meta.chambers))
+            point = resume_point(conn, session, len(meta.chambers))
         except sqlite3.Error as exc:
             if conn is not None:
                 conn.close()
@@ -318,11 +174,10 @@ class RunLogWriter:
             raise
         writer = cls.__new__(cls)
         writer._setup(path, conn, lock, meta, commit_interval_s, resume_point=point)
-        writer._insert_now(
+        writer._insert_or_discard(
             SessionRecord(
                 software_version=__version__, first_sample_seq=point.last_seq + 1, resumed=True
             ),
-            None,
             "record the resumed session",
         )
         return writer
@@ -331,7 +186,7 @@ class RunLogWriter:
         self,
         path: Path,
         conn: sqlite3.Connection,
-        lock: _WriterLock,
+        lock: WriterLock,
         meta: RunMeta,
         commit_interval_s: float,
         *,
@@ -416,19 +271,63 @@ class RunLogWriter:
         self._after_write(rows[-1].t_s)
 
     def record_alarm(self, alarm: AlarmRecord) -> None:
-        """Write an alarm raise/clear/ack and commit at once."""
+        """Write an alarm raise, clear or acknowledgement and commit at once.
+
+        Parameters
+        ----------
+        alarm
+            The alarm record (times in s; see :class:`AlarmRecord` for each field's unit).
+
+        Raises
+        ------
+        RuntimeFailure
+            The record could not be written; uncommitted rows were dropped.
+        """
         self._insert_now(alarm, alarm.t_s, f"record alarm {alarm.code!r}")
 
     def record_event(self, event: EventRecord) -> None:
-        """Write a run event and commit at once."""
+        """Write a run event (start, stop, gap, phase change, hold…) and commit at once.
+
+        Parameters
+        ----------
+        event
+            The event record (times in s; see :class:`EventRecord` for each field's unit).
+
+        Raises
+        ------
+        RuntimeFailure
+            The record could not be written; uncommitted rows were dropped.
+        """
         self._insert_now(event, event.t_s, f"record event {event.kind.value!r}")
 
     def record_window(self, window: WindowRecord) -> None:
-        """Write a closed incubation window (when it ends) and commit at once."""
+        """Write a closed incubation window, once it has ended, and commit at once.
+
+        Parameters
+        ----------
+        window
+            The window record (times in s; see :class:`WindowRecord` for each field's unit).
+
+        Raises
+        ------
+        RuntimeFailure
+            The record could not be written; uncommitted rows were dropped.
+        """
         self._insert_now(window, window.end_t_s, f"record a window of {window.chamber!r}")
 
     def record_audit(self, entry: AuditRecord) -> None:
-        """Write an operator command or note and commit at once."""
+        """Write an operator command or note to the audit trail and commit at once.
+
+        Parameters
+        ----------
+        entry
+            The audit record (times in s; see :class:`AuditRecord` for each field's unit).
+
+        Raises
+        ------
+        RuntimeFailure
+            The record could not be written; uncommitted rows were dropped.
+        """
         self._insert_now(entry, entry.t_s, f"record operator command {entry.command!r}")
 
     def flush(self) -> None:
@@ -453,7 +352,12 @@ class RunLogWriter:
         Parameters
         ----------
         end
-            When and why the run ended.
+            When (clock time in s, UTC in POSIX s) and why the run ended.
+
+        Raises
+        ------
+        RuntimeFailure
+            The mark could not be written; the run stays resumable.
         """
         conn = self._open_conn()
         _, end_cols = run_columns()
@@ -496,6 +400,17 @@ class RunLogWriter:
         if self._conn is None:
             raise RuntimeError(f"run log writer for {self._path} is closed")
         return self._conn
+
+    def _insert_or_discard(self, session: SessionRecord, what: str) -> None:
+        """Record the session; if that fails, close without committing and re-raise."""
+        try:
+            self._insert_now(session, None, what)
+        except BaseException:
+            if self._conn is not None:
+                self._conn.close()
+                self._conn = None
+            self._lock.release()
+            raise
 
     def _insert_now(self, record: Any, t_s: float | None, what: str) -> None:
         """Insert one rare record and commit together with pending samples."""

@@ -140,8 +140,11 @@ def test_an_empty_file_may_become_a_log(tmp_path: Path) -> None:
 def test_second_writer_on_the_same_log_is_refused(tmp_path: Path) -> None:
     log = tmp_path / "run.sqlite"
     with RunLogWriter(log, meta=make_meta()):
-        with pytest.raises(SquallError, match=rf"another writer \(process {os.getpid()}\)"):
+        busy = rf"being written by another writer \(process {os.getpid()}\)"
+        with pytest.raises(SquallError, match=busy):
             RunLogWriter.resume(log)
+        with pytest.raises(SquallError, match=busy):  # not "interrupted": it is live
+            RunLogWriter(log, meta=make_meta())
     RunLogWriter.resume(log).close()  # free again once the first writer closed
 
 
