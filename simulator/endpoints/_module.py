@@ -1,0 +1,296 @@
+"""One chamber's I/O module as the simulator presents it: registers, relays, watchdog, E-stop.
+
+Rules of this module
+--------------------
+- The module is the device behind one chamber block of the register map
+  (``hardware-notes/register-map.md``). It knows nothing about Modbus framing or sockets:
+  :mod:`._modbus` asks it for words and bits and hands it writes.
+- Time is the rack's simulated time (``rack.t_s``). The watchdog and the power state are
+  evaluated by :meth:`IoModule.refresh`, which the server calls before every request and the
+  runner after every physics step, so a trip is seen no later than the next of either.
+- Effective drive of each actuator = holding-register drive if its relay coil is closed, else
+  0; everything is 0 while the E-stop loop is open. The result goes to ``rack.set_outputs``
+  after every change, so the rack always runs what the module would switch.
+- A refused write changes nothing and answers a Modbus exception code (:class:`Refusal`).
+"""
+
+from __future__ import annotations
+
+import enum
+import math
+
+from controller.drivers import (
+    BLOCK_SPAN,
+    POINTS,
+    InputValues,
+    Table,
+    WordOrder,
+    decode_point,
+    encode_inputs,
+    point,
+)
+from controller.errors import SquallError
+from controller.rig import FaultKind
+from simulator._rack import Rack
+from simulator._types import SensorNoReply
+
+__all__ = ["IoModule", "Refusal"]
+
+_DRIVES = ("heater_pct", "chiller_pct", "lamp_pct", "pump_pct")
+_HR_POINTS = {p.offset: p for p in POINTS if p.table is Table.HOLDING_REGISTER}
+_COIL_OFFSETS = frozenset(p.offset for p in POINTS if p.table is Table.COIL)
+_DRIVE_OFFSETS = frozenset(point(n).offset for n in _DRIVES)
+_SAFE_OFFSET = {n: point("safe_" + n).offset for n in _DRIVES}
+_RELAY_OFFSET = {n: point(n.replace("_pct", "_on")).offset for n in _DRIVES}
+_TIMEOUT = point("watchdog_timeout_s")
+_COUNTER = point("watchdog_counter")
+
+
+class Refusal(enum.IntEnum):
+    """Why a write was refused; values are the Modbus exception codes sent back."""
+
+    ILLEGAL_ADDRESS = 0x02
+    """The write touches an address with no writable point."""
+    ILLEGAL_VALUE = 0x03
+    """A value is outside its point's range."""
+    BUSY = 0x06
+    """Output writes while the watchdog holds the outputs safe: feed it first."""
+
+
+class IoModule:
+    """The simulated I/O module of one chamber.
+
+    Parameters
+    ----------
+    rack
+        The simulated rack the module reads and drives.
+    chamber_id
+        The chamber whose block this module serves.
+    word_order
+        Register order of 32-bit values (no unit).
+    """
+
+    def __init__(self, rack: Rack, chamber_id: str, word_order: WordOrder) -> None:
+        self.rack = rack
+        self.chamber_id = chamber_id
+        self.word_order = word_order
+        self._nominal_volume_l = rack.rig.chamber(chamber_id).water_volume_l
+        self._hr = [0] * BLOCK_SPAN
+        self._coils = [False] * BLOCK_SPAN
+        self._tripped = False
+        self._last_feed_s = rack.t_s
+        self._estop_pressed = False
+        self._unpowered = False
+        self.trips = 0
+        """How many times the watchdog has tripped since start, count."""
+        self._apply()
+
+    # ------------------------------------------------------------------ state
+
+    @property
+    def tripped(self) -> bool:
+        """True while the watchdog holds the outputs at their safe drives."""
+        return self._tripped
+
+    @property
+    def estop_pressed(self) -> bool:
+        """True while the chamber's E-stop loop is open."""
+        return self._estop_pressed
+
+    def set_estop(self, pressed: bool) -> None:
+        """Press or release the chamber's E-stop (open or close its loop).
+
+        Parameters
+        ----------
+        pressed
+            True opens the loop: every actuator loses power until released (no unit).
+        """
+        self._estop_pressed = bool(pressed)
+        self._apply()
+
+    def reachable(self) -> bool:
+        """Whether the module answers now (no comm-timeout, no power loss on its chamber)."""
+        return self.rack.comm_ok(self.chamber_id, "modbus")
+
+    def refresh(self) -> None:
+        """Bring the module up to ``rack.t_s``: reboot after a power loss, expire the watchdog."""
+        now = self.rack.t_s
+        unpowered = any(
+            f.kind is FaultKind.POWER_LOSS and f.chamber in (None, self.chamber_id)
+            for f in self.rack.active_faults()
+        )
+        if unpowered:
+            self._unpowered = True
+            return
+        if self._unpowered:  # power is back: the module boots with power-on defaults
+            self._unpowered = False
+            self._hr = [0] * BLOCK_SPAN
+            self._coils = [False] * BLOCK_SPAN
+            self._tripped = False
+            self._last_feed_s = now
+            self._apply()
+            return
+        timeout_s = decode_point(_TIMEOUT, [self._hr[_TIMEOUT.offset]])
+        if timeout_s > 0 and not self._tripped and now - self._last_feed_s > timeout_s:
+            self._trip()
+
+    def _trip(self) -> None:
+        for name in _DRIVES:
+            safe_word = self._hr[_SAFE_OFFSET[name]]
+            self._hr[point(name).offset] = safe_word
+            self._coils[_RELAY_OFFSET[name]] = safe_word > 0
+        self._tripped = True
+        self.trips += 1
+        self._apply()
+
+    def effective_drives(self) -> dict[str, float]:
+        """What the module switches to the actuators now.
+
+        Returns
+        -------
+        dict of str to float
+            Drive per actuator (``heater_pct`` ...), %.
+        """
+        if self._estop_pressed:
+            return {name: 0.0 for name in _DRIVES}
+        return {
+            name: (
+                decode_point(point(name), [self._hr[point(name).offset]])
+                if self._coils[_RELAY_OFFSET[name]]
+                else 0.0
+            )
+            for name in _DRIVES
+        }
+
+    def _apply(self) -> None:
+        self.rack.set_outputs(self.chamber_id, **self.effective_drives())
+
+    # ------------------------------------------------------------------ reads
+
+    def _read(self, reader: str, name: str) -> float | None:
+        p = point(name)
+        try:
+            value = float(getattr(self.rack, reader)(self.chamber_id))
+        except SensorNoReply:
+            return None
+        if not math.isfinite(value) or value > p.maximum:
+            return None  # beyond the input's measuring range: the module flags a fault
+        if value < p.minimum:
+            # noise around zero of a non-negative quantity reads 0; anything else is a fault
+            return p.minimum if p.minimum == 0.0 else None
+        return value
+
+    def input_words(self) -> tuple[int, ...]:
+        """Input registers 0..5: sample every input now and encode it.
+
+        Returns
+        -------
+        tuple of int
+            Six register words (no unit).
+        """
+        level = 100.0 * self.rack.truth(self.chamber_id).water_volume_l / self._nominal_volume_l
+        level_point = point("level_pct")
+        values = InputValues(
+            temperature_c=self._read("read_temperature", "temperature_c"),
+            par_umol_m2_s=self._read("read_par", "par_umol_m2_s"),
+            flow_cm_s=self._read("read_flow", "flow_cm_s"),
+            level_pct=min(max(level, level_point.minimum), level_point.maximum),
+        )
+        return encode_inputs(values, self.word_order, where=f"{self.chamber_id}.inputs")
+
+    def holding_words(self) -> tuple[int, ...]:
+        """All holding registers of the block (unmapped offsets read 0).
+
+        Returns
+        -------
+        tuple of int
+            ``BLOCK_SPAN`` words (no unit).
+        """
+        return tuple(self._hr)
+
+    def coil_bits(self) -> tuple[bool, ...]:
+        """All coils of the block (unmapped offsets read open).
+
+        Returns
+        -------
+        tuple of bool
+            ``BLOCK_SPAN`` bits (no unit).
+        """
+        return tuple(self._coils)
+
+    def input_bits(self) -> tuple[bool, ...]:
+        """All discrete inputs of the block (unmapped offsets read open).
+
+        Returns
+        -------
+        tuple of bool
+            ``BLOCK_SPAN`` bits (no unit).
+        """
+        bits = [False] * BLOCK_SPAN
+        bits[point("level_ok").offset] = self.rack.read_level_ok(self.chamber_id)
+        bits[point("estop_ok").offset] = not self._estop_pressed
+        bits[point("watchdog_tripped").offset] = self._tripped
+        return tuple(bits)
+
+    # ----------------------------------------------------------------- writes
+
+    def write_holding(self, offset: int, words: list[int]) -> Refusal | None:
+        """Write holding registers starting at a block offset.
+
+        Parameters
+        ----------
+        offset
+            Block offset of the first register (no unit).
+        words
+            Register words to write (no unit).
+
+        Returns
+        -------
+        Refusal or None
+            Why the whole write was refused, or None when it was applied (no unit).
+        """
+        offsets = range(offset, offset + len(words))
+        if any(o not in _HR_POINTS for o in offsets):
+            return Refusal.ILLEGAL_ADDRESS
+        for o, word in zip(offsets, words, strict=True):
+            try:
+                decode_point(_HR_POINTS[o], [word])
+            except SquallError:
+                return Refusal.ILLEGAL_VALUE
+        if self._tripped and _DRIVE_OFFSETS.intersection(offsets):
+            return Refusal.BUSY
+        now = self.rack.t_s
+        for o, word in zip(offsets, words, strict=True):
+            if o == _COUNTER.offset and word != self._hr[o]:
+                self._last_feed_s = now
+                self._tripped = False
+            if o == _TIMEOUT.offset:
+                self._last_feed_s = now
+            self._hr[o] = word
+        self._apply()
+        return None
+
+    def write_coils(self, offset: int, bits: list[bool]) -> Refusal | None:
+        """Write relay coils starting at a block offset.
+
+        Parameters
+        ----------
+        offset
+            Block offset of the first coil (no unit).
+        bits
+            Coil values, True = closed (no unit).
+
+        Returns
+        -------
+        Refusal or None
+            Why the whole write was refused, or None when it was applied (no unit).
+        """
+        offsets = range(offset, offset + len(bits))
+        if any(o not in _COIL_OFFSETS for o in offsets):
+            return Refusal.ILLEGAL_ADDRESS
+        if self._tripped:
+            return Refusal.BUSY
+        for o, bit in zip(offsets, bits, strict=True):
+            self._coils[o] = bool(bit)
+        self._apply()
+        return None
