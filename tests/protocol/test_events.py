@@ -135,7 +135,7 @@ def test_cold_spell_refuses_a_table_whose_threshold_is_above_the_mean(tmp_path: 
 def test_heatwave_from_a_series_uses_the_hobday_2016_climatology(tmp_path: Path) -> None:
     dates = pd.date_range("1991-01-01", "2020-12-31", freq="D")
     rng = np.random.default_rng(3)
-    temps = 15 + 4 * np.sin(2 * np.pi * dates.dayofyear / 365.25) + rng.normal(0, 0.8, dates.size)
+    temps = 15 + 4 * np.sin(2 * np.pi * dates.day_of_year / 365.25) + rng.normal(0, 0.8, dates.size)
     pd.DataFrame({"date": dates.date, "temperature_c": temps}).to_csv(
         tmp_path / "site.csv", index=False
     )

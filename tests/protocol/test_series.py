@@ -125,7 +125,7 @@ def test_climatology_block_follows_seas_from_the_reference_date(tmp_path: Path) 
 
 def test_climatology_block_from_a_series(tmp_path: Path) -> None:
     dates = pd.date_range("2001-01-01", "2010-12-31", freq="D")
-    temps = 12 + 5 * np.sin(2 * np.pi * (dates.dayofyear - 100) / 365.25)
+    temps = 12 + 5 * np.sin(2 * np.pi * (dates.day_of_year - 100) / 365.25)
     pd.DataFrame({"date": dates.date, "temperature_c": temps}).to_csv(
         tmp_path / "site.csv", index=False
     )
