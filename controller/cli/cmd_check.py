@@ -20,25 +20,16 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
-from typing import Any
-
-from rich.console import Console
-from rich.table import Table
-from rich.text import Text
+from typing import TYPE_CHECKING, Any
 
 from controller.errors import SquallError
 from controller.files import load_model, locate, parse_toml, read_text, validate_data
-from controller.protocol import (
-    CompiledProtocol,
-    Finding,
-    Protocol,
-    Severity,
-    check_against_rig,
-    compile_protocol,
-    format_duration,
-    summarize,
-)
-from controller.rig import Rig
+
+if TYPE_CHECKING:  # heavy imports are deferred so that `squall --help` stays quick
+    from rich.console import Console
+
+    from controller.protocol import CompiledProtocol, Finding, Protocol
+    from controller.rig import Rig
 
 __all__ = [
     "LoadedProtocol",
@@ -91,6 +82,8 @@ def load_protocol(path: Path) -> LoadedProtocol:
     SquallError
         Located at ``FILE:LINE: field.path`` for any problem.
     """
+    from controller.protocol import Protocol
+
     text = read_text(path)
     data = parse_toml(text, file=path)
     return LoadedProtocol(path, text, validate_data(data, Protocol, text=text, file=path))
@@ -98,6 +91,8 @@ def load_protocol(path: Path) -> LoadedProtocol:
 
 def load_rig(path: Path) -> Rig:
     """Read and validate a rig file (errors located in it)."""
+    from controller.rig import Rig
+
     return load_model(path, Rig)
 
 
@@ -184,6 +179,8 @@ def compile_loaded(
     CompiledProtocol
         The compiled setpoint channels.
     """
+    from controller.protocol import compile_protocol
+
     try:
         return compile_protocol(
             loaded.protocol,
@@ -231,6 +228,8 @@ def _chambers(ids: Sequence[str]) -> str:
 
 def _at(seconds: float) -> str:
     """Offset from the start, rounded to the minute, as ``+3d 6h`` (``0`` at the start)."""
+    from controller.protocol import format_duration
+
     rounded = round(seconds / 60.0) * 60.0
     return f"+{format_duration(rounded)}" if rounded > 0 else "0"
 
@@ -260,6 +259,11 @@ def print_summary(
     rig_name
         Name of the rig checked against.
     """
+    from rich.table import Table
+    from rich.text import Text
+
+    from controller.protocol import format_duration, summarize
+
     protocol = loaded.protocol
     offset = compiled.utc_offset
     local_start = (compiled.start_utc + offset).replace(tzinfo=None)
@@ -339,6 +343,10 @@ def print_summary(
 
 def run(args: argparse.Namespace) -> int:
     """Run ``squall check``; return the exit code."""
+    from rich.console import Console
+
+    from controller.protocol import Severity, check_against_rig
+
     start = parse_start(args.start)
     loaded = load_protocol(args.protocol)
     rig = load_rig(args.rig) if args.rig is not None else None

@@ -16,6 +16,7 @@ Rules
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -297,7 +298,7 @@ def render_preview(data: PreviewData, path: Path) -> Path:
         left=0.12,
         right=0.97,
         top=0.93,
-        bottom=0.155,
+        bottom=0.165,
     )
     timeline = figure.add_subplot(grid[0])
     _draw_timeline(timeline, data, days)
@@ -337,10 +338,18 @@ def render_preview(data: PreviewData, path: Path) -> Path:
         ncol=2 if len(handles) > 3 else len(handles),
         fontsize=7.5,
         frameon=False,
-        bbox_to_anchor=(0.55, 0.022),
+        bbox_to_anchor=(0.55, 0.038),
     )
     if data.footnote:
-        figure.text(0.02, 0.008, data.footnote, fontsize=6.5, color="#555555", ha="left")
+        figure.text(
+            0.02,
+            0.006,
+            "\n".join(textwrap.wrap(data.footnote, width=125)),
+            fontsize=6.5,
+            color="#555555",
+            ha="left",
+            va="bottom",
+        )
     path = Path(path)
     figure.savefig(path, dpi=DPI, facecolor="white")
     return path
