@@ -386,6 +386,26 @@ BAD_CASES: list[tuple[str, Callable[[dict[str, Any]], None], tuple[Any, ...], st
         "inside a repeat needs a duration",
     ),
     (
+        "phase name that reads as a time",
+        lambda d: d["phases"][0].update(name="3d") or d["events"][0].update(starts="4d"),
+        ("phases", 0, "name"),
+        "could be read as a time",
+    ),
+    (
+        "repeat of instant steps only",
+        lambda d: d["phases"][0]["programs"].update(
+            flow=[{"kind": "repeat", "times": 2, "blocks": [{"kind": "step", "to": 2.0}]}]
+        ),
+        ("phases", 0, "programs", "flow", 0, "blocks"),
+        "at least one block that takes time",
+    ),
+    (
+        "duration written as a bare number",
+        lambda d: d["phases"][0].update(duration=3),
+        ("phases", 0, "duration"),
+        "needs a unit",
+    ),
+    (
         "cold spell threshold above baseline",
         lambda d: d["events"][0].update(kind="cold-spell", threshold_c=20.0),
         ("events", 0, "threshold_c"),
