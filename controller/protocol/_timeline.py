@@ -8,8 +8,10 @@ Rules
 - A variable no phase gives is *uncontrolled*: ``None`` in :class:`Setpoints`, NaN in samples.
 - Phases: at a boundary the new phase applies; before 0 the first phase, at and after the end
   the last phase is reported.
-- Sampling is vectorised: per distinct channel one ``numpy.searchsorted`` plus a table
-  lookup of slope and intercept; chambers of one group share their arrays (read-only).
+- Sampling is vectorised: per distinct channel one breakpoint search (``numpy.searchsorted``;
+  for sorted times the breakpoints are searched among the times and expanded) plus a table
+  lookup of start value and slope; chambers of one group share their arrays (read-only).
+  ``bench/bench_compile.py`` measures it against ``numpy.interp`` on the same tables.
 """
 
 from __future__ import annotations
