@@ -13,9 +13,10 @@ Rules
   middle, and n equal pieces divide it by n²).
 - Channels are immutable (read-only arrays). Evaluation tables for fast sampling (start time,
   start value and slope of every stretch, so a value is v0 + m·(t - t0), exact at
-  breakpoints) are built once, when the channel is made. For sorted sample times the stretch
-  index comes from searching the breakpoints among the times (n log N for n breakpoints,
-  N times) and expanding with ``numpy.repeat``; unsorted times use ``numpy.searchsorted``.
+  breakpoints) are built once, when the channel is made. For sorted sample times the
+  breakpoints are searched among the times (n log N for n breakpoints, N times) and each
+  stretch's entries are expanded with ``numpy.repeat``; unsorted times use
+  ``numpy.searchsorted`` of every time among the breakpoints.
 """
 
 from __future__ import annotations
@@ -32,6 +33,7 @@ __all__ = [
     "concat",
     "constant",
     "cumulative_integral",
+    "is_sorted_1d",
     "left_limit",
     "maximum",
     "multiply",
@@ -99,7 +101,13 @@ class Channel:
     def __len__(self) -> int:
         return int(self.t_s.size)
 
-    def evaluate(self, t_s: npt.ArrayLike, out: FloatArray | None = None) -> FloatArray:
+    def evaluate(
+        self,
+        t_s: npt.ArrayLike,
+        out: FloatArray | None = None,
+        *,
+        is_sorted: bool | None = None,
+    ) -> FloatArray:
         """Values at times (right-continuous at steps), vectorised.
 
         Parameters
@@ -108,6 +116,9 @@ class Channel:
             Times, s from the experiment start (any order; sorted is fastest).
         out
             Optional array to write into (same shape as ``t_s``).
+        is_sorted
+            Whether ``t_s`` is 1-D and non-decreasing, if the caller knows (saves a pass);
+            ``None`` checks.
 
         Returns
         -------
@@ -115,20 +126,22 @@ class Channel:
             Values in the channel's unit.
         """
         x = np.asarray(t_s, dtype=np.float64)
-        index = self._stretch_index(x)
+        if is_sorted is None:
+            is_sorted = is_sorted_1d(x)
+        if is_sorted and x.size > 4 * self.t_s.size:
+            # sorted times: search the few breakpoints among the many times; each stretch's
+            # start time, start value and slope then repeat over the times it serves
+            first = np.searchsorted(x, self.t_s, side="left")
+            counts = np.diff(first, prepend=0, append=x.size)
+            result = np.subtract(x, np.repeat(self._seg_t, counts), out=out)
+            result *= np.repeat(self._slope, counts)
+            result += np.repeat(self._seg_v, counts)
+            return result
+        index = np.searchsorted(self.t_s, x, side="right")
         result = np.subtract(x, np.take(self._seg_t, index), out=out)
         result *= np.take(self._slope, index)
         result += np.take(self._seg_v, index)
         return result
-
-    def _stretch_index(self, x: FloatArray) -> npt.NDArray[np.intp]:
-        """Number of breakpoints at or before each time (the table entry serving it)."""
-        if x.ndim == 1 and x.size > 4 * self.t_s.size and bool(np.all(x[1:] >= x[:-1])):
-            # sorted times: search the few breakpoints among the many times, then expand
-            first = np.searchsorted(x, self.t_s, side="left")
-            counts = np.diff(np.concatenate(([0], first, [x.size])))
-            return np.repeat(np.arange(self.t_s.size + 1), counts)
-        return np.searchsorted(self.t_s, x, side="right")
 
     def max_abs_slope(self) -> tuple[float, float]:
         """Steepest sloped stretch (steps excluded).
@@ -151,6 +164,11 @@ class Channel:
         jump = np.diff(self.v)
         mask = same & (jump != 0)
         return self.t_s[:-1][mask], jump[mask]
+
+
+def is_sorted_1d(t_s: FloatArray) -> bool:
+    """Whether times are a 1-D non-decreasing array (s)."""
+    return t_s.ndim == 1 and bool(np.all(t_s[1:] >= t_s[:-1]))
 
 
 def constant(value: float, t0_s: float = 0.0, t1_s: float | None = None) -> Channel:

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
+from controller.protocol._channel import is_sorted_1d
 from controller.protocol._compiled import VARIABLE_KEYS, CompiledProtocol
 
 __all__ = ["Setpoints", "phase_at", "phase_index_at", "sample", "setpoints_at"]
@@ -129,6 +130,7 @@ def sample(compiled: CompiledProtocol, t_s: npt.ArrayLike) -> dict[str, dict[str
         and shared between chambers of the same group.
     """
     times = np.asarray(t_s, dtype=np.float64)
+    ordered = is_sorted_1d(times)
     cache: dict[int, np.ndarray] = {}
     missing: np.ndarray | None = None
     result: dict[str, dict[str, np.ndarray]] = {}
@@ -144,7 +146,7 @@ def sample(compiled: CompiledProtocol, t_s: npt.ArrayLike) -> dict[str, dict[str
                 continue
             values = cache.get(id(channel))
             if values is None:
-                values = channel.evaluate(times)
+                values = channel.evaluate(times, is_sorted=ordered)
                 values.setflags(write=False)
                 cache[id(channel)] = values
             row[key] = values
