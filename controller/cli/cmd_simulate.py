@@ -150,7 +150,8 @@ async def _serve(clock: Clock, rig: Rig, args: argparse.Namespace) -> None:
     except OSError as exc:
         await server.stop()
         raise SquallError(
-            f"cannot serve Modbus on {args.host}:{args.port}: {exc.strerror or exc}",
+            f"cannot serve Modbus on {args.host}:{args.port}: {exc.strerror or exc} "
+            "(is another simulator running? --port 0 picks a free port)",
             field="--port",
         ) from None
     try:

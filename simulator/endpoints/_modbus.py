@@ -36,7 +36,7 @@ from controller.drivers import (
     RegisterMap,
     Table,
 )
-from simulator._rack import Rack
+from simulator import Rack
 from simulator.endpoints._module import IoModule
 
 __all__ = ["ModbusEndpoint"]
@@ -127,6 +127,11 @@ class ModbusEndpoint:
         -------
         tuple of (str, int)
             The bound host and port (no unit).
+
+        Raises
+        ------
+        OSError
+            The address cannot be bound (port in use, no such interface).
         """
         if self._server is not None:
             raise RuntimeError("the Modbus endpoint is already serving")
@@ -136,7 +141,11 @@ class ModbusEndpoint:
             ignore_missing_devices=True,
             trace_pdu=self._screen,
         )
-        await server.serve_forever(background=True)
+        try:
+            await server.serve_forever(background=True)
+        except RuntimeError as exc:  # pymodbus reports a failed bind this way
+            await server.shutdown()
+            raise OSError(f"cannot listen on {host}:{port} ({exc})") from None
         self._server = server
         sockname = server.transport.sockets[0].getsockname()  # type: ignore[union-attr]
         self._address = (str(sockname[0]), int(sockname[1]))
@@ -226,7 +235,9 @@ class ModbusEndpoint:
         self._fill(table, blocks, start_address, address, count, registers)
         return None
 
-    def _write(self, table: Table, unit: int, address: int, values: list) -> ExcCodes | None:
+    def _write(
+        self, table: Table, unit: int, address: int, values: Sequence[int | bool]
+    ) -> ExcCodes | None:
         located = self.register_map.locate(table, unit, address)
         if located is None:
             return ExcCodes.ILLEGAL_ADDRESS

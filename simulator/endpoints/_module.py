@@ -31,8 +31,7 @@ from controller.drivers import (
 )
 from controller.errors import SquallError
 from controller.rig import FaultKind
-from simulator._rack import Rack
-from simulator._types import SensorNoReply
+from simulator import Rack, SensorNoReply
 
 __all__ = ["IoModule", "Refusal"]
 

@@ -39,8 +39,7 @@ from controller.drivers import (
     encode_reply,
 )
 from controller.science.optode import OptodeCalibration, SignalKind, phase_from_concentration
-from simulator._rack import Rack
-from simulator._types import OptodeReading, SensorNoReply
+from simulator import OptodeReading, Rack, SensorNoReply
 
 __all__ = ["FIRMWARE", "OptodeEmulator", "measurement_from_reading"]
 

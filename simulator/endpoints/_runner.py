@@ -23,7 +23,7 @@ from typing import Any, Self
 
 from controller.clock import Clock
 from controller.drivers import RegisterMap
-from simulator._rack import Rack
+from simulator import Rack
 from simulator.endpoints._modbus import ModbusEndpoint
 from simulator.endpoints._optode import OptodeEmulator
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import json
 import signal
+import socket
 import sys
 from pathlib import Path
 
@@ -88,6 +89,16 @@ def test_bad_rig_file_is_located(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert main(["simulate", "--rig", str(bad)]) == 2
     err = capsys.readouterr().err
     assert f"{bad}:" in err and "sediment_area_m2" in err
+
+
+def test_busy_port_is_a_clear_error(rig_file: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        busy = taken.getsockname()[1]
+        assert main(["simulate", "--rig", str(rig_file), "--port", str(busy)]) == 2
+    err = capsys.readouterr().err
+    assert f"--port: cannot serve Modbus on 127.0.0.1:{busy}" in err
 
 
 async def test_serves_until_ctrl_c(rig_file: Path, tmp_path: Path) -> None:
