@@ -15,15 +15,23 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from controller.errors import SquallError
-from controller.files import load_model, locate, parse_toml, read_text, validate_data
+from controller.files import (
+    format_path,
+    load_model,
+    locate,
+    parse_toml,
+    read_text,
+    validate_data,
+)
 
 if TYPE_CHECKING:  # heavy imports are deferred so that `squall --help` stays quick
     from rich.console import Console
@@ -57,11 +65,14 @@ class LoadedProtocol:
         Its text (to locate later problems).
     protocol
         The validated model.
+    data
+        The parsed TOML document (to find which key names a CSV file).
     """
 
     path: Path
     text: str
     protocol: Protocol
+    data: Mapping[str, Any]
 
 
 def load_protocol(path: Path) -> LoadedProtocol:
@@ -86,7 +97,7 @@ def load_protocol(path: Path) -> LoadedProtocol:
 
     text = read_text(path)
     data = parse_toml(text, file=path)
-    return LoadedProtocol(path, text, validate_data(data, Protocol, text=text, file=path))
+    return LoadedProtocol(path, text, validate_data(data, Protocol, text=text, file=path), data)
 
 
 def load_rig(path: Path) -> Rig:
@@ -189,7 +200,32 @@ def compile_loaded(
             rig=rig,
         )
     except SquallError as exc:
+        if exc.file is not None and exc.line is None:
+            # A CSV the protocol names cannot be read: point at the key that names it.
+            naming = _key_naming(loaded.data, loaded.path.parent, Path(exc.file))
+            if naming is not None:
+                raise locate(
+                    SquallError(exc.message, field=format_path(naming)),
+                    text=loaded.text,
+                    file=loaded.path,
+                ) from None
         raise locate(exc, text=loaded.text, file=loaded.path) from None
+
+
+def _key_naming(data: Any, base_dir: Path, file: Path) -> tuple[str | int, ...] | None:
+    """Path of the first string value in ``data`` that names ``file`` relative to ``base_dir``."""
+    stack: list[tuple[tuple[str | int, ...], Any]] = [((), data)]
+    target = os.path.normpath(file)
+    while stack:
+        path, node = stack.pop(0)
+        if isinstance(node, Mapping):
+            stack.extend(((*path, key), value) for key, value in node.items())
+        elif isinstance(node, list):
+            stack.extend(((*path, index), value) for index, value in enumerate(node))
+        elif isinstance(node, str) and node.strip():
+            if os.path.normpath(base_dir / node.strip()) == target:
+                return path
+    return None
 
 
 def locate_finding(finding: Finding, loaded: LoadedProtocol) -> str:
@@ -275,9 +311,12 @@ def print_summary(
     console.print(
         f"{loaded.path} · {len(compiled.group_of)} chambers · {len(compiled.phases)} phases · "
         f"{n_events} event{'' if n_events == 1 else 's'} · "
-        f"total {format_duration(compiled.duration_s)}"
+        f"total {format_duration(compiled.duration_s)}",
+        soft_wrap=True,
     )
-    console.print(f"Start {local_start:%Y-%m-%d %H:%M} local ({zone}); {start_note}")
+    console.print(
+        f"Start {local_start:%Y-%m-%d %H:%M} local ({zone}); {start_note}", soft_wrap=True
+    )
 
     summary = summarize(compiled)
     groups = Table(title="Groups", title_justify="left", box=None, pad_edge=False)
@@ -338,7 +377,7 @@ def print_summary(
         where = f" [{finding.chamber}]" if finding.chamber else ""
         line = Text(f"  {finding.severity.value}{where}: ", style=colour)
         line.append(locate_finding(finding, loaded))
-        console.print(line)
+        console.print(line, soft_wrap=True)
 
 
 def run(args: argparse.Namespace) -> int:

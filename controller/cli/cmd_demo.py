@@ -72,7 +72,7 @@ def run(args: argparse.Namespace) -> int:
         (table, f"setpoints of every chamber, {rows} rows"),
     ]
     console.print()
-    console.print(f"Demo files written to {out}/:")
+    console.print(f"Demo files written to {out}/:", soft_wrap=True)
     for path, what in listing:
         console.print(f"  {path}  ({what})", soft_wrap=True)
     return 0
