@@ -1,32 +1,26 @@
 """Pure stepping functions for a stretch of simulated time with constant actuator inputs.
 
-Rule: no clock, no state, no randomness. Each function takes the state at the start of a
-segment of ``n`` equal sub-steps of ``h`` seconds, inputs that are constant over the segment,
-and returns the trajectory at the sub-step boundaries as arrays of shape ``(n + 1, ...)`` or
-``(n, ...)``, so whole segments are computed at once instead of one Python step at a time.
-The thermal node is linear with constant input, so its closed form
-T(t) = T∞ + (T0 − T∞)·e^(−t/τ) is exact at any step length. Oxygen holds its driving
-temperature and light over each sub-step (zero-order hold) and is integrated exactly under
-that hold; sensor lags take their input as linear between sub-step boundaries (first-order
-hold), which is exact for ramps.
+Rule: no clock, no state, no randomness. The workhorse is :func:`recurrence`, which solves
+the linear recurrence every exactly discretised first-order process reduces to, for a whole
+segment of ``n`` sub-steps at once instead of one Python step at a time; the rest are the
+actuator calibration curves.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Callable
 
 import numpy as np
 from numpy.typing import NDArray
 
 __all__ = [
-    "ThermalSegment",
+    "Memo",
     "ageing_factor",
     "first_order",
-    "lag_segment",
+    "lag_final",
     "lamp_curve",
     "pump_fraction",
     "recurrence",
-    "thermal_segment",
 ]
 
 F = NDArray[np.float64]
@@ -37,7 +31,30 @@ _NEGLIGIBLE = 1e-15
 _STEPS = np.arange(1, 3601, dtype=float)[:, None]
 
 
-def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
+class Memo:
+    """Small cache of coefficient arrays, reused between segments of the same length.
+
+    Parameters
+    ----------
+    size
+        Entries kept before the cache is emptied, dimensionless.
+    """
+
+    def __init__(self, size: int = 32) -> None:
+        self._size = size
+        self._store: dict[tuple[object, ...], tuple[F, ...]] = {}
+
+    def get(self, key: tuple[object, ...], make: Callable[[], tuple[F, ...]]) -> tuple[F, ...]:
+        """The arrays stored under ``key``, made by ``make()`` the first time."""
+        value = self._store.get(key)
+        if value is None:
+            if len(self._store) >= self._size:
+                self._store.clear()
+            value = self._store[key] = make()
+        return value
+
+
+def recurrence(a: F, u: F, y0: F, *, floor: bool = False, memo: Memo | None = None) -> F:
     """Solve y_k = a·y_(k−1) + u_k for k = 1..n, column by column, without a Python loop.
 
     Parameters
@@ -50,6 +67,8 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
         Starting value of each column, shape ``(c,)``.
     floor
         When True, y never goes below 0 (y_k = max(0, a·y_(k−1) + u_k)).
+    memo
+        Cache for the powers of ``a`` (pass one when many segments share n and a).
 
     Returns
     -------
@@ -68,8 +87,11 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
     if a.size and a.min() > _NEGLIGIBLE:
         log_a = np.log(a)
         if -float(log_a.min()) * n <= _MAX_EXPONENT:
-            growth = np.exp(_steps(n) * log_a)
-            out = growth * (y0 + np.cumsum(u / growth, axis=0))
+            if memo is None:
+                growth, shrink = _powers(log_a, n)
+            else:
+                growth, shrink = memo.get(("powers", n, a.tobytes()), lambda: _powers(log_a, n))
+            out = growth * (y0 + np.cumsum(u * shrink, axis=0))
         else:
             out = _chunked(log_a, u, y0)
     else:
@@ -79,6 +101,12 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
     if floor and n and out.min() < 0.0:
         _apply_floor(a, u, np.asarray(y0, dtype=float), out)
     return np.asarray(out, dtype=float)
+
+
+def _powers(log_a: F, n: int) -> tuple[F, F]:
+    """a^k and a^(−k) for k = 1..n, shape ``(n, c)``."""
+    growth = np.exp(_steps(n) * log_a)
+    return growth, 1.0 / growth
 
 
 def _steps(n: int) -> F:
@@ -143,8 +171,8 @@ def first_order(y0: F, target: F, tau_s: F, h: float, n: int) -> F:
     return np.asarray(target + (y0 - target) * decay, dtype=float)
 
 
-def lag_segment(y0: F, x: F, tau_s: F, h: float) -> F:
-    """First-order lag (sensor response) of an input that varies linearly over each sub-step.
+def lag_final(y0: F, x: F, tau_s: F, h: float, memo: Memo | None = None) -> F:
+    """End value of a first-order lag (sensor) over a segment, input linear in each sub-step.
 
     Parameters
     ----------
@@ -153,100 +181,43 @@ def lag_segment(y0: F, x: F, tau_s: F, h: float) -> F:
     x
         Input at the sub-step boundaries t = 0, h, …, n·h, same unit, shape ``(n + 1, c)``.
     tau_s
-        Time constant, s, shape ``(c,)``; 0 gives no lag.
+        Time constants, s, shape ``(c,)``; 0 means no lag.
     h
         Sub-step length, s.
+    memo
+        Cache for the weights (pass one when many segments share n, h and τ).
 
     Returns
     -------
     numpy.ndarray
-        Sensor values at the ends of the sub-steps, shape ``(n, c)``.
+        Sensor value at t = n·h, shape ``(c,)``.
 
     Notes
     -----
-    Exact for piecewise-linear input (first-order hold): with a = e^(−h/τ) and
-    c = τ·(1 − a)/h, y_(k+1) = a·y_k + x_(k+1) − a·x_k − c·(x_(k+1) − x_k). A ramp of slope r
-    is therefore followed with the textbook steady lag r·τ.
+    For input linear over each sub-step (first-order hold) the lag obeys exactly
+    y_(k+1) = a·y_k + (1 − c)·x_(k+1) − (a − c)·x_k with a = e^(−h/τ) and c = τ(1 − a)/h,
+    so a ramp of slope r is followed with the textbook steady lag r·τ. Unrolled, the end value
+    is a^n·y0 + Σ_k W_k·x_k with fixed weights W, which is what is computed.
     """
+    n = x.shape[0] - 1
+    if memo is None:
+        end, weights = _lag_weights(tau_s, h, n)
+    else:
+        end, weights = memo.get(("lag", n, h, tau_s.tobytes()), lambda: _lag_weights(tau_s, h, n))
+    return np.asarray(end * y0 + (weights * x).sum(axis=0), dtype=float)
+
+
+def _lag_weights(tau_s: F, h: float, n: int) -> tuple[F, F]:
+    """a^n and the weights W_0..W_n of :func:`lag_final`."""
     tau = np.maximum(tau_s, _MIN_TAU_S)
     a = np.exp(-h / tau)
     c = tau * -np.expm1(-h / tau) / h
-    x0, x1 = x[:-1], x[1:]
-    return recurrence(a, x1 - a * x0 - c * (x1 - x0), y0)
-
-
-@dataclass(frozen=True, slots=True)
-class ThermalSegment:
-    """Result of :func:`thermal_segment`.
-
-    Attributes
-    ----------
-    temperature_c
-        Node temperature at t = 0, h, …, n·h, °C, shape ``(n + 1, M)``.
-    room_loss_j
-        Heat lost to the room over the segment, J, shape ``(M,)``.
-    flush_loss_j
-        Heat carried away by flushing over the segment, J, shape ``(M,)``.
-    """
-
-    temperature_c: F
-    room_loss_j: F
-    flush_loss_j: F
-
-
-def thermal_segment(
-    temp0_c: F,
-    net_power_w: F,
-    ua_w_k: F,
-    flush_w_k: F,
-    heat_capacity_j_k: F,
-    room_c: float,
-    inflow_c: float,
-    h: float,
-    n: int,
-) -> ThermalSegment:
-    """Exact solution of C·dT/dt = P − UA·(T − T_room) − G·(T − T_in) with constant inputs.
-
-    Parameters
-    ----------
-    temp0_c
-        Node temperature at the segment start, °C, shape ``(M,)``.
-    net_power_w
-        Heater power minus chiller heat removal reaching the water, W, shape ``(M,)``.
-    ua_w_k
-        Heat-loss coefficient to the room, W K⁻¹, shape ``(M,)``.
-    flush_w_k
-        Flushing heat flow q·ρ·cp, W K⁻¹, shape ``(M,)``.
-    heat_capacity_j_k
-        Heat capacity C of each node, J K⁻¹, shape ``(M,)``.
-    room_c
-        Room temperature, °C.
-    inflow_c
-        Temperature of the flushing inflow, °C.
-    h
-        Sub-step length, s.
-    n
-        Number of sub-steps, dimensionless.
-
-    Returns
-    -------
-    ThermalSegment
-        Temperatures at the sub-step boundaries and the exact heat-loss integrals.
-
-    Notes
-    -----
-    With G_tot = UA + G: T∞ = (P + UA·T_room + G·T_in)/G_tot and τ = C/G_tot. The loss
-    integrals use ∫(T − X)dt = (T∞ − X)·Δt + (T0 − T∞)·τ·(1 − e^(−Δt/τ)).
-    """
-    g_tot = ua_w_k + flush_w_k
-    t_inf = (net_power_w + ua_w_k * room_c + flush_w_k * inflow_c) / g_tot
-    tau = heat_capacity_j_k / g_tot
-    temps = first_order(temp0_c, t_inf, tau, h, n)
-    span = n * h
-    transient = (temp0_c - t_inf) * tau * -np.expm1(-span / tau)
-    room = ua_w_k * ((t_inf - room_c) * span + transient)
-    flush = flush_w_k * ((t_inf - inflow_c) * span + transient)
-    return ThermalSegment(temperature_c=temps, room_loss_j=room, flush_loss_j=flush)
+    power = np.exp(np.arange(n + 1, dtype=float)[:, None] * np.log(np.maximum(a, 1e-300)))
+    power = np.where(a > 0.0, power, (np.arange(n + 1) == 0)[:, None].astype(float))
+    weights = np.zeros((n + 1, len(a)))
+    weights[1:] += (1.0 - c) * power[n - 1 :: -1]  # k = 1..n: a^(n−k)
+    weights[:-1] -= (a - c) * power[n - 1 :: -1]  # k = 0..n−1: a^(n−k−1)
+    return power[n], weights
 
 
 def lamp_curve(drive_pct: F, par_at_full: F, shape: F) -> F:

@@ -1,41 +1,36 @@
 """The simulated rack: state of every chamber, stepped by whoever owns time.
 
 Rule: the rack never reads a clock and never sleeps; ``advance(dt_s)`` is the only way time
-passes. ``advance`` cuts the interval at every event (a fault beginning or ending, an actuator
-change arriving after its dead time) so inputs are constant within each segment, then steps
-each segment in sub-steps no longer than ``physics_step_s`` with the vectorised functions of
-:mod:`simulator._physics` and :mod:`simulator._oxygen`. Readings draw noise from one seeded
-generator per rack.
+passes. ``advance`` cuts the interval at every fault boundary (and at a heater or chiller
+change that arrives between sub-step boundaries), so pumps, lamps and faults are constant
+within each segment, then steps the segment in sub-steps no longer than ``physics_step_s``
+with the pure update :func:`simulator._step.step_segment`. Readings draw noise from one
+seeded generator per rack.
 
 Shared baths: the heater and chiller of a bath node are driven by the bath's first chamber
 (in rig order); heater and chiller commands given to the other chambers of the bath are kept
-but have no effect. Faults on the heater or chiller of any chamber of a bath act on the
-bath's heater or chiller; so does a power loss of the driving chamber.
+but have no effect, and :meth:`Rack.outputs` reports the bath's heater and chiller for every
+chamber in it. Faults on the heater or chiller of any chamber of a bath act on the bath's
+heater or chiller; so does a power loss of the driving chamber.
 """
 
 from __future__ import annotations
 
 import math
-from collections import deque
 from datetime import datetime, timedelta
 
 import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
+from simulator._actuators import Actuators
 from simulator._faults import FaultBook, ScheduledFault
-from simulator._oxygen import metabolism, oxygen_segment
+from simulator._oxygen import metabolism
 from simulator._params import resolve
-from simulator._physics import (
-    ageing_factor,
-    first_order,
-    lag_segment,
-    lamp_curve,
-    pump_fraction,
-    thermal_segment,
-)
-from simulator._science import SaturationTable
+from simulator._physics import Memo, ageing_factor
+from simulator._science import ArrheniusLine, SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
+from simulator._step import Drive, WaterState, step_segment
 from simulator._types import ChamberTruth, OptodeReading, Outputs, SensorNoReply
 
 __all__ = ["Rack"]
@@ -47,6 +42,7 @@ _LEAK_SEGMENT_S = 60.0
 _MAX_SUBSTEPS = 3600  # sub-steps per vectorised segment: bounds memory on long advances
 _MIN_VOLUME_FRAC = 0.05
 _DEVICE_OF_SENSOR = {"temperature": "modbus", "par": "modbus", "flow": "modbus", "optode": "optode"}
+_ACTUATOR_ROWS = ("heater_pct", "chiller_pct", "lamp_pct", "pump_pct")
 
 
 class Rack:
@@ -73,32 +69,25 @@ class Rack:
         self.chamber_ids: tuple[str, ...] = p.chamber_ids
         self._p = p
         self._index = {cid: i for i, cid in enumerate(p.chamber_ids)}
-        n, m = len(p.chamber_ids), len(p.node_names)
-        self._n, self._m = n, m
+        self._m = len(p.node_names)
         self._rng = np.random.default_rng(p.seed if seed is None else seed)
-        self._sat = SaturationTable(p.salinity, p.pressure_kpa)
+        self._saturation_table = SaturationTable(p.salinity, p.pressure_kpa)
+        self._arrhenius = ArrheniusLine(p.t_ref_c)
+        self._memo = Memo()
         self._t = 0.0
-        # commands (%), per chamber: heater, chiller, lamp, pump
-        self._cmd = np.zeros((4, n))
-        # actuator state after faults
-        self._heater_pct = np.zeros(m)
-        self._chiller_pct = np.zeros(m)
-        self._lamp_pct = np.zeros(n)
-        self._pump_pct = np.zeros(n)
-        self._sent_w = np.zeros((2, m))
-        self._line: list[deque[tuple[float, float, float]]] = [deque() for _ in range(m)]
-        self._water_w = np.zeros((2, m))
-        # physical state
-        self._temp = p.initial_node_temperature_c.copy()
+        self._act = Actuators(p)
+        temps = p.initial_node_temperature_c[p.node_of_chamber]
+        o2 = self._saturation(temps) * p.initial_o2_sat_frac
+        self._water = WaterState(
+            temp_c=p.initial_node_temperature_c.copy(),
+            o2_umol_l=o2,
+            probe_c=temps.copy(),
+            optode_umol_l=o2.copy(),
+            warmth=np.zeros(len(temps)),
+        )
         self._volume = p.volume_l.copy()
-        t_ch = self._temp[p.node_of_chamber]
-        self._o2 = self._sat(t_ch) * p.initial_o2_sat_frac
-        self._probe = t_ch.copy()
-        self._optode = self._o2.copy()
-        self._warmth = np.zeros(n)
         self._lamp_s = p.lamp_hours0_h * 3600.0
-        self._energy = np.zeros((4, m))  # heater, chiller, room loss, flush loss (J)
-        self._dirty = True
+        self._energy = np.zeros((4, self._m))  # heater, chiller, room loss, flush loss (J)
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
             self._book.add(fault, 0.0)
@@ -125,12 +114,17 @@ class Rack:
         t_end = self._t + dt_s
         step = self._p.physics_step_s
         while self._t < t_end - _EPS_S:
-            seg_end = min(t_end, self._next_event(), self._t + _MAX_SUBSTEPS * step)
+            t0 = self._t
+            seg_end = min(t_end, self._book.next_boundary(t0), t0 + _MAX_SUBSTEPS * step)
             if self._book.masks.leak_l_s.any():
-                seg_end = min(seg_end, self._t + _LEAK_SEGMENT_S)
-            span = seg_end - self._t
-            n = max(1, math.ceil(span / step - 1e-9))
-            self._integrate(n, span / n)
+                seg_end = min(seg_end, t0 + _LEAK_SEGMENT_S)
+            n, h = Actuators.steps(seg_end - t0, step)
+            off_grid = self._act.next_off_grid(t0, seg_end, h)
+            while off_grid is not None:
+                seg_end = off_grid
+                n, h = Actuators.steps(seg_end - t0, step)
+                off_grid = self._act.next_off_grid(t0, seg_end, h)
+            self._integrate(t0, seg_end, n, h)
             self._t = seg_end
             self._settle()
         self._t = max(self._t, t_end)
@@ -153,19 +147,19 @@ class Rack:
             if value is None:
                 continue
             if not math.isfinite(value) or not 0.0 <= value <= 100.0:
-                raise ValueError(f"actuator drive must be within 0–100 %, got {value!r}")
-            self._cmd[row, i] = value
-        self._dirty = True
+                raise ValueError(f"{_ACTUATOR_ROWS[row]} must be within 0–100 %, got {value!r}")
+            self._act.command(i, row, value)
 
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
         i = self._chamber(chamber_id)
         node = self._p.node_of_chamber[i]
+        act = self._act
         return Outputs(
-            heater_pct=float(self._heater_pct[node]),
-            chiller_pct=float(self._chiller_pct[node]),
-            lamp_pct=float(self._lamp_pct[i]),
-            pump_pct=float(self._pump_pct[i]),
+            heater_pct=float(act.heater_pct[node]),
+            chiller_pct=float(act.chiller_pct[node]),
+            lamp_pct=float(act.lamp_pct[i]),
+            pump_pct=float(act.pump_pct[i]),
         )
 
     @property
@@ -196,27 +190,25 @@ class Rack:
         """Temperature probe reading, °C; raises SensorNoReply when the probe is silent."""
         i = self._chamber(chamber_id)
         frozen = self._reachable(i, "temperature")
-        return float(frozen) if frozen is not None else self._measure_temperature(i)
+        return float(frozen) if isinstance(frozen, float) else self._measure_temperature(i)
 
     def read_optode(self, chamber_id: str) -> OptodeReading:
         """Optode reading; raises SensorNoReply when the optode is silent."""
         i = self._chamber(chamber_id)
         frozen = self._reachable(i, "optode")
-        if isinstance(frozen, OptodeReading):
-            return frozen
-        return self._measure_optode(i)
+        return frozen if isinstance(frozen, OptodeReading) else self._measure_optode(i)
 
     def read_par(self, chamber_id: str) -> float:
         """PAR sensor reading, µmol photons m⁻² s⁻¹; raises SensorNoReply when silent."""
         i = self._chamber(chamber_id)
         frozen = self._reachable(i, "par")
-        return float(frozen) if frozen is not None else self._measure_par(i)
+        return float(frozen) if isinstance(frozen, float) else self._measure_par(i)
 
     def read_flow(self, chamber_id: str) -> float:
         """Flow sensor reading, cm s⁻¹; raises SensorNoReply when silent."""
         i = self._chamber(chamber_id)
         frozen = self._reachable(i, "flow")
-        return float(frozen) if frozen is not None else self._measure_flow(i)
+        return float(frozen) if isinstance(frozen, float) else self._measure_flow(i)
 
     def read_level_ok(self, chamber_id: str) -> bool:
         """Level switch: False once a leak has lost more than the rig's alarm share."""
@@ -234,32 +226,33 @@ class Rack:
         i = self._chamber(chamber_id)
         p = self._p
         node = p.node_of_chamber[i]
-        temps = self._temp[p.node_of_chamber]
+        water = self._water
+        temps = water.temp_c[p.node_of_chamber]
         par = self._par_now()
         gpp, resp = metabolism(par, temps, p)
-        sat = float(self._sat(temps)[i])
-        heat_capacity = self._capacity[node]
+        sat = float(self._saturation(temps)[i])
+        o2 = float(water.o2_umol_l[i])
         return ChamberTruth(
             temperature_c=float(temps[i]),
-            o2_umol_l=float(self._o2[i]),
-            o2_sat_pct=100.0 * float(self._o2[i]) / sat,
+            o2_umol_l=o2,
+            o2_sat_pct=100.0 * o2 / sat,
             o2_saturation_umol_l=sat,
             par=float(par[i]),
-            flow_cm_s=float(self._flow_cm_s[i]),
-            incubation_open=bool(self._flush_l_s[i] > 0.0),
+            flow_cm_s=float(self._act.flow_cm_s[i]),
+            incubation_open=bool(self._act.flush_l_s[i] > 0.0),
             water_volume_l=float(self._volume[i]),
             gpp_umol_m2_h=float(gpp[i]),
             resp_umol_m2_h=float(resp[i]),
             net_umol_m2_h=float(gpp[i] - resp[i]),
-            heater_w=float(self._water_w[0, node]),
-            chiller_w=float(self._water_w[1, node]),
-            heat_capacity_j_k=float(heat_capacity),
+            heater_w=float(self._act.water_w[0, node]),
+            chiller_w=float(self._act.water_w[1, node]),
+            heat_capacity_j_k=float(self._capacity()[node]),
             heater_energy_j=float(self._energy[0, node]),
             chiller_energy_j=float(self._energy[1, node]),
             room_loss_j=float(self._energy[2, node]),
             flush_loss_j=float(self._energy[3, node]),
-            probe_temperature_c=float(self._probe[i]),
-            optode_o2_umol_l=float(self._optode[i]),
+            probe_temperature_c=float(water.probe_c[i]),
+            optode_o2_umol_l=float(water.optode_umol_l[i]),
             lamp_hours_h=float(self._lamp_s[i] / 3600.0),
         )
 
@@ -275,157 +268,90 @@ class Rack:
 
     def _sync(self) -> None:
         """Apply commands given since the last look (they take effect at the present time)."""
-        if self._dirty:
-            self._refresh_actuators()
-            self._deliver()
+        if self._act.dirty:
+            self._refresh()
+            self._act.deliver(self._t)
 
     def _settle(self) -> None:
         """Bring faults, actuators and the delay lines up to the present time."""
         began, changed = self._book.update(self._t)
         for entry in began:
             self._freeze(entry)
-        if changed or self._dirty:
-            self._refresh_actuators()
-        self._deliver()
+        if changed or self._act.dirty:
+            self._refresh()
+        self._act.deliver(self._t)
+
+    def _refresh(self) -> None:
+        self._act.refresh(self._t, self._book)
+        tau = self._p.warmup_tau_s
+        if not (tau > 0.0).all():  # lamps without warm-up are warm (or cold) at once
+            warmth = np.where(tau > 0.0, self._water.warmth, self._act.lit)
+            w = self._water
+            self._water = WaterState(w.temp_c, w.o2_umol_l, w.probe_c, w.optode_umol_l, warmth)
 
     def _freeze(self, entry: ScheduledFault) -> None:
         """Remember what a stuck sensor shows from now on."""
         if entry.fault.kind is not FaultKind.STUCK:
             return
+        measure = {
+            "temperature": self._measure_temperature,
+            "optode": self._measure_optode,
+            "par": self._measure_par,
+            "flow": self._measure_flow,
+        }[entry.fault.sensor or ""]
         for i in entry.chambers:
-            if entry.fault.sensor == "temperature":
-                entry.frozen[i] = self._measure_temperature(i)
-            elif entry.fault.sensor == "optode":
-                entry.frozen[i] = self._measure_optode(i)
-            elif entry.fault.sensor == "par":
-                entry.frozen[i] = self._measure_par(i)
-            else:
-                entry.frozen[i] = self._measure_flow(i)
+            entry.frozen[i] = measure(i)
 
-    def _refresh_actuators(self) -> None:
-        """Apply faults to the commands and send changed heater/chiller power down the line."""
+    def _capacity(self) -> F:
+        """Heat capacity of each thermal node, J K⁻¹."""
         p = self._p
-        drv = p.driver_of_node
-        self._dirty = False
-        if not self._book.active:
-            self._lamp_pct = self._cmd[2].copy()
-            self._pump_pct = self._cmd[3].copy()
-            heater = self._cmd[0, drv]
-            chiller = self._cmd[1, drv]
-        else:
-            masks = self._book.masks
-            powered = ~(masks.power_off | masks.rack_power_off)
-            self._lamp_pct = np.where(powered, self._cmd[2], 0.0)
-            self._pump_pct = np.where(powered & ~masks.pump_failed, self._cmd[3], 0.0)
-            node_of, m = p.node_of_chamber, self._m
-            stuck_on = np.bincount(node_of, masks.heater_on, m) > 0
-            stuck_off = np.bincount(node_of, masks.heater_off, m) > 0
-            chiller_dead = np.bincount(node_of, masks.chiller_failed, m) > 0
-            node_powered = powered[drv]
-            heater = np.where(stuck_on, 100.0, self._cmd[0, drv])
-            heater = np.where(stuck_off | ~node_powered, 0.0, heater)
-            chiller = np.where(chiller_dead | ~node_powered, 0.0, self._cmd[1, drv])
-        self._heater_pct, self._chiller_pct = heater, chiller
-        self._lamp_new_par = lamp_curve(self._lamp_pct, p.par_at_full, p.curve_shape)
-        self._lit = (self._lamp_pct > 0.0).astype(float)
-        self._warmth = np.where(p.warmup_tau_s > 0.0, self._warmth, self._lit)
-        pump = pump_fraction(self._pump_pct, p.dead_band_pct)
-        self._flow_cm_s = pump * p.flow_at_full_cm_s
-        self._flush_l_s = pump * p.flush_at_full_l_s
-        self._derive_water()
-        watts = np.empty((2, self._m))
-        np.multiply(heater, p.heater_max_w / 100.0, out=watts[0])
-        np.multiply(chiller, p.chiller_max_w / 100.0, out=watts[1])
-        changed = np.flatnonzero((watts != self._sent_w).any(axis=0))
-        for j in changed:
-            line = self._line[j]
-            arrive = self._t + float(p.dead_time_s[j])
-            if line and line[-1][0] == arrive:
-                line.pop()
-            line.append((arrive, float(watts[0, j]), float(watts[1, j])))
-        self._sent_w = watts
+        own = np.bincount(p.node_of_chamber, self._volume * p.rho_cp_j_l_k, self._m)
+        return np.asarray(p.bath_volume_l * p.bath_rho_cp_j_l_k + own, dtype=float)
 
-    def _deliver(self) -> None:
-        """Let actuator changes whose dead time has passed reach the water."""
-        for j, line in enumerate(self._line):
-            while line and line[0][0] <= self._t + _EPS_S:
-                _, heater_w, chiller_w = line.popleft()
-                self._water_w[0, j] = heater_w
-                self._water_w[1, j] = chiller_w
-
-    def _next_event(self) -> float:
-        best = self._book.next_boundary(self._t)
-        for line in self._line:
-            if line and line[0][0] < best:
-                best = line[0][0]
-        return best
-
-    def _derive_water(self) -> None:
-        """Recompute what depends on pump flow and water volume."""
+    def _saturation(self, temps: F) -> F:
+        """Air-saturation O2 of each chamber's water at ``temps`` (°C), µmol L⁻¹."""
         p = self._p
-        volume = self._volume
-        own = np.bincount(p.node_of_chamber, volume * p.rho_cp_j_l_k, self._m)
-        self._capacity = p.bath_volume_l * p.bath_rho_cp_j_l_k + own
-        flush = self._flush_l_s
-        self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
-        self._exchange = flush / volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
+        return saturation_umol_l(temps, p.salinity, p.pressure_kpa)
 
-    def _par_target(self) -> F:
-        p = self._p
-        age = ageing_factor(self._lamp_s / 3600.0, p.ageing_frac_per_1000_h)
-        return np.asarray(self._lamp_new_par * age, dtype=float)
+    def _par_warm(self) -> F:
+        """PAR of each lamp when warm, at its drive and age, µmol m⁻² s⁻¹."""
+        age = ageing_factor(self._lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
+        return np.asarray(self._act.new_lamp_par * age, dtype=float)
 
     def _par_now(self) -> F:
-        p = self._p
-        cold = p.cold_output_frac
-        return np.asarray(self._par_target() * (cold + (1.0 - cold) * self._warmth), dtype=float)
+        cold = self._p.cold_output_frac
+        return np.asarray(self._par_warm() * (cold + (1.0 - cold) * self._water.warmth))
 
-    def _integrate(self, n: int, h: float) -> None:
-        """Step every chamber through n sub-steps of h seconds with constant inputs."""
+    def _integrate(self, t0: float, t1: float, n: int, h: float) -> None:
+        """Step every chamber from t0 to t1 (s) in n sub-steps of h seconds."""
         p = self._p
+        act = self._act
+        heater, chiller = act.power_path(t0, t1, n, h)
+        flush = act.flush_l_s
+        volume = self._volume
+        drive = Drive(
+            heater_w=heater,
+            chiller_w=chiller,
+            lit=act.lit,
+            par_warm=self._par_warm(),
+            flush_w_k=np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m),
+            exchange_per_s=flush / volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0),
+            capacity_j_k=self._capacity(),
+            volume_l=volume,
+        )
+        result = step_segment(
+            self._water, drive, p, self._saturation_table, self._arrhenius, n, h, self._memo
+        )
+        self._water = result.state
         span = n * h
-        node_of = p.node_of_chamber
-        th = thermal_segment(
-            self._temp,
-            self._water_w[0] - self._water_w[1],
-            p.ua_w_k,
-            self._flush_w_k,
-            self._capacity,
-            p.room_temperature_c,
-            p.inflow_temperature_c,
-            h,
-            n,
-        )
-        temps = th.temperature_c[:, node_of]
-        temp_starts = temps[:-1]
-        warmth = first_order(self._warmth, self._lit, p.warmup_tau_s, h, n)
-        cold = p.cold_output_frac
-        par_starts = self._par_target() * (cold + (1.0 - cold) * warmth[:-1])
-        o2 = oxygen_segment(
-            self._o2,
-            temp_starts,
-            par_starts,
-            self._sat(temp_starts),
-            self._exchange,
-            self._volume,
-            p,
-            h,
-        )
-        o2_path = np.concatenate((self._o2[None, :], o2))
-        self._optode = lag_segment(self._optode, o2_path, p.optode_tau_s, h)[-1]
-        self._probe = lag_segment(self._probe, temps, p.temperature_tau_s, h)[-1]
-        self._o2 = o2[-1]
-        self._temp = th.temperature_c[-1]
-        self._warmth = warmth[-1]
-        self._lamp_s = self._lamp_s + self._lit * span
-        self._energy[:2] += self._water_w * span
-        self._energy[2] += th.room_loss_j
-        self._energy[3] += th.flush_loss_j
+        self._lamp_s = self._lamp_s + act.lit * span
+        self._energy[0] += result.heater_j
+        self._energy[1] += result.chiller_j
+        self._energy[2] += result.room_loss_j
+        self._energy[3] += result.flush_loss_j
         leak = self._book.masks.leak_l_s
         if leak.any():
-            floor = _MIN_VOLUME_FRAC * p.volume_l
-            self._volume = np.maximum(self._volume - leak * span, floor)
-            self._derive_water()
+            self._volume = np.maximum(volume - leak * span, _MIN_VOLUME_FRAC * p.volume_l)
 
     def _reachable(self, i: int, sensor: str) -> object | None:
         """Raise SensorNoReply if the sensor is silent; return a stuck value if frozen."""
@@ -441,20 +367,19 @@ class Rack:
 
     def _measure_temperature(self, i: int) -> float:
         p = self._p
-        value = noisy(
-            self._probe[i] + p.temperature_offset_c[i], p.temperature_noise_c[i], self._rng
-        )
+        true = float(self._water.probe_c[i]) + float(p.temperature_offset_c[i])
+        value = noisy(true, float(p.temperature_noise_c[i]), self._rng)
         return value + fault_offset(self._book.sensor_faults(i, "temperature"), self._t, self._rng)
 
     def _measure_optode(self, i: int) -> OptodeReading:
         p = self._p
-        o2 = self._optode[i] + p.optode_offset_umol_l[i] + p.optode_drift_umol_l_per_s[i] * self._t
-        o2 = noisy(o2, p.optode_noise_umol_l[i], self._rng)
+        drift = float(p.optode_drift_umol_l_per_s[i]) * self._t
+        o2 = float(self._water.optode_umol_l[i]) + float(p.optode_offset_umol_l[i]) + drift
+        o2 = noisy(o2, float(p.optode_noise_umol_l[i]), self._rng)
         o2 += fault_offset(self._book.sensor_faults(i, "optode"), self._t, self._rng)
-        temp = noisy(
-            self._probe[i] + p.temperature_offset_c[i], p.temperature_noise_c[i], self._rng
-        )
-        sat = float(self._sat(np.full(self._n, temp))[i])
+        true_temp = float(self._water.probe_c[i]) + float(p.temperature_offset_c[i])
+        temp = noisy(true_temp, float(p.temperature_noise_c[i]), self._rng)
+        sat = float(saturation_umol_l(temp, float(p.salinity[i]), p.pressure_kpa))
         return optode_reading(
             o2,
             temp,
@@ -466,11 +391,11 @@ class Rack:
 
     def _measure_par(self, i: int) -> float:
         true = float(self._par_now()[i])
-        value = noisy(true, self._p.par_noise_frac[i] * true, self._rng)
+        value = noisy(true, float(self._p.par_noise_frac[i]) * true, self._rng)
         value += fault_offset(self._book.sensor_faults(i, "par"), self._t, self._rng)
         return max(value, 0.0)
 
     def _measure_flow(self, i: int) -> float:
-        value = noisy(float(self._flow_cm_s[i]), self._p.flow_noise_cm_s[i], self._rng)
+        value = noisy(float(self._act.flow_cm_s[i]), float(self._p.flow_noise_cm_s[i]), self._rng)
         value += fault_offset(self._book.sensor_faults(i, "flow"), self._t, self._rng)
         return max(value, 0.0)

@@ -12,10 +12,16 @@ from numpy.typing import NDArray
 
 from controller.science.optode import OptodeCalibration, SignalKind, phase_from_concentration
 from controller.science.oxygen import solubility
-from controller.science.rates import BOLTZMANN_EV_PER_K, arrhenius_factor, jassby_platt
+from controller.science.rates import (
+    BOLTZMANN_EV_PER_K,
+    ZERO_CELSIUS_K,
+    arrhenius_factor,
+    jassby_platt,
+)
 
 __all__ = [
     "BOLTZMANN_EV_PER_K",
+    "ArrheniusLine",
     "SaturationTable",
     "light_limited",
     "log_arrhenius_per_ev",
@@ -150,17 +156,41 @@ class SaturationTable:
 
     def __init__(self, salinity: F, pressure_kpa: float) -> None:
         grid = np.arange(_TABLE_MIN_C, _TABLE_MAX_C + _TABLE_STEP_C / 2, _TABLE_STEP_C)
-        unique, inverse = np.unique(np.asarray(salinity, dtype=float), return_inverse=True)
-        columns = [saturation_umol_l(grid, s, pressure_kpa) for s in unique]
-        self._table: F = np.stack(columns, axis=1)[:, inverse]
-        self._columns = np.arange(len(salinity))
+        sal, sal_of = np.unique(np.asarray(salinity, dtype=float), return_inverse=True)
+        sat = np.stack([saturation_umol_l(grid, s, pressure_kpa) for s in sal], axis=1)
+        self._table: F = sat[:, sal_of]
+        self._columns = np.arange(len(sal_of))
         self._last = len(grid) - 1
 
     def __call__(self, temp_c: F) -> F:
-        """Saturation at ``temp_c`` (shape ``(..., N)``), µmol L⁻¹."""
+        """Saturation at ``temp_c`` (°C, shape ``(..., N)``), µmol L⁻¹."""
         x = (np.clip(temp_c, _TABLE_MIN_C, _TABLE_MAX_C) - _TABLE_MIN_C) / _TABLE_STEP_C
         i = np.minimum(x.astype(np.intp), self._last - 1)
-        w = x - i
         lo = self._table[i, self._columns]
-        hi = self._table[i + 1, self._columns]
-        return np.asarray(lo + (hi - lo) * w, dtype=float)
+        return np.asarray(lo + (self._table[i + 1, self._columns] - lo) * (x - i), dtype=float)
+
+
+class ArrheniusLine:
+    """ln A₁ = (1/k)(1/T_ref − 1/T), the 1 eV Arrhenius exponent, as a line in 1/T.
+
+    The integrator evaluates it as ln A₁ = slope·(1/T) + intercept per chamber, with the
+    slope and intercept taken from ``arrhenius_factor`` at two temperatures, which saves the
+    per-call validation of the science function on every sub-step.
+
+    Parameters
+    ----------
+    t_ref_c
+        Reference temperature of each chamber's rates, °C, shape ``(N,)``.
+    """
+
+    def __init__(self, t_ref_c: F) -> None:
+        cold, warm = 0.0, 40.0
+        ln_cold = log_arrhenius_per_ev(np.full_like(t_ref_c, cold), t_ref_c)
+        ln_warm = log_arrhenius_per_ev(np.full_like(t_ref_c, warm), t_ref_c)
+        inv_cold, inv_warm = 1.0 / (cold + ZERO_CELSIUS_K), 1.0 / (warm + ZERO_CELSIUS_K)
+        self._slope: F = (ln_warm - ln_cold) / (inv_warm - inv_cold)
+        self._intercept: F = ln_cold - self._slope * inv_cold
+
+    def __call__(self, temp_c: F) -> F:
+        """ln A₁ at ``temp_c`` (°C, shape ``(..., N)``), eV⁻¹."""
+        return np.asarray(self._slope / (temp_c + ZERO_CELSIUS_K) + self._intercept, dtype=float)
