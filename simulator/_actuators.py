@@ -51,6 +51,8 @@ class Actuators:
         Fresh inflow into each chamber, L s⁻¹, shape ``(N,)``.
     water_w
         Heater and chiller power reaching each node's water now, W, shape ``(2, M)``.
+    flow_version
+        Counter raised whenever pump flow changes, dimensionless.
     dirty
         True when commands changed since the last :meth:`refresh`.
     """
@@ -71,6 +73,9 @@ class Actuators:
         self.new_lamp_par = np.zeros(n)
         self.flow_cm_s = np.zeros(n)
         self.flush_l_s = np.zeros(n)
+        self.flow_version = 0
+        self._lamp_seen = np.full(n, np.nan)
+        self._pump_seen = np.full(n, np.nan)
         self.dirty = True
 
     def command(self, chamber: int, row: int, value: float) -> None:
@@ -102,11 +107,16 @@ class Actuators:
             heater = np.where(stuck_off | ~node_powered, 0.0, heater)
             chiller = np.where(chiller_dead | ~node_powered, 0.0, self._cmd[1, drv])
         self.heater_pct, self.chiller_pct = heater, chiller
-        self.new_lamp_par = lamp_curve(self.lamp_pct, p.par_at_full, p.curve_shape)
-        self.lit = (self.lamp_pct > 0.0).astype(float)
-        pump = pump_fraction(self.pump_pct, p.dead_band_pct)
-        self.flow_cm_s = pump * p.flow_at_full_cm_s
-        self.flush_l_s = pump * p.flush_at_full_l_s
+        if not np.array_equal(self.lamp_pct, self._lamp_seen):
+            self._lamp_seen = self.lamp_pct
+            self.new_lamp_par = lamp_curve(self.lamp_pct, p.par_at_full, p.curve_shape)
+            self.lit = (self.lamp_pct > 0.0).astype(float)
+        if not np.array_equal(self.pump_pct, self._pump_seen):
+            self._pump_seen = self.pump_pct
+            pump = pump_fraction(self.pump_pct, p.dead_band_pct)
+            self.flow_cm_s = pump * p.flow_at_full_cm_s
+            self.flush_l_s = pump * p.flush_at_full_l_s
+            self.flow_version += 1
         watts = np.empty((2, self._m))
         np.multiply(heater, p.heater_max_w / 100.0, out=watts[0])
         np.multiply(chiller, p.chiller_max_w / 100.0, out=watts[1])

@@ -86,6 +86,8 @@ class Rack:
             warmth=np.zeros(len(temps)),
         )
         self._volume = p.volume_l.copy()
+        self._volume_version = 0
+        self._water_key: tuple[int, int] = (-1, -1)
         self._lamp_s = p.lamp_hours0_h * 3600.0
         self._energy = np.zeros((4, self._m))  # heater, chiller, room loss, flush loss (J)
         self._book = FaultBook(p.chamber_ids)
@@ -327,16 +329,22 @@ class Rack:
         p = self._p
         act = self._act
         heater, chiller = act.power_path(t0, t1, n, h)
-        flush = act.flush_l_s
         volume = self._volume
+        key = (act.flow_version, self._volume_version)
+        if key != self._water_key:  # flows or volumes changed: recompute what follows
+            flush = act.flush_l_s
+            self._water_key = key
+            self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
+            self._exchange = flush / volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
+            self._node_capacity = self._capacity()
         drive = Drive(
             heater_w=heater,
             chiller_w=chiller,
             lit=act.lit,
             par_warm=self._par_warm(),
-            flush_w_k=np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m),
-            exchange_per_s=flush / volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0),
-            capacity_j_k=self._capacity(),
+            flush_w_k=self._flush_w_k,
+            exchange_per_s=self._exchange,
+            capacity_j_k=self._node_capacity,
             volume_l=volume,
         )
         result = step_segment(
@@ -352,6 +360,7 @@ class Rack:
         leak = self._book.masks.leak_l_s
         if leak.any():
             self._volume = np.maximum(volume - leak * span, _MIN_VOLUME_FRAC * p.volume_l)
+            self._volume_version += 1
 
     def _reachable(self, i: int, sensor: str) -> object | None:
         """Raise SensorNoReply if the sensor is silent; return a stuck value if frozen."""

@@ -50,7 +50,22 @@ def fault_offset(faults: list[ScheduledFault], t_s: float, rng: np.random.Genera
 
 
 def noisy(value: float, sd: float, rng: np.random.Generator) -> float:
-    """``value`` plus Gaussian noise of standard deviation ``sd`` (same unit as value)."""
+    """Add Gaussian noise to a reading.
+
+    Parameters
+    ----------
+    value
+        Noise-free reading, in the sensor's unit.
+    sd
+        Standard deviation of the noise, in the sensor's unit (0 = no noise, no draw).
+    rng
+        The rack's random generator.
+
+    Returns
+    -------
+    float
+        The noisy reading, in the sensor's unit.
+    """
     return value + sd * float(rng.standard_normal()) if sd > 0.0 else value
 
 

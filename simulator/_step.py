@@ -158,7 +158,7 @@ def step_segment(
     path = node_path[:, node_of]
     starts = path[:-1]
     cold = p.cold_output_frac
-    if np.array_equal(state.warmth, drive.lit):
+    if (state.warmth == drive.lit).all():
         warmth_end = state.warmth
         par = drive.par_warm * (cold + (1.0 - cold) * state.warmth)
     else:

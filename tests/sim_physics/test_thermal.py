@@ -154,6 +154,7 @@ def test_flushing_pulls_temperature_toward_the_inflow() -> None:
 
 
 def test_chiller_cools_below_room() -> None:
+    # Steady state of the lumped model with heat removal P_c: T∞ = T_room − P_c/UA.
     r = rack(chamber(sim={"thermal": thermal(ua_w_k=5.0, chiller_max_w=100.0)}))
     r.set_outputs("C1", chiller_pct=50.0)
     r.advance(48 * 3600.0)
