@@ -29,6 +29,7 @@ __all__ = [
     "FileProblems",
     "format_path",
     "load_model",
+    "load_text",
     "load_toml",
     "locate",
     "parse_toml",
@@ -136,6 +137,10 @@ def read_text(path: Path) -> str:
             line=line,
         ) from None
     return text.removeprefix("\ufeff")
+
+
+load_text = read_text
+"""Alias of :func:`read_text`: read a user's UTF-8 text file with located errors."""
 
 
 def parse_toml(text: str, *, file: str | Path) -> dict[str, Any]:
@@ -432,7 +437,8 @@ def _message(
         text = f"unknown kind {tag!r}; expected one of {', '.join(expected)}"
         return _with_suggestion(text, tag, expected), None
     if kind in {"literal_error", "enum"} and isinstance(value, str):
-        expected = _QUOTED.findall(str(ctx.get("expected", "")))
+        # pydantic lists the choices in ctx; a model that re-raised the error may keep only msg
+        expected = _QUOTED.findall(str(ctx.get("expected", ""))) or _QUOTED.findall(msg)
         return _with_suggestion(f"{msg} (got {shown})", value, expected), None
     return msg, shown
 

@@ -127,7 +127,8 @@ def _matches_data(model: type[BaseModel], node: Any) -> bool | None:
     for key, name in model_keys(model).items():
         values = _literal_values(model.model_fields[name].annotation)
         if values and key in node:
-            if node[key] not in values:
+            tag = node[key]
+            if not isinstance(tag, str | int | float | bool) or tag not in values:
                 return False
             verdict = True
     return verdict

@@ -110,39 +110,58 @@ def test_bath_shared_by_two_temperature_programs_is_refused(
     assert "share bath" in out
 
 
+# name: ((old, new) text edit, text marking the line to blame, expected "field: message")
 BAD_EDITS = {
-    "enum": (('category = "strong"', 'category = "strnog"'), ":59: events.0.category: "),
+    "enum": (
+        ('category = "strong"', 'category = "strnog"'),
+        "strnog",
+        "events.0.category: Input should be 'moderate', 'strong', 'severe' or 'extreme' "
+        "(got 'strnog'); did you mean 'strong'?",
+    ),
     "duration": (
         ('peak_duration = "7d"', 'peak_duration = "7 parsecs"'),
-        ":61: events.0.peak_duration: ",
+        "parsecs",
+        "events.0.peak_duration: duration '7 parsecs': unknown unit 'parsecs'",
     ),
     "unknown-key": (
         ('[[phases]]\nname = "recovery"', '[[phases]]\nnme = "recovery"'),
-        ":48: phases.2.nme: unknown key 'nme'; did you mean 'name'?",
+        "nme =",
+        "phases.2.nme: unknown key 'nme'; did you mean 'name'?",
     ),
-    "negative-flow": (("value = 4.0", "value = -4.0"), ":40: phases.0.programs.flow.0.value: "),
-    "negative-duration": (('duration = "18d"', 'duration = "-18d"'), ":45: phases.1.duration: "),
+    "negative-flow": (
+        ("value = 4.0", "value = -4.0"),
+        "value = -4.0",
+        "phases.0.programs.flow.0.value: ",
+    ),
+    "negative-duration": (
+        ('duration = "18d"', 'duration = "-18d"'),
+        '"-18d"',
+        "phases.1.duration: ",
+    ),
     "missing-csv": (
         ('series = "data/saltmarrow-sst.csv"\nbaseline', 'series = "data/absent.csv"\nbaseline'),
-        ":57: events.0.series: cannot read the file",
+        "absent.csv",
+        "events.0.series: cannot read the file",
     ),
 }
 
 
-@pytest.mark.parametrize(("edit", "expected"), BAD_EDITS.values(), ids=BAD_EDITS.keys())
+@pytest.mark.parametrize(("edit", "marker", "expected"), BAD_EDITS.values(), ids=BAD_EDITS.keys())
 def test_bad_protocol_is_one_located_line(
     tmp_path: Path,
     capsys: pytest.CaptureFixture[str],
     edit: tuple[str, str],
+    marker: str,
     expected: str,
 ) -> None:
     path = _copy(tmp_path, HEATWAVE, edit)
+    lines = path.read_text(encoding="utf-8").splitlines()
+    line = next(k for k, text in enumerate(lines, start=1) if marker in text)
     assert main(["check", str(path)]) == 2
     captured = capsys.readouterr()
     assert captured.out == ""
     err = captured.err
-    assert err.startswith(f"squall: error: {path}:"), err
-    assert expected in err, err
+    assert err.startswith(f"squall: error: {path}:{line}: {expected}"), err
     assert err.count("\n") == 1
 
 

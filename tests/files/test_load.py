@@ -310,3 +310,10 @@ def test_format_path_quotes_odd_keys() -> None:
     assert format_path(("phases", 2, "programs")) == "phases.2.programs"
     assert format_path(("groups", "a.b", 'q"')) == 'groups."a.b"."q\\""'
     assert format_path(()) == ""
+
+
+def test_unhashable_value_where_a_tag_is_expected(tmp_path: Path) -> None:
+    error = _error(tmp_path, VALID.replace('format = "toy/1"', "format = []\nextra = 1"))
+    assert isinstance(error, FileProblems)
+    fields = [p.field for p in error.problems]
+    assert fields == ["format", "extra"]
