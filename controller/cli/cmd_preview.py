@@ -202,7 +202,10 @@ def preview_data(loaded: LoadedProtocol, compiled: CompiledProtocol) -> PreviewD
                 drawn.append(channel)
                 lines.setdefault(key, []).append(_clip(channel, duration))
         label = loaded.protocol.groups[group].label or group
-        groups.append(GroupLines(group, label, str(getattr(role, "value", role)), chambers, lines))
+        kinds = {e.kind for e in compiled.events if group in e.groups}
+        kind = next(iter(kinds)) if len(kinds) == 1 else ("compound" if kinds else None)
+        role_name = str(getattr(role, "value", role))
+        groups.append(GroupLines(group, label, role_name, chambers, lines, kind))
     offset = compiled.utc_offset
     local = (compiled.start_utc + offset).replace(tzinfo=None)
     sign = "-" if offset < timedelta(0) else "+"

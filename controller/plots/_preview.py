@@ -53,7 +53,13 @@ PANELS: tuple[tuple[str, str], ...] = (
 )
 """Variable key and axis label of each panel, top to bottom."""
 
-_TREATMENT_COLOURS = ("#c2462e", "#1f8a7a", "#d9901a", "#6a4c8c", "#2f5d8a", "#7a8c2e")
+_TREATMENT_COLOURS = ("#1f8a7a", "#d9901a", "#6a4c8c", "#2f5d8a", "#7a8c2e", "#c2462e")
+_KIND_COLOURS = {
+    "heatwave": ("#c2462e", "#d9901a"),
+    "cold-spell": ("#2f6fa8", "#4aa3c8"),
+    "storm": ("#4c5b78", "#1f8a7a"),
+    "compound": ("#7b3f8c", "#a8385f"),
+}
 _TREATMENT_STYLES: tuple[Any, ...] = ("-", (0, (6, 1.6, 1.2, 1.6)), (0, (9, 2.5)), "-")
 _CONTROL_COLOURS = ("#2b2b2b", "#7d7d7d", "#4a4a4a")
 _CONTROL_STYLES: tuple[Any, ...] = ((0, (4, 2.2)), (0, (1.2, 1.6)), (0, (4, 1.5, 1.2, 1.5)))
@@ -81,6 +87,9 @@ class GroupLines:
         ``(t_s, value)`` pairs: the group's first chamber, then any replicate that differs.
         Times in s from the start; values in the variable's unit (°C, µmol photons m-2 s-1,
         cm s-1).
+    event_kind
+        What the group is exposed to, for its colour: ``heatwave``, ``cold-spell``,
+        ``storm``, ``compound`` (several kinds) or ``None``.
     """
 
     name: str
@@ -88,6 +97,7 @@ class GroupLines:
     role: str
     chambers: tuple[str, ...]
     lines: Mapping[str, Sequence[tuple[npt.NDArray[np.float64], npt.NDArray[np.float64]]]]
+    event_kind: str | None = None
 
 
 @dataclass(frozen=True)
@@ -134,9 +144,14 @@ class PreviewData:
 
 
 def _styles(groups: Sequence[GroupLines]) -> dict[str, tuple[str, Any]]:
-    """Colour and line style of each group: controls grey and dashed, treatments coloured."""
+    """Colour and line style of each group.
+
+    Controls are grey and dashed or dotted; treatments are solid or dash-dotted, warm for
+    heatwaves, blue for cold spells, slate for storms, purple for compound exposure.
+    """
     styles: dict[str, tuple[str, Any]] = {}
     n_control = n_treatment = 0
+    used: dict[str, int] = {}
     for group in groups:
         if group.role == "control":
             styles[group.name] = (
@@ -144,12 +159,13 @@ def _styles(groups: Sequence[GroupLines]) -> dict[str, tuple[str, Any]]:
                 _CONTROL_STYLES[n_control % len(_CONTROL_STYLES)],
             )
             n_control += 1
-        else:
-            styles[group.name] = (
-                _TREATMENT_COLOURS[n_treatment % len(_TREATMENT_COLOURS)],
-                _TREATMENT_STYLES[n_treatment % len(_TREATMENT_STYLES)],
-            )
-            n_treatment += 1
+            continue
+        palette = _KIND_COLOURS.get(group.event_kind or "", _TREATMENT_COLOURS)
+        key = group.event_kind or ""
+        colour = palette[used.get(key, 0) % len(palette)]
+        used[key] = used.get(key, 0) + 1
+        styles[group.name] = (colour, _TREATMENT_STYLES[n_treatment % len(_TREATMENT_STYLES)])
+        n_treatment += 1
     return styles
 
 

@@ -237,3 +237,22 @@ def test_bad_arguments_exit_2_with_one_line(
     captured = capsys.readouterr()
     assert captured.err.startswith("squall: error: ")
     assert captured.err.count("\n") == 1
+
+
+def test_real_process_prints_one_line_and_exits_2(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    path = _copy(tmp_path, HEATWAVE, ("title = ", "titel = "))
+    result = subprocess.run(
+        [sys.executable, "-m", "controller", "check", str(path)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
+    assert result.returncode == 2
+    assert result.stdout == ""
+    assert result.stderr == (
+        f"squall: error: {path}:3: titel: unknown key 'titel'; did you mean 'title'?\n"
+    )

@@ -174,3 +174,24 @@ def test_bad_arguments(argv: list[str], capsys: pytest.CaptureFixture[str]) -> N
     err = capsys.readouterr().err
     assert err.startswith("squall: error: squall")
     assert err.count("\n") == 1
+
+
+def test_styles_tell_roles_apart_without_colour_and_colour_events_by_kind() -> None:
+    from controller.plots._preview import _styles
+
+    t = (np.zeros(1), np.zeros(1))
+    groups = [
+        GroupLines("a", "A", "control", ("C1",), {"temperature_c": [t]}),
+        GroupLines("w", "W", "treatment", ("C2",), {"temperature_c": [t]}, "heatwave"),
+        GroupLines("c", "C", "treatment", ("C3",), {"temperature_c": [t]}, "cold-spell"),
+        GroupLines("b", "B", "control", ("C4",), {"temperature_c": [t]}),
+    ]
+    styles = _styles(groups)
+    line_styles = [str(styles[g.name][1]) for g in groups]
+    assert len(set(line_styles)) == 4  # every group has its own dash pattern
+    assert styles["a"][1] != "-" and styles["b"][1] != "-"  # controls are never solid
+    assert styles["w"][1] == "-"
+    red, _, blue = (int(styles["c"][0][k : k + 2], 16) for k in (1, 3, 5))
+    assert blue > red  # a cold spell is drawn in a cool colour
+    red, _, blue = (int(styles["w"][0][k : k + 2], 16) for k in (1, 3, 5))
+    assert red > blue  # a heatwave in a warm one
