@@ -15,7 +15,7 @@ from typing import Any
 
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 
-from controller.storage import EXPORT_COLUMNS, export
+from controller.storage._contract import EXPORT_COLUMNS
 
 __all__ = ["register"]
 
@@ -63,6 +63,8 @@ def _handle(args: argparse.Namespace) -> int:
 
         def _progress(done: int, total: int) -> None:
             bar.update(task, completed=done, total=total)
+
+        from controller.storage import export  # deferred: pandas and pyarrow load only here
 
         rows = export(args.log, args.output, progress=_progress)
     print(f"wrote {rows} rows to {args.output}")

@@ -4,70 +4,135 @@ Rule: nothing in this package reads a clock, keeps global state or does I/O, exc
 loaders of :mod:`controller.science.heatwave`, which read only the file they are given. The
 modules are public (``controller.science.light``, ``.heatwave``, ``.rates``, ``.oxygen``,
 ``.optode``); their names are also re-exported here.
+
+Names are re-exported lazily (see :mod:`controller._lazy`): importing the package is
+cheap, and a submodule loads the first time one of its names is used.
 """
 
-from controller.science.heatwave import (
-    CATEGORY_MULTIPLES,
-    DAYS_IN_CLIMATOLOGY_YEAR,
-    FEB29_DOY,
-    Category,
-    Climatology,
-    ExtremeEvent,
-    category_multiple,
-    category_name,
-    climatology,
-    daily_series,
-    detect,
-    leap_day_of_year,
-    load_climatology_csv,
-    load_series_csv,
-)
-from controller.science.light import (
-    SECONDS_PER_DAY,
-    attenuation_factor,
-    beer_lambert,
-    daily_light_integral,
-    dli_from_constant,
-    dli_of_half_sine,
-    half_sine_daylight,
-    half_sine_peak_for_dli,
-    sun_elevation_deg,
-)
-from controller.science.optode import (
-    OptodeCalibration,
-    SignalKind,
-    calibrate_two_point,
-    concentration_from_lifetime,
-    concentration_from_phase,
-    concentration_from_signal,
-    lifetime_from_concentration,
-    phase_from_concentration,
-    signal_from_concentration,
-)
-from controller.science.oxygen import (
-    O2_MOLAR_MASS_G_PER_MOL,
-    O2_MOLAR_VOLUME_L_PER_MOL,
-    O2_MOLE_FRACTION,
-    STANDARD_PRESSURE_HPA,
-    UNITS,
-    convert,
-    normalise_unit,
-    seawater_density_kg_m3,
-    solubility,
-    water_vapour_pressure_hpa,
-)
-from controller.science.rates import (
-    BOLTZMANN_EV_PER_K,
-    ZERO_CELSIUS_K,
-    arrhenius_factor,
-    jassby_platt,
-    platt,
-    platt_optimum,
-    q10_equivalent,
-    q10_factor,
-    q10_from_rates,
-    webb,
-)
+from typing import TYPE_CHECKING
+
+from controller._lazy import lazy_exports
+
+if TYPE_CHECKING:
+    from controller.science.heatwave import (
+        CATEGORY_MULTIPLES,
+        DAYS_IN_CLIMATOLOGY_YEAR,
+        FEB29_DOY,
+        Category,
+        Climatology,
+        ExtremeEvent,
+        category_multiple,
+        category_name,
+        climatology,
+        daily_series,
+        detect,
+        leap_day_of_year,
+        load_climatology_csv,
+        load_series_csv,
+    )
+    from controller.science.light import (
+        SECONDS_PER_DAY,
+        attenuation_factor,
+        beer_lambert,
+        daily_light_integral,
+        dli_from_constant,
+        dli_of_half_sine,
+        half_sine_daylight,
+        half_sine_peak_for_dli,
+        sun_elevation_deg,
+    )
+    from controller.science.optode import (
+        OptodeCalibration,
+        SignalKind,
+        calibrate_two_point,
+        concentration_from_lifetime,
+        concentration_from_phase,
+        concentration_from_signal,
+        lifetime_from_concentration,
+        phase_from_concentration,
+        signal_from_concentration,
+    )
+    from controller.science.oxygen import (
+        O2_MOLAR_MASS_G_PER_MOL,
+        O2_MOLAR_VOLUME_L_PER_MOL,
+        O2_MOLE_FRACTION,
+        STANDARD_PRESSURE_HPA,
+        UNITS,
+        convert,
+        normalise_unit,
+        seawater_density_kg_m3,
+        solubility,
+        water_vapour_pressure_hpa,
+    )
+    from controller.science.rates import (
+        BOLTZMANN_EV_PER_K,
+        ZERO_CELSIUS_K,
+        arrhenius_factor,
+        jassby_platt,
+        platt,
+        platt_optimum,
+        q10_equivalent,
+        q10_factor,
+        q10_from_rates,
+        webb,
+    )
+
+_NAMES = {
+    "BOLTZMANN_EV_PER_K": "rates",
+    "CATEGORY_MULTIPLES": "heatwave",
+    "Category": "heatwave",
+    "Climatology": "heatwave",
+    "DAYS_IN_CLIMATOLOGY_YEAR": "heatwave",
+    "ExtremeEvent": "heatwave",
+    "FEB29_DOY": "heatwave",
+    "O2_MOLAR_MASS_G_PER_MOL": "oxygen",
+    "O2_MOLAR_VOLUME_L_PER_MOL": "oxygen",
+    "O2_MOLE_FRACTION": "oxygen",
+    "OptodeCalibration": "optode",
+    "SECONDS_PER_DAY": "light",
+    "STANDARD_PRESSURE_HPA": "oxygen",
+    "SignalKind": "optode",
+    "UNITS": "oxygen",
+    "ZERO_CELSIUS_K": "rates",
+    "arrhenius_factor": "rates",
+    "attenuation_factor": "light",
+    "beer_lambert": "light",
+    "calibrate_two_point": "optode",
+    "category_multiple": "heatwave",
+    "category_name": "heatwave",
+    "climatology": "heatwave",
+    "concentration_from_lifetime": "optode",
+    "concentration_from_phase": "optode",
+    "concentration_from_signal": "optode",
+    "convert": "oxygen",
+    "daily_light_integral": "light",
+    "daily_series": "heatwave",
+    "detect": "heatwave",
+    "dli_from_constant": "light",
+    "dli_of_half_sine": "light",
+    "half_sine_daylight": "light",
+    "half_sine_peak_for_dli": "light",
+    "jassby_platt": "rates",
+    "leap_day_of_year": "heatwave",
+    "lifetime_from_concentration": "optode",
+    "load_climatology_csv": "heatwave",
+    "load_series_csv": "heatwave",
+    "normalise_unit": "oxygen",
+    "phase_from_concentration": "optode",
+    "platt": "rates",
+    "platt_optimum": "rates",
+    "q10_equivalent": "rates",
+    "q10_factor": "rates",
+    "q10_from_rates": "rates",
+    "seawater_density_kg_m3": "oxygen",
+    "signal_from_concentration": "optode",
+    "solubility": "oxygen",
+    "sun_elevation_deg": "light",
+    "water_vapour_pressure_hpa": "oxygen",
+    "webb": "rates",
+}
+
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)
 
 __all__ = [
     "BOLTZMANN_EV_PER_K",

@@ -14,7 +14,6 @@ from collections.abc import Sequence
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
-import pvlib
 
 from controller.errors import SquallError
 
@@ -88,6 +87,8 @@ def sun_elevation_deg(
     index = _utc_index(times_utc)
     if len(index) == 0:
         return np.empty(0, dtype=float)
+    import pvlib  # deferred: pvlib pulls in scipy, which costs about a second to import
+
     position = pvlib.solarposition.get_solarposition(
         index, latitude_deg, longitude_deg, method="nrel_numpy"
     )

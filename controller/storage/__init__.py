@@ -8,34 +8,80 @@
 
 The row shapes in :mod:`._records` are the one source of truth for the tables, the frames
 and the export.
+
+Names are re-exported lazily (see :mod:`controller._lazy`): importing the package is
+cheap, and a submodule loads the first time one of its names is used.
 """
 
-from ._columns import Column, ValueKind, columns_of
-from ._export import EXPORT_COLUMNS, ExportFormat, export
-from ._reader import RunLogReader, frame_columns, frame_dtypes
-from ._records import (
-    AlarmAction,
-    AlarmLevel,
-    AlarmRecord,
-    AuditRecord,
-    ChamberRecord,
-    ClockKind,
-    EventKind,
-    EventRecord,
-    IncubationState,
-    LightState,
-    ResumePoint,
-    RunEnd,
-    RunEndReason,
-    RunLogInfo,
-    RunMeta,
-    SampleRow,
-    SessionRecord,
-    WindowEndReason,
-    WindowRecord,
-)
-from ._schema import APPLICATION_ID, SCHEMA_VERSION, TABLES
-from ._writer import RunLogWriter
+from typing import TYPE_CHECKING
+
+from controller._lazy import lazy_exports
+
+if TYPE_CHECKING:
+    from ._columns import Column, ValueKind, columns_of
+    from ._contract import EXPORT_COLUMNS
+    from ._export import ExportFormat, export
+    from ._reader import RunLogReader, frame_columns, frame_dtypes
+    from ._records import (
+        AlarmAction,
+        AlarmLevel,
+        AlarmRecord,
+        AuditRecord,
+        ChamberRecord,
+        ClockKind,
+        EventKind,
+        EventRecord,
+        IncubationState,
+        LightState,
+        ResumePoint,
+        RunEnd,
+        RunEndReason,
+        RunLogInfo,
+        RunMeta,
+        SampleRow,
+        SessionRecord,
+        WindowEndReason,
+        WindowRecord,
+    )
+    from ._schema import APPLICATION_ID, SCHEMA_VERSION, TABLES
+    from ._writer import RunLogWriter
+
+_NAMES = {
+    "APPLICATION_ID": "_schema",
+    "AlarmAction": "_records",
+    "AlarmLevel": "_records",
+    "AlarmRecord": "_records",
+    "AuditRecord": "_records",
+    "ChamberRecord": "_records",
+    "ClockKind": "_records",
+    "Column": "_columns",
+    "EXPORT_COLUMNS": "_contract",
+    "EventKind": "_records",
+    "EventRecord": "_records",
+    "ExportFormat": "_export",
+    "IncubationState": "_records",
+    "LightState": "_records",
+    "ResumePoint": "_records",
+    "RunEnd": "_records",
+    "RunEndReason": "_records",
+    "RunLogInfo": "_records",
+    "RunLogReader": "_reader",
+    "RunLogWriter": "_writer",
+    "RunMeta": "_records",
+    "SCHEMA_VERSION": "_schema",
+    "SampleRow": "_records",
+    "SessionRecord": "_records",
+    "TABLES": "_schema",
+    "ValueKind": "_columns",
+    "WindowEndReason": "_records",
+    "WindowRecord": "_records",
+    "columns_of": "_columns",
+    "export": "_export",
+    "frame_columns": "_reader",
+    "frame_dtypes": "_reader",
+}
+
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)
 
 __all__ = [
     "APPLICATION_ID",

@@ -27,15 +27,13 @@ import pyarrow.parquet as pq
 
 from controller.errors import RuntimeFailure, SquallError
 
-from ._columns import Column, ValueKind, columns_of
+from ._columns import Column, ValueKind
+from ._contract import EXPORT_COLS, EXPORT_COLUMNS
 from ._reader import RunLogReader
-from ._records import SampleRow
 
 __all__ = ["EXPORT_COLUMNS", "ExportFormat", "export"]
 
-_EXPORT_COLS: tuple[Column, ...] = tuple(c for c in columns_of(SampleRow) if c.name != "t_s")
-#: Column names of the exported run table, in order (the design page's contract).
-EXPORT_COLUMNS: tuple[str, ...] = tuple(c.frame_name for c in _EXPORT_COLS)
+_EXPORT_COLS = EXPORT_COLS
 
 #: ISO 8601 UTC with microseconds, as written to CSV.
 _CSV_TIME_FORMAT = "%Y-%m-%dT%H:%M:%S.%fZ"
