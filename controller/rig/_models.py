@@ -16,6 +16,7 @@ from pydantic import Field, model_validator
 
 from controller._model import FileModel
 from controller.errors import SquallError
+from controller.rig._io import RigIo
 from controller.rig._sim import Bath, ChamberSim, RackSim
 
 __all__ = ["Chamber", "ChamberLimits", "Rig"]
@@ -100,6 +101,9 @@ class Rig(FileModel):
         "defined here.",
     )
     sim: RackSim = Field(default_factory=RackSim, description="Rack-wide simulator settings.")
+    io: RigIo | None = Field(
+        None, description="How the controller reaches the devices (links, optode ports)."
+    )
 
     @model_validator(mode="after")
     def _cross_references(self) -> Self:
@@ -133,6 +137,8 @@ class Rig(FileModel):
                     f"fault names chamber {fault.chamber!r}, which the rig does not have",
                     field=f"sim.faults.{i}.chamber",
                 )
+        if self.io is not None:
+            self.io.check_chambers([c.id for c in self.chambers])
         return self
 
     def bath(self, bath_id: str) -> Bath | None:
