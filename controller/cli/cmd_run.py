@@ -1,0 +1,214 @@
+"""``squall run PROTOCOL --rig RIG [--sim] [--speed N|max] [--log FILE] [--start ISO8601]``.
+
+Rules
+-----
+- ``--sim`` runs the rig's simulated chambers in this process on a simulated clock:
+  ``--speed max`` (the default) as fast as the computer goes, ``--speed N`` at N times real
+  time. Without ``--sim`` the rig's hardware transports are needed; until they exist the
+  command refuses with one line (exit 2).
+- Bad protocol, rig, start time, speed or log path: one located line, exit 2, nothing
+  written. An existing log is never overwritten.
+- On a terminal a progress bar shows phase, simulated time and alarms; otherwise the run is
+  quiet. The log's path is printed at the end; exit 0 when the protocol ran to its end, 1 if
+  the run failed (the outputs were made safe and the log closed first).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import math
+import sys
+import time
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+from rich.console import Console
+from rich.progress import BarColumn, Progress, TaskID, TextColumn, TimeElapsedColumn
+
+from controller.errors import RuntimeFailure, SquallError
+from controller.protocol import format_duration
+from controller.runtime import RunSettings, RunSummary, SimulatedRun, TickStatus
+
+__all__ = ["parse_speed", "register"]
+
+_log = logging.getLogger(__name__)
+
+
+def register(sub: Any) -> None:
+    """Add the ``run`` subcommand to the ``squall`` parser.
+
+    Parameters
+    ----------
+    sub
+        The subparsers object of the main parser.
+    """
+    parser = sub.add_parser(
+        "run",
+        help="run a protocol on a rig (with --sim: on its simulated chambers)",
+        description=(
+            "Run a protocol on a rig: read sensors, check interlocks, follow the setpoints "
+            "with PID loops, drive heaters, chillers, lamps and pumps, and log every tick "
+            "to a run log (SQLite). With --sim the rig's chambers are simulated in this "
+            "process on a simulated clock."
+        ),
+    )
+    parser.add_argument("protocol", metavar="PROTOCOL", type=Path, help="protocol file (TOML)")
+    parser.add_argument("--rig", metavar="RIG", type=Path, required=True, help="rig file (TOML)")
+    parser.add_argument(
+        "--sim", action="store_true", help="simulate the rig's chambers in this process"
+    )
+    parser.add_argument(
+        "--speed",
+        metavar="N|max",
+        default="max",
+        help="with --sim: 'max' (default) runs as fast as possible, N runs at N x real time",
+    )
+    parser.add_argument(
+        "--log",
+        metavar="FILE",
+        type=Path,
+        default=None,
+        help="run log to create (default runs/<protocol>-<UTC time>.sqlite); never overwritten",
+    )
+    parser.add_argument(
+        "--start",
+        metavar="ISO8601",
+        default=None,
+        help="start of the run with a zone, e.g. 2027-07-10T08:00:00+02:00 (default: the "
+        "protocol's 'begins', else now)",
+    )
+    parser.add_argument(
+        "--period",
+        metavar="SECONDS",
+        type=float,
+        default=RunSettings().period_s,
+        help=f"control tick period in seconds (default {RunSettings().period_s:g})",
+    )
+    parser.set_defaults(handler=_handle)
+
+
+def parse_speed(text: str) -> float | None:
+    """Parse ``--speed``: ``max`` (None: as fast as possible) or a number above 0.
+
+    Parameters
+    ----------
+    text
+        As typed.
+
+    Returns
+    -------
+    float or None
+        Simulated seconds per real second, or None for as fast as possible.
+    """
+    if text.strip().lower() == "max":
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not (math.isfinite(value) and value > 0):
+        raise SquallError(f"{text!r} is neither 'max' nor a number above 0", field="--speed")
+    return value
+
+
+def _parse_start(text: str | None) -> datetime | None:
+    if text is None:
+        return None
+    try:
+        value = datetime.fromisoformat(text.strip())
+    except ValueError:
+        raise SquallError(
+            f"{text!r} is not an ISO 8601 date-time; write e.g. 2027-07-10T08:00:00+02:00",
+            field="--start",
+        ) from None
+    if value.tzinfo is None or value.utcoffset() is None:
+        raise SquallError(f"{text!r} has no zone; add one, e.g. +00:00", field="--start")
+    return value
+
+
+def _settings(period_s: float) -> RunSettings:
+    if not (math.isfinite(period_s) and period_s >= 1.0):
+        raise SquallError(
+            f"the tick period must be 1 s or more, got {period_s!r}", field="--period"
+        )
+    default = RunSettings()
+    timeout_s = min(default.read_timeout_s, period_s / 4.0)
+    return RunSettings(period_s=period_s, read_timeout_s=timeout_s, write_timeout_s=timeout_s)
+
+
+class _Bar:
+    """Rich progress bar fed by tick statuses (phase, simulated time, alarms)."""
+
+    def __init__(self, console: Console) -> None:
+        self.progress = Progress(
+            TextColumn("{task.fields[phase]}", style="bold"),
+            BarColumn(),
+            TextColumn("{task.fields[when]}"),
+            TextColumn("{task.fields[alarms]}", style="red"),
+            TimeElapsedColumn(),
+            console=console,
+            transient=False,
+        )
+        self.task: TaskID | None = None
+
+    def __call__(self, status: TickStatus) -> None:
+        alarms = ", ".join(f"{c}: {code}" for c, code in sorted(status.alarms.items()))
+        fields = {
+            "phase": status.phase,
+            "when": f"{status.utc:%Y-%m-%d %H:%M} UTC  +{format_duration(status.elapsed_s)}",
+            "alarms": alarms,
+        }
+        if self.task is None:
+            self.task = self.progress.add_task("run", total=status.duration_s, **fields)
+        self.progress.update(self.task, completed=status.elapsed_s, **fields)
+
+
+def _report(console: Console, summary: RunSummary, wall_s: float, interactive: bool) -> None:
+    ratio = summary.run_s / wall_s if wall_s > 0 else math.inf
+    if interactive:
+        console.print(
+            f"{summary.end_reason.value}: {format_duration(summary.run_s)} simulated in "
+            f"{wall_s:.1f} s ({ratio:,.0f}x), {summary.ticks.ticks} ticks, "
+            f"{summary.rows_written} rows, {len(summary.alarms)} alarms raised",
+            highlight=False,
+        )
+    print(f"log: {summary.log_path}")
+
+
+def _handle(args: argparse.Namespace) -> int:
+    """Run the protocol; print where the log is."""
+    speed = parse_speed(args.speed)
+    start = _parse_start(args.start)
+    settings = _settings(args.period)
+    if not args.sim:
+        raise SquallError(
+            "hardware transports are not configured yet; use --sim to run the rig's "
+            "simulated chambers",
+            field="--sim",
+        )
+    run = SimulatedRun.prepare(
+        args.protocol, args.rig, args.log, speed=speed, start_utc=start, settings=settings
+    )
+    console = Console(stderr=False)
+    interactive = sys.stdout.isatty()
+    bar = _Bar(console) if interactive else None
+    wall0 = time.perf_counter()
+    try:
+        if bar is not None:
+            with bar.progress:
+                summary = run.run(progress=bar)
+        else:
+            summary = run.run()
+    except (SquallError, RuntimeFailure, KeyboardInterrupt):
+        print(f"log: {run.writer.path}", file=sys.stderr)
+        raise
+    except Exception as exc:
+        print(f"log: {run.writer.path}", file=sys.stderr)
+        _log.debug("the run failed", exc_info=True)
+        raise RuntimeFailure(
+            f"the run failed ({type(exc).__name__}: {exc}); outputs were made safe"
+        ) from exc
+    _report(console, summary, time.perf_counter() - wall0, interactive)
+    return 0

@@ -1,0 +1,62 @@
+"""The imperative shell that runs a protocol: chamber I/O, the control loop, the run.
+
+- :class:`ChamberIO` is what the loop talks to; :class:`SimulatedIO` serves an in-process
+  simulated rack, hardware transports implement the same interface.
+- :class:`ControlLoop` ticks on the clock (read → interlocks → setpoints → PID → outputs →
+  log) under ``asyncio.TaskGroup`` supervision and always ends with every output safe.
+- :func:`run_simulated` runs a protocol file on a simulated rig file and returns a
+  :class:`RunSummary`; :class:`SimulatedRun` exposes the assembled pieces.
+"""
+
+from controller.runtime._decide import OFF, ChamberDecision, Decider, Decision, Target
+from controller.runtime._io import ChamberIO, ChamberReadings, Quantity, stale_readings
+from controller.runtime._logsink import LogSink, alarm_record
+from controller.runtime._loop import ControlLoop, RunSummary, TickStats, TickStatus
+from controller.runtime._setpoints import SetpointTable
+from controller.runtime._settings import (
+    ChamberSettings,
+    ControlPlan,
+    NodeSettings,
+    RunSettings,
+    node_model,
+    plan_control,
+)
+from controller.runtime._sim_io import SimulatedIO
+from controller.runtime._simulated import (
+    RunInputs,
+    SimulatedRun,
+    default_log_path,
+    load_run_inputs,
+    run_simulated,
+)
+
+__all__ = [
+    "OFF",
+    "ChamberDecision",
+    "ChamberIO",
+    "ChamberReadings",
+    "ChamberSettings",
+    "ControlLoop",
+    "ControlPlan",
+    "Decider",
+    "Decision",
+    "LogSink",
+    "NodeSettings",
+    "Quantity",
+    "RunInputs",
+    "RunSettings",
+    "RunSummary",
+    "SetpointTable",
+    "SimulatedIO",
+    "SimulatedRun",
+    "Target",
+    "TickStats",
+    "TickStatus",
+    "alarm_record",
+    "default_log_path",
+    "load_run_inputs",
+    "node_model",
+    "plan_control",
+    "run_simulated",
+    "stale_readings",
+]

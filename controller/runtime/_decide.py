@@ -1,0 +1,348 @@
+"""One tick's decisions: readings and setpoints in, outputs, alarms and interlock events out.
+
+Rules of this module
+--------------------
+- No I/O, no clock, no asyncio: :class:`Decider` keeps the loop's memory (interlock, PID,
+  rate-limiter, time-proportioning and trim states) and :meth:`Decider.decide` is called once
+  per tick with what was read and the protocol's setpoints at that time.
+- Order within a tick: interlocks of every chamber first (independently of control), then one
+  temperature loop per thermal node, then lamps and pumps per chamber. A chamber whose
+  interlocks force outputs gets exactly the forced outputs; a thermal node's heater and
+  chiller take the lowest forced value of any of its chambers (one trip in a bath makes the
+  whole bath's heating safe). Loops that are overridden track the applied output, so control
+  resumes without a bump.
+- Temperature: the node's measurement is the mean of its chambers' fresh, plausible probe
+  readings. The setpoint applied to the PID starts at the measured temperature and moves
+  toward the protocol's setpoint no faster than the node's ramp limit. The PID output
+  (−100 … 100 %) is split into heater and chiller drives; an on/off heater is
+  time-proportioned. Without a fresh measurement the last output is held until the stale
+  interlock takes over. An uncontrolled temperature (no setpoint) leaves heater and chiller
+  off; so do uncontrolled light and flow for lamps and pumps.
+- The heater and chiller commands go to the node's driver chamber; the node's other chambers
+  are sent 0 % for them (and their log rows show the node's drives, which heat their water).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+from controller.control import (
+    Actions,
+    Condition,
+    InterlockEvent,
+    InterlockState,
+    Outputs,
+    PidParams,
+    PidState,
+    Readings,
+    SafetyState,
+    TimeProportionState,
+    evaluate,
+    pid_step,
+    pid_track,
+    rate_limit,
+    split_range,
+    time_proportion_step,
+)
+from controller.runtime._io import ChamberReadings
+from controller.runtime._settings import ControlPlan, NodeSettings
+
+__all__ = ["OFF", "ChamberDecision", "Decider", "Decision", "Target"]
+
+_log = logging.getLogger(__name__)
+
+OFF = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
+"""Every actuator off (idle chambers), %."""
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Target:
+    """The protocol's setpoints for one chamber at one tick (None = uncontrolled).
+
+    Attributes
+    ----------
+    temperature_c
+        Water temperature, °C.
+    par
+        PAR, µmol photons m⁻² s⁻¹.
+    flow_cm_s
+        Flow, cm s⁻¹.
+    """
+
+    temperature_c: float | None
+    par: float | None
+    flow_cm_s: float | None
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ChamberDecision:
+    """What was decided for one protocol chamber.
+
+    Attributes
+    ----------
+    outputs
+        Drives of the chamber's water and its own lamp and pump, % (heater and chiller are
+        the node's).
+    alarm
+        The most severe holding interlock condition, or None.
+    safety
+        The chamber's interlock state.
+    setpoint_c
+        Temperature setpoint applied to the node's PID after rate limiting, °C, or None.
+    """
+
+    outputs: Outputs
+    alarm: Condition | None
+    safety: SafetyState
+    setpoint_c: float | None
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Decision:
+    """The outcome of one tick.
+
+    Attributes
+    ----------
+    writes
+        Outputs to send, by chamber (protocol chambers and idle drivers of a node), %.
+    chambers
+        Per protocol chamber, what was decided.
+    events
+        Interlock events of this tick, with their chamber.
+    """
+
+    writes: Mapping[str, Outputs]
+    chambers: Mapping[str, ChamberDecision]
+    events: tuple[tuple[str, InterlockEvent], ...]
+
+
+@dataclass(slots=True)
+class _NodeState:
+    pid: PidState
+    setpoint_c: float | None = None
+    output_pct: float = 0.0
+    cycle: TimeProportionState = field(default_factory=TimeProportionState)
+
+
+@dataclass(slots=True)
+class _ChamberState:
+    interlock: InterlockState
+    lamp: PidState
+    pump: PidState
+    write_ok: bool = True
+    force: Outputs | None = None
+
+
+def _feed(
+    state: PidState,
+    trim: PidParams | None,
+    full_scale: float,
+    setpoint: float | None,
+    measured: float | None,
+    dt_s: float,
+) -> tuple[PidState, float]:
+    """Drive of a lamp or pump: linear feed-forward plus a PI trim on its sensor, %."""
+    if setpoint is None or setpoint <= 0.0:
+        return state, 0.0
+    correction = state.last_output or 0.0
+    if trim is not None and measured is not None:
+        result = pid_step(state, trim, measured, setpoint, dt_s)
+        state, correction = result.state, result.output
+    drive = 100.0 * (setpoint + correction) / full_scale
+    return state, min(100.0, max(0.0, drive))
+
+
+class Decider:
+    """The loop's memory and per-tick decisions.
+
+    Parameters
+    ----------
+    plan
+        Nodes, chambers and settings of the run.
+    """
+
+    def __init__(self, plan: ControlPlan) -> None:
+        self.plan = plan
+        self._nodes = {n.name: _NodeState(pid=PidState()) for n in plan.nodes}
+        self._chambers = {
+            c: _ChamberState(interlock=InterlockState(), lamp=PidState(), pump=PidState())
+            for c in plan.chambers
+        }
+        self._last_t_s: float | None = None
+        self._drivers = frozenset(plan.drivers)
+
+    def note_write(self, chamber: str, ok: bool) -> None:
+        """Record whether the latest write to a chamber arrived (failed writes count as a
+        communication problem at the next tick)."""
+        state = self._chambers.get(chamber)
+        if state is not None:
+            state.write_ok = ok
+
+    def stop_outputs(self, chamber: str) -> Outputs:
+        """Outputs to leave a protocol chamber in when the run stops, %.
+
+        The chamber's default safe state, lowered further by whatever its interlocks force
+        at the latest tick (a leak keeps the pump off).
+        """
+        safe = self.plan.chambers[chamber].interlocks.safe_outputs()
+        force = self._chambers[chamber].force
+        if force is None:
+            return safe
+        return Outputs(
+            heater_pct=min(safe.heater_pct, force.heater_pct),
+            chiller_pct=min(safe.chiller_pct, force.chiller_pct),
+            lamp_pct=min(safe.lamp_pct, force.lamp_pct),
+            pump_pct=min(safe.pump_pct, force.pump_pct),
+        )
+
+    def interlock_state(self, chamber: str) -> InterlockState:
+        """The interlock state of a protocol chamber after the latest tick."""
+        return self._chambers[chamber].interlock
+
+    def decide(
+        self,
+        readings: Mapping[str, ChamberReadings],
+        targets: Mapping[str, Target],
+        t_s: float,
+    ) -> Decision:
+        """Decide one tick.
+
+        Parameters
+        ----------
+        readings
+            This tick's readings of every protocol chamber.
+        targets
+            The protocol's setpoints of every protocol chamber at this tick.
+        t_s
+            Clock time of the tick, s (not before the previous tick).
+
+        Returns
+        -------
+        Decision
+            Outputs to write, per-chamber decisions and interlock events.
+        """
+        plan = self.plan
+        dt_s = plan.settings.period_s if self._last_t_s is None else t_s - self._last_t_s
+        dt_s = max(dt_s, 1e-6)
+        self._last_t_s = t_s
+        actions: dict[str, Actions] = {}
+        events: list[tuple[str, InterlockEvent]] = []
+        for chamber, cs in plan.chambers.items():
+            state = self._chambers[chamber]
+            reading = readings[chamber]
+            new, action, happened = evaluate(
+                state.interlock,
+                Readings(
+                    temperature_c=reading.temperature_c,
+                    level_ok=reading.level_ok,
+                    comm_ok=reading.comm_ok and state.write_ok,
+                    e_stop=reading.e_stop,
+                ),
+                cs.interlocks,
+                t_s,
+            )
+            state.interlock = new
+            state.force = action.force
+            actions[chamber] = action
+            events.extend((chamber, event) for event in happened)
+        drives: dict[str, tuple[float, float, float | None]] = {}
+        for node in plan.nodes:
+            drives[node.name] = self._node(node, readings, targets, actions, t_s, dt_s)
+        writes: dict[str, Outputs] = {}
+        decided: dict[str, ChamberDecision] = {}
+        for chamber, cs in plan.chambers.items():
+            state = self._chambers[chamber]
+            action = actions[chamber]
+            heater, chiller, setpoint = drives[cs.node]
+            if action.force is not None:
+                lamp, pump = action.force.lamp_pct, action.force.pump_pct
+            else:
+                target, reading = targets[chamber], readings[chamber]
+                state.lamp, lamp = _feed(
+                    state.lamp, cs.lamp_trim, cs.par_full, target.par, reading.par, dt_s
+                )
+                state.pump, pump = _feed(
+                    state.pump,
+                    cs.flow_trim,
+                    cs.flow_full_cm_s,
+                    target.flow_cm_s,
+                    reading.flow_cm_s,
+                    dt_s,
+                )
+            shown = Outputs(heater_pct=heater, chiller_pct=chiller, lamp_pct=lamp, pump_pct=pump)
+            decided[chamber] = ChamberDecision(
+                outputs=shown,
+                alarm=action.alarm,
+                safety=state.interlock.safety,
+                setpoint_c=setpoint,
+            )
+            writes[chamber] = (
+                shown
+                if chamber in self._drivers
+                else Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=lamp, pump_pct=pump)
+            )
+        for node in plan.nodes:
+            if node.driver not in plan.chambers:  # an idle chamber carries the bath's heater
+                heater, chiller, _ = drives[node.name]
+                writes[node.driver] = Outputs(
+                    heater_pct=heater, chiller_pct=chiller, lamp_pct=0.0, pump_pct=0.0
+                )
+        return Decision(writes=writes, chambers=decided, events=tuple(events))
+
+    def _node(
+        self,
+        node: NodeSettings,
+        readings: Mapping[str, ChamberReadings],
+        targets: Mapping[str, Target],
+        actions: Mapping[str, Actions],
+        t_s: float,
+        dt_s: float,
+    ) -> tuple[float, float, float | None]:
+        """Heater and chiller drives (%) of one node, and its applied setpoint (°C)."""
+        state = self._nodes[node.name]
+        forced = [f for c in node.chambers if (f := actions[c].force) is not None]
+        temps = []
+        for c in node.chambers:
+            value = readings[c].temperature_c
+            limits = self.plan.chambers[c].interlocks
+            if value is not None and limits.sensor_min_c < value < limits.sensor_max_c:
+                temps.append(value)
+        measured = math.fsum(temps) / len(temps) if temps else None
+        target = next(
+            (
+                targets[c].temperature_c
+                for c in node.chambers
+                if targets[c].temperature_c is not None
+            ),
+            None,
+        )
+        params = node.pid
+        if forced or target is None:
+            heater = min((f.heater_pct for f in forced), default=0.0)
+            chiller = min((f.chiller_pct for f in forced), default=0.0)
+            manual = heater - chiller
+            if measured is not None:
+                track_sp = target if target is not None else measured
+                state.pid = pid_track(state.pid, params, manual, measured, track_sp, dt_s).state
+                state.setpoint_c = measured
+            state.output_pct = manual
+            return heater, chiller, (None if target is None else state.setpoint_c)
+        if measured is not None:
+            previous = measured if state.setpoint_c is None else state.setpoint_c
+            state.setpoint_c = rate_limit(previous, target, node.max_ramp_c_per_h / 3600.0, dt_s)
+            result = pid_step(state.pid, params, measured, state.setpoint_c, dt_s)
+            state.pid, state.output_pct = result.state, result.output
+        heater, chiller = split_range(state.output_pct, self.plan.settings.split_deadband_pct)
+        if node.heater_on_off:
+            state.cycle, on = time_proportion_step(
+                state.cycle,
+                heater,
+                self.plan.settings.on_off_cycle_s,
+                t_s,
+                self.plan.settings.on_off_min_switch_s,
+            )
+            heater = 100.0 if on else 0.0
+        return heater, chiller, state.setpoint_c

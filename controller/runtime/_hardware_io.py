@@ -1,0 +1,576 @@
+"""Chamber I/O on real devices (or the simulator's endpoints): Modbus blocks and optode lines.
+
+Rules of this module
+--------------------
+- :class:`HardwareIO` implements :class:`~controller.runtime.ChamberIO` from a rig's I/O map
+  (:class:`~controller.rig.RigIo`) through the async transports and the pure codecs of
+  :mod:`controller.drivers`; the loop cannot tell it from the simulated rack.
+- Reads: a chamber's input registers and contacts are read concurrently, each under the
+  read budget; the optode is **not** asked during a read. Every optode has its own poller in
+  :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``; a read reports the
+  latest measurement. So a slow or silent optode never stalls a tick.
+- Writes, every tick (``hardware-notes/register-map.md``): one request for holding registers
+  0..5 (the four drives, the watchdog timeout, a new watchdog count: drives and feed arrive
+  together), then one for relay coils 0..3 (closed where the drive is above 0). A module that
+  answers "busy" is held safe by its watchdog: it is fed alone, then written again.
+- Start-up, per module, before ``ready`` is set (register-map's sequence): read
+  ``watchdog_tripped``; write the rig's safe drives to ``safe_*_pct``; write the watchdog
+  timeout and a first feed. The same set-up runs again before the next write whenever an
+  exchange with the module failed, since a module that lost power boots with the watchdog
+  off and every safe drive 0.
+- Failures never reach the loop as exceptions: a transport error, a timeout or a malformed
+  reply (:class:`~controller.errors.SquallError` from a codec) makes the quantities it carried
+  stale (``None``, listed in ``failed``) and ``comm_ok`` False, or the write False.
+  ``CancelledError`` is never caught. State changes (device lost, device back) are logged
+  once each, not every tick.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import TracebackType
+from typing import Self
+
+from controller.clock import Clock
+from controller.control import Outputs
+from controller.drivers import (
+    ErrorReply,
+    InputBits,
+    InputValues,
+    Measurement,
+    OptodeCommand,
+    OptodeLineError,
+    OptodeReply,
+    OptodeRequest,
+    OptodeStatus,
+    OutputValues,
+    RegisterMap,
+    RelayBits,
+    WordOrder,
+    decode_input_bits,
+    decode_inputs,
+    decode_reply,
+    encode_outputs,
+    encode_point,
+    encode_relays,
+    encode_request,
+    encode_safe_outputs,
+    next_watchdog_count,
+    point,
+)
+from controller.drivers._transport_common import (
+    DeviceRefused,
+    ModbusExceptionCode,
+    RetryPolicy,
+    TransportError,
+)
+from controller.drivers._transport_modbus import ModbusTransport
+from controller.drivers._transport_serial import SerialLineTransport
+from controller.errors import SquallError
+from controller.rig import Rig
+from controller.rig._io import ModbusLink, RigIo, resolve_io
+from controller.runtime._io import ChamberReadings, Quantity
+from controller.runtime._settings import ControlPlan, RunSettings
+
+__all__ = ["HardwareIO"]
+
+_log = logging.getLogger(__name__)
+
+_OFF = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
+_INPUT_WORDS = 6  # input registers 0..5 of a block
+_CONTACTS = 3  # discrete inputs 0..2 of a block
+_TIMEOUT_POINT = point("watchdog_timeout_s")
+_SAFE_OFFSET = point("safe_heater_pct").offset
+_COUNTER_OFFSET = point("watchdog_counter").offset
+_SETUP_PAUSE_MAX_S = 5.0
+#: Optode statuses whose values must not be used (clamped or unreliable), dimensionless.
+_UNUSABLE = OptodeStatus.LOW_SIGNAL | OptodeStatus.O2_RANGE
+_STOP_FAILURES = (TransportError, SquallError, TimeoutError)
+
+
+@dataclass(kw_only=True)
+class _Block:
+    """One chamber's I/O module as the controller keeps track of it."""
+
+    chamber: str
+    link: ModbusTransport
+    unit_id: int
+    base: int
+    word_order: WordOrder
+    safe: Outputs
+    count: int = 0
+    needs_setup: bool = True
+    trips_seen: int = 0
+
+
+@dataclass(kw_only=True)
+class _Optode:
+    """One chamber's optode and its latest measurement."""
+
+    chamber: str
+    line: SerialLineTransport
+    tag: int = 0
+    polled_s: float | None = None
+    o2_umol_l: float | None = None
+    o2_sat_pct: float | None = None
+    unreported_miss: bool = False
+    polls: int = 0
+    misses: int = 0
+    first: asyncio.Event = field(default_factory=asyncio.Event)
+
+
+def _policy(link: ModbusLink) -> RetryPolicy:
+    return RetryPolicy(timeout_s=link.timeout_s, attempts=link.attempts, backoff_s=link.backoff_s)
+
+
+def _transport(link: ModbusLink) -> ModbusTransport:
+    if link.tcp is not None:
+        return ModbusTransport.tcp(link.tcp.host, link.tcp.port, policy=_policy(link))
+    assert link.rtu is not None  # the model allows exactly one of the two
+    return ModbusTransport.rtu(
+        link.rtu.port,
+        baud=link.rtu.baud,
+        parity=link.rtu.parity.value,  # type: ignore[arg-type]
+        stop_bits=link.rtu.stop_bits,
+        policy=_policy(link),
+    )
+
+
+class HardwareIO:
+    """The rig's devices as chamber I/O.
+
+    Parameters
+    ----------
+    io
+        An explicit I/O map (links and optode ports, no ports file: see
+        :func:`~controller.rig.resolve_io`), checked against ``chambers``.
+    chambers
+        The rig's chamber ids in rig order (no unit).
+    clock
+        The run's clock (optode cadence and time stamps).
+    watchdog_timeout_s
+        Device watchdog timeout written to every module, s (0.5..6000); must exceed the
+        control tick period with room to spare (common practice: three periods).
+    safe
+        Drives each module applies when its watchdog trips, % each; default all off.
+    budget_s
+        Longest a chamber's read or write may take in all, s; keep it below the loop's read
+        and write timeouts so a slow device yields stale values rather than a timed-out read.
+    """
+
+    def __init__(
+        self,
+        io: RigIo,
+        chambers: Sequence[str],
+        clock: Clock,
+        *,
+        watchdog_timeout_s: float,
+        safe: Mapping[str, Outputs] | None = None,
+        budget_s: float = 1.5,
+    ) -> None:
+        if io.from_announcement is not None:
+            raise ValueError("resolve the ports file first (controller.rig.resolve_io)")
+        io.check_chambers(chambers)
+        if not (math.isfinite(budget_s) and budget_s > 0):
+            raise ValueError(f"budget_s must be a finite number above 0, got {budget_s!r}")
+        self._clock = clock
+        self._chambers = tuple(chambers)
+        self._budget_s = float(budget_s)
+        (self._timeout_word,) = encode_point(
+            _TIMEOUT_POINT, watchdog_timeout_s, where="io.watchdog_timeout_s"
+        )
+        if watchdog_timeout_s < 0.5:
+            raise SquallError("below 0.5 s", field="io.watchdog_timeout_s")
+        self.watchdog_timeout_s = float(watchdog_timeout_s)
+        self.optode_period_s = io.optode_period_s
+        self.links: dict[str, ModbusTransport] = {}
+        """Modbus transport per link name."""
+        self._blocks: dict[str, _Block] = {}
+        for link, ids in zip(io.modbus, io.link_chambers(chambers), strict=True):
+            transport = _transport(link)
+            self.links[link.name] = transport
+            rmap = RegisterMap.build(ids, link.register_map, where=f"io.{link.name}")
+            for b in rmap.blocks:
+                self._blocks[b.chamber_id] = _Block(
+                    chamber=b.chamber_id,
+                    link=transport,
+                    unit_id=b.unit_id,
+                    base=b.base,
+                    word_order=rmap.word_order,
+                    safe=(safe or {}).get(b.chamber_id, _OFF),
+                )
+        self._optodes: dict[str, _Optode] = {
+            cid: _Optode(
+                chamber=cid,
+                line=SerialLineTransport(port.port, baud=port.baud, timeout_s=io.optode_timeout_s),
+            )
+            for cid, port in io.optodes.items()
+        }
+        self._healthy: dict[tuple[str, str], bool] = {}
+
+    @classmethod
+    def from_rig(
+        cls,
+        rig: Rig,
+        clock: Clock,
+        *,
+        base_dir: Path,
+        plan: ControlPlan | None = None,
+        settings: RunSettings | None = None,
+    ) -> HardwareIO:
+        """Chamber I/O for a rig file's ``[io]`` table.
+
+        Parameters
+        ----------
+        rig
+            The rig, with an ``io`` table.
+        clock
+            The run's clock.
+        base_dir
+            Folder of the rig file (``io.from_announcement`` is relative to it).
+        plan
+            The run's control plan: its settings and each chamber's safe outputs.
+        settings
+            Run settings when there is no plan; default :class:`RunSettings`.
+
+        Returns
+        -------
+        HardwareIO
+            Not yet started (no unit).
+        """
+        if rig.io is None:
+            raise SquallError(
+                "the rig has no [io] table saying how to reach its devices; add one, or run "
+                "with --sim",
+                field="io",
+            )
+        ids = [c.id for c in rig.chambers]
+        io = resolve_io(rig.io, ids, base_dir=base_dir)
+        settings = plan.settings if plan is not None else (settings or RunSettings())
+        safe = {}
+        if plan is not None:
+            safe = {c: s.interlocks.safe_outputs() for c, s in plan.chambers.items()}
+        watchdog_s = io.watchdog_timeout_s or 3.0 * settings.period_s
+        budget_s = 0.8 * min(settings.read_timeout_s, settings.write_timeout_s)
+        return cls(io, ids, clock, watchdog_timeout_s=watchdog_s, safe=safe, budget_s=budget_s)
+
+    # ------------------------------------------------------------------ properties
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """Chamber identifiers in rig order."""
+        return self._chambers
+
+    def optode_stats(self, chamber: str) -> tuple[int, int]:
+        """Polls made and polls missed by one chamber's optode.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+
+        Returns
+        -------
+        tuple of int
+            (polls, misses), count.
+        """
+        opt = self._optodes[chamber]
+        return opt.polls, opt.misses
+
+    # ------------------------------------------------------------------ lifecycle
+    async def __aenter__(self) -> Self:
+        """Allow the transports to connect (they open on first use)."""
+        for link in self.links.values():
+            await link.reopen()
+        return self
+
+    async def __aexit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        """Close every connection and port; the modules' watchdogs stay armed."""
+        for link in self.links.values():
+            await link.close()
+        for opt in self._optodes.values():
+            opt.line.close()
+
+    async def run(self, ready: asyncio.Event) -> None:
+        """Set up every module, take a first optode reading, set ``ready``; poll optodes.
+
+        Parameters
+        ----------
+        ready
+            Set once every module is set up and every optode has been asked once. A module
+            that never answers keeps it unset: the loop then gives up after its ready
+            timeout, before any output is energised.
+        """
+        async with asyncio.TaskGroup() as group:
+            for opt in self._optodes.values():
+                group.create_task(self._poll(opt), name=f"optode-{opt.chamber}")
+            async with asyncio.TaskGroup() as setup:
+                for block in self._blocks.values():
+                    setup.create_task(self._start(block), name=f"setup-{block.chamber}")
+            for opt in self._optodes.values():
+                await opt.first.wait()  # each poll is bounded by the optode timeout
+            ready.set()
+            _log.info(
+                "devices ready: %d modules, %d optodes", len(self._blocks), len(self._optodes)
+            )
+            if not self._optodes:
+                await asyncio.Event().wait()  # nothing else to do until cancelled
+
+    # ------------------------------------------------------------------ health log
+    def _note(self, chamber: str, device: str, ok: bool, detail: object = "") -> None:
+        key = (chamber, device)
+        if self._healthy.get(key, True) != ok:
+            if ok:
+                _log.info("%s: %s answers again", chamber, device)
+            else:
+                _log.warning("%s: %s failed: %s", chamber, device, detail)
+        self._healthy[key] = ok
+
+    # ------------------------------------------------------------------ Modbus set-up
+    async def _start(self, block: _Block) -> None:
+        pause = 0.1
+        while True:
+            try:
+                async with asyncio.timeout(self._budget_s * 2):
+                    await self._setup(block)
+                self._note(block.chamber, "modbus", True)
+                return
+            except _STOP_FAILURES as exc:
+                self._note(block.chamber, "modbus", False, exc)
+            await asyncio.sleep(pause)
+            pause = min(2 * pause, _SETUP_PAUSE_MAX_S)
+
+    async def _setup(self, block: _Block) -> None:
+        """The register map's start-up sequence for one module."""
+        bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
+        if decode_input_bits(bits, where=f"{block.chamber}.contacts").watchdog_tripped:
+            _log.warning("%s: module found tripped by its watchdog; re-arming", block.chamber)
+        safe_words = encode_safe_outputs(_values(block.safe), where=f"{block.chamber}.safe")
+        await block.link.write_registers(block.unit_id, block.base + _SAFE_OFFSET, safe_words)
+        block.count = next_watchdog_count(block.count)
+        await block.link.write_registers(
+            block.unit_id, block.base + _TIMEOUT_POINT.offset, [self._timeout_word, block.count]
+        )
+        block.needs_setup = False
+
+    # ------------------------------------------------------------------ reads
+    async def read(self, chamber: str) -> ChamberReadings:
+        """Read one chamber's module (and report its optode's latest measurement).
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+
+        Returns
+        -------
+        ChamberReadings
+            Temperature (°C), PAR (µmol photons m⁻² s⁻¹), flow (cm s⁻¹), level and E-stop
+            from the module; O2 (µmol L⁻¹, % air saturation) from the optode's latest
+            measurement; stale parts ``None`` and listed in ``failed``.
+        """
+        now = self._clock.now_s()
+        block = self._blocks[chamber]
+        inputs, contacts = await asyncio.gather(self._inputs(block), self._contacts(block))
+        failed: set[Quantity] = set()
+        values: dict[str, float | bool | None] = {}
+        if inputs is None:
+            failed |= {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW}
+        else:
+            values |= {
+                "temperature_c": inputs.temperature_c,
+                "par": inputs.par_umol_m2_s,
+                "flow_cm_s": inputs.flow_cm_s,
+            }
+            for key, quantity in (
+                ("temperature_c", Quantity.TEMPERATURE),
+                ("par", Quantity.PAR),
+                ("flow_cm_s", Quantity.FLOW),
+            ):
+                if values[key] is None:
+                    failed.add(quantity)
+        if contacts is None:
+            failed |= {Quantity.LEVEL, Quantity.E_STOP}
+        else:
+            values |= {"level_ok": contacts.level_ok, "e_stop": not contacts.estop_ok}
+            if contacts.watchdog_tripped:
+                block.trips_seen += 1
+                _log.warning("%s: the module's watchdog holds its outputs safe", chamber)
+        comm_ok = inputs is not None and contacts is not None
+        opt = self._optodes.get(chamber)
+        if opt is not None:
+            if opt.unreported_miss:
+                comm_ok = False
+                opt.unreported_miss = False
+            fresh = opt.polled_s is not None and now - opt.polled_s <= self._optode_max_age_s
+            if fresh and opt.o2_umol_l is not None:
+                values |= {"o2_umol_l": opt.o2_umol_l, "o2_sat_pct": opt.o2_sat_pct}
+            else:
+                failed.add(Quantity.OXYGEN)
+        return ChamberReadings(
+            chamber=chamber,
+            t_s=now,
+            comm_ok=comm_ok,
+            failed=frozenset(failed),
+            **values,  # type: ignore[arg-type]
+        )
+
+    @property
+    def _optode_max_age_s(self) -> float:
+        """Oldest optode measurement still reported, s: two periods (one missed poll)."""
+        return 2.0 * self.optode_period_s
+
+    async def _inputs(self, block: _Block) -> InputValues | None:
+        try:
+            async with asyncio.timeout(self._budget_s):
+                words = await block.link.read_input_registers(
+                    block.unit_id, block.base, _INPUT_WORDS
+                )
+            values = decode_inputs(words, block.word_order, where=f"{block.chamber}.inputs")
+        except _STOP_FAILURES as exc:
+            block.needs_setup = True
+            self._note(block.chamber, "modbus", False, exc)
+            return None
+        self._note(block.chamber, "modbus", True)
+        return values
+
+    async def _contacts(self, block: _Block) -> InputBits | None:
+        try:
+            async with asyncio.timeout(self._budget_s):
+                bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
+            return decode_input_bits(bits, where=f"{block.chamber}.contacts")
+        except _STOP_FAILURES as exc:
+            block.needs_setup = True
+            self._note(block.chamber, "modbus", False, exc)
+            return None
+
+    # ------------------------------------------------------------------ writes
+    async def write(self, chamber: str, outputs: Outputs) -> bool:
+        """Drive one chamber's actuators and feed its module's watchdog.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        outputs
+            Heater, chiller, lamp and pump drives, % each.
+
+        Returns
+        -------
+        bool
+            True when the module took drives, feed and relays; False otherwise.
+        """
+        block = self._blocks[chamber]
+        try:
+            async with asyncio.timeout(self._budget_s):
+                if block.needs_setup:
+                    await self._setup(block)
+                drive_words = encode_outputs(_values(outputs), where=f"{chamber}.outputs")
+                await self._drive(block, drive_words)
+                relays = RelayBits(
+                    heater_on=drive_words[0] > 0,
+                    chiller_on=drive_words[1] > 0,
+                    lamp_on=drive_words[2] > 0,
+                    pump_on=drive_words[3] > 0,
+                )
+                await block.link.write_coils(block.unit_id, block.base, encode_relays(relays))
+        except _STOP_FAILURES as exc:
+            block.needs_setup = True
+            self._note(chamber, "modbus", False, exc)
+            return False
+        self._note(chamber, "modbus", True)
+        return True
+
+    async def _drive(self, block: _Block, drive_words: tuple[int, ...]) -> None:
+        """Holding registers 0..5 in one request: drives, watchdog timeout, a new count."""
+        block.count = next_watchdog_count(block.count)
+        try:
+            await block.link.write_registers(
+                block.unit_id, block.base, [*drive_words, self._timeout_word, block.count]
+            )
+        except DeviceRefused as exc:
+            if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
+                raise
+            # tripped: the module refuses drives until fed; feed alone, then drive
+            _log.warning("%s: watchdog tripped; feeding, then driving again", block.chamber)
+            block.count = next_watchdog_count(block.count)
+            await block.link.write_registers(
+                block.unit_id, block.base + _COUNTER_OFFSET, [block.count]
+            )
+            block.count = next_watchdog_count(block.count)
+            await block.link.write_registers(
+                block.unit_id, block.base, [*drive_words, self._timeout_word, block.count]
+            )
+
+    # ------------------------------------------------------------------ optodes
+    async def _poll(self, opt: _Optode) -> None:
+        period = self.optode_period_s
+        next_s = self._clock.now_s()
+        while True:
+            await self._sample(opt)
+            opt.first.set()
+            next_s += period
+            now = self._clock.now_s()
+            if next_s <= now:  # a late poll skips grid points rather than catching up
+                next_s += math.ceil((now - next_s) / period + 1e-12) * period
+            await self._clock.sleep_until(next_s)
+
+    async def _sample(self, opt: _Optode) -> None:
+        opt.tag = opt.tag % 0xFFFF + 1
+        tag = opt.tag
+        source = opt.line.port
+        got: list[OptodeReply] = []
+
+        def ours(line: bytes) -> bool:
+            try:
+                reply = decode_reply(line, source=source)
+            except OptodeLineError as exc:
+                _log.warning("%s: optode line dropped: %s", opt.chamber, exc)
+                return False
+            if reply.tag != tag:
+                return False  # a late reply to an abandoned request
+            got.append(reply)
+            return True
+
+        opt.polls += 1
+        request = encode_request(OptodeRequest(command=OptodeCommand.SAMPLE, tag=tag))
+        o2: tuple[float | None, float | None] = (None, None)
+        try:
+            await opt.line.exchange(request, accept=ours)
+        except TransportError as exc:
+            opt.misses += 1
+            opt.unreported_miss = True
+            self._note(opt.chamber, "optode", False, exc)
+        else:
+            self._note(opt.chamber, "optode", True)
+            reply = got[-1]
+            if isinstance(reply, ErrorReply):
+                _log.warning("%s: optode refused the sample: %s", opt.chamber, reply.code.name)
+            elif not isinstance(reply, Measurement):
+                kind = type(reply).__name__
+                _log.warning("%s: optode answered SAMPLE with %s", opt.chamber, kind)
+            elif reply.status & _UNUSABLE:
+                _log.warning("%s: optode reading unusable (%s)", opt.chamber, reply.status)
+            else:
+                o2 = (reply.o2_umol_l, reply.o2_sat_pct)
+        # replaced only now: a read during the exchange still sees the previous measurement
+        opt.polled_s = self._clock.now_s()
+        opt.o2_umol_l, opt.o2_sat_pct = o2
+
+
+def _values(outputs: Outputs) -> OutputValues:
+    return OutputValues(
+        heater_pct=outputs.heater_pct,
+        chiller_pct=outputs.chiller_pct,
+        lamp_pct=outputs.lamp_pct,
+        pump_pct=outputs.pump_pct,
+    )

@@ -1,0 +1,156 @@
+"""The chamber I/O interface the control loop talks to, and the guards around every call.
+
+Rules of this module
+--------------------
+- The loop sees a rack only through :class:`ChamberIO`: ``read(chamber)`` returns a
+  :class:`ChamberReadings`, ``write(chamber, outputs)`` returns whether the devices took the
+  command. The simulated rack (:class:`~controller.runtime.SimulatedIO`) and hardware
+  transports (Modbus through the register-map codec, the optode line protocol) implement the
+  same class, so the loop cannot tell them apart.
+- A reading that did not arrive is ``None`` and named in ``ChamberReadings.failed``; a
+  device that did not answer makes ``comm_ok`` False. Implementations put every device call
+  under ``asyncio.timeout``; the loop bounds every read and write once more by the tick's
+  deadline and catches what escapes, so a timeout, a transport error or a bug in a driver
+  becomes a stale reading or a failed write, never an exception in the loop.
+  ``CancelledError`` is never caught: cancelling the loop still cancels it.
+- ``run(ready)`` is the implementation's background work (stepping a simulator, keeping a
+  connection, feeding device watchdogs). It sets ``ready`` once reads and writes work, and
+  runs until cancelled. ``async with io:`` opens and closes the transports around it, so the
+  shutdown path can still write safe outputs after ``run`` has stopped.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from dataclasses import dataclass, field
+from enum import StrEnum
+from types import TracebackType
+from typing import Protocol, Self, runtime_checkable
+
+from controller.control import Outputs
+
+__all__ = ["ChamberIO", "ChamberReadings", "Quantity", "stale_readings"]
+
+
+class Quantity(StrEnum):
+    """What a chamber's devices report; names a reading that failed."""
+
+    TEMPERATURE = "temperature"
+    OXYGEN = "oxygen"
+    PAR = "par"
+    FLOW = "flow"
+    LEVEL = "level"
+    E_STOP = "e-stop"
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ChamberReadings:
+    """What one chamber's devices reported at one read.
+
+    A value is ``None`` when it is not fresh: its device did not answer, flagged the input as
+    faulty, or (optode) its latest measurement is too old. Quantities that were expected but
+    did not arrive are listed in ``failed``; a quantity the chamber has no device for is
+    ``None`` without being listed.
+
+    Attributes
+    ----------
+    chamber
+        Chamber identifier.
+    t_s
+        Clock time of the read, s.
+    temperature_c
+        Water temperature probe, °C.
+    o2_umol_l
+        Dissolved oxygen from the optode, µmol L⁻¹.
+    o2_sat_pct
+        Dissolved oxygen from the optode, % air saturation.
+    par
+        PAR sensor, µmol photons m⁻² s⁻¹.
+    flow_cm_s
+        Flow sensor, cm s⁻¹.
+    level_ok
+        Level switch: True when the water level is good, dimensionless.
+    e_stop
+        True while the emergency stop is pressed, dimensionless.
+    comm_ok
+        True when every device exchange of this read succeeded, dimensionless.
+    failed
+        Quantities that were expected but did not arrive fresh.
+    """
+
+    chamber: str
+    t_s: float
+    temperature_c: float | None = None
+    o2_umol_l: float | None = None
+    o2_sat_pct: float | None = None
+    par: float | None = None
+    flow_cm_s: float | None = None
+    level_ok: bool | None = None
+    e_stop: bool | None = None
+    comm_ok: bool = True
+    failed: frozenset[Quantity] = field(default_factory=frozenset)
+
+    def fresh(self, quantity: Quantity) -> bool:
+        """Whether ``quantity`` arrived fresh in this read (dimensionless)."""
+        value = {
+            Quantity.TEMPERATURE: self.temperature_c,
+            Quantity.OXYGEN: self.o2_umol_l,
+            Quantity.PAR: self.par,
+            Quantity.FLOW: self.flow_cm_s,
+            Quantity.LEVEL: self.level_ok,
+            Quantity.E_STOP: self.e_stop,
+        }[quantity]
+        return value is not None and quantity not in self.failed
+
+
+def stale_readings(chamber: str, t_s: float) -> ChamberReadings:
+    """Readings of a chamber whose devices did not answer at all.
+
+    Parameters
+    ----------
+    chamber
+        Chamber identifier.
+    t_s
+        Clock time of the failed read, s.
+
+    Returns
+    -------
+    ChamberReadings
+        Every value ``None``, ``comm_ok`` False, every quantity failed.
+    """
+    return ChamberReadings(chamber=chamber, t_s=t_s, comm_ok=False, failed=frozenset(Quantity))
+
+
+@runtime_checkable
+class ChamberIO(Protocol):
+    """A rack's devices as the control loop sees them (simulated or real)."""
+
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """Chamber identifiers the devices serve, in rig order."""
+        ...
+
+    async def __aenter__(self) -> Self:
+        """Open the transports."""
+        ...
+
+    async def __aexit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        """Close the transports."""
+        ...
+
+    async def run(self, ready: asyncio.Event) -> None:
+        """Background work; set ``ready`` once reads and writes work; run until cancelled."""
+        ...
+
+    async def read(self, chamber: str) -> ChamberReadings:
+        """Read every device of one chamber (each device call under a timeout)."""
+        ...
+
+    async def write(self, chamber: str, outputs: Outputs) -> bool:
+        """Drive one chamber's actuators; True when the devices took the command."""
+        ...

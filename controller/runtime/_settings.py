@@ -1,0 +1,420 @@
+"""What the control loop needs to know per run, per thermal node and per chamber.
+
+Rules of this module
+--------------------
+- :class:`RunSettings` holds the run-wide choices (tick period, timeouts, tuning aggressiveness,
+  which heaters are on/off devices). :func:`plan_control` turns a rig, the protocol's chambers
+  and those settings into a :class:`ControlPlan`: one :class:`NodeSettings` per thermal node
+  (a chamber with its own water, or a shared bath with every protocol chamber in it) and one
+  :class:`ChamberSettings` per protocol chamber. Everything here is pure and frozen.
+- Temperature gains, until the rig file carries its own, come from the rig's description of
+  each node (heater power, heat-loss coefficient, water volumes, dead time, probe lag): a
+  first-order-plus-dead-time model, tuned by the SIMC rules (Skogestad 2003). The sampling
+  delay of a zero-order hold adds half a period to the dead time (Skogestad's half rule).
+- Interlock limits come from the chamber's limits with a margin: a protocol may hold a
+  chamber at its limit, and probe noise there must not trip it. Time-based limits never go
+  below a few ticks, so one missed reply does not trip a chamber.
+- Lamps and pumps are driven by feed-forward through a linear calibration (0 % → 0,
+  100 % → the chamber's ``max_par`` / ``max_flow_cm_s``), corrected by a slow PI trim on the
+  PAR or flow sensor, which absorbs a curved lamp or a pump dead band.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from types import MappingProxyType
+
+import gsw
+
+from controller.control import (
+    Condition,
+    ConditionPolicy,
+    Fopdt,
+    InterlockLimits,
+    PidParams,
+    simc,
+)
+from controller.rig import Rig, ThermalSim
+
+__all__ = [
+    "ChamberSettings",
+    "ControlPlan",
+    "NodeSettings",
+    "RunSettings",
+    "node_model",
+    "plan_control",
+]
+
+#: Water temperature at which heat capacities for tuning are evaluated, °C.
+_TUNING_TEMPERATURE_C = 20.0
+
+
+def _positive(value: float, name: str) -> None:
+    if not (math.isfinite(value) and value > 0):
+        raise ValueError(f"{name} must be a finite number above 0, got {value!r}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class RunSettings:
+    """Run-wide choices of the control loop.
+
+    Parameters
+    ----------
+    period_s
+        Control tick period, s.
+    read_timeout_s
+        Longest wait for one chamber's read, s.
+    write_timeout_s
+        Longest wait for one chamber's write, s.
+    ready_timeout_s
+        Longest wait for the devices to become ready before the first tick, s.
+    commit_interval_s
+        Run-log commit interval in clock time, s (bounds the data a crash loses); default
+        1 s on a real-time clock, scaled by the speed of a simulated clock, and 600 s
+        simulated on one that runs as fast as possible (well under a second of wall time).
+    tau_c_factor
+        SIMC closed-loop time constant as a multiple of the dead time, dimensionless
+        (1 = "tight" control, larger = smoother and more robust).
+    split_deadband_pct
+        Half-width of the heater/chiller dead band around zero demand, %.
+    on_off_heaters
+        Thermal nodes (bath or chamber ids) whose heater is an on/off device driven by
+        time-proportioning.
+    on_off_cycle_s
+        Time-proportioning cycle, s.
+    on_off_min_switch_s
+        Shortest on or off pulse of an on/off heater, s.
+    trip_margin_c
+        Distance of the temperature trip limits outside the chamber's limits, °C.
+    lamp_trim_kc, flow_trim_kc
+        Proportional gain of the PAR and flow trims, dimensionless (PAR per PAR, flow per
+        flow).
+    trim_ti_s
+        Integral time of the PAR and flow trims, s; default the larger of 60 s and four
+        tick periods (slower than the lamp's warm-up, stable at any period).
+    late_after_s
+        Lateness beyond which a tick counts as late, s; default a tenth of the period.
+    policies
+        Interlock policy overrides for every chamber (level, latching, safe outputs).
+    """
+
+    period_s: float = 10.0
+    read_timeout_s: float = 2.0
+    write_timeout_s: float = 2.0
+    ready_timeout_s: float = 30.0
+    commit_interval_s: float | None = None
+    tau_c_factor: float = 1.0
+    split_deadband_pct: float = 2.0
+    on_off_heaters: frozenset[str] = frozenset()
+    on_off_cycle_s: float = 120.0
+    on_off_min_switch_s: float = 10.0
+    trip_margin_c: float = 1.0
+    lamp_trim_kc: float = 0.3
+    flow_trim_kc: float = 0.3
+    trim_ti_s: float | None = None
+    late_after_s: float | None = None
+    policies: Mapping[Condition, ConditionPolicy] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        for name in (
+            "period_s",
+            "read_timeout_s",
+            "write_timeout_s",
+            "ready_timeout_s",
+            "tau_c_factor",
+            "on_off_cycle_s",
+            "lamp_trim_kc",
+            "flow_trim_kc",
+        ):
+            _positive(getattr(self, name), name)
+        if self.commit_interval_s is not None and not (
+            math.isfinite(self.commit_interval_s) and self.commit_interval_s >= 0
+        ):
+            raise ValueError(f"commit_interval_s must be 0 or more, got {self.commit_interval_s!r}")
+        for name in ("trip_margin_c", "on_off_min_switch_s"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value >= 0):
+                raise ValueError(f"{name} must be 0 or more, got {value!r}")
+        if self.read_timeout_s >= self.period_s or self.write_timeout_s >= self.period_s:
+            raise ValueError("read and write timeouts must be shorter than the tick period")
+        if self.on_off_min_switch_s > self.on_off_cycle_s / 2:
+            raise ValueError("on_off_min_switch_s must be at most half of on_off_cycle_s")
+        if not 0 <= self.split_deadband_pct < 100:
+            raise ValueError("split_deadband_pct must be in [0, 100)")
+        if self.late_after_s is not None:
+            _positive(self.late_after_s, "late_after_s")
+        if self.trim_ti_s is not None:
+            _positive(self.trim_ti_s, "trim_ti_s")
+        object.__setattr__(self, "policies", MappingProxyType(dict(self.policies)))
+
+    def commit_interval_for(self, speed: float | None) -> float:
+        """Commit interval in clock time for a clock of this speed.
+
+        Parameters
+        ----------
+        speed
+            Clock seconds per real second (1 for real time); None for as fast as possible.
+
+        Returns
+        -------
+        float
+            Commit interval, s of clock time.
+        """
+        if self.commit_interval_s is not None:
+            return self.commit_interval_s
+        return 600.0 if speed is None else max(1.0, speed)
+
+    @property
+    def trim_integral_s(self) -> float:
+        """Integral time of the PAR and flow trims, s."""
+        return max(60.0, 4.0 * self.period_s) if self.trim_ti_s is None else self.trim_ti_s
+
+    @property
+    def lateness_limit_s(self) -> float:
+        """Lateness beyond which a tick counts as late, s."""
+        return self.period_s / 10.0 if self.late_after_s is None else self.late_after_s
+
+
+@dataclass(frozen=True, kw_only=True)
+class NodeSettings:
+    """One temperature loop: a chamber's own water, or a bath shared by several chambers.
+
+    Attributes
+    ----------
+    name
+        Bath id, or the chamber id of a chamber with its own water.
+    chambers
+        Protocol chambers in this water, rig order; their probes are averaged.
+    driver
+        Chamber whose I/O module carries the node's heater and chiller (the first of the
+        bath's chambers in rig order, whether or not the protocol uses it).
+    model
+        The plant model the gains were tuned on (°C per % heater drive, s, s).
+    pid
+        Gains and output limits (−100 % full cooling … 100 % full heating).
+    max_ramp_c_per_h
+        Fastest setpoint change, °C h⁻¹ (the slowest member's limit).
+    heater_on_off
+        Whether the heater is an on/off device (time-proportioned).
+    """
+
+    name: str
+    chambers: tuple[str, ...]
+    driver: str
+    model: Fopdt
+    pid: PidParams
+    max_ramp_c_per_h: float
+    heater_on_off: bool
+
+
+@dataclass(frozen=True, kw_only=True)
+class ChamberSettings:
+    """Per-chamber settings of the loop.
+
+    Attributes
+    ----------
+    chamber
+        Chamber identifier.
+    node
+        Name of the chamber's thermal node.
+    interlocks
+        Interlock limits and policies.
+    par_full
+        PAR at 100 % lamp drive in the linear calibration, µmol photons m⁻² s⁻¹.
+    flow_full_cm_s
+        Flow at 100 % pump drive in the linear calibration, cm s⁻¹.
+    lamp_trim
+        PI trim of the lamp on the PAR sensor (output in PAR units), or None for open loop.
+    flow_trim
+        PI trim of the pump on the flow sensor (output in cm s⁻¹), or None for open loop.
+    """
+
+    chamber: str
+    node: str
+    interlocks: InterlockLimits
+    par_full: float
+    flow_full_cm_s: float
+    lamp_trim: PidParams | None
+    flow_trim: PidParams | None
+
+
+@dataclass(frozen=True, kw_only=True)
+class ControlPlan:
+    """Everything the loop needs about the rig for one protocol.
+
+    Attributes
+    ----------
+    settings
+        The run-wide settings.
+    nodes
+        Thermal nodes of the protocol's chambers, in rig order of their first chamber.
+    chambers
+        Per protocol chamber, in rig order.
+    idle
+        Rig chambers the protocol does not use; they are kept off.
+    """
+
+    settings: RunSettings
+    nodes: tuple[NodeSettings, ...]
+    chambers: Mapping[str, ChamberSettings]
+    idle: tuple[str, ...]
+
+    @property
+    def drivers(self) -> Mapping[str, NodeSettings]:
+        """Node by the chamber that carries its heater and chiller."""
+        return {node.driver: node for node in self.nodes}
+
+
+def _rho_cp_j_l_k(salinity: float) -> float:
+    """Volumetric heat capacity of water at the tuning temperature, J L⁻¹ K⁻¹ (TEOS-10)."""
+    sr = gsw.SR_from_SP(salinity)
+    t = _TUNING_TEMPERATURE_C
+    return float(gsw.rho_t_exact(sr, t, 0.0) * gsw.cp_t_exact(sr, t, 0.0) / 1000.0)
+
+
+def node_model(rig: Rig, members: Sequence[str], period_s: float) -> Fopdt:
+    """First-order-plus-dead-time model of one thermal node from the rig's description.
+
+    Parameters
+    ----------
+    rig
+        The rig.
+    members
+        Chamber ids in the node (one chamber, or every chamber of one bath).
+    period_s
+        Control tick period, s (half of it is added to the dead time).
+
+    Returns
+    -------
+    Fopdt
+        Gain (°C per % heater drive) = heater_max_w / 100 / UA; time constant (s) = heat
+        capacity of the node's water / UA; dead time (s) = actuator dead time + the slowest
+        probe's lag + half a tick.
+
+    Notes
+    -----
+    The heat balance C·dT/dt = P − UA·(T − T_room) is first order with gain 1/UA and time
+    constant C/UA. A first-order probe lag much shorter than C/UA is folded into the dead
+    time (Skogestad 2003, half rule with the lag as the neglected small time constant).
+    """
+    chambers = [rig.chamber(c) for c in members]
+    first = chambers[0]
+    if first.bath is not None:
+        bath = rig.bath(first.bath)
+        thermal = bath.thermal if bath is not None else ThermalSim()
+        every = [c for c in rig.chambers if c.bath == first.bath]
+        capacity = sum(c.water_volume_l * _rho_cp_j_l_k(c.salinity) for c in every)
+        if bath is not None:
+            capacity += bath.water_volume_l * _rho_cp_j_l_k(bath.salinity)
+    else:
+        thermal = first.sim.thermal or ThermalSim()
+        capacity = first.water_volume_l * _rho_cp_j_l_k(first.salinity)
+    probe_lag_s = max(c.sim.sensors.temperature_tau_s for c in chambers)
+    return Fopdt(
+        gain=thermal.heater_max_w / 100.0 / thermal.ua_w_k,
+        tau_s=capacity / thermal.ua_w_k,
+        theta_s=thermal.dead_time_s + probe_lag_s + period_s / 2.0,
+    )
+
+
+def _interlocks(
+    limits_min: float, limits_max: float, ramp: float, s: RunSettings
+) -> InterlockLimits:
+    low = limits_min - s.trip_margin_c
+    high = limits_max + s.trip_margin_c
+    return InterlockLimits(
+        min_temperature_c=low,
+        max_temperature_c=high,
+        max_rate_c_per_h=max(3.0 * ramp, 6.0),
+        sensor_min_c=min(-5.0, low - 5.0),
+        sensor_max_c=max(60.0, high + 5.0),
+        rate_window_s=max(300.0, 3.0 * s.period_s),
+        stale_after_s=max(30.0, 3.0 * s.period_s),
+        frozen_after_s=max(900.0, 10.0 * s.period_s),
+        comm_loss_after_s=max(10.0, 2.0 * s.period_s),
+        policies=s.policies,
+    )
+
+
+def plan_control(rig: Rig, chambers: Sequence[str], settings: RunSettings) -> ControlPlan:
+    """Build the control plan for the protocol's chambers on a rig.
+
+    Parameters
+    ----------
+    rig
+        The rig (every chamber in ``chambers`` must be in it).
+    chambers
+        The protocol's chamber ids.
+    settings
+        Run-wide settings.
+
+    Returns
+    -------
+    ControlPlan
+        Nodes, chambers (both in rig order) and the idle rig chambers.
+    """
+    wanted = set(chambers)
+    missing = wanted - {c.id for c in rig.chambers}
+    if missing:
+        raise KeyError(f"chambers not in the rig: {', '.join(sorted(missing))}")
+    groups: dict[str, list[str]] = {}
+    driver: dict[str, str] = {}
+    for chamber in rig.chambers:
+        name = chamber.bath if chamber.bath is not None else chamber.id
+        driver.setdefault(name, chamber.id)
+        if chamber.id in wanted:
+            groups.setdefault(name, []).append(chamber.id)
+    nodes: list[NodeSettings] = []
+    for name, members in groups.items():
+        model = node_model(rig, members, settings.period_s)
+        tau_c = settings.tau_c_factor * model.theta_s
+        gains = simc(model, tau_c)
+        nodes.append(
+            NodeSettings(
+                name=name,
+                chambers=tuple(members),
+                driver=driver[name],
+                model=model,
+                pid=gains.params(out_min=-100.0, out_max=100.0),
+                max_ramp_c_per_h=min(rig.chamber(c).limits.max_ramp_c_per_h for c in members),
+                heater_on_off=name in settings.on_off_heaters,
+            )
+        )
+    node_of = {c: node.name for node in nodes for c in node.chambers}
+    per_chamber: dict[str, ChamberSettings] = {}
+    for chamber in rig.chambers:
+        if chamber.id not in wanted:
+            continue
+        lim = chamber.limits
+        par_full = lim.max_par if lim.max_par > 0 else 1.0
+        flow_full = lim.max_flow_cm_s if lim.max_flow_cm_s > 0 else 1.0
+        per_chamber[chamber.id] = ChamberSettings(
+            chamber=chamber.id,
+            node=node_of[chamber.id],
+            interlocks=_interlocks(
+                lim.min_temperature_c, lim.max_temperature_c, lim.max_ramp_c_per_h, settings
+            ),
+            par_full=par_full,
+            flow_full_cm_s=flow_full,
+            lamp_trim=PidParams(
+                kc=settings.lamp_trim_kc,
+                ti_s=settings.trim_integral_s,
+                out_min=-0.5 * par_full,
+                out_max=0.5 * par_full,
+            ),
+            flow_trim=PidParams(
+                kc=settings.flow_trim_kc,
+                ti_s=settings.trim_integral_s,
+                out_min=-0.5 * flow_full,
+                out_max=0.5 * flow_full,
+            ),
+        )
+    idle = tuple(c.id for c in rig.chambers if c.id not in wanted)
+    return ControlPlan(
+        settings=settings,
+        nodes=tuple(nodes),
+        chambers=MappingProxyType(per_chamber),
+        idle=idle,
+    )

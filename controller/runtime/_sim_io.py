@@ -1,0 +1,312 @@
+"""Chamber I/O backed by an in-process simulated rack, advanced on the run's clock.
+
+Rules of this module
+--------------------
+- The rack's simulated time follows the clock: before every read and write the rack is
+  advanced to the clock's present (so a reading is what the probe shows at that instant and a
+  command takes effect when it is given), and :meth:`SimulatedIO.run` also advances it on a
+  fixed grid of ``step_s`` so the physics keeps pace with the clock when nobody asks.
+- Devices behave as a transport sees them: a sensor dropout is an input the module flags as
+  faulty (an immediate reply without that value); a comm-timeout or power loss is a device
+  that does not answer, which costs ``reply_timeout_s`` of clock time under
+  ``asyncio.timeout`` before the read or write gives up, as a real client's timeout would.
+- The optode is polled every ``optode_period_s`` (optodes measure every few tens of
+  seconds); between polls its latest measurement is reported. The E-stop contact belongs to
+  the I/O module, so it lives here (:meth:`SimulatedIO.press_e_stop`), not in the rack.
+- Each chamber's I/O module has a device-side watchdog: when no command has reached it for
+  ``watchdog_s``, it drives its safe outputs by itself (exactly at that moment of simulated
+  time) until the next command arrives. So a controller that dies or loses the bus leaves the
+  chambers safe, as the hardware's modules do.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+from collections.abc import Mapping
+from types import TracebackType
+from typing import Self
+
+from controller.clock import Clock
+from controller.control import Outputs
+from controller.runtime._io import ChamberReadings, Quantity
+from simulator import Rack, SensorNoReply
+
+__all__ = ["SimulatedIO"]
+
+_MODBUS = "modbus"
+_OPTODE = "optode"
+_MODBUS_QUANTITIES = frozenset(
+    {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW, Quantity.LEVEL, Quantity.E_STOP}
+)
+
+
+def _positive(value: float, name: str) -> float:
+    value = float(value)
+    if not math.isfinite(value) or value <= 0:
+        raise ValueError(f"{name} must be a finite number above 0, got {value!r}")
+    return value
+
+
+class SimulatedIO:
+    """A simulated rack presented as chamber I/O.
+
+    Parameters
+    ----------
+    rack
+        The simulated rack; its time 0 is mapped to the clock's present at construction.
+    clock
+        The run's clock.
+    step_s
+        Clock time between background advances of the rack, s; default the rack's physics
+        step. Reads and writes advance the rack themselves, so a coarser grid only changes
+        how current the rack is between them.
+    reply_timeout_s
+        How long a transport waits for a silent device before giving up, s.
+    optode_period_s
+        Time between optode measurements, s.
+    watchdog_s
+        Device-side watchdog of every I/O module, s; None for no watchdog. It starts with
+        the first command a module receives.
+    safe
+        Outputs each module drives when its watchdog fires, % each; default everything off.
+    """
+
+    def __init__(
+        self,
+        rack: Rack,
+        clock: Clock,
+        *,
+        step_s: float | None = None,
+        reply_timeout_s: float = 1.0,
+        optode_period_s: float = 30.0,
+        watchdog_s: float | None = None,
+        safe: Mapping[str, Outputs] | None = None,
+    ) -> None:
+        self._rack = rack
+        self._clock = clock
+        physics_step = rack.rig.sim.physics_step_s
+        self._step_s = _positive(physics_step if step_s is None else step_s, "step_s")
+        self._reply_timeout_s = _positive(reply_timeout_s, "reply_timeout_s")
+        self._optode_period_s = _positive(optode_period_s, "optode_period_s")
+        self._origin_s = clock.now_s() - rack.t_s
+        self._e_stop: set[str] = set()
+        self._optode: dict[str, tuple[float, float | None, float | None]] = {}
+        self._comm_at_s: float | None = None
+        self._comm: dict[tuple[str, str], bool] = {}
+        self._watchdog_s = None if watchdog_s is None else _positive(watchdog_s, "watchdog_s")
+        off = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
+        self._safe = {c: (safe or {}).get(c, off) for c in rack.chamber_ids}
+        self._fed_at: dict[str, float] = {}  # rack time of each module's latest command, s
+        self.last_written: dict[str, Outputs] = {}
+        """The latest command each chamber's module accepted, % each."""
+        self.watchdog_trips: list[tuple[float, str]] = []
+        """(rack time in s, chamber) of every watchdog trip, in order."""
+
+    # ------------------------------------------------------------------ properties
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """Chamber identifiers in rig order."""
+        return self._rack.chamber_ids
+
+    @property
+    def rack(self) -> Rack:
+        """The simulated rack (for tests, fault injection and the bench)."""
+        return self._rack
+
+    # ------------------------------------------------------------------ lifecycle
+    async def __aenter__(self) -> Self:
+        """Nothing to open in-process; brings the rack up to the clock."""
+        self.sync()
+        return self
+
+    async def __aexit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        tb: TracebackType | None,
+    ) -> None:
+        """Bring the rack up to the clock one last time."""
+        self.sync()
+
+    async def run(self, ready: asyncio.Event) -> None:
+        """Advance the rack on a fixed grid of ``step_s`` until cancelled.
+
+        Parameters
+        ----------
+        ready
+            Set at once: the in-process rack answers from the start.
+        """
+        ready.set()
+        start_s = self._clock.now_s()
+        k = 1
+        while True:
+            await self._clock.sleep_until(start_s + k * self._step_s)
+            self.sync()
+            # A late wake-up (real time) skips grid points instead of catching up on them.
+            k = max(k + 1, math.floor((self._clock.now_s() - start_s) / self._step_s) + 1)
+
+    def sync(self) -> None:
+        """Advance the rack to the clock's present, firing module watchdogs on the way."""
+        rack = self._rack
+        target = self._clock.now_s() - self._origin_s
+        while self._fed_at and self._watchdog_s is not None:
+            chamber, fed = min(self._fed_at.items(), key=lambda item: item[1])
+            due = fed + self._watchdog_s
+            if due > target:
+                break
+            if due > rack.t_s + 1e-9:
+                rack.advance(due - rack.t_s)
+            safe = self._safe[chamber]
+            rack.set_outputs(
+                chamber,
+                heater_pct=safe.heater_pct,
+                chiller_pct=safe.chiller_pct,
+                lamp_pct=safe.lamp_pct,
+                pump_pct=safe.pump_pct,
+            )
+            del self._fed_at[chamber]
+            self.watchdog_trips.append((rack.t_s, chamber))
+        dt = target - rack.t_s
+        if dt > 1e-9:
+            rack.advance(dt)
+
+    # ------------------------------------------------------------------ operator inputs
+    def press_e_stop(self, chamber: str | None = None) -> None:
+        """Press the E-stop of one chamber's module (None: every chamber)."""
+        self._e_stop.update(self._ids(chamber))
+
+    def release_e_stop(self, chamber: str | None = None) -> None:
+        """Release the E-stop of one chamber's module (None: every chamber)."""
+        self._e_stop.difference_update(self._ids(chamber))
+
+    def _ids(self, chamber: str | None) -> tuple[str, ...]:
+        if chamber is None:
+            return self.chambers
+        if chamber not in self.chambers:
+            raise KeyError(f"no chamber {chamber!r} in this rack")
+        return (chamber,)
+
+    # ------------------------------------------------------------------ device calls
+    def _answers(self, chamber: str, device: str) -> bool:
+        """Whether a device answers now; asked of the rack once per simulated instant (the
+        rack brings pending commands into effect on every question, which is costly)."""
+        rack = self._rack
+        if self._comm_at_s != rack.t_s:
+            self._comm = {
+                (c, d): rack.comm_ok(c, d) for c in rack.chamber_ids for d in (_MODBUS, _OPTODE)
+            }
+            self._comm_at_s = rack.t_s
+        return self._comm[(chamber, device)]
+
+    async def _silence(self) -> None:
+        """Wait for a device that will not answer, as a transport's reply timeout does."""
+        try:
+            async with asyncio.timeout(self._reply_timeout_s):
+                await asyncio.Event().wait()
+        except TimeoutError:
+            pass
+        self.sync()
+
+    async def read(self, chamber: str) -> ChamberReadings:
+        """Read one chamber's I/O module and optode.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+
+        Returns
+        -------
+        ChamberReadings
+            Temperature (°C), PAR (µmol photons m⁻² s⁻¹), flow (cm s⁻¹), level and E-stop
+            from the module; O2 (µmol L⁻¹, % air saturation) from the optode's latest
+            measurement.
+        """
+        self.sync()
+        rack = self._rack
+        now = self._clock.now_s()
+        modbus_up = self._answers(chamber, _MODBUS)
+        poll_optode = self._optode_due(chamber, now)
+        optode_up = self._answers(chamber, _OPTODE) if poll_optode else True
+        failed: set[Quantity] = set()
+        values: dict[str, float | bool | None] = {}
+        if modbus_up:
+            values["temperature_c"] = self._value(rack.read_temperature, chamber)
+            values["par"] = self._value(rack.read_par, chamber)
+            values["flow_cm_s"] = self._value(rack.read_flow, chamber)
+            values["level_ok"] = rack.read_level_ok(chamber)
+            values["e_stop"] = chamber in self._e_stop
+            for key, quantity in (
+                ("temperature_c", Quantity.TEMPERATURE),
+                ("par", Quantity.PAR),
+                ("flow_cm_s", Quantity.FLOW),
+            ):
+                if values[key] is None:
+                    failed.add(quantity)
+        else:
+            failed |= _MODBUS_QUANTITIES
+        if poll_optode:
+            o2: tuple[float | None, float | None] = (None, None)
+            if optode_up:
+                try:
+                    reading = rack.read_optode(chamber)
+                    o2 = (reading.o2_umol_l, reading.o2_sat_pct)
+                except SensorNoReply:
+                    pass
+            self._optode[chamber] = (now, *o2)
+        _, o2_umol_l, o2_sat_pct = self._optode[chamber]
+        if o2_umol_l is None:
+            failed.add(Quantity.OXYGEN)
+        if not (modbus_up and optode_up):
+            await self._silence()
+        return ChamberReadings(
+            chamber=chamber,
+            t_s=now,
+            o2_umol_l=o2_umol_l,
+            o2_sat_pct=o2_sat_pct,
+            comm_ok=modbus_up and optode_up,
+            failed=frozenset(failed),
+            **values,  # type: ignore[arg-type]
+        )
+
+    def _optode_due(self, chamber: str, now: float) -> bool:
+        last = self._optode.get(chamber)
+        return last is None or now - last[0] >= self._optode_period_s - 1e-9
+
+    @staticmethod
+    def _value(reader: object, chamber: str) -> float | None:
+        try:
+            return float(reader(chamber))  # type: ignore[operator]
+        except SensorNoReply:
+            return None
+
+    async def write(self, chamber: str, outputs: Outputs) -> bool:
+        """Command one chamber's actuators.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        outputs
+            Heater, chiller, lamp and pump drives, % each.
+
+        Returns
+        -------
+        bool
+            False when the module did not answer (the command did not arrive).
+        """
+        self.sync()
+        if not self._answers(chamber, _MODBUS):
+            await self._silence()
+            return False
+        self._rack.set_outputs(
+            chamber,
+            heater_pct=outputs.heater_pct,
+            chiller_pct=outputs.chiller_pct,
+            lamp_pct=outputs.lamp_pct,
+            pump_pct=outputs.pump_pct,
+        )
+        self.last_written[chamber] = outputs
+        self._fed_at[chamber] = self._rack.t_s
+        return True
