@@ -9,6 +9,8 @@ Rules of this module
   (to the second). The simulated clock, the rack and the compiled protocol share it.
 - A log is never overwritten; the default is ``runs/<protocol stem>-<UTC launch time>.sqlite``
   in the working folder.
+- The simulated I/O modules keep the rig's ``[io]`` settings where it has them (optode
+  cadence, device watchdog; default three tick periods).
 - :class:`SimulatedRun` exposes the assembled pieces (clock, rack, I/O, plan, writer) so tests
   and benchmarks can inject faults or wrap the I/O before running.
 """
@@ -213,10 +215,43 @@ class SimulatedRun:
         """
         if speed is not None and not (math.isfinite(speed) and speed > 0):
             raise SquallError(f"speed must be a number above 0, got {speed!r}", field="--speed")
-        settings = settings or RunSettings()
         inputs = load_run_inputs(protocol_path, rig_path, start_utc)
-        compiled, rig = inputs.compiled, inputs.rig
         path = Path(log_path) if log_path is not None else default_log_path(protocol_path)
+        return cls.assemble(inputs, path, speed=speed, settings=settings, seed=seed)
+
+    @classmethod
+    def assemble(
+        cls,
+        inputs: RunInputs,
+        log_path: Path,
+        *,
+        speed: float | None = None,
+        settings: RunSettings | None = None,
+        seed: int | None = None,
+    ) -> SimulatedRun:
+        """Assemble a run from inputs already loaded (or built in code); create the log.
+
+        Parameters
+        ----------
+        inputs
+            Protocol and rig, compiled and checked.
+        log_path
+            Run log to create; never overwritten.
+        speed
+            None: as fast as possible; otherwise simulated seconds per real second.
+        settings
+            Run-wide control settings; default :class:`RunSettings`.
+        seed
+            Sensor-noise seed, dimensionless; default the rig's.
+
+        Returns
+        -------
+        SimulatedRun
+            Ready to :meth:`run`.
+        """
+        settings = settings or RunSettings()
+        compiled, rig = inputs.compiled, inputs.rig
+        path = Path(log_path)
         if path.exists():
             raise SquallError("a file already exists there; refusing to overwrite it", file=path)
         plan = plan_control(rig, compiled.chambers, settings)
@@ -224,7 +259,16 @@ class SimulatedRun:
         rack = Rack(rig, seed=seed, start_utc=compiled.start_utc)
         step_s = settings.period_s if speed is None else None
         safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}
-        io = SimulatedIO(rack, clock, step_s=step_s, watchdog_s=3.0 * settings.period_s, safe=safe)
+        wiring = rig.io  # the rig's [io] settings apply to its simulated modules too
+        watchdog_s = wiring.watchdog_timeout_s if wiring is not None else None
+        io = SimulatedIO(
+            rack,
+            clock,
+            step_s=step_s,
+            optode_period_s=wiring.optode_period_s if wiring is not None else 30.0,
+            watchdog_s=watchdog_s or 3.0 * settings.period_s,
+            safe=safe,
+        )
         meta = RunMeta(
             run_id=path.stem,
             protocol_text=inputs.protocol_text,

@@ -1,0 +1,108 @@
+"""``squall run``: a shortened example protocol on the example rig with --sim --speed max,
+and the one-line refusals."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from controller.cli import main
+from controller.cli.cmd_run import parse_speed
+from controller.errors import SquallError
+from controller.storage import RunEndReason, RunLogReader
+
+START = "2027-08-20T04:00:00+00:00"
+
+
+def shortened_storm(repo_root: Path, folder: Path, hours: int = 2) -> Path:
+    """The storm example cut to its acclimation phase, ``hours`` long."""
+    text = (repo_root / "protocols" / "storm.toml").read_text(encoding="utf-8")
+    head, first, _rest = text.partition("\n[[phases]]")
+    phase, _, _ = _rest.partition("\n[[phases]]")
+    phase = re.sub(r'duration = "3d"', f'duration = "{hours}h"', phase, count=1)
+    assert f'duration = "{hours}h"' in phase, "the storm example changed: adapt this test"
+    path = folder / "storm-short.toml"
+    path.write_text(head + first + phase, encoding="utf-8")
+    return path
+
+
+def test_squall_run_sim_speed_max_writes_a_finished_readable_log(
+    repo_root: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    protocol = shortened_storm(repo_root, tmp_path)
+    log = tmp_path / "storm.sqlite"
+    rig = repo_root / "rigs" / "saltmarrow-rack8.toml"
+    args = ["run", str(protocol), "--rig", str(rig), "--sim", "--speed", "max"]
+    code = main([*args, "--log", str(log), "--start", START])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert out.out.strip().splitlines()[-1] == f"log: {log}"
+    with RunLogReader(log) as reader:
+        info = reader.info()
+        samples = reader.samples()
+    assert info.end is not None and info.end.end_reason is RunEndReason.COMPLETED
+    assert info.samples == 8 * 2 * 3600 // 10  # 8 chambers, one row per 10 s tick for 2 h
+    assert set(samples.chamber) == {f"C{i}" for i in range(1, 9)}
+    assert samples.time.iloc[0].isoformat() == START
+    # a second run must not overwrite the first one's log
+    code = main([*args, "--log", str(log), "--start", START])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1
+    assert "refusing to overwrite" in err and str(log) in err
+
+
+def test_without_sim_the_run_is_refused_until_hardware_transports_exist(
+    repo_root: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    protocol = shortened_storm(repo_root, tmp_path)
+    rig = repo_root / "rigs" / "saltmarrow-rack8.toml"
+    code = main(["run", str(protocol), "--rig", str(rig), "--log", str(tmp_path / "x.sqlite")])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1
+    assert "hardware transports are not configured" in err
+    assert not (tmp_path / "x.sqlite").exists()
+
+
+def test_a_bad_protocol_is_one_located_line_and_no_log(
+    repo_root: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    protocol = shortened_storm(repo_root, tmp_path)
+    protocol.write_text(
+        protocol.read_text(encoding="utf-8").replace("mean_c = 19.5", "mean_c = 'warm'")
+    )
+    rig = repo_root / "rigs" / "saltmarrow-rack8.toml"
+    log = tmp_path / "bad.sqlite"
+    code = main(["run", str(protocol), "--rig", str(rig), "--sim", "--log", str(log)])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1
+    assert re.search(rf"{re.escape(str(protocol))}:\d+: ", err)
+    assert not log.exists()
+
+
+@pytest.mark.parametrize(
+    ("option", "value", "needle"),
+    [("--speed", "fast", "--speed"), ("--speed", "-2", "--speed"), ("--start", "July", "--start")],
+)
+def test_bad_options_are_one_line(
+    repo_root: Path,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    option: str,
+    value: str,
+    needle: str,
+) -> None:
+    protocol = shortened_storm(repo_root, tmp_path)
+    rig = repo_root / "rigs" / "saltmarrow-rack8.toml"
+    code = main(["run", str(protocol), "--rig", str(rig), "--sim", option, value])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and needle in err
+
+
+def test_speed_is_max_or_a_positive_factor() -> None:
+    assert parse_speed("max") is None and parse_speed("MAX") is None
+    assert parse_speed("60") == 60.0 and parse_speed("0.5") == 0.5
+    for bad in ("0", "-1", "nan", "inf", "quick"):
+        with pytest.raises(SquallError):
+            parse_speed(bad)
