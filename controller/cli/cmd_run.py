@@ -22,16 +22,21 @@ import sys
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TaskID, TextColumn, TimeElapsedColumn
 
 from controller.errors import RuntimeFailure, SquallError
 from controller.protocol import format_duration
-from controller.runtime import RunSettings, RunSummary, SimulatedRun, TickStatus
 
-__all__ = ["parse_speed", "register"]
+if TYPE_CHECKING:
+    from controller.runtime import RunSettings, RunSummary, TickStatus
+
+__all__ = ["DEFAULT_PERIOD_S", "parse_speed", "register"]
+
+DEFAULT_PERIOD_S = 10.0
+"""Control tick period when ``--period`` is not given, s (RunSettings' default)."""
 
 _log = logging.getLogger(__name__)
 
@@ -83,8 +88,8 @@ def register(sub: Any) -> None:
         "--period",
         metavar="SECONDS",
         type=float,
-        default=RunSettings().period_s,
-        help=f"control tick period in seconds (default {RunSettings().period_s:g})",
+        default=DEFAULT_PERIOD_S,
+        help=f"control tick period in seconds (default {DEFAULT_PERIOD_S:g})",
     )
     parser.set_defaults(handler=_handle)
 
@@ -129,6 +134,8 @@ def _parse_start(text: str | None) -> datetime | None:
 
 
 def _settings(period_s: float) -> RunSettings:
+    from controller.runtime import RunSettings
+
     if not (math.isfinite(period_s) and period_s >= 1.0):
         raise SquallError(
             f"the tick period must be 1 s or more, got {period_s!r}", field="--period"
@@ -188,6 +195,8 @@ def _handle(args: argparse.Namespace) -> int:
             "simulated chambers",
             field="--sim",
         )
+    from controller.runtime import SimulatedRun
+
     run = SimulatedRun.prepare(
         args.protocol, args.rig, args.log, speed=speed, start_utc=start, settings=settings
     )

@@ -6,29 +6,70 @@
   log) under ``asyncio.TaskGroup`` supervision and always ends with every output safe.
 - :func:`run_simulated` runs a protocol file on a simulated rig file and returns a
   :class:`RunSummary`; :class:`SimulatedRun` exposes the assembled pieces.
+
+Names are re-exported lazily (see :mod:`controller._lazy`), so the command line can name
+this package without loading the simulator or device libraries until a run starts.
 """
 
-from controller.runtime._decide import OFF, ChamberDecision, Decider, Decision, Target
-from controller.runtime._io import ChamberIO, ChamberReadings, Quantity, stale_readings
-from controller.runtime._logsink import LogSink, alarm_record
-from controller.runtime._loop import ControlLoop, RunSummary, TickStats, TickStatus
-from controller.runtime._setpoints import SetpointTable
-from controller.runtime._settings import (
-    ChamberSettings,
-    ControlPlan,
-    NodeSettings,
-    RunSettings,
-    node_model,
-    plan_control,
-)
-from controller.runtime._sim_io import SimulatedIO
-from controller.runtime._simulated import (
-    RunInputs,
-    SimulatedRun,
-    default_log_path,
-    load_run_inputs,
-    run_simulated,
-)
+from typing import TYPE_CHECKING
+
+from controller._lazy import lazy_exports
+
+if TYPE_CHECKING:
+    from controller.runtime._decide import OFF, ChamberDecision, Decider, Decision, Target
+    from controller.runtime._io import ChamberIO, ChamberReadings, Quantity, stale_readings
+    from controller.runtime._logsink import LogSink, alarm_record
+    from controller.runtime._loop import ControlLoop, RunSummary, TickStats, TickStatus
+    from controller.runtime._setpoints import SetpointTable
+    from controller.runtime._settings import (
+        ChamberSettings,
+        ControlPlan,
+        NodeSettings,
+        RunSettings,
+        node_model,
+        plan_control,
+    )
+    from controller.runtime._sim_io import SimulatedIO
+    from controller.runtime._simulated import (
+        RunInputs,
+        SimulatedRun,
+        default_log_path,
+        load_run_inputs,
+        run_simulated,
+    )
+
+_NAMES = {
+    "OFF": "_decide",
+    "ChamberDecision": "_decide",
+    "ChamberIO": "_io",
+    "ChamberReadings": "_io",
+    "ChamberSettings": "_settings",
+    "ControlLoop": "_loop",
+    "ControlPlan": "_settings",
+    "Decider": "_decide",
+    "Decision": "_decide",
+    "LogSink": "_logsink",
+    "NodeSettings": "_settings",
+    "Quantity": "_io",
+    "RunInputs": "_simulated",
+    "RunSettings": "_settings",
+    "RunSummary": "_loop",
+    "SetpointTable": "_setpoints",
+    "SimulatedIO": "_sim_io",
+    "SimulatedRun": "_simulated",
+    "Target": "_decide",
+    "TickStats": "_loop",
+    "TickStatus": "_loop",
+    "alarm_record": "_logsink",
+    "default_log_path": "_simulated",
+    "load_run_inputs": "_simulated",
+    "node_model": "_settings",
+    "plan_control": "_settings",
+    "run_simulated": "_simulated",
+    "stale_readings": "_io",
+}
+
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)
 
 __all__ = [
     "OFF",

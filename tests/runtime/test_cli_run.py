@@ -4,13 +4,17 @@ and the one-line refusals."""
 from __future__ import annotations
 
 import re
+from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
+from rich.console import Console
 
 from controller.cli import main
-from controller.cli.cmd_run import parse_speed
+from controller.cli.cmd_run import DEFAULT_PERIOD_S, _Bar, parse_speed
 from controller.errors import SquallError
+from controller.protocol import format_duration
+from controller.runtime import RunSettings, TickStatus
 from controller.storage import RunEndReason, RunLogReader
 
 START = "2027-08-20T04:00:00+00:00"
@@ -106,3 +110,28 @@ def test_speed_is_max_or_a_positive_factor() -> None:
     for bad in ("0", "-1", "nan", "inf", "quick"):
         with pytest.raises(SquallError):
             parse_speed(bad)
+
+
+def test_the_default_period_is_the_runtimes() -> None:
+    assert DEFAULT_PERIOD_S == RunSettings().period_s
+
+
+def test_the_progress_bar_shows_phase_simulated_time_and_alarms() -> None:
+    console = Console(record=True, force_terminal=True, width=160)
+    bar = _Bar(console)
+    status = TickStatus(
+        tick=360,
+        ticks_total=720,
+        elapsed_s=3600.0,
+        duration_s=7200.0,
+        phase="acclimation",
+        utc=datetime(2027, 8, 20, 5, 0, tzinfo=UTC),
+        alarms={"C6": "sensor-stale"},
+    )
+    with bar.progress:
+        bar(status)
+    text = console.export_text()
+    assert "acclimation" in text
+    assert "2027-08-20 05:00 UTC" in text and f"+{format_duration(3600.0)}" in text
+    assert "C6: sensor-stale" in text
+    assert "━" in text  # the bar itself
