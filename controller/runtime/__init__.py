@@ -33,6 +33,7 @@ if TYPE_CHECKING:
     from controller.runtime._simulated import (
         RunInputs,
         SimulatedRun,
+        create_run_log,
         default_log_path,
         load_run_inputs,
         run_simulated,
@@ -61,6 +62,7 @@ _NAMES = {
     "TickStats": "_loop",
     "TickStatus": "_loop",
     "alarm_record": "_logsink",
+    "create_run_log": "_simulated",
     "default_log_path": "_simulated",
     "load_run_inputs": "_simulated",
     "node_model": "_settings",
@@ -94,6 +96,7 @@ __all__ = [
     "TickStats",
     "TickStatus",
     "alarm_record",
+    "create_run_log",
     "default_log_path",
     "load_run_inputs",
     "node_model",

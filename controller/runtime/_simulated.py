@@ -35,7 +35,14 @@ from controller.runtime._sim_io import SimulatedIO
 from controller.storage import ChamberRecord, ClockKind, RunLogWriter, RunMeta
 from simulator import Rack
 
-__all__ = ["RunInputs", "SimulatedRun", "default_log_path", "load_run_inputs", "run_simulated"]
+__all__ = [
+    "RunInputs",
+    "SimulatedRun",
+    "create_run_log",
+    "default_log_path",
+    "load_run_inputs",
+    "run_simulated",
+]
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -149,6 +156,61 @@ def default_log_path(protocol_path: Path, launched_utc: datetime | None = None) 
     return Path("runs") / f"{Path(protocol_path).stem}-{stamp}.sqlite"
 
 
+def create_run_log(
+    inputs: RunInputs,
+    plan: ControlPlan,
+    log_path: Path,
+    *,
+    clock_kind: ClockKind,
+    commit_interval_s: float,
+) -> RunLogWriter:
+    """Create the run log of a run (simulated or on hardware), its folder if needed.
+
+    Parameters
+    ----------
+    inputs
+        Protocol and rig (their text is stored in the log).
+    plan
+        The control plan; its chambers are the run's.
+    log_path
+        The log file; an existing file is never overwritten.
+    clock_kind
+        Real or virtual clock.
+    commit_interval_s
+        Commit interval in clock time, s.
+
+    Returns
+    -------
+    RunLogWriter
+        The open writer (the control loop finishes it).
+    """
+    path = Path(log_path)
+    if path.exists():
+        raise SquallError("a file already exists there; refusing to overwrite it", file=path)
+    meta = RunMeta(
+        run_id=path.stem,
+        protocol_text=inputs.protocol_text,
+        rig_text=inputs.rig_text,
+        start_utc_s=inputs.compiled.start_utc.timestamp(),
+        clock_kind=clock_kind,
+        chambers=tuple(
+            ChamberRecord(
+                chamber=c.id,
+                water_volume_l=c.water_volume_l,
+                sediment_area_m2=c.sediment_area_m2,
+                bath=c.bath,
+            )
+            for c in inputs.rig.chambers
+            if c.id in plan.chambers
+        ),
+    )
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SquallError(f"cannot create the log folder: {exc.strerror}", file=path) from exc
+    return RunLogWriter(path, meta=meta, commit_interval_s=commit_interval_s)
+
+
 @dataclass(kw_only=True)
 class SimulatedRun:
     """A protocol ready to run on a simulated rack (created by :meth:`prepare`).
@@ -251,9 +313,6 @@ class SimulatedRun:
         """
         settings = settings or RunSettings()
         compiled, rig = inputs.compiled, inputs.rig
-        path = Path(log_path)
-        if path.exists():
-            raise SquallError("a file already exists there; refusing to overwrite it", file=path)
         plan = plan_control(rig, compiled.chambers, settings)
         clock = VirtualClock(compiled.start_utc, speed)
         rack = Rack(rig, seed=seed, start_utc=compiled.start_utc)
@@ -269,29 +328,12 @@ class SimulatedRun:
             watchdog_s=watchdog_s or 3.0 * settings.period_s,
             safe=safe,
         )
-        meta = RunMeta(
-            run_id=path.stem,
-            protocol_text=inputs.protocol_text,
-            rig_text=inputs.rig_text,
-            start_utc_s=compiled.start_utc.timestamp(),
+        writer = create_run_log(
+            inputs,
+            plan,
+            log_path,
             clock_kind=ClockKind.VIRTUAL,
-            chambers=tuple(
-                ChamberRecord(
-                    chamber=c.id,
-                    water_volume_l=c.water_volume_l,
-                    sediment_area_m2=c.sediment_area_m2,
-                    bath=c.bath,
-                )
-                for c in rig.chambers
-                if c.id in plan.chambers
-            ),
-        )
-        try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise SquallError(f"cannot create the log folder: {exc.strerror}", file=path) from exc
-        writer = RunLogWriter(
-            path, meta=meta, commit_interval_s=settings.commit_interval_for(speed)
+            commit_interval_s=settings.commit_interval_for(speed),
         )
         return cls(inputs=inputs, plan=plan, clock=clock, rack=rack, io=io, writer=writer)
 
