@@ -1,0 +1,312 @@
+"""HardwareIO against a simulated rack served on its real endpoints (Modbus TCP + optode ptys).
+
+The rack follows the virtual clock (``RackServer(clock=...)`` and its ``run`` task), so the
+module watchdogs expire in simulated time exactly as they would on a bench.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+from controller.clock import VirtualClock
+from controller.control import Outputs
+from controller.drivers import decode_outputs, decode_point, decode_safe_outputs, point
+from controller.errors import SquallError
+from controller.files import load_model
+from controller.rig import Rig
+from controller.rig._io import RigIo, io_from_ports
+from controller.runtime import ChamberIO, ChamberReadings, Quantity, RunSettings
+from controller.runtime._hardware_io import HardwareIO
+from simulator import Fault, FaultKind, Rack
+from simulator.endpoints import IoModule, RackServer
+
+from .conftest import START, rig, rig_text, virtual
+
+pytestmark = pytest.mark.timeout(30)
+
+IDS = ("c1", "c2")
+WATCHDOG_S = 30.0
+OPTODE_PERIOD_S = 30.0
+SYNC_S = 5.0
+"""Clock seconds between the server's rack updates when nobody asks, s."""
+SAFE = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=25.0)
+DRIVE = Outputs(heater_pct=37.5, chiller_pct=0.0, lamp_pct=12.25, pump_pct=40.0)
+OFF = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
+
+
+@dataclass
+class Bench:
+    rack: Rack
+    server: RackServer
+    io: HardwareIO
+    clock: VirtualClock
+
+    def module(self, chamber: str) -> IoModule:
+        return self.server.modbus.module(chamber)
+
+    def actual(self, chamber: str) -> Outputs:
+        out = self.rack.outputs(chamber)
+        return Outputs(
+            heater_pct=out.heater_pct,
+            chiller_pct=out.chiller_pct,
+            lamp_pct=out.lamp_pct,
+            pump_pct=out.pump_pct,
+        )
+
+
+@asynccontextmanager
+async def bench(clock: VirtualClock, *, budget_s: float = 1.5) -> AsyncIterator[Bench]:
+    """A served rack and a started HardwareIO on it (ready), torn down afterwards."""
+    rack = Rack(rig(IDS), seed=3, start_utc=START)
+    server = RackServer(rack, clock=clock)
+    announcement = await server.start()
+    template = RigIo(from_announcement="-", optode_period_s=OPTODE_PERIOD_S)
+    io_map = io_from_ports(announcement.to_dict(), IDS, template=template)
+    io = HardwareIO(
+        io_map,
+        IDS,
+        clock,
+        watchdog_timeout_s=WATCHDOG_S,
+        safe={"c1": SAFE, "c2": SAFE},
+        budget_s=budget_s,
+    )
+    ready = asyncio.Event()
+    tasks: list[asyncio.Task[None]] = []
+    try:
+        async with io:
+            tasks = [
+                asyncio.ensure_future(server.run(step_s=SYNC_S)),
+                asyncio.ensure_future(io.run(ready)),
+            ]
+            async with asyncio.timeout(60.0):
+                await ready.wait()
+            yield Bench(rack=rack, server=server, io=io, clock=clock)
+    finally:
+        for task in tasks:
+            task.cancel()
+        await asyncio.gather(*tasks, return_exceptions=True)
+        await server.stop()
+
+
+def test_it_is_chamber_io() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            assert isinstance(b.io, ChamberIO)
+            assert b.io.chambers == IDS
+
+    virtual(body)
+
+
+def test_start_up_writes_safe_drives_and_arms_the_watchdog_before_ready() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            for cid in IDS:
+                words = b.module(cid).holding_words()
+                assert decode_safe_outputs(words[6:10]) == decode_safe_outputs(
+                    (0, 0, 0, 2500)
+                )  # pump 25 %, the rest off
+                timeout = decode_point(point("watchdog_timeout_s"), [words[4]])
+                assert timeout == WATCHDOG_S
+                assert words[5] != 0  # fed once
+                assert decode_outputs(words[0:4]) == decode_outputs((0, 0, 0, 0))
+                assert not b.module(cid).tripped
+            # the first optode reading is in before ready
+            assert b.io.optode_stats("c1") == (1, 0)
+
+    virtual(body)
+
+
+def test_readings_match_the_racks_truth_within_sensor_noise() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            t0 = clock.now_s()
+            for cid in IDS:
+                assert await b.io.write(cid, DRIVE)
+            for k in range(1, 9):  # four minutes of 30 s ticks keep the watchdog fed
+                await clock.sleep_until(t0 + 30.0 * k + 0.001)  # just after each optode poll
+                for cid in IDS:
+                    assert await b.io.write(cid, DRIVE)
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            for reading in reads:
+                truth = b.rack.truth(reading.chamber)
+                assert reading.comm_ok and reading.failed == frozenset()
+                # probe noise 0.01 °C (rig file), float32 on the wire
+                assert reading.temperature_c == pytest.approx(truth.probe_temperature_c, abs=0.05)
+                # PAR noise 1 % of reading (rig default) plus the 0.1 count of the register
+                assert reading.par == pytest.approx(truth.par, rel=0.05, abs=0.2)
+                # flow noise 0.1 cm/s (rig default), 0.01 cm/s counts
+                assert reading.flow_cm_s == pytest.approx(truth.flow_cm_s, abs=0.5)
+                # optode noise 0.3 µmol/L (rig default), measured 1 ms ago
+                assert reading.o2_umol_l == pytest.approx(truth.optode_o2_umol_l, abs=2.0)
+                assert reading.o2_sat_pct == pytest.approx(
+                    100.0 * reading.o2_umol_l / truth.o2_saturation_umol_l, abs=1.0
+                )
+                assert reading.level_ok is True and reading.e_stop is False
+            assert reads[0].par is not None and reads[0].par > 10.0  # the lamp is lit
+            assert b.io.optode_stats("c2") == (9, 0)
+
+    virtual(body)
+
+
+def test_writes_drive_the_actuators_through_drives_and_relays() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            assert await b.io.write("c2", DRIVE)
+            assert b.actual("c2") == DRIVE
+            assert b.actual("c1") == OFF
+            assert b.module("c2").coil_bits()[:4] == (True, False, True, True)
+            assert await b.io.write("c2", OFF)
+            assert b.actual("c2") == OFF
+            assert b.module("c2").coil_bits()[:4] == (False, False, False, False)
+
+    virtual(body)
+
+
+def test_the_watchdog_holds_outputs_while_fed_and_drops_them_to_safe_when_feeding_stops() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            t0 = clock.now_s()
+            for k in range(13):  # two minutes of 10 s ticks
+                await clock.sleep_until(t0 + 10.0 * k)
+                assert await b.io.write("c1", DRIVE)
+            last_feed = clock.now_s()
+            assert b.module("c1").trips == 0 and b.actual("c1") == DRIVE
+            await clock.sleep_until(last_feed + WATCHDOG_S - 1.0)
+            assert b.actual("c1") == DRIVE  # not yet
+            await clock.sleep_until(last_feed + WATCHDOG_S + SYNC_S + 0.5)  # next server sync
+            assert b.module("c1").tripped
+            assert b.actual("c1") == SAFE
+            reading = await b.io.read("c1")
+            assert reading.comm_ok  # a tripped module still answers
+            # the controller comes back: feeding clears the trip, the drive is taken again
+            assert await b.io.write("c1", DRIVE)
+            assert not b.module("c1").tripped and b.actual("c1") == DRIVE
+            assert b.module("c1").trips == 1
+
+    virtual(body)
+
+
+def test_a_silent_module_gives_stale_readings_and_failed_writes_not_errors() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock, budget_s=1.5) as b:
+            fault = Fault(kind=FaultKind.COMM_TIMEOUT, chamber="c1", sensor="modbus")
+            b.rack.inject(fault.model_copy(update={"at_s": b.rack.t_s}))
+            t0 = clock.now_s()
+            silent, other = await asyncio.gather(b.io.read("c1"), b.io.read("c2"))
+            assert clock.now_s() - t0 <= 1.5 + 1e-6  # bounded by the budget
+            assert not silent.comm_ok
+            assert {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW} <= silent.failed
+            assert {Quantity.LEVEL, Quantity.E_STOP} <= silent.failed
+            assert silent.temperature_c is None and silent.level_ok is None
+            assert silent.o2_umol_l is not None  # the optode is a separate device
+            assert other.comm_ok and other.temperature_c is not None
+            assert await b.io.write("c1", DRIVE) is False
+            assert await b.io.write("c2", DRIVE) is True
+            b.rack.clear_faults(FaultKind.COMM_TIMEOUT)
+            assert (await b.io.read("c1")).comm_ok
+            assert await b.io.write("c1", DRIVE)
+            assert b.actual("c1") == DRIVE
+
+    virtual(body)
+
+
+def test_a_module_that_lost_power_is_set_up_again() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            assert await b.io.write("c1", DRIVE)
+            b.rack.inject(
+                Fault(kind=FaultKind.POWER_LOSS, chamber="c1", at_s=b.rack.t_s, duration_s=20.0)
+            )
+            t0 = clock.now_s()
+            assert await b.io.write("c1", DRIVE) is False
+            await clock.sleep_until(t0 + 25.0)
+            b.server.sync()  # the module reboots with power-on defaults
+            assert decode_safe_outputs(b.module("c1").holding_words()[6:10]).pump_pct == 0.0
+            assert await b.io.write("c1", DRIVE)
+            words = b.module("c1").holding_words()
+            assert decode_safe_outputs(words[6:10]).pump_pct == SAFE.pump_pct
+            assert decode_point(point("watchdog_timeout_s"), [words[4]]) == WATCHDOG_S
+            assert b.actual("c1") == DRIVE
+
+    virtual(body)
+
+
+def test_a_silent_optode_never_stalls_a_read() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            fault = Fault(kind=FaultKind.COMM_TIMEOUT, chamber="c1", sensor="optode")
+            b.rack.inject(fault.model_copy(update={"at_s": b.rack.t_s}))
+            t_poll = clock.now_s() + OPTODE_PERIOD_S  # the next poll waits 1 s in vain
+            await clock.sleep_until(t_poll + 0.5)
+            assert b.io.optode_stats("c1") == (2, 0)  # asked, not yet given up
+            before = clock.now_s()
+            during: ChamberReadings = await b.io.read("c1")
+            assert clock.now_s() == before  # no wait for the optode at all
+            assert during.comm_ok and during.o2_umol_l is not None  # the previous measurement
+            await clock.sleep_until(t_poll + 2.0)
+            assert b.io.optode_stats("c1") == (2, 1)
+            after = await b.io.read("c1")
+            assert not after.comm_ok  # the missed poll is reported once
+            assert after.o2_umol_l is None and Quantity.OXYGEN in after.failed
+            again = await b.io.read("c1")
+            assert again.comm_ok and Quantity.OXYGEN in again.failed
+            b.rack.clear_faults(FaultKind.COMM_TIMEOUT)
+            await clock.sleep_until(t_poll + OPTODE_PERIOD_S + 0.001)
+            back = await b.io.read("c1")
+            assert back.o2_umol_l is not None and back.failed == frozenset()
+
+    virtual(body)
+
+
+def test_e_stop_and_dropouts_are_reported() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            b.module("c2").set_estop(True)
+            b.rack.inject(
+                Fault(kind=FaultKind.DROPOUT, chamber="c2", sensor="temperature", at_s=b.rack.t_s)
+            )
+            reading = await b.io.read("c2")
+            assert reading.e_stop is True and reading.comm_ok
+            assert reading.temperature_c is None and reading.failed == {Quantity.TEMPERATURE}
+            assert (await b.io.read("c1")).e_stop is False
+
+    virtual(body)
+
+
+def test_from_rig_uses_the_rig_files_io_table(tmp_path: Path) -> None:
+    rig_file = tmp_path / "rig.toml"
+    rig_file.write_text(rig_text(IDS, io='[io]\nfrom_announcement = "ports.json"\n'))
+    the_rig = load_model(rig_file, Rig)
+    rack = Rack(the_rig, seed=3, start_utc=START)
+
+    async def body(clock: VirtualClock) -> None:
+        server = RackServer(rack, clock=clock)
+        await server.start(ports_file=tmp_path / "ports.json")
+        settings = RunSettings(period_s=5.0, read_timeout_s=1.0, write_timeout_s=1.0)
+        io = HardwareIO.from_rig(the_rig, clock, base_dir=tmp_path, settings=settings)
+        ready = asyncio.Event()
+        async with io:
+            task = asyncio.ensure_future(io.run(ready))
+            await asyncio.wait_for(ready.wait(), 30.0)
+            assert io.watchdog_timeout_s == 15.0  # three tick periods
+            assert (
+                decode_point(
+                    point("watchdog_timeout_s"), [server.modbus.module("c1").holding_words()[4]]
+                )
+                == 15.0
+            )
+            assert (await io.read("c2")).comm_ok
+            task.cancel()
+            await asyncio.gather(task, return_exceptions=True)
+        await server.stop()
+
+    virtual(body)
+    with pytest.raises(SquallError, match=r"no \[io\] table") as caught:
+        HardwareIO.from_rig(rig(IDS), VirtualClock(START), base_dir=tmp_path)
+    assert caught.value.field == "io"
