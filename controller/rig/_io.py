@@ -10,7 +10,9 @@ Rules of this module
   ``first_block_address + k * block_stride`` on ``unit_id``, unless overridden), so one
   module per chamber is a link per chamber with the defaults.
 - Each chamber may have an **optode** on its own serial port (``[io.optodes.<chamber>]``);
-  a chamber without one reports no oxygen.
+  a chamber without one reports no oxygen. ``[io.corrections.<chamber>]`` holds the linear
+  calibration corrections of its temperature, PAR and flow inputs
+  (``hardware-notes/calibration.md``).
 - ``from_announcement = "FILE.json"`` takes the links and optode ports from the ports file
   that ``squall simulate --ports-file FILE.json`` writes, so the very same rig file runs
   against the simulator on loopback. The file is read when the run starts (the simulator
@@ -23,6 +25,7 @@ Rules of this module
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 from collections.abc import Mapping, Sequence
 from enum import StrEnum
@@ -36,6 +39,7 @@ from controller.drivers import ChamberBlockConfig, RegisterMap, RegisterMapConfi
 from controller.errors import SquallError
 
 __all__ = [
+    "InputCorrection",
     "ModbusLink",
     "OptodePort",
     "Parity",
@@ -110,6 +114,28 @@ class OptodePort(FileModel):
     baud: int = Field(9600, ge=300, le=921600, description="Line speed, bit/s.")
 
 
+class InputCorrection(FileModel):
+    """Calibration corrections of a chamber's analog inputs: ``gain × reading + offset``.
+
+    Found by calibrating the whole chain (sensor, transmitter, module) against a reference
+    (``hardware-notes/calibration.md``) and applied by the controller to every reading.
+    """
+
+    temperature_gain: float = Field(1.0, ge=0.8, le=1.2, description="Probe gain, °C per °C.")
+    temperature_offset_c: float = Field(0.0, ge=-5, le=5, description="Probe offset, °C.")
+    par_gain: float = Field(
+        1.0, ge=0.2, le=5, description="PAR sensor gain, dimensionless (reference per reading)."
+    )
+    par_offset: float = Field(
+        0.0, ge=-100, le=100, description="PAR sensor offset, µmol photons m⁻² s⁻¹."
+    )
+    flow_gain: float = Field(1.0, ge=0.2, le=5, description="Flow sensor gain, dimensionless.")
+    flow_offset_cm_s: float = Field(0.0, ge=-10, le=10, description="Flow sensor offset, cm s⁻¹.")
+    calibrated_on: dt.date | None = Field(
+        None, description="Date of the calibration these corrections come from."
+    )
+
+
 class RigIo(FileModel):
     """How the controller reaches the rig's devices (the ``[io]`` table of a rig file)."""
 
@@ -136,6 +162,10 @@ class RigIo(FileModel):
     )
     optode_timeout_s: float = Field(
         1.0, gt=0, le=30, description="Longest wait for an optode reply, s."
+    )
+    corrections: dict[str, InputCorrection] = Field(
+        default_factory=dict,
+        description="Calibration corrections of the analog inputs, per chamber id.",
     )
 
     @model_validator(mode="after")
@@ -216,11 +246,12 @@ class RigIo(FileModel):
             raise SquallError(
                 f"chamber(s) {', '.join(missing)} are on no Modbus link", field=f"{where}.modbus"
             )
-        for cid in self.optodes:
-            if cid not in known:
-                raise SquallError(
-                    f"optode for unknown chamber {cid!r}", field=f"{where}.optodes.{cid}"
-                )
+        for table, keys in (("optodes", self.optodes), ("corrections", self.corrections)):
+            for cid in keys:
+                if cid not in known:
+                    raise SquallError(
+                        f"{table} entry for unknown chamber {cid!r}", field=f"{where}.{table}.{cid}"
+                    )
 
 
 # --------------------------------------------------------------------------- ports files
@@ -311,7 +342,9 @@ def io_from_ports(
             f"unusable block layout: {exc.errors()[0]['msg']}", file=source, field="modbus.blocks"
         ) from None
     base = template or RigIo(modbus=[link])
-    settings = base.model_dump(exclude={"from_announcement", "modbus", "optodes"})
+    settings = dict(base)
+    for key in ("from_announcement", "modbus", "optodes"):
+        del settings[key]
     optodes = {
         cid: OptodePort(port=path) for cid, path in ports.optodes.items() if cid in chamber_ids
     }

@@ -6,9 +6,10 @@ Rules of this module
   (:class:`~controller.rig.RigIo`) through the async transports and the pure codecs of
   :mod:`controller.drivers`; the loop cannot tell it from the simulated rack.
 - Reads: a chamber's input registers and contacts are read concurrently, each under the
-  read budget; the optode is **not** asked during a read. Every optode has its own poller in
-  :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``; a read reports the
-  latest measurement. So a slow or silent optode never stalls a tick.
+  read budget, and the rig's calibration corrections (``[io.corrections]``) are applied to
+  temperature, PAR and flow. The optode is **not** asked during a read: every optode has its
+  own poller in :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and
+  a read reports the latest measurement. So a slow or silent optode never stalls a tick.
 - Writes, every tick (``hardware-notes/register-map.md``): one request for holding registers
   0..5 (the four drives, the watchdog timeout, a new watchdog count: drives and feed arrive
   together), then one for relay coils 0..3 (closed where the drive is above 0). A module that
@@ -73,7 +74,7 @@ from controller.drivers._transport_modbus import ModbusTransport
 from controller.drivers._transport_serial import SerialLineTransport
 from controller.errors import SquallError
 from controller.rig import Rig
-from controller.rig._io import ModbusLink, RigIo, resolve_io
+from controller.rig._io import InputCorrection, ModbusLink, RigIo, resolve_io
 from controller.runtime._io import ChamberReadings, Quantity
 from controller.runtime._settings import ControlPlan, RunSettings
 
@@ -211,6 +212,7 @@ class HardwareIO:
             )
             for cid, port in io.optodes.items()
         }
+        self._corrections = dict(io.corrections)
         self._healthy: dict[tuple[str, str], bool] = {}
 
     @classmethod
@@ -386,11 +388,7 @@ class HardwareIO:
         if inputs is None:
             failed |= {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW}
         else:
-            values |= {
-                "temperature_c": inputs.temperature_c,
-                "par": inputs.par_umol_m2_s,
-                "flow_cm_s": inputs.flow_cm_s,
-            }
+            values |= _corrected(inputs, self._corrections.get(chamber))
             for key, quantity in (
                 ("temperature_c", Quantity.TEMPERATURE),
                 ("par", Quantity.PAR),
@@ -565,6 +563,22 @@ class HardwareIO:
         # replaced only now: a read during the exchange still sees the previous measurement
         opt.polled_s = self._clock.now_s()
         opt.o2_umol_l, opt.o2_sat_pct = o2
+
+
+def _corrected(inputs: InputValues, fix: InputCorrection | None) -> dict[str, float | None]:
+    """Readings with the rig's calibration corrections applied (°C, µmol m⁻² s⁻¹, cm s⁻¹).
+
+    PAR and flow cannot be negative; a correction that would make them so reads 0.
+    """
+    t, par, flow = inputs.temperature_c, inputs.par_umol_m2_s, inputs.flow_cm_s
+    if fix is not None:
+        if t is not None:
+            t = fix.temperature_gain * t + fix.temperature_offset_c
+        if par is not None:
+            par = max(0.0, fix.par_gain * par + fix.par_offset)
+        if flow is not None:
+            flow = max(0.0, fix.flow_gain * flow + fix.flow_offset_cm_s)
+    return {"temperature_c": t, "par": par, "flow_cm_s": flow}
 
 
 def _values(outputs: Outputs) -> OutputValues:

@@ -3,7 +3,7 @@ Modbus TCP on 127.0.0.1 and the optode line over ptys to a simulated rack.
 
 The rig file names its devices only through ``[io] from_announcement``: the very file a user
 would point at ``squall simulate --ports-file``. The run uses the runtime's public API
-(load_run_inputs, plan_control, ControlLoop) on an autojumping virtual clock.
+(load_run_inputs, plan_control, create_run_log, ControlLoop) on an autojumping virtual clock.
 """
 
 from __future__ import annotations
@@ -16,17 +16,16 @@ import pytest
 
 from controller.clock import Clock, VirtualClock, run_with_clock
 from controller.control import Outputs
-from controller.runtime import ControlLoop, RunSettings, RunSummary, load_run_inputs, plan_control
-from controller.runtime._hardware_io import HardwareIO
-from controller.storage import (
-    ChamberRecord,
-    ClockKind,
-    EventKind,
-    RunEndReason,
-    RunLogReader,
-    RunLogWriter,
-    RunMeta,
+from controller.runtime import (
+    ControlLoop,
+    RunSettings,
+    RunSummary,
+    create_run_log,
+    load_run_inputs,
+    plan_control,
 )
+from controller.runtime._hardware_io import HardwareIO
+from controller.storage import ClockKind, EventKind, RunEndReason, RunLogReader
 from simulator import Rack
 from simulator.endpoints import RackServer
 
@@ -71,24 +70,11 @@ def run_on_loopback(tmp_path: Path) -> tuple[RunSummary, dict[str, Outputs], dic
     plan = plan_control(rig, compiled.chambers, settings)
     clock = VirtualClock(compiled.start_utc, io_grace_s=IO_GRACE_S)
     rack = Rack(rig, seed=5, start_utc=compiled.start_utc)
-    writer = RunLogWriter(
+    writer = create_run_log(
+        inputs,
+        plan,
         tmp_path / "run.sqlite",
-        meta=RunMeta(
-            run_id="loopback",
-            protocol_text=inputs.protocol_text,
-            rig_text=inputs.rig_text,
-            start_utc_s=compiled.start_utc.timestamp(),
-            clock_kind=ClockKind.VIRTUAL,
-            chambers=tuple(
-                ChamberRecord(
-                    chamber=c.id,
-                    water_volume_l=c.water_volume_l,
-                    sediment_area_m2=c.sediment_area_m2,
-                    bath=c.bath,
-                )
-                for c in rig.chambers
-            ),
-        ),
+        clock_kind=ClockKind.VIRTUAL,
         commit_interval_s=settings.commit_interval_for(None),
     )
     safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}

@@ -20,7 +20,7 @@ from controller.drivers import decode_outputs, decode_point, decode_safe_outputs
 from controller.errors import SquallError
 from controller.files import load_model
 from controller.rig import Rig
-from controller.rig._io import RigIo, io_from_ports
+from controller.rig._io import InputCorrection, RigIo, io_from_ports
 from controller.runtime import ChamberIO, ChamberReadings, Quantity, RunSettings
 from controller.runtime._hardware_io import HardwareIO
 from simulator import Fault, FaultKind, Rack
@@ -61,12 +61,19 @@ class Bench:
 
 
 @asynccontextmanager
-async def bench(clock: VirtualClock, *, budget_s: float = 1.5) -> AsyncIterator[Bench]:
+async def bench(
+    clock: VirtualClock,
+    *,
+    budget_s: float = 1.5,
+    corrections: dict[str, InputCorrection] | None = None,
+) -> AsyncIterator[Bench]:
     """A served rack and a started HardwareIO on it (ready), torn down afterwards."""
     rack = Rack(rig(IDS), seed=3, start_utc=START)
     server = RackServer(rack, clock=clock)
     announcement = await server.start()
-    template = RigIo(from_announcement="-", optode_period_s=OPTODE_PERIOD_S)
+    template = RigIo(
+        from_announcement="-", optode_period_s=OPTODE_PERIOD_S, corrections=corrections or {}
+    )
     io_map = io_from_ports(announcement.to_dict(), IDS, template=template)
     io = HardwareIO(
         io_map,
@@ -275,6 +282,30 @@ def test_e_stop_and_dropouts_are_reported() -> None:
             assert reading.e_stop is True and reading.comm_ok
             assert reading.temperature_c is None and reading.failed == {Quantity.TEMPERATURE}
             assert (await b.io.read("c1")).e_stop is False
+
+    virtual(body)
+
+
+def test_calibration_corrections_apply_to_the_readings() -> None:
+    fix = InputCorrection(temperature_offset_c=-0.5, par_gain=2.0, flow_offset_cm_s=-10.0)
+
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock, corrections={"c1": fix}) as b:
+            for cid in IDS:
+                assert await b.io.write(cid, DRIVE)
+            await clock.sleep(120.0)  # the lamp warms up
+            fixed, plain = await asyncio.gather(b.io.read("c1"), b.io.read("c2"))
+            assert fixed.temperature_c is not None and plain.temperature_c is not None
+            assert fixed.temperature_c == pytest.approx(
+                b.rack.truth("c1").probe_temperature_c - 0.5, abs=0.05
+            )
+            assert plain.temperature_c == pytest.approx(
+                b.rack.truth("c2").probe_temperature_c, abs=0.05
+            )
+            # both chambers get the same drive: the corrected PAR reads twice the other's,
+            # within the two sensors' 1 % noise (rig default)
+            assert fixed.par == pytest.approx(2.0 * plain.par, rel=0.06)
+            assert fixed.flow_cm_s == 0.0  # an offset cannot make flow negative
 
     virtual(body)
 

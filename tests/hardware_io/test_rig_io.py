@@ -11,7 +11,7 @@ from controller.drivers import RegisterMap, WordOrder
 from controller.errors import SquallError
 from controller.files import load_model
 from controller.rig import Rig
-from controller.rig._io import Parity, RigIo, io_from_ports, resolve_io
+from controller.rig._io import InputCorrection, Parity, RigIo, io_from_ports, resolve_io
 from simulator import Rack
 from simulator.endpoints import RackServer
 
@@ -37,6 +37,11 @@ register_map = { unit_id = 7, word_order = "low-first" }
 
 [io.optodes.c1]
 port = "/dev/ttyUSB1"
+
+[io.corrections.c2]
+temperature_offset_c = -0.12
+par_gain = 1.04
+calibrated_on = 2027-06-20
 """
 
 
@@ -63,6 +68,9 @@ def test_a_rig_names_one_link_per_module_and_its_optodes(tmp_path: Path) -> None
     assert layout.word_order is WordOrder.LOW_FIRST
     assert set(io.optodes) == {"c1"} and io.optodes["c1"].baud == 9600
     assert (io.watchdog_timeout_s, io.optode_period_s, io.optode_timeout_s) == (30.0, 20.0, 1.0)
+    fix = io.corrections["c2"]
+    assert (fix.temperature_offset_c, fix.temperature_gain, fix.par_gain) == (-0.12, 1.0, 1.04)
+    assert str(fix.calibrated_on) == "2027-06-20"
 
 
 def test_a_single_link_without_a_chamber_list_serves_every_chamber(tmp_path: Path) -> None:
@@ -111,6 +119,18 @@ def test_a_single_link_without_a_chamber_list_serves_every_chamber(tmp_path: Pat
             "remove [[io.modbus]]",
         ),
         ("[io]\nwatchdog_timeout_s = 0.1\n", "watchdog_timeout_s = 0.1", "io.watchdog", "0.5"),
+        (
+            TWO_MODULES.replace("[io.corrections.c2]", "[io.corrections.c7]"),
+            "[io.corrections.c7]",
+            "io.corrections.c7",
+            "unknown chamber",
+        ),
+        (
+            TWO_MODULES.replace("par_gain = 1.04", "par_gain = 40"),
+            "par_gain = 40",
+            "io.corrections.c2.par_gain",
+            "less than or equal to 5",
+        ),
     ],
 )
 def test_mistakes_in_the_io_table_are_located(
@@ -154,7 +174,11 @@ def announce(tmp_path: Path) -> dict:
 def test_a_ports_file_becomes_an_explicit_map(tmp_path: Path) -> None:
     data = announce(tmp_path)
     (tmp_path / "sim-ports.json").write_text(json.dumps(data))
-    template = RigIo(from_announcement="sim-ports.json", watchdog_timeout_s=12.0)
+    template = RigIo(
+        from_announcement="sim-ports.json",
+        watchdog_timeout_s=12.0,
+        corrections={"c2": InputCorrection(par_gain=1.1)},
+    )
     io = resolve_io(template, ["c1", "c2"], base_dir=tmp_path)
     (link,) = io.modbus
     assert link.tcp is not None and link.tcp.port == data["modbus"]["port"]
@@ -165,6 +189,7 @@ def test_a_ports_file_becomes_an_explicit_map(tmp_path: Path) -> None:
         assert {"unit_id": block.unit_id, "base": block.base} == data["modbus"]["blocks"][cid]
         assert io.optodes[cid].port == data["optodes"][cid]
     assert io.watchdog_timeout_s == 12.0 and io.from_announcement is None
+    assert io.corrections["c2"].par_gain == 1.1  # the rig's own settings are kept
 
 
 def test_a_rig_file_can_point_at_a_ports_file_beside_it(tmp_path: Path) -> None:
