@@ -175,17 +175,33 @@ class Decider:
         self._drivers = frozenset(plan.drivers)
 
     def note_write(self, chamber: str, ok: bool) -> None:
-        """Record whether the latest write to a chamber arrived (failed writes count as a
-        communication problem at the next tick)."""
+        """Record whether the latest write to a chamber arrived.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier (idle chambers are ignored).
+        ok
+            Whether the devices took the command, dimensionless; a failed write counts as a
+            communication problem at the next tick.
+        """
         state = self._chambers.get(chamber)
         if state is not None:
             state.write_ok = ok
 
     def stop_outputs(self, chamber: str) -> Outputs:
-        """Outputs to leave a protocol chamber in when the run stops, %.
+        """Outputs to leave a protocol chamber in when the run stops.
 
-        The chamber's default safe state, lowered further by whatever its interlocks force
-        at the latest tick (a leak keeps the pump off).
+        Parameters
+        ----------
+        chamber
+            Protocol chamber identifier.
+
+        Returns
+        -------
+        Outputs
+            The chamber's default safe state, lowered further by whatever its interlocks
+            force at the latest tick (a leak keeps the pump off), % each.
         """
         safe = self.plan.chambers[chamber].interlocks.safe_outputs()
         force = self._chambers[chamber].force
@@ -199,7 +215,18 @@ class Decider:
         )
 
     def interlock_state(self, chamber: str) -> InterlockState:
-        """The interlock state of a protocol chamber after the latest tick."""
+        """The interlock state of a protocol chamber after the latest tick.
+
+        Parameters
+        ----------
+        chamber
+            Protocol chamber identifier.
+
+        Returns
+        -------
+        InterlockState
+            Condition states, overall safety and the interlocks' memory (times in s).
+        """
         return self._chambers[chamber].interlock
 
     def decide(

@@ -91,7 +91,18 @@ class ChamberReadings:
     failed: frozenset[Quantity] = field(default_factory=frozenset)
 
     def fresh(self, quantity: Quantity) -> bool:
-        """Whether ``quantity`` arrived fresh in this read (dimensionless)."""
+        """Whether a quantity arrived fresh in this read.
+
+        Parameters
+        ----------
+        quantity
+            The quantity asked about.
+
+        Returns
+        -------
+        bool
+            True when its value is present and it is not listed in ``failed``, dimensionless.
+        """
         value = {
             Quantity.TEMPERATURE: self.temperature_c,
             Quantity.OXYGEN: self.o2_umol_l,
@@ -144,13 +155,45 @@ class ChamberIO(Protocol):
         ...
 
     async def run(self, ready: asyncio.Event) -> None:
-        """Background work; set ``ready`` once reads and writes work; run until cancelled."""
+        """Do the background work until cancelled.
+
+        Parameters
+        ----------
+        ready
+            Set once reads and writes work; the loop energises nothing before.
+        """
         ...
 
     async def read(self, chamber: str) -> ChamberReadings:
-        """Read every device of one chamber (each device call under a timeout)."""
+        """Read every device of one chamber, each device call under a timeout.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+
+        Returns
+        -------
+        ChamberReadings
+            Fresh values (°C, µmol L⁻¹, % air saturation, µmol photons m⁻² s⁻¹, cm s⁻¹, level
+            and E-stop contacts) or None for what did not arrive; never raises for a device
+            that fails.
+        """
         ...
 
     async def write(self, chamber: str, outputs: Outputs) -> bool:
-        """Drive one chamber's actuators; True when the devices took the command."""
+        """Drive one chamber's actuators.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        outputs
+            Heater, chiller, lamp and pump drives, % each.
+
+        Returns
+        -------
+        bool
+            True when the devices took the command, dimensionless.
+        """
         ...

@@ -98,7 +98,13 @@ class LogSink:
         """Alarm and event records a failed write dropped, dimensionless."""
 
     def put(self, item: Item) -> None:
-        """Queue one tick's sample rows, an alarm record or an event record."""
+        """Queue records for the log.
+
+        Parameters
+        ----------
+        item
+            One tick's sample rows, an alarm record or an event record.
+        """
         self._queue.append(item)
         self._wake.set()
 
@@ -108,7 +114,7 @@ class LogSink:
         return len(self._queue)
 
     async def run(self) -> None:
-        """Write queued items as they come, until cancelled."""
+        """Write queued items as they come, until cancelled (then :meth:`drain` the rest)."""
         while True:
             await self._wake.wait()
             self._wake.clear()

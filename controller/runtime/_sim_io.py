@@ -173,11 +173,23 @@ class SimulatedIO:
 
     # ------------------------------------------------------------------ operator inputs
     def press_e_stop(self, chamber: str | None = None) -> None:
-        """Press the E-stop of one chamber's module (None: every chamber)."""
+        """Press an E-stop: its contact opens on the chamber's module.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier; None for every chamber.
+        """
         self._e_stop.update(self._ids(chamber))
 
     def release_e_stop(self, chamber: str | None = None) -> None:
-        """Release the E-stop of one chamber's module (None: every chamber)."""
+        """Release an E-stop (the interlock stays latched until acknowledged).
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier; None for every chamber.
+        """
         self._e_stop.difference_update(self._ids(chamber))
 
     def _ids(self, chamber: str | None) -> tuple[str, ...]:
