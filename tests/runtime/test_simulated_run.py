@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -18,12 +19,14 @@ from controller.clock import Clock
 from controller.control import Outputs, simc
 from controller.errors import SquallError
 from controller.protocol import setpoints_at
+from controller.rig import Fault, FaultKind
 from controller.runtime import (
     ChamberReadings,
     RunSettings,
     SetpointTable,
     SimulatedIO,
     SimulatedRun,
+    default_log_path,
     node_model,
     plan_control,
 )
@@ -241,3 +244,47 @@ def test_the_run_starts_at_the_protocols_begins_unless_told_otherwise(files: Fil
     assert summary.start_utc == run.clock.utc(0.0)
     assert summary.run_s == pytest.approx(0.1 * 3600)
     assert Path(summary.log_path) == log
+
+
+def test_an_on_off_heater_is_time_proportioned_and_still_holds_temperature(
+    files: Files,
+) -> None:
+    proto, rig, log = files(hours=2.0)
+    settings = RunSettings(period_s=10.0, on_off_heaters=frozenset({"B"}), on_off_cycle_s=120.0)
+    run = SimulatedRun.prepare(proto, rig, log, settings=settings)
+    drive(run)
+    with RunLogReader(log) as reader:
+        samples = reader.samples("B")
+    assert set(samples.heater_pct) == {0.0, 100.0}
+    # the relay switches at most twice per 120 s cycle
+    switches = int((samples.heater_pct.diff().fillna(0.0) != 0.0).sum())
+    assert switches <= 2 * (2 * 3600 / 120) + 1
+    settled = samples[samples.elapsed_s >= 1800]
+    error = settled.temperature_c - settled.temperature_setpoint_c
+    # 400 W into 8 L: a 120 s cycle at the ~16 % duty needed here ripples by about 0.35 °C
+    assert error.abs().max() <= 0.5 and abs(error.mean()) <= 0.05
+
+
+def test_outputs_stay_safe_until_the_first_healthy_tick(files: Files) -> None:
+    proto, rig, log = files(hours=0.5)
+    run = SimulatedRun.prepare(proto, rig, log, settings=RunSettings(period_s=10.0))
+    run.rack.inject(
+        Fault(kind=FaultKind.DROPOUT, chamber="B", sensor="temperature", at_s=0.0, duration_s=300.0)
+    )
+    drive(run)
+    safe = run.plan.chambers["B"].interlocks.safe_outputs()
+    with RunLogReader(log) as reader:
+        samples = reader.samples("B")
+    blind = samples[samples.t_s < 300.0]
+    assert blind.temperature_c.isna().all()
+    assert (blind.heater_pct == safe.heater_pct).all() and (blind.lamp_pct == 0.0).all()
+    assert (blind.pump_pct == safe.pump_pct).all()
+    seeing = samples[samples.t_s >= 310.0]
+    assert (seeing.lamp_pct > 0.0).all()  # control took over at the first healthy tick
+
+
+def test_the_default_log_is_named_after_the_protocol_and_the_launch_time() -> None:
+    when = datetime(2027, 7, 1, 6, 5, 9, tzinfo=UTC)
+    assert default_log_path(Path("protocols/storm.toml"), when) == Path(
+        "runs/storm-20270701T060509Z.sqlite"
+    )
