@@ -1,30 +1,119 @@
 """Actuators of the rack: commands, what faults let through, and the heaters' dead time.
 
 Rule: commands are stored as given; what the actuators *do* is recomputed from the commands
-and the active faults whenever either changes. Heater and chiller power then travels down a
-delay line per thermal node (transport dead time) before the water feels it. The delay line
-is event based: each change is queued with its arrival time, so a long dead time costs
-nothing per step.
+and the active faults whenever either changes (only the groups whose commands changed, when
+no fault overrides an actuator). Heater and chiller power then travels down a delay line per
+thermal node (transport dead time) before the water feels it. The delay line is event
+based: each change is queued with its arrival time, so a long dead time costs nothing per
+step, and the earliest pending arrival is remembered so that a step with nothing arriving
+does not look at the lines at all.
 """
 
 from __future__ import annotations
 
 import math
 from collections import deque
+from typing import NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
 
-from simulator._faults import FaultBook
+from simulator._faults import ActuatorMasks, FaultBook
 from simulator._params import RackParams
 from simulator._physics import lamp_curve, pump_fraction
 
-__all__ = ["Actuators"]
+__all__ = ["Actuators", "Arrival", "Effective", "effective_drives", "substeps"]
 
 F = NDArray[np.float64]
 
 _EPS_S = 1e-9
 _GRID_TOL = 1e-6
+_POWER = 1  # heater or chiller commands changed
+_LAMP = 2
+_PUMP = 4
+_ROW_FLAG = (_POWER, _POWER, _LAMP, _PUMP)
+
+
+class Arrival(NamedTuple):
+    """A heater/chiller power change reaching a node's water inside a segment.
+
+    Attributes
+    ----------
+    k
+        Index of the first sub-step that feels it, dimensionless (0 ≤ k < n).
+    node
+        Thermal node, dimensionless index.
+    heater_w
+        Heater power from then on, W.
+    chiller_w
+        Chiller heat removal from then on, W.
+    """
+
+    k: int
+    node: int
+    heater_w: float
+    chiller_w: float
+
+
+class Effective(NamedTuple):
+    """Drives the actuators actually deliver, % (rows of shape ``(..., M)`` or ``(..., N)``)."""
+
+    heater_pct: F
+    chiller_pct: F
+    lamp_pct: F
+    pump_pct: F
+
+
+def effective_drives(
+    p: RackParams, heater: F, chiller: F, lamp: F, pump: F, masks: ActuatorMasks
+) -> Effective:
+    """What faults let through of commanded drives.
+
+    Parameters
+    ----------
+    p
+        Resolved rack parameters.
+    heater, chiller, lamp, pump
+        Commanded drives per chamber, %, shape ``(..., N)``.
+    masks
+        Active fault masks.
+
+    Returns
+    -------
+    Effective
+        Heater and chiller per thermal node (driven by the node's first chamber), shape
+        ``(..., M)``; lamp and pump per chamber, shape ``(..., N)``; all %.
+
+    Notes
+    -----
+    A power loss (of the chamber, or of the whole rack) turns lamp and pump off and, for the
+    chamber driving a node, the node's heater and chiller. A heater stuck on or off, or a
+    failed chiller, on any chamber of a node acts on the node's heater or chiller; stuck off
+    wins over stuck on.
+    """
+    drv = p.driver_of_node
+    heater_n = heater[..., drv]
+    chiller_n = chiller[..., drv]
+    if not masks.actuators_hit:
+        return Effective(heater_n, chiller_n, lamp, pump)
+    powered = ~(masks.power_off | masks.rack_power_off)
+    lamp_e = np.where(powered, lamp, 0.0)
+    pump_e = np.where(powered & ~masks.pump_failed, pump, 0.0)
+    node_of, m = p.node_of_chamber, len(drv)
+    stuck_on = np.bincount(node_of, masks.heater_on, m) > 0
+    stuck_off = np.bincount(node_of, masks.heater_off, m) > 0
+    chiller_dead = np.bincount(node_of, masks.chiller_failed, m) > 0
+    node_powered = powered[drv]
+    heater_e = np.where(stuck_on, 100.0, heater_n)
+    heater_e = np.where(stuck_off | ~node_powered, 0.0, heater_e)
+    chiller_e = np.where(chiller_dead | ~node_powered, 0.0, chiller_n)
+    return Effective(heater_e, chiller_e, lamp_e, pump_e)
+
+
+def substeps(span_s: float, step_s: float) -> tuple[int, float]:
+    """Number and length (s) of equal sub-steps no longer than ``step_s`` covering a span."""
+    n = max(1, math.ceil(span_s / step_s - 1e-9))
+    return n, span_s / n
 
 
 class Actuators:
@@ -43,6 +132,8 @@ class Actuators:
         Effective lamp and pump drive of each chamber, %, shape ``(N,)``.
     lit
         1 where a lamp is on, else 0, shape ``(N,)``.
+    any_lit
+        Whether any lamp is on.
     new_lamp_par
         PAR of each lamp when new and warm at its drive, µmol m⁻² s⁻¹, shape ``(N,)``.
     flow_cm_s
@@ -51,128 +142,237 @@ class Actuators:
         Fresh inflow into each chamber, L s⁻¹, shape ``(N,)``.
     water_w
         Heater and chiller power reaching each node's water now, W, shape ``(2, M)``.
-    flow_version
-        Counter raised whenever pump flow changes, dimensionless.
-    dirty
-        True when commands changed since the last :meth:`refresh`.
+    flow_version, lamp_version
+        Counters raised whenever pump flow or lamp output changes, dimensionless.
     """
 
     def __init__(self, p: RackParams) -> None:
         n, m = len(p.chamber_ids), len(p.node_names)
         self._p = p
         self._m = m
-        self._cmd = np.zeros((4, n))  # heater, chiller, lamp, pump (%), per chamber
-        self._sent_w = np.zeros((2, m))
+        self._cmd: list[list[float]] = [[0.0] * n for _ in range(4)]  # heater, chiller, lamp, pump
+        self._heater_w_pct = (p.heater_max_w / 100.0).tolist()
+        self._chiller_w_pct = (p.chiller_max_w / 100.0).tolist()
+        self._dead_s = p.dead_time_s.tolist()
+        self._sent: list[tuple[float, float]] = [(0.0, 0.0)] * m
         self._line: list[deque[tuple[float, float, float]]] = [deque() for _ in range(m)]
+        self._next_arrival_s = math.inf
+        self._faulted = False
+        self._energy_j = [[0.0] * m, [0.0] * m]  # heater, chiller, up to _since_s
+        self._since_s = [0.0] * m  # when each node's present power began, s
         self.water_w = np.zeros((2, m))
         self.heater_pct = np.zeros(m)
         self.chiller_pct = np.zeros(m)
         self.lamp_pct = np.zeros(n)
         self.pump_pct = np.zeros(n)
         self.lit = np.zeros(n)
+        self.any_lit = False
         self.new_lamp_par = np.zeros(n)
         self.flow_cm_s = np.zeros(n)
         self.flush_l_s = np.zeros(n)
         self.flow_version = 0
-        self._lamp_seen = np.full(n, np.nan)
-        self._pump_seen = np.full(n, np.nan)
-        self.dirty = True
+        self.lamp_version = 0
+        self._dirty = _POWER | _LAMP | _PUMP
+
+    @property
+    def dirty(self) -> bool:
+        """True when commands changed since the last :meth:`refresh`."""
+        return self._dirty != 0
 
     def command(self, chamber: int, row: int, value: float) -> None:
         """Store a drive (%) for a chamber; row 0 heater, 1 chiller, 2 lamp, 3 pump."""
-        self._cmd[row, chamber] = value
-        self.dirty = True
+        cmd = self._cmd[row]
+        if cmd[chamber] != value:
+            cmd[chamber] = value
+            self._dirty |= _ROW_FLAG[row]
 
-    def refresh(self, t_s: float, book: FaultBook) -> None:
-        """Recompute effective drives at ``t_s`` (s) and queue changed heat power."""
+    def commands(self) -> F:
+        """Commanded drives, %, shape ``(4, N)`` (heater, chiller, lamp, pump)."""
+        return np.array(self._cmd)
+
+    def refresh(self, t_s: float, book: FaultBook, faults_changed: bool = False) -> None:
+        """Recompute effective drives at ``t_s`` (s) and queue changed heat power.
+
+        Parameters
+        ----------
+        t_s
+            Present simulated time, s.
+        book
+            The rack's faults.
+        faults_changed
+            True when the active faults changed since the last refresh.
+        """
+        masks = book.masks
+        dirty = self._dirty
+        self._dirty = 0
+        if faults_changed or masks.actuators_hit or self._faulted:
+            self._faulted = masks.actuators_hit
+            cmd = self._cmd
+            eff = effective_drives(
+                self._p,
+                np.array(cmd[0]),
+                np.array(cmd[1]),
+                np.array(cmd[2]),
+                np.array(cmd[3]),
+                masks,
+            )
+            if not np.array_equal(eff.lamp_pct, self.lamp_pct):
+                self._set_lamp(eff.lamp_pct)
+            if not np.array_equal(eff.pump_pct, self.pump_pct):
+                self._set_pump(eff.pump_pct)
+            self.heater_pct, self.chiller_pct = eff.heater_pct, eff.chiller_pct
+            self._queue(t_s)
+            return
+        if dirty & _LAMP:
+            self._set_lamp(np.array(self._cmd[2]))
+        if dirty & _PUMP:
+            self._set_pump(np.array(self._cmd[3]))
+        if dirty & _POWER:
+            drv = self._p.driver_of_node
+            self.heater_pct = np.array(self._cmd[0])[drv]
+            self.chiller_pct = np.array(self._cmd[1])[drv]
+            self._queue(t_s)
+
+    def _set_lamp(self, lamp_pct: F) -> None:
         p = self._p
-        drv = p.driver_of_node
-        self.dirty = False
-        if not book.active:
-            self.lamp_pct = self._cmd[2].copy()
-            self.pump_pct = self._cmd[3].copy()
-            heater = self._cmd[0, drv]
-            chiller = self._cmd[1, drv]
-        else:
-            masks = book.masks
-            powered = ~(masks.power_off | masks.rack_power_off)
-            self.lamp_pct = np.where(powered, self._cmd[2], 0.0)
-            self.pump_pct = np.where(powered & ~masks.pump_failed, self._cmd[3], 0.0)
-            node_of, m = p.node_of_chamber, self._m
-            stuck_on = np.bincount(node_of, masks.heater_on, m) > 0
-            stuck_off = np.bincount(node_of, masks.heater_off, m) > 0
-            chiller_dead = np.bincount(node_of, masks.chiller_failed, m) > 0
-            node_powered = powered[drv]
-            heater = np.where(stuck_on, 100.0, self._cmd[0, drv])
-            heater = np.where(stuck_off | ~node_powered, 0.0, heater)
-            chiller = np.where(chiller_dead | ~node_powered, 0.0, self._cmd[1, drv])
-        self.heater_pct, self.chiller_pct = heater, chiller
-        if not np.array_equal(self.lamp_pct, self._lamp_seen):
-            self._lamp_seen = self.lamp_pct
-            self.new_lamp_par = lamp_curve(self.lamp_pct, p.par_at_full, p.curve_shape)
-            self.lit = (self.lamp_pct > 0.0).astype(float)
-        if not np.array_equal(self.pump_pct, self._pump_seen):
-            self._pump_seen = self.pump_pct
-            pump = pump_fraction(self.pump_pct, p.dead_band_pct)
-            self.flow_cm_s = pump * p.flow_at_full_cm_s
-            self.flush_l_s = pump * p.flush_at_full_l_s
-            self.flow_version += 1
-        watts = np.empty((2, self._m))
-        np.multiply(heater, p.heater_max_w / 100.0, out=watts[0])
-        np.multiply(chiller, p.chiller_max_w / 100.0, out=watts[1])
-        for j in np.flatnonzero((watts != self._sent_w).any(axis=0)):
+        self.lamp_pct = lamp_pct
+        self.new_lamp_par = lamp_curve(lamp_pct, p.par_at_full, p.curve_shape)
+        self.lit = (lamp_pct > 0.0).astype(float)
+        self.any_lit = bool(self.lit.any())
+        self.lamp_version += 1
+
+    def _set_pump(self, pump_pct: F) -> None:
+        p = self._p
+        self.pump_pct = pump_pct
+        pump = pump_fraction(pump_pct, p.dead_band_pct)
+        self.flow_cm_s = pump * p.flow_at_full_cm_s
+        self.flush_l_s = pump * p.flush_at_full_l_s
+        self.flow_version += 1
+
+    def _queue(self, t_s: float) -> None:
+        """Queue each node's changed heater and chiller power to arrive after its dead time."""
+        heater = self.heater_pct.tolist()
+        chiller = self.chiller_pct.tolist()
+        for j in range(self._m):
+            watts = (heater[j] * self._heater_w_pct[j], chiller[j] * self._chiller_w_pct[j])
+            if watts == self._sent[j]:
+                continue
+            self._sent[j] = watts
             line = self._line[j]
-            arrive = t_s + float(p.dead_time_s[j])
+            arrive = t_s + self._dead_s[j]
             if line and line[-1][0] == arrive:
                 line.pop()
-            line.append((arrive, float(watts[0, j]), float(watts[1, j])))
-        self._sent_w = watts
+            line.append((arrive, *watts))
+            if arrive < self._next_arrival_s:
+                self._next_arrival_s = arrive
 
     def deliver(self, t_s: float) -> None:
         """Let queued power changes that have arrived by ``t_s`` (s) reach the water."""
+        if t_s + _EPS_S < self._next_arrival_s:
+            return
+        water = self.water_w
+        heater_j, chiller_j = self._energy_j
+        since = self._since_s
+        best = math.inf
         for j, line in enumerate(self._line):
             while line and line[0][0] <= t_s + _EPS_S:
-                _, heater_w, chiller_w = line.popleft()
-                self.water_w[0, j] = heater_w
-                self.water_w[1, j] = chiller_w
+                arrive, heater_w, chiller_w = line.popleft()
+                heater_j[j] += float(water[0, j]) * (arrive - since[j])
+                chiller_j[j] += float(water[1, j]) * (arrive - since[j])
+                since[j] = arrive
+                water[0, j] = heater_w
+                water[1, j] = chiller_w
+            if line and line[0][0] < best:
+                best = line[0][0]
+        self._next_arrival_s = best
 
-    def next_off_grid(self, t0_s: float, t1_s: float, h: float) -> float | None:
-        """First queued arrival inside (t0, t1) that falls between sub-step boundaries, s."""
-        best: float | None = None
-        for line in self._line:
-            for arrive, _, _ in line:
+    def energy_j(self, t_s: float) -> F:
+        """Heat delivered by each node's heater and removed by its chiller since start.
+
+        Parameters
+        ----------
+        t_s
+            Present simulated time, s.
+
+        Returns
+        -------
+        numpy.ndarray
+            J, shape ``(2, M)``: the power reaching the water integrated over time.
+        """
+        done = np.array(self._energy_j)
+        return done + self.water_w * (t_s - np.array(self._since_s))
+
+    def arrivals(self, t0_s: float, t1_s: float, h: float) -> tuple[list[Arrival], float | None]:
+        """Queued power changes inside (t0, t1) on a grid of sub-steps of ``h`` seconds.
+
+        Returns
+        -------
+        tuple
+            The arrivals on sub-step boundaries (in time order per node), and the first
+            arrival that falls between boundaries (s), or None. The caller shortens the
+            segment to end there.
+        """
+        if self._next_arrival_s >= t1_s - _EPS_S:
+            return [], None
+        found: list[Arrival] = []
+        off_grid: float | None = None
+        for j, line in enumerate(self._line):
+            for index, (arrive, heater_w, chiller_w) in enumerate(line):
                 if arrive >= t1_s - _EPS_S:
                     break
                 k = (arrive - t0_s) / h
-                if abs(k - round(k)) > _GRID_TOL and (best is None or arrive < best):
-                    best = arrive
-        return best
-
-    def power_path(self, t0_s: float, t1_s: float, n: int, h: float) -> tuple[F, F]:
-        """Heater and chiller power per sub-step of [t0, t1] (W, shape ``(n, M)``).
-
-        Arrivals inside the segment must lie on sub-step boundaries (see
-        :meth:`next_off_grid`); each applies from its boundary on.
-        """
-        heater: F | None = None
-        chiller: F | None = None
-        for j, line in enumerate(self._line):
-            for arrive, heater_w, chiller_w in line:
-                if arrive >= t1_s - _EPS_S:
+                near = round(k)
+                if abs(k - near) > _GRID_TOL:
+                    if off_grid is None or arrive < off_grid:
+                        off_grid = arrive
                     break
-                if heater is None or chiller is None:
-                    heater = np.repeat(self.water_w[0][None, :], n, axis=0)
-                    chiller = np.repeat(self.water_w[1][None, :], n, axis=0)
-                k = max(0, round((arrive - t0_s) / h))
-                heater[k:, j] = heater_w
-                chiller[k:, j] = chiller_w
-        if heater is None or chiller is None:
-            shape = (n, self._m)
-            return np.broadcast_to(self.water_w[0], shape), np.broadcast_to(self.water_w[1], shape)
-        return heater, chiller
+                snapped = t0_s + max(0, near) * h
+                if snapped != arrive:  # account heat from the boundary the water feels it at
+                    line[index] = (snapped, heater_w, chiller_w)
+                found.append(Arrival(max(0, near), j, heater_w, chiller_w))
+        return found, off_grid
 
-    @staticmethod
-    def steps(span_s: float, step_s: float) -> tuple[int, float]:
-        """Number and length (s) of equal sub-steps no longer than ``step_s`` covering a span."""
-        n = max(1, math.ceil(span_s / step_s - 1e-9))
-        return n, span_s / n
+    def pending(self) -> list[list[tuple[float, float, float]]]:
+        """Queued (arrival s, heater W, chiller W) per node, earliest first (copies)."""
+        return [list(line) for line in self._line]
+
+    def load(
+        self,
+        cmd: F,
+        water_w: F,
+        lines: list[list[tuple[float, float, float]]],
+        book: FaultBook,
+    ) -> None:
+        """Take over a state computed elsewhere (the open-loop integrator).
+
+        Parameters
+        ----------
+        cmd
+            Commanded drives, %, shape ``(4, N)`` (heater, chiller, lamp, pump).
+        water_w
+            Heater and chiller power reaching each node now, W, shape ``(2, M)``.
+        lines
+            Power changes still on their way per node: (arrival s, heater W, chiller W).
+        book
+            The rack's faults (for the effective drives).
+        """
+        self._cmd = [[float(v) for v in row] for row in cmd]
+        eff = effective_drives(self._p, cmd[0], cmd[1], cmd[2], cmd[3], book.masks)
+        if not np.array_equal(eff.lamp_pct, self.lamp_pct):
+            self._set_lamp(np.array(eff.lamp_pct, dtype=float))
+        if not np.array_equal(eff.pump_pct, self.pump_pct):
+            self._set_pump(np.array(eff.pump_pct, dtype=float))
+        self.heater_pct = np.array(eff.heater_pct, dtype=float)
+        self.chiller_pct = np.array(eff.chiller_pct, dtype=float)
+        self._faulted = book.masks.actuators_hit
+        heater = self.heater_pct.tolist()
+        chiller = self.chiller_pct.tolist()
+        self._sent = [
+            (heater[j] * self._heater_w_pct[j], chiller[j] * self._chiller_w_pct[j])
+            for j in range(self._m)
+        ]
+        self.water_w = np.array(water_w, dtype=float)
+        self._line = [deque(line) for line in lines]
+        heads = [line[0][0] for line in self._line if line]
+        self._next_arrival_s = min(heads) if heads else math.inf
+        self._dirty = 0

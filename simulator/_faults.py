@@ -4,7 +4,8 @@ Rule: a fault is active on the half-open interval [start_s, end_s). It starts at
 ``at_s`` or, if injected later than that, at the moment of injection; it lasts
 ``duration_s`` or until cleared. The book never reads a clock: the rack tells it the time.
 Actuator effects are summarised as boolean masks over chambers, recomputed whenever the
-active set changes.
+active set changes. The book remembers the next moment anything can change (the earliest
+fault edge after the last update), so bringing it up to date between edges costs nothing.
 """
 
 from __future__ import annotations
@@ -66,6 +67,10 @@ class ActuatorMasks:
         Water lost per chamber, L s⁻¹.
     rack_power_off
         A rack-wide power loss is active.
+    actuators_hit
+        Any fault overrides an actuator (heater, chiller, pump, power) now.
+    leaking
+        Any chamber is leaking now.
     """
 
     heater_on: B
@@ -75,6 +80,8 @@ class ActuatorMasks:
     power_off: B
     leak_l_s: F
     rack_power_off: bool
+    actuators_hit: bool
+    leaking: bool
 
 
 class FaultBook:
@@ -91,6 +98,9 @@ class FaultBook:
         self._index = {cid: i for i, cid in enumerate(chamber_ids)}
         self._faults: list[ScheduledFault] = []
         self._active: list[ScheduledFault] = []
+        self._stale = True
+        self.next_edge_s = math.inf
+        """Earliest fault start or end after the time of the last update, s (``inf``: none)."""
         self.masks = self._compute_masks()
 
     def add(self, fault: Fault, now_s: float) -> ScheduledFault:
@@ -105,6 +115,7 @@ class FaultBook:
         end = math.inf if fault.duration_s is None else start + fault.duration_s
         entry = ScheduledFault(fault=fault, chambers=chambers, start_s=start, end_s=end)
         self._faults.append(entry)
+        self._stale = True
         return entry
 
     def clear(self, now_s: float, kind: FaultKind | None, chamber_id: str | None) -> int:
@@ -122,6 +133,7 @@ class FaultBook:
             if entry.end_s > now_s:
                 entry.end_s = max(now_s, entry.start_s)
                 cleared += 1
+        self._stale = True
         return cleared
 
     def update(self, t_s: float) -> tuple[list[ScheduledFault], bool]:
@@ -129,6 +141,9 @@ class FaultBook:
 
         Returns the faults that just began and whether the active set changed at all.
         """
+        if not self._stale and t_s + _EPS_S < self.next_edge_s:
+            return [], False
+        self._stale = False
         self._faults = [f for f in self._faults if f.end_s > t_s + _EPS_S]
         now_active = [f for f in self._faults if f.active_at(t_s)]
         began = [f for f in now_active if not any(f is g for g in self._active)]
@@ -136,6 +151,7 @@ class FaultBook:
         self._active = now_active
         if changed:
             self.masks = self._compute_masks()
+        self.next_edge_s = self.next_boundary(t_s)
         return began, changed
 
     def next_boundary(self, t_s: float) -> float:
@@ -146,6 +162,16 @@ class FaultBook:
                 if t_s + _EPS_S < edge < best:
                     best = edge
         return best
+
+    def edges(self, t0_s: float, t1_s: float) -> list[float]:
+        """Fault starts and ends strictly inside (t0, t1) (s), sorted, without repeats."""
+        found = {
+            edge
+            for entry in self._faults
+            for edge in (entry.start_s, entry.end_s)
+            if t0_s + _EPS_S < edge < t1_s - _EPS_S
+        }
+        return sorted(found)
 
     @property
     def active(self) -> tuple[ScheduledFault, ...]:
@@ -185,6 +211,13 @@ class FaultBook:
                 leak[idx] += (entry.fault.magnitude or 0.0) / 3600.0
             if entry.fault.kind is FaultKind.POWER_LOSS and entry.fault.chamber is None:
                 rack_power_off = True
+        overriding = (
+            FaultKind.HEATER_STUCK_ON,
+            FaultKind.HEATER_STUCK_OFF,
+            FaultKind.CHILLER_FAILURE,
+            FaultKind.PUMP_FAILURE,
+            FaultKind.POWER_LOSS,
+        )
         return ActuatorMasks(
             heater_on=flags[FaultKind.HEATER_STUCK_ON],
             heater_off=flags[FaultKind.HEATER_STUCK_OFF],
@@ -193,4 +226,6 @@ class FaultBook:
             power_off=flags[FaultKind.POWER_LOSS],
             leak_l_s=leak,
             rack_power_off=rack_power_off,
+            actuators_hit=any(bool(flags[kind].any()) for kind in overriding),
+            leaking=bool(leak.any()),
         )

@@ -14,9 +14,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from simulator._params import RackParams
-from simulator._science import light_limited, log_arrhenius_per_ev
+from simulator._science import (
+    ZERO_CELSIUS_K,
+    ArrheniusLine,
+    light_limited,
+    log_arrhenius_per_ev,
+)
 
-__all__ = ["metabolism", "rates_from_log_arrhenius", "source_umol_l_s"]
+__all__ = ["Metabolism", "metabolism", "rates_from_log_arrhenius"]
 
 F = NDArray[np.float64]
 
@@ -76,26 +81,125 @@ def metabolism(par: F, temp_c: F, p: RackParams) -> tuple[F, F]:
     return rates_from_log_arrhenius(par, temp_c, log_arrhenius_per_ev(temp_c, p.t_ref_c), p)
 
 
-def source_umol_l_s(par: F, temp_c: F, ln_a1: F, volume_l: F, p: RackParams) -> F:
-    """Net O2 change the community causes in the chamber water.
+class Metabolism:
+    """Net O2 source of every chamber's community, arranged for many sub-steps at once.
+
+    Arrays are chamber-major: temperatures ``(N, n)`` (n sub-steps, in kelvin), factors
+    ``(N, 2, n)`` with production in row 0 and respiration in row 1.
 
     Parameters
     ----------
-    par
-        PAR at the community, µmol photons m⁻² s⁻¹, shape ``(..., N)``.
-    temp_c
-        Water temperature, °C, same shape.
-    ln_a1
-        ln of the 1 eV Arrhenius factor at ``temp_c``, eV⁻¹, same shape.
-    volume_l
-        Chamber water volume, L, shape ``(N,)``.
     p
         Resolved rack parameters.
 
-    Returns
-    -------
-    numpy.ndarray
-        (GPP − R)·A/V, µmol L⁻¹ s⁻¹.
+    Notes
+    -----
+    The same model as :func:`rates_from_log_arrhenius`, arranged for speed. With the 1 eV
+    Arrhenius line ln A₁ = slope/T + intercept of :class:`ArrheniusLine`, a rate at T is
+    rate_ref·exp(E·intercept)·exp(E·slope/T); the first two factors, the light limitation
+    tanh(I/Ik) and the area-to-volume ratio A/(3600·V) are folded into per-chamber weights
+    (:meth:`weights`), so the net source is w_gpp·exp(E_gpp·slope/T) −
+    w_resp·exp(E_resp·slope/T), one ``exp`` over a stacked array.
     """
-    gpp, resp = rates_from_log_arrhenius(par, temp_c, ln_a1, p)
-    return np.asarray((gpp - resp) * (p.area_m2 / volume_l) / 3600.0, dtype=float)
+
+    def __init__(self, p: RackParams) -> None:
+        line = ArrheniusLine(p.t_ref_c)
+        energies = np.stack((p.ea_gpp_ev, p.ea_resp_ev), axis=1)  # (N, 2)
+        self.exponent_k: F = energies * line.slope[:, None]
+        """E·slope of production and respiration, K, shape ``(N, 2)``."""
+        rates = np.stack((p.gpp_max_umol_m2_h, p.resp_umol_m2_h), axis=1)
+        self._scale = (
+            rates * np.exp(energies * line.intercept[:, None]) * (p.area_m2 / 3600.0)[:, None]
+        )
+        self._inv_ik = 1.0 / p.ik_umol_m2_s
+        threshold = p.stress_threshold_c
+        finite = np.isfinite(threshold)
+        self.stressed = bool(finite.any())
+        """Whether any chamber has a thermal-stress threshold."""
+        self.lowest_threshold_k = float(threshold.min()) + ZERO_CELSIUS_K
+        """Lowest stress threshold, K (``inf`` without any)."""
+        self._threshold_k = np.where(finite, threshold, 1e6) + ZERO_CELSIUS_K
+        self._stress_slope = np.where(
+            finite[:, None],
+            np.stack((-p.stress_gpp_loss_per_c, p.stress_resp_gain_per_c), axis=1),
+            0.0,
+        )[:, :, None]
+
+    def light(self, par: F) -> F:
+        """Light limitation tanh(I/Ik) of Jassby & Platt (1976), dimensionless.
+
+        Parameters
+        ----------
+        par
+            PAR at the community, µmol photons m⁻² s⁻¹, shape ``(N,)`` or ``(N, n)``.
+
+        Returns
+        -------
+        numpy.ndarray
+            tanh(I/Ik), dimensionless, shape of ``par``.
+        """
+        inv_ik = self._inv_ik if np.ndim(par) == 1 else self._inv_ik[:, None]
+        return np.tanh(par * inv_ik)
+
+    def weights(self, light: F, volume_l: F) -> F:
+        """Weights w of production and respiration for :meth:`factors`.
+
+        Parameters
+        ----------
+        light
+            Light limitation (see :meth:`light`), dimensionless, shape ``(N,)`` or ``(N, n)``.
+        volume_l
+            Chamber water volume, L, shape ``(N,)``.
+
+        Returns
+        -------
+        numpy.ndarray
+            µmol L⁻¹ s⁻¹; shape ``(N, 2, 1)`` for one light level per chamber, ``(N, 2, n)``
+            for a light level per sub-step.
+        """
+        scale = self._scale / volume_l[:, None]
+        if np.ndim(light) == 1:
+            out = np.empty((len(volume_l), 2, 1))
+            np.multiply(light, scale[:, 0], out=out[:, 0, 0])
+            out[:, 1, 0] = scale[:, 1]
+            return out
+        out = np.empty((len(volume_l), 2, light.shape[1]))
+        np.multiply(light, scale[:, 0:1], out=out[:, 0])
+        out[:, 1] = scale[:, 1:2]
+        return out
+
+    def factors(self, inv_temp_k: F, weights: F, out: F) -> None:
+        """Weighted production and respiration terms, in place.
+
+        Parameters
+        ----------
+        inv_temp_k
+            1/T of the water at each sub-step start, K⁻¹, shape ``(N, n)``.
+        weights
+            From :meth:`weights`, µmol L⁻¹ s⁻¹, shape ``(N, 2, 1)`` or ``(N, 2, n)``.
+        out
+            Receives w·exp(E·slope/T), µmol L⁻¹ s⁻¹, shape ``(N, 2, n)``; net source = row 0
+            − row 1 (before :meth:`stress`).
+        """
+        np.multiply(inv_temp_k[:, None, :], self.exponent_k[:, :, None], out=out)
+        np.exp(out, out=out)
+        out *= weights
+
+    def stress(self, temp_k: F, terms: F) -> None:
+        """Apply thermal stress to weighted terms, in place.
+
+        Parameters
+        ----------
+        temp_k
+            Water temperature at each sub-step start, K, shape ``(N, n)``.
+        terms
+            From :meth:`factors`, shape ``(N, 2, n)``: production is multiplied by
+            max(0, 1 − loss·ΔT), respiration by 1 + gain·ΔT, with ΔT the excess over the
+            chamber's threshold (0 below it).
+        """
+        excess = np.maximum(temp_k, self._threshold_k[:, None])
+        excess -= self._threshold_k[:, None]
+        factor = excess[:, None, :] * self._stress_slope
+        factor += 1.0
+        np.maximum(factor, 0.0, out=factor)
+        terms *= factor

@@ -8,16 +8,13 @@ actuator calibration curves.
 
 from __future__ import annotations
 
-from collections.abc import Callable
-
 import numpy as np
 from numpy.typing import NDArray
 
 __all__ = [
-    "Memo",
     "ageing_factor",
-    "first_order",
-    "lag_final",
+    "apply_floor",
+    "lag_weights",
     "lamp_curve",
     "pump_fraction",
     "recurrence",
@@ -31,30 +28,7 @@ _NEGLIGIBLE = 1e-15
 _STEPS = np.arange(1, 3601, dtype=float)[:, None]
 
 
-class Memo:
-    """Small cache of coefficient arrays, reused between segments of the same length.
-
-    Parameters
-    ----------
-    size
-        Entries kept before the cache is emptied, dimensionless.
-    """
-
-    def __init__(self, size: int = 32) -> None:
-        self._size = size
-        self._store: dict[tuple[object, ...], tuple[F, ...]] = {}
-
-    def get(self, key: tuple[object, ...], make: Callable[[], tuple[F, ...]]) -> tuple[F, ...]:
-        """The arrays stored under ``key``, made by ``make()`` the first time."""
-        value = self._store.get(key)
-        if value is None:
-            if len(self._store) >= self._size:
-                self._store.clear()
-            value = self._store[key] = make()
-        return value
-
-
-def recurrence(a: F, u: F, y0: F, *, floor: bool = False, memo: Memo | None = None) -> F:
+def recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
     """Solve y_k = a·y_(k−1) + u_k for k = 1..n, column by column, without a Python loop.
 
     Parameters
@@ -67,8 +41,6 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False, memo: Memo | None = No
         Starting value of each column, shape ``(c,)``.
     floor
         When True, y never goes below 0 (y_k = max(0, a·y_(k−1) + u_k)).
-    memo
-        Cache for the powers of ``a`` (pass one when many segments share n and a).
 
     Returns
     -------
@@ -87,11 +59,8 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False, memo: Memo | None = No
     if a.size and a.min() > _NEGLIGIBLE:
         log_a = np.log(a)
         if -float(log_a.min()) * n <= _MAX_EXPONENT:
-            if memo is None:
-                growth, shrink = _powers(log_a, n)
-            else:
-                growth, shrink = memo.get(("powers", n, a.tobytes()), lambda: _powers(log_a, n))
-            out = growth * (y0 + np.cumsum(u * shrink, axis=0))
+            growth = np.exp(_steps(n) * log_a)
+            out = growth * (y0 + np.cumsum(u / growth, axis=0))
         else:
             out = _chunked(log_a, u, y0)
     else:
@@ -99,14 +68,8 @@ def recurrence(a: F, u: F, y0: F, *, floor: bool = False, memo: Memo | None = No
         out = _chunked(np.log(np.where(instant, 1.0, a)), u, y0)
         out[:, instant] = u[:, instant]
     if floor and n and out.min() < 0.0:
-        _apply_floor(a, u, np.asarray(y0, dtype=float), out)
+        apply_floor(a, u, np.asarray(y0, dtype=float), out)
     return np.asarray(out, dtype=float)
-
-
-def _powers(log_a: F, n: int) -> tuple[F, F]:
-    """a^k and a^(−k) for k = 1..n, shape ``(n, c)``."""
-    growth = np.exp(_steps(n) * log_a)
-    return growth, 1.0 / growth
 
 
 def _steps(n: int) -> F:
@@ -131,8 +94,21 @@ def _chunked(log_a: F, u: F, y0: F) -> F:
     return out
 
 
-def _apply_floor(a: F, u: F, y0: F, out: F) -> None:
-    """Redo the columns of ``out`` that went negative with a floor at zero (in place)."""
+def apply_floor(a: F, u: F, y0: F, out: F) -> None:
+    """Redo the columns of ``out`` that went negative with a floor at zero (in place).
+
+    Parameters
+    ----------
+    a
+        Decay factor of each column, dimensionless, shape ``(c,)``.
+    u
+        Input of each step (unscaled, as in :func:`recurrence`), shape ``(n, c)``.
+    y0
+        Starting value of each column, shape ``(c,)``.
+    out
+        The unfloored solution y_1..y_n, shape ``(n, c)``; negative columns are replaced by
+        the solution of y_k = max(0, a·y_(k−1) + u_k).
+    """
     for col in np.flatnonzero((out < 0.0).any(axis=0)):
         if a[col] == 1.0:
             x = y0[col] + np.cumsum(u[:, col])
@@ -145,17 +121,13 @@ def _apply_floor(a: F, u: F, y0: F, out: F) -> None:
             out[k, col] = y
 
 
-def first_order(y0: F, target: F, tau_s: F, h: float, n: int) -> F:
-    """Closed-form first-order approach to a constant target at n + 1 sub-step boundaries.
+def lag_weights(tau_s: F, h: float, n: int) -> tuple[F, F]:
+    """Weights giving the end value of a first-order lag (sensor) over a segment.
 
     Parameters
     ----------
-    y0
-        Value at the segment start, any unit, shape ``(c,)``.
-    target
-        Constant value approached, same unit, shape ``(c,)``.
     tau_s
-        Time constant, s, shape ``(c,)``; 0 means the target is reached at once.
+        Time constants, s, shape ``(c,)``; 0 means no lag.
     h
         Sub-step length, s.
     n
@@ -163,52 +135,17 @@ def first_order(y0: F, target: F, tau_s: F, h: float, n: int) -> F:
 
     Returns
     -------
-    numpy.ndarray
-        Values at t = 0, h, …, n·h, shape ``(n + 1, c)``.
-    """
-    t = np.arange(n + 1, dtype=float)[:, None] * h
-    decay = np.exp(-t / np.maximum(tau_s, _MIN_TAU_S))
-    return np.asarray(target + (y0 - target) * decay, dtype=float)
-
-
-def lag_final(y0: F, x: F, tau_s: F, h: float, memo: Memo | None = None) -> F:
-    """End value of a first-order lag (sensor) over a segment, input linear in each sub-step.
-
-    Parameters
-    ----------
-    y0
-        Sensor value at the segment start, any unit, shape ``(c,)``.
-    x
-        Input at the sub-step boundaries t = 0, h, …, n·h, same unit, shape ``(n + 1, c)``.
-    tau_s
-        Time constants, s, shape ``(c,)``; 0 means no lag.
-    h
-        Sub-step length, s.
-    memo
-        Cache for the weights (pass one when many segments share n, h and τ).
-
-    Returns
-    -------
-    numpy.ndarray
-        Sensor value at t = n·h, shape ``(c,)``.
+    tuple of numpy.ndarray
+        a^n, shape ``(c,)``, and W_0..W_n, shape ``(n + 1, c)``, dimensionless: the sensor
+        value at t = n·h is a^n·y0 + Σ_k W_k·x_k for input x at t = 0, h, …, n·h.
 
     Notes
     -----
     For input linear over each sub-step (first-order hold) the lag obeys exactly
     y_(k+1) = a·y_k + (1 − c)·x_(k+1) − (a − c)·x_k with a = e^(−h/τ) and c = τ(1 − a)/h,
     so a ramp of slope r is followed with the textbook steady lag r·τ. Unrolled, the end value
-    is a^n·y0 + Σ_k W_k·x_k with fixed weights W, which is what is computed.
+    is a^n·y0 + Σ_k W_k·x_k with fixed weights W.
     """
-    n = x.shape[0] - 1
-    if memo is None:
-        end, weights = _lag_weights(tau_s, h, n)
-    else:
-        end, weights = memo.get(("lag", n, h, tau_s.tobytes()), lambda: _lag_weights(tau_s, h, n))
-    return np.asarray(end * y0 + (weights * x).sum(axis=0), dtype=float)
-
-
-def _lag_weights(tau_s: F, h: float, n: int) -> tuple[F, F]:
-    """a^n and the weights W_0..W_n of :func:`lag_final`."""
     tau = np.maximum(tau_s, _MIN_TAU_S)
     a = np.exp(-h / tau)
     c = tau * -np.expm1(-h / tau) / h

@@ -23,14 +23,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
-from simulator._actuators import Actuators
+from simulator._actuators import Actuators, Arrival, substeps
 from simulator._faults import FaultBook, ScheduledFault
-from simulator._oxygen import metabolism
+from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
-from simulator._physics import Memo, ageing_factor
-from simulator._science import ArrheniusLine, SaturationTable, saturation_umol_l
+from simulator._physics import ageing_factor
+from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
-from simulator._step import Drive, WaterState, step_segment
+from simulator._step import Drive, Stepper, WaterState
 from simulator._types import ChamberTruth, OptodeReading, Outputs, SensorNoReply
 
 __all__ = ["Rack"]
@@ -42,7 +42,13 @@ _LEAK_SEGMENT_S = 60.0
 _MAX_SUBSTEPS = 3600  # sub-steps per vectorised segment: bounds memory on long advances
 _MIN_VOLUME_FRAC = 0.05
 _DEVICE_OF_SENSOR = {"temperature": "modbus", "par": "modbus", "flow": "modbus", "optode": "optode"}
-_ACTUATOR_ROWS = ("heater_pct", "chiller_pct", "lamp_pct", "pump_pct")
+
+
+def _drive(value: float, name: str) -> float:
+    """A drive checked to lie within 0–100 % (NaN and infinities fail the comparison)."""
+    if not 0.0 <= value <= 100.0:
+        raise ValueError(f"{name} must be within 0–100 %, got {value!r}")
+    return float(value)
 
 
 class Rack:
@@ -71,9 +77,11 @@ class Rack:
         self._index = {cid: i for i, cid in enumerate(p.chamber_ids)}
         self._m = len(p.node_names)
         self._rng = np.random.default_rng(p.seed if seed is None else seed)
-        self._saturation_table = SaturationTable(p.salinity, p.pressure_kpa)
-        self._arrhenius = ArrheniusLine(p.t_ref_c)
-        self._memo = Memo()
+        table = SaturationTable(p.salinity, p.pressure_kpa, kelvin=True)
+        self._stepper = Stepper(p, table, Metabolism(p))
+        self._step_s = p.physics_step_s
+        self._instant_lamps = not bool((p.warmup_tau_s > 0.0).all())
+        self._ageing = bool((p.ageing_frac_per_1000_h > 0.0).any())
         self._t = 0.0
         self._act = Actuators(p)
         temps = p.initial_node_temperature_c[p.node_of_chamber]
@@ -87,9 +95,22 @@ class Rack:
         )
         self._volume = p.volume_l.copy()
         self._volume_version = 0
-        self._water_key: tuple[int, int] = (-1, -1)
         self._lamp_s = p.lamp_hours0_h * 3600.0
-        self._energy = np.zeros((4, self._m))  # heater, chiller, room loss, flush loss (J)
+        self._par_key: tuple[object, ...] = ()
+        self._par_warm_cache = np.zeros(len(temps))
+        # Heat bookkeeping (heater and chiller energy live with the actuators): ∫(T − T_room)dt,
+        # and the flushing loss folded per stretch of constant flow ("epoch"), G being
+        # constant within one.
+        self._excess = np.zeros(self._m)
+        self._span_s = 0.0
+        self._flush_done = np.zeros(self._m)
+        self._epoch_excess = np.zeros(self._m)
+        self._epoch_span_s = 0.0
+        self._water_key: tuple[int, int] = (-1, -1)
+        self._water_id = 0
+        self._flush_w_k = np.zeros(self._m)
+        self._exchange = np.zeros(len(temps))
+        self._node_capacity = self._capacity()
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
             self._book.add(fault, 0.0)
@@ -110,26 +131,31 @@ class Rack:
 
     def advance(self, dt_s: float) -> None:
         """Integrate the physics forward by ``dt_s`` seconds (s, ≥ 0)."""
-        if not math.isfinite(dt_s) or dt_s < 0:
+        if not 0.0 <= dt_s < math.inf:
             raise ValueError(f"dt_s must be a finite number ≥ 0, got {dt_s!r}")
-        self._sync()
+        act = self._act
+        if act.dirty:
+            self._refresh(False)
+            act.deliver(self._t)
         t_end = self._t + dt_s
-        step = self._p.physics_step_s
+        step = self._step_s
+        book = self._book
         while self._t < t_end - _EPS_S:
             t0 = self._t
-            seg_end = min(t_end, self._book.next_boundary(t0), t0 + _MAX_SUBSTEPS * step)
-            if self._book.masks.leak_l_s.any():
-                seg_end = min(seg_end, t0 + _LEAK_SEGMENT_S)
-            n, h = Actuators.steps(seg_end - t0, step)
-            off_grid = self._act.next_off_grid(t0, seg_end, h)
+            seg_end = min(t_end, book.next_edge_s, t0 + _MAX_SUBSTEPS * step)
+            if book.masks.leaking and t0 + _LEAK_SEGMENT_S < seg_end:
+                seg_end = t0 + _LEAK_SEGMENT_S
+            n, h = substeps(seg_end - t0, step)
+            arrivals, off_grid = act.arrivals(t0, seg_end, h)
             while off_grid is not None:
                 seg_end = off_grid
-                n, h = Actuators.steps(seg_end - t0, step)
-                off_grid = self._act.next_off_grid(t0, seg_end, h)
-            self._integrate(t0, seg_end, n, h)
+                n, h = substeps(seg_end - t0, step)
+                arrivals, off_grid = act.arrivals(t0, seg_end, h)
+            self._integrate(n, h, arrivals)
             self._t = seg_end
             self._settle()
-        self._t = max(self._t, t_end)
+        if self._t < t_end:
+            self._t = t_end
 
     # ------------------------------------------------------------ actuators
     def set_outputs(
@@ -145,12 +171,15 @@ class Rack:
         i = self._index.get(chamber_id)
         if i is None:
             raise KeyError(f"no chamber {chamber_id!r} in this rack")
-        for row, value in enumerate((heater_pct, chiller_pct, lamp_pct, pump_pct)):
-            if value is None:
-                continue
-            if not math.isfinite(value) or not 0.0 <= value <= 100.0:
-                raise ValueError(f"{_ACTUATOR_ROWS[row]} must be within 0–100 %, got {value!r}")
-            self._act.command(i, row, value)
+        act = self._act
+        if heater_pct is not None:
+            act.command(i, 0, _drive(heater_pct, "heater_pct"))
+        if chiller_pct is not None:
+            act.command(i, 1, _drive(chiller_pct, "chiller_pct"))
+        if lamp_pct is not None:
+            act.command(i, 2, _drive(lamp_pct, "lamp_pct"))
+        if pump_pct is not None:
+            act.command(i, 3, _drive(pump_pct, "pump_pct"))
 
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
@@ -231,6 +260,7 @@ class Rack:
         water = self._water
         temps = water.temp_c[p.node_of_chamber]
         par = self._par_now()
+        heat = self._act.energy_j(self._t)
         gpp, resp = metabolism(par, temps, p)
         sat = float(self._saturation(temps)[i])
         o2 = float(water.o2_umol_l[i])
@@ -249,10 +279,10 @@ class Rack:
             heater_w=float(self._act.water_w[0, node]),
             chiller_w=float(self._act.water_w[1, node]),
             heat_capacity_j_k=float(self._capacity()[node]),
-            heater_energy_j=float(self._energy[0, node]),
-            chiller_energy_j=float(self._energy[1, node]),
-            room_loss_j=float(self._energy[2, node]),
-            flush_loss_j=float(self._energy[3, node]),
+            heater_energy_j=float(heat[0, node]),
+            chiller_energy_j=float(heat[1, node]),
+            room_loss_j=float(p.ua_w_k[node] * self._excess[node]),
+            flush_loss_j=float(self._flush_loss()[node]),
             probe_temperature_c=float(water.probe_c[i]),
             optode_o2_umol_l=float(water.optode_umol_l[i]),
             lamp_hours_h=float(self._lamp_s[i] / 3600.0),
@@ -271,7 +301,7 @@ class Rack:
     def _sync(self) -> None:
         """Apply commands given since the last look (they take effect at the present time)."""
         if self._act.dirty:
-            self._refresh()
+            self._refresh(False)
             self._act.deliver(self._t)
 
     def _settle(self) -> None:
@@ -280,16 +310,17 @@ class Rack:
         for entry in began:
             self._freeze(entry)
         if changed or self._act.dirty:
-            self._refresh()
+            self._refresh(changed)
         self._act.deliver(self._t)
 
-    def _refresh(self) -> None:
-        self._act.refresh(self._t, self._book)
-        tau = self._p.warmup_tau_s
-        if not (tau > 0.0).all():  # lamps without warm-up are warm (or cold) at once
+    def _refresh(self, faults_changed: bool) -> None:
+        self._act.refresh(self._t, self._book, faults_changed)
+        if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
+            tau = self._p.warmup_tau_s
             warmth = np.where(tau > 0.0, self._water.warmth, self._act.lit)
-            w = self._water
-            self._water = WaterState(w.temp_c, w.o2_umol_l, w.probe_c, w.optode_umol_l, warmth)
+            if not np.array_equal(warmth, self._water.warmth):
+                w = self._water
+                self._water = WaterState(w.temp_c, w.o2_umol_l, w.probe_c, w.optode_umol_l, warmth)
 
     def _freeze(self, entry: ScheduledFault) -> None:
         """Remember what a stuck sensor shows from now on."""
@@ -316,50 +347,75 @@ class Rack:
         return saturation_umol_l(temps, p.salinity, p.pressure_kpa)
 
     def _par_warm(self) -> F:
-        """PAR of each lamp when warm, at its drive and age, µmol m⁻² s⁻¹."""
+        """PAR of each lamp when warm, at its drive and age, µmol m⁻² s⁻¹.
+
+        The same array object is returned while drive and age are unchanged (the stepper
+        reuses its light weights then); a new one whenever either changes.
+        """
+        act = self._act
+        key = (act.lamp_version, self._lamp_s if self._ageing else None)
+        seen = self._par_key
+        if seen and seen[0] == key[0] and seen[1] is key[1]:
+            return self._par_warm_cache
         age = ageing_factor(self._lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
-        return np.asarray(self._act.new_lamp_par * age, dtype=float)
+        self._par_warm_cache = np.asarray(act.new_lamp_par * age, dtype=float)
+        self._par_key = key
+        return self._par_warm_cache
 
     def _par_now(self) -> F:
         cold = self._p.cold_output_frac
         return np.asarray(self._par_warm() * (cold + (1.0 - cold) * self._water.warmth))
 
-    def _integrate(self, t0: float, t1: float, n: int, h: float) -> None:
-        """Step every chamber from t0 to t1 (s) in n sub-steps of h seconds."""
+    def _flush_loss(self) -> F:
+        """Heat carried out by flushing since start, J, shape ``(M,)``."""
         p = self._p
+        excess = self._excess - self._epoch_excess
+        span = self._span_s - self._epoch_span_s
+        inflow = excess + (p.room_temperature_c - p.inflow_temperature_c) * span
+        return np.asarray(self._flush_done + self._flush_w_k * inflow, dtype=float)
+
+    def _new_water(self, key: tuple[int, int]) -> None:
+        """Flows or volumes changed: close the flushing epoch and recompute what follows."""
+        p = self._p
+        self._flush_done = self._flush_loss()
+        self._epoch_excess = self._excess.copy()
+        self._epoch_span_s = self._span_s
+        flush = self._act.flush_l_s
+        self._water_key = key
+        self._water_id += 1
+        self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
+        self._exchange = flush / self._volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
+        self._node_capacity = self._capacity()
+
+    def _integrate(self, n: int, h: float, arrivals: list[Arrival]) -> None:
+        """Step every chamber from now through n sub-steps of h seconds."""
         act = self._act
-        heater, chiller = act.power_path(t0, t1, n, h)
-        volume = self._volume
         key = (act.flow_version, self._volume_version)
-        if key != self._water_key:  # flows or volumes changed: recompute what follows
-            flush = act.flush_l_s
-            self._water_key = key
-            self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
-            self._exchange = flush / volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
-            self._node_capacity = self._capacity()
+        if key != self._water_key:
+            self._new_water(key)
         drive = Drive(
-            heater_w=heater,
-            chiller_w=chiller,
-            lit=act.lit,
-            par_warm=self._par_warm(),
-            flush_w_k=self._flush_w_k,
-            exchange_per_s=self._exchange,
-            capacity_j_k=self._node_capacity,
-            volume_l=volume,
+            act.water_w,
+            arrivals,
+            act.lit,
+            self._par_warm(),
+            self._flush_w_k,
+            self._exchange,
+            self._node_capacity,
+            self._volume,
+            self._water_id,
         )
-        result = step_segment(
-            self._water, drive, p, self._saturation_table, self._arrhenius, n, h, self._memo
-        )
-        self._water = result.state
+        self._water, excess = self._stepper.step(self._water, drive, n, h)
         span = n * h
-        self._lamp_s = self._lamp_s + act.lit * span
-        self._energy[0] += result.heater_j
-        self._energy[1] += result.chiller_j
-        self._energy[2] += result.room_loss_j
-        self._energy[3] += result.flush_loss_j
-        leak = self._book.masks.leak_l_s
-        if leak.any():
-            self._volume = np.maximum(volume - leak * span, _MIN_VOLUME_FRAC * p.volume_l)
+        if act.any_lit:
+            self._lamp_s = self._lamp_s + act.lit * span
+        self._excess += excess
+        self._span_s += span
+        masks = self._book.masks
+        if masks.leaking:
+            p = self._p
+            self._volume = np.maximum(
+                self._volume - masks.leak_l_s * span, _MIN_VOLUME_FRAC * p.volume_l
+            )
             self._volume_version += 1
 
     def _reachable(self, i: int, sensor: str) -> object | None:

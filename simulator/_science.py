@@ -21,6 +21,7 @@ from controller.science.rates import (
 
 __all__ = [
     "BOLTZMANN_EV_PER_K",
+    "ZERO_CELSIUS_K",
     "ArrheniusLine",
     "SaturationTable",
     "light_limited",
@@ -34,6 +35,9 @@ F = NDArray[np.float64]
 _TABLE_MIN_C = -5.0
 _TABLE_MAX_C = 50.0
 _TABLE_STEP_C = 0.02
+_BLOCK_C = 1000.0  # temperature-axis offset between the tables of distinct salinities
+_PAD_C = 495.0  # end values extended to here around each block (flat = clamped)
+_CLAMP_C = 490.0  # temperatures clamped to ±this before shifting into a block
 
 
 def log_arrhenius_per_ev(temp_c: F, t_ref_c: F) -> F:
@@ -152,22 +156,54 @@ class SaturationTable:
         Practical salinity of each chamber (PSS-78), dimensionless, shape ``(N,)``.
     pressure_kpa
         Barometric pressure, kPa.
+    kelvin
+        When True, the table is looked up with temperatures in kelvin instead of °C.
+
+    Notes
+    -----
+    One ``numpy.interp`` call serves every chamber: the table of the g-th distinct salinity
+    is laid out on the temperature axis shifted by g·1000 °C, padded with its end values out
+    to ±495 °C around its block, and each chamber's temperatures are shifted by its block's
+    offset (after clamping to ±490 °C) before the lookup.
     """
 
-    def __init__(self, salinity: F, pressure_kpa: float) -> None:
+    def __init__(self, salinity: F, pressure_kpa: float, *, kelvin: bool = False) -> None:
         grid = np.arange(_TABLE_MIN_C, _TABLE_MAX_C + _TABLE_STEP_C / 2, _TABLE_STEP_C)
+        origin = ZERO_CELSIUS_K if kelvin else 0.0
         sal, sal_of = np.unique(np.asarray(salinity, dtype=float), return_inverse=True)
-        sat = np.stack([saturation_umol_l(grid, s, pressure_kpa) for s in sal], axis=1)
-        self._table: F = sat[:, sal_of]
-        self._columns = np.arange(len(sal_of))
-        self._last = len(grid) - 1
+        xs: list[F] = []
+        ys: list[F] = []
+        for g, s in enumerate(sal):
+            sat = saturation_umol_l(grid, s, pressure_kpa)
+            offset = g * _BLOCK_C
+            xs.append(np.concatenate(([-_PAD_C], grid, [_PAD_C])) + (offset + origin))
+            ys.append(np.concatenate(([sat[0]], sat, [sat[-1]])))
+        self._grid: F = np.concatenate(xs)
+        self._values: F = np.concatenate(ys)
+        self._single = len(sal) == 1
+        self._offset: F = np.asarray(sal_of, dtype=float).reshape(-1) * _BLOCK_C
+        self._low = origin - _CLAMP_C
+        self._high = origin + _CLAMP_C
 
-    def __call__(self, temp_c: F) -> F:
-        """Saturation at ``temp_c`` (°C, shape ``(..., N)``), µmol L⁻¹."""
-        x = (np.clip(temp_c, _TABLE_MIN_C, _TABLE_MAX_C) - _TABLE_MIN_C) / _TABLE_STEP_C
-        i = np.minimum(x.astype(np.intp), self._last - 1)
-        lo = self._table[i, self._columns]
-        return np.asarray(lo + (self._table[i + 1, self._columns] - lo) * (x - i), dtype=float)
+    def __call__(self, temp: F) -> F:
+        """Saturation at ``temp`` (°C, or K for a kelvin table), µmol L⁻¹.
+
+        ``temp`` has shape ``(..., N)``, or ``(N, n)`` (chamber-major) when called through
+        :meth:`rows`.
+        """
+        if self._single:
+            return np.interp(temp, self._grid, self._values)
+        shifted = np.clip(temp, self._low, self._high)
+        shifted += self._offset
+        return np.interp(shifted, self._grid, self._values)
+
+    def rows(self, temp: F) -> F:
+        """Saturation for chamber-major temperatures (°C or K), shape ``(N, n)``, µmol L⁻¹."""
+        if self._single:
+            return np.interp(temp, self._grid, self._values)
+        shifted = np.clip(temp, self._low, self._high)
+        shifted += self._offset[:, None]
+        return np.interp(shifted, self._grid, self._values)
 
 
 class ArrheniusLine:
@@ -188,9 +224,11 @@ class ArrheniusLine:
         ln_cold = log_arrhenius_per_ev(np.full_like(t_ref_c, cold), t_ref_c)
         ln_warm = log_arrhenius_per_ev(np.full_like(t_ref_c, warm), t_ref_c)
         inv_cold, inv_warm = 1.0 / (cold + ZERO_CELSIUS_K), 1.0 / (warm + ZERO_CELSIUS_K)
-        self._slope: F = (ln_warm - ln_cold) / (inv_warm - inv_cold)
-        self._intercept: F = ln_cold - self._slope * inv_cold
+        self.slope: F = (ln_warm - ln_cold) / (inv_warm - inv_cold)
+        """Slope of ln A₁ against 1/T, K eV⁻¹, shape ``(N,)``."""
+        self.intercept: F = ln_cold - self.slope * inv_cold
+        """ln A₁ extrapolated to 1/T = 0, eV⁻¹, shape ``(N,)``."""
 
     def __call__(self, temp_c: F) -> F:
         """ln A₁ at ``temp_c`` (°C, shape ``(..., N)``), eV⁻¹."""
-        return np.asarray(self._slope / (temp_c + ZERO_CELSIUS_K) + self._intercept, dtype=float)
+        return np.asarray(self.slope / (temp_c + ZERO_CELSIUS_K) + self.intercept, dtype=float)
