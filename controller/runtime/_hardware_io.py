@@ -12,8 +12,11 @@ Rules of this module
   a read reports the latest measurement. So a slow or silent optode never stalls a tick.
 - Writes, every tick (``hardware-notes/register-map.md``): one request for holding registers
   0..5 (the four drives, the watchdog timeout, a new watchdog count: drives and feed arrive
-  together), then one for relay coils 0..3 (closed where the drive is above 0). A module that
-  answers "busy" is held safe by its watchdog: it is fed alone, then written again.
+  together), then one for relay coils 0..3 (closed where the drive is above 0) when they
+  change, when their state in the module is in doubt (after a set-up, a failed exchange or a
+  watchdog trip) and at least every tenth write; relays change rarely, and skipping their
+  unchanged write saves a quarter of the requests. A module that answers "busy" is held safe
+  by its watchdog: it is fed alone, then written again.
 - Start-up, per module, before ``ready`` is set (register-map's sequence): read
   ``watchdog_tripped``; write the rig's safe drives to ``safe_*_pct``; write the watchdog
   timeout and a first feed. The same set-up runs again before the next write whenever an
@@ -89,6 +92,8 @@ _TIMEOUT_POINT = point("watchdog_timeout_s")
 _SAFE_OFFSET = point("safe_heater_pct").offset
 _COUNTER_OFFSET = point("watchdog_counter").offset
 _SETUP_PAUSE_MAX_S = 5.0
+#: Relays are rewritten at least every this many writes even when unchanged, count.
+_RELAY_REFRESH = 10
 #: Optode statuses whose values must not be used (clamped or unreliable), dimensionless.
 _UNUSABLE = OptodeStatus.LOW_SIGNAL | OptodeStatus.O2_RANGE
 _STOP_FAILURES = (TransportError, SquallError, TimeoutError)
@@ -106,6 +111,10 @@ class _Block:
     safe: Outputs
     count: int = 0
     needs_setup: bool = True
+    relays: tuple[bool, ...] | None = None
+    """Relay coils as last written, or None when the module's coils are not known."""
+    relay_age: int = 0
+    """Writes since the relays were last written, count."""
     trips_seen: int = 0
 
 
@@ -363,6 +372,7 @@ class HardwareIO:
             block.unit_id, block.base + _TIMEOUT_POINT.offset, [self._timeout_word, block.count]
         )
         block.needs_setup = False
+        block.relays = None  # a module set up afresh gets its relays written again
 
     # ------------------------------------------------------------------ reads
     async def read(self, chamber: str) -> ChamberReadings:
@@ -402,6 +412,7 @@ class HardwareIO:
             values |= {"level_ok": contacts.level_ok, "e_stop": not contacts.estop_ok}
             if contacts.watchdog_tripped:
                 block.trips_seen += 1
+                block.relays = None  # the trip set the relays from the safe drives
                 _log.warning("%s: the module's watchdog holds its outputs safe", chamber)
         comm_ok = inputs is not None and contacts is not None
         opt = self._optodes.get(chamber)
@@ -474,15 +485,22 @@ class HardwareIO:
                     await self._setup(block)
                 drive_words = encode_outputs(_values(outputs), where=f"{chamber}.outputs")
                 await self._drive(block, drive_words)
-                relays = RelayBits(
-                    heater_on=drive_words[0] > 0,
-                    chiller_on=drive_words[1] > 0,
-                    lamp_on=drive_words[2] > 0,
-                    pump_on=drive_words[3] > 0,
+                relays = encode_relays(
+                    RelayBits(
+                        heater_on=drive_words[0] > 0,
+                        chiller_on=drive_words[1] > 0,
+                        lamp_on=drive_words[2] > 0,
+                        pump_on=drive_words[3] > 0,
+                    )
                 )
-                await block.link.write_coils(block.unit_id, block.base, encode_relays(relays))
+                block.relay_age += 1
+                if relays != block.relays or block.relay_age >= _RELAY_REFRESH:
+                    block.relays = None
+                    await block.link.write_coils(block.unit_id, block.base, relays)
+                    block.relays, block.relay_age = relays, 0
         except _STOP_FAILURES as exc:
             block.needs_setup = True
+            block.relays = None
             self._note(chamber, "modbus", False, exc)
             return False
         self._note(chamber, "modbus", True)
@@ -500,6 +518,7 @@ class HardwareIO:
                 raise
             # tripped: the module refuses drives until fed; feed alone, then drive
             _log.warning("%s: watchdog tripped; feeding, then driving again", block.chamber)
+            block.relays = None
             block.count = next_watchdog_count(block.count)
             await block.link.write_registers(
                 block.unit_id, block.base + _COUNTER_OFFSET, [block.count]

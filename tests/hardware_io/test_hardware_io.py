@@ -175,6 +175,26 @@ def test_writes_drive_the_actuators_through_drives_and_relays() -> None:
     virtual(body)
 
 
+def test_unchanged_relays_are_rewritten_only_now_and_then() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            (link,) = b.io.links.values()
+            before = link.requests
+            for _ in range(5):
+                assert await b.io.write("c1", DRIVE)
+            assert link.requests - before == 5 + 1  # drives every time, relays once
+            # a relay opened behind the controller's back is closed again by the refresh
+            assert b.module("c1").write_coils(0, [False]) is None
+            assert b.actual("c1").heater_pct == 0.0
+            for _ in range(5):
+                assert await b.io.write("c1", DRIVE)
+            assert b.actual("c1").heater_pct == 0.0  # nine writes since the relays were set
+            assert await b.io.write("c1", DRIVE)  # the tenth rewrites them
+            assert b.actual("c1") == DRIVE and link.requests - before == 11 + 2
+
+    virtual(body)
+
+
 def test_the_watchdog_holds_outputs_while_fed_and_drops_them_to_safe_when_feeding_stops() -> None:
     async def body(clock: VirtualClock) -> None:
         async with bench(clock) as b:
