@@ -14,7 +14,9 @@ Rules of this module
   so one slow device does not hold up the others; what has not answered by then is stale),
   decide (:class:`~controller.runtime._decide.Decider`:
   interlocks, setpoints, PID, lamps, pumps), write every chamber concurrently, queue one log
-  row per protocol chamber, then report progress.
+  row per protocol chamber, then report progress. Log rows carry the readings as read (None
+  when stale), the protocol's setpoints (what the experiment asks, not the rate-limited value
+  the PID follows) and the outputs decided.
 - Outputs start safe: before the first tick every chamber is sent its safe state (idle
   chambers: everything off), and the interlocks hold chambers safe until their first healthy
   tick.
@@ -339,7 +341,7 @@ class ControlLoop:
             t_s = self.clock.now_s()
             utc_s = self._utc0_s + (t_s - self._t0_s)
             kind = EventKind.RUN_STOP if reason is not RunEndReason.ABORTED else EventKind.ABORT
-            note = f"outputs safe; {reason.value}"
+            note = f"safe outputs written; {reason.value}"
             if failed:
                 note += f"; safe outputs not confirmed for {', '.join(failed)}"
             if detail:

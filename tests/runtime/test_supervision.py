@@ -130,7 +130,7 @@ def test_a_task_that_dies_drives_every_output_safe_and_aborts_the_log(files: Fil
     reason, events = end_of(run.writer.path)
     assert reason is RunEndReason.ABORTED
     kind, detail = events[-1]
-    assert kind == "abort" and "OSError" in detail and "outputs safe" in detail
+    assert kind == "abort" and "OSError" in detail and "safe outputs written" in detail
 
 
 def test_cancelling_the_run_makes_outputs_safe_then_propagates(files: Files) -> None:
