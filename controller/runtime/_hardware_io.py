@@ -204,6 +204,14 @@ class HardwareIO:
         for link, ids in zip(io.modbus, io.link_chambers(chambers), strict=True):
             transport = _transport(link)
             self.links[link.name] = transport
+            if 2 * link.timeout_s + link.backoff_s > budget_s:
+                _log.warning(
+                    "link %s: a second attempt (after %g s) would not fit the %g s budget "
+                    "of a read or write; lower timeout_s to let retries happen",
+                    link.name,
+                    link.timeout_s + link.backoff_s,
+                    budget_s,
+                )
             rmap = RegisterMap.build(ids, link.register_map, where=f"io.{link.name}")
             for b in rmap.blocks:
                 self._blocks[b.chamber_id] = _Block(
@@ -267,6 +275,12 @@ class HardwareIO:
         if plan is not None:
             safe = {c: s.interlocks.safe_outputs() for c, s in plan.chambers.items()}
         watchdog_s = io.watchdog_timeout_s or 3.0 * settings.period_s
+        if watchdog_s < 1.5 * settings.period_s:
+            raise SquallError(
+                f"{watchdog_s:g} s would trip the modules between control ticks of "
+                f"{settings.period_s:g} s; use at least 1.5 periods (common practice: three)",
+                field="io.watchdog_timeout_s",
+            )
         budget_s = 0.8 * min(settings.read_timeout_s, settings.write_timeout_s)
         return cls(io, ids, clock, watchdog_timeout_s=watchdog_s, safe=safe, budget_s=budget_s)
 

@@ -7,6 +7,7 @@ module watchdogs expire in simulated time exactly as they would on a bench.
 from __future__ import annotations
 
 import asyncio
+import json
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from dataclasses import dataclass
@@ -330,16 +331,30 @@ def test_calibration_corrections_apply_to_the_readings() -> None:
     virtual(body)
 
 
+def test_a_link_too_slow_for_the_budget_is_reported(caplog: pytest.LogCaptureFixture) -> None:
+    link = {"name": "slow", "tcp": {"host": "127.0.0.1"}, "timeout_s": 0.5}
+    io_map = RigIo(modbus=[link])  # type: ignore[list-item]
+    with caplog.at_level("WARNING", logger="controller.runtime._hardware_io"):
+        HardwareIO(io_map, IDS, VirtualClock(START), watchdog_timeout_s=30.0, budget_s=0.8)
+    assert "would not fit the 0.8 s budget" in caplog.text
+    caplog.clear()
+    with caplog.at_level("WARNING", logger="controller.runtime._hardware_io"):
+        HardwareIO(io_map, IDS, VirtualClock(START), watchdog_timeout_s=30.0, budget_s=1.5)
+    assert caplog.text == ""
+
+
 def test_from_rig_uses_the_rig_files_io_table(tmp_path: Path) -> None:
     rig_file = tmp_path / "rig.toml"
     rig_file.write_text(rig_text(IDS, io='[io]\nfrom_announcement = "ports.json"\n'))
     the_rig = load_model(rig_file, Rig)
     rack = Rack(the_rig, seed=3, start_utc=START)
+    settings = RunSettings(period_s=5.0, read_timeout_s=1.0, write_timeout_s=1.0)
+    ports: dict = {}
 
     async def body(clock: VirtualClock) -> None:
         server = RackServer(rack, clock=clock)
         await server.start(ports_file=tmp_path / "ports.json")
-        settings = RunSettings(period_s=5.0, read_timeout_s=1.0, write_timeout_s=1.0)
+        ports.update(json.loads((tmp_path / "ports.json").read_text()))
         io = HardwareIO.from_rig(the_rig, clock, base_dir=tmp_path, settings=settings)
         ready = asyncio.Event()
         async with io:
@@ -358,6 +373,14 @@ def test_from_rig_uses_the_rig_files_io_table(tmp_path: Path) -> None:
         await server.stop()
 
     virtual(body)
+    too_short = rig_text(IDS, io='[io]\nfrom_announcement = "ports.json"\nwatchdog_timeout_s = 7\n')
+    rig_file.write_text(too_short)
+    (tmp_path / "ports.json").write_text(json.dumps(ports))
+    with pytest.raises(SquallError, match="between control ticks") as caught:
+        HardwareIO.from_rig(
+            load_model(rig_file, Rig), VirtualClock(START), base_dir=tmp_path, settings=settings
+        )
+    assert caught.value.field == "io.watchdog_timeout_s"
     with pytest.raises(SquallError, match=r"no \[io\] table") as caught:
         HardwareIO.from_rig(rig(IDS), VirtualClock(START), base_dir=tmp_path)
     assert caught.value.field == "io"
