@@ -19,6 +19,8 @@ Run: ``/work/venv/bin/python bench/bench_run.py [--periods 60,10] [--breakdown]`
 from __future__ import annotations
 
 import argparse
+import contextlib
+import io
 import re
 import tempfile
 import time
@@ -59,7 +61,8 @@ def run_cli(protocol: Path, log: Path, period_s: float) -> float:
     args = ["run", str(protocol), "--rig", str(RIG), "--sim", "--speed", "max"]
     args += ["--log", str(log), "--start", START, "--period", f"{period_s:g}"]
     start = time.perf_counter()
-    code = squall(args)
+    with contextlib.redirect_stdout(io.StringIO()):  # it prints the log path
+        code = squall(args)
     wall_s = time.perf_counter() - start
     if code != 0:
         raise SystemExit(f"squall run exited with {code}")
