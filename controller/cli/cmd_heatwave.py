@@ -177,8 +177,13 @@ def _detect_document(site: _Site, *, cold: bool, min_days: int, max_gap: int) ->
         "max_gap_days": max_gap,
         "method": METHOD[_kind(cold)],
         "software": f"squall {__version__}",
-        "events": [event.to_json_dict() for event in site.events],
+        "events": [_ordered(event.to_json_dict()) for event in site.events],
     }
+
+
+def _ordered(event: dict[str, Any]) -> dict[str, Any]:
+    """The fixed fields first, in :data:`EVENT_FIELDS` order, then the extras."""
+    return {**{key: event[key] for key in EVENT_FIELDS}, **event}
 
 
 def _write_csv(path: Path, events: list[dict[str, Any]]) -> None:
