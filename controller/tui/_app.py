@@ -1,0 +1,374 @@
+"""The Textual app: a pure view over a data source, sending commands through a channel.
+
+Rules of this module
+--------------------
+- The app owns one :class:`~._sources.DataSource` and one
+  :class:`~._commands.CommandChannel`. A timer asks the source for news (``poll``) and posts
+  each new snapshot as a :class:`SquallApp.SnapshotReady` message, which the app hands to the
+  screen on top. A future broker bridge posts the same message from its own task.
+- Widgets hold reactive state and never read data or call drivers; screens never send
+  commands. Commands go through the app after a confirmation, and the answer comes back as a
+  notification; the change itself shows up through the data, as everything else does.
+- Commands are offered only when the channel says this user may command (``can_command``);
+  otherwise their keys are hidden. Replay keys show only in replay.
+- Quitting closes the view and the source's reader, nothing else: the run goes on.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Awaitable, Callable
+from typing import ClassVar
+
+from textual import work
+from textual.app import App
+from textual.binding import Binding, BindingType
+from textual.message import Message
+from textual.theme import Theme
+
+from ._commands import CommandChannel, CommandResult, NoCommands
+from ._detail import DetailScreen
+from ._dialogs import ConfirmDialog, HelpDialog, NoteDialog
+from ._look import PALETTE
+from ._replay import ReplaySource
+from ._screens import AlarmScreen, OverviewScreen, TimelineScreen, ViewScreen
+from ._snapshot import RunMode, RunStatus, Snapshot
+from ._sources import DataSource
+from ._timeline import Timeline
+
+__all__ = ["LIVE_POLL_S", "REPLAY_FRAME_S", "THEME", "SquallApp"]
+
+LIVE_POLL_S = 1.0
+"""How often a live view asks its source for news, s."""
+REPLAY_FRAME_S = 0.1
+"""Time between replay frames, s."""
+
+THEME = Theme(
+    name="squall-tidepool",
+    primary=PALETTE["seaglass"],
+    secondary=PALETTE["dusk"],
+    accent=PALETTE["sand"],
+    warning=PALETTE["amber"],
+    error=PALETTE["coral"],
+    success=PALETTE["kelp"],
+    foreground=PALETTE["foam"],
+    background=PALETTE["deep"],
+    surface=PALETTE["water"],
+    panel=PALETTE["shoal"],
+    dark=True,
+    variables={
+        "footer-key-foreground": PALETTE["sand"],
+        "block-cursor-background": PALETTE["shoal"],
+        "block-cursor-foreground": PALETTE["foam"],
+        "block-cursor-text-style": "bold",
+    },
+)
+"""The project's own colour theme ("tidepool")."""
+
+
+class SquallApp(App[None]):
+    """Watch or replay a run.
+
+    Parameters
+    ----------
+    source
+        Where the data comes from (a live log, a replay, later a broker).
+    commands
+        Where operator commands go; default none (read-only view).
+    poll_s
+        Seconds between polls of the source; default :data:`LIVE_POLL_S` live and
+        :data:`REPLAY_FRAME_S` in replay. Tests pass a long period and call
+        :meth:`poll_now` instead, so nothing waits on real time.
+    refine_timeline
+        Compile the protocol in a worker thread after the first paint to place its events.
+    """
+
+    CSS_PATH = "squall.tcss"
+    TITLE = "squall"
+    ENABLE_COMMAND_PALETTE = False
+
+    BINDINGS: ClassVar[list[BindingType]] = [
+        Binding("a", "alarms", "alarms"),
+        Binding("t", "timeline", "timeline"),
+        Binding("h", "hold", "hold"),
+        Binding("r", "resume", "resume"),
+        Binding("X", "abort", "abort"),
+        Binding("n", "note", "note"),
+        Binding("space", "play_pause", "play/pause"),
+        Binding("plus,equals_sign", "speed(2.0)", "faster", show=False),
+        Binding("minus", "speed(0.5)", "slower", show=False),
+        Binding("left_square_bracket", "seek(-3600)", "-1h", show=False),
+        Binding("right_square_bracket", "seek(3600)", "+1h", show=False),
+        Binding("left_curly_bracket", "seek(-86400)", "-1d", show=False),
+        Binding("right_curly_bracket", "seek(86400)", "+1d", show=False),
+        Binding("less_than_sign", "seek_end(0.0)", "start", show=False),
+        Binding("greater_than_sign", "seek_end(1.0)", "end", show=False),
+        Binding("question_mark", "help", "help"),
+        Binding("q", "quit", "quit"),
+    ]
+
+    class SnapshotReady(Message):
+        """A source produced a new snapshot.
+
+        Parameters
+        ----------
+        snapshot
+            The snapshot.
+        """
+
+        def __init__(self, snapshot: Snapshot) -> None:
+            super().__init__()
+            self.snapshot = snapshot
+
+    def __init__(
+        self,
+        source: DataSource,
+        commands: CommandChannel | None = None,
+        *,
+        poll_s: float | None = None,
+        refine_timeline: bool = True,
+    ) -> None:
+        super().__init__()
+        self.source = source
+        self.commands: CommandChannel = commands or NoCommands(
+            "replays are read only"
+            if source.mode is RunMode.REPLAY
+            else "no control socket to command this run"
+        )
+        if poll_s is None:
+            poll_s = REPLAY_FRAME_S if source.mode is RunMode.REPLAY else LIVE_POLL_S
+        self.poll_s = float(poll_s)
+        self.snapshot: Snapshot | None = None
+        self.timeline: Timeline = source.timeline
+        self.sent: list[tuple[str, CommandResult]] = []
+        self._refine = refine_timeline
+        self._status: RunStatus | None = None
+        self._chamber: str | None = None
+        self.register_theme(THEME)
+        self.theme = THEME.name
+
+    # -- life cycle -----------------------------------------------------------------------
+
+    async def on_mount(self) -> None:
+        """Open the source, show the board, start polling."""
+        first = self.source.open()
+        self.snapshot = first
+        await self.push_screen(OverviewScreen())
+        self._deliver(first)
+        self.set_interval(self.poll_s, self.poll_now, name="poll-source")
+        if self._refine:
+            self._refine_timeline()
+
+    def on_unmount(self) -> None:
+        """Close the source (the run goes on)."""
+        self.source.close()
+
+    @work(thread=True, exclusive=True, group="timeline")
+    def _refine_timeline(self) -> None:
+        timeline = self.source.refine_timeline()
+        self.call_from_thread(self._timeline_arrived, timeline)
+
+    def _timeline_arrived(self, timeline: Timeline) -> None:
+        self.timeline = timeline
+        if self.snapshot is not None and isinstance(self.screen, TimelineScreen):
+            self.screen.show(self.snapshot)
+
+    # -- data flow ------------------------------------------------------------------------
+
+    def poll_now(self) -> None:
+        """Ask the source for news once (the timer calls this; so may tests)."""
+        snapshot = self.source.poll()
+        if snapshot is not None:
+            self.post_message(self.SnapshotReady(snapshot))
+
+    def on_squall_app_snapshot_ready(self, message: SnapshotReady) -> None:
+        """Hand a new snapshot to the screen on top."""
+        self._deliver(message.snapshot)
+
+    def _deliver(self, snapshot: Snapshot) -> None:
+        self.snapshot = snapshot
+        if snapshot.run.status is not self._status:
+            self._status = snapshot.run.status
+            self.refresh_bindings()
+        screen = self.screen
+        if isinstance(screen, ViewScreen) and screen.is_mounted:
+            screen.show(snapshot)
+
+    # -- navigation -----------------------------------------------------------------------
+
+    @property
+    def last_chamber(self) -> str | None:
+        """The chamber last opened or stepped to in the detail view."""
+        return self._chamber
+
+    def remember_chamber(self, chamber: str) -> None:
+        """Keep the board's cursor on the chamber last looked at.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        """
+        self._chamber = chamber
+
+    def open_detail(self, chamber: str) -> None:
+        """Show a chamber's detail screen.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        """
+        self._chamber = chamber
+        self.push_screen(DetailScreen(chamber))
+
+    def action_alarms(self) -> None:
+        """Show the alarm list."""
+        if not isinstance(self.screen, AlarmScreen):
+            self.push_screen(AlarmScreen())
+
+    def action_timeline(self) -> None:
+        """Show the protocol timeline."""
+        if not isinstance(self.screen, TimelineScreen):
+            self.push_screen(TimelineScreen())
+
+    def action_help(self) -> None:
+        """Show the key list."""
+        self.push_screen(HelpDialog())
+
+    # -- which keys are offered -----------------------------------------------------------
+
+    def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        """Offer commands only when allowed and sensible; replay keys only in replay."""
+        status = self.snapshot.run.status if self.snapshot is not None else None
+        can = self.commands.can_command
+        if action == "hold":
+            return can and status is RunStatus.RUNNING
+        if action == "resume":
+            return can and status is RunStatus.HELD
+        if action == "abort":
+            return can and status not in (RunStatus.FINISHED, None)
+        if action == "note":
+            return can
+        if action in ("play_pause", "speed", "seek", "seek_end"):
+            return self.source.mode is RunMode.REPLAY
+        return True
+
+    # -- commands -------------------------------------------------------------------------
+
+    def _confirm_then(
+        self,
+        dialog: ConfirmDialog,
+        label: str,
+        send: Callable[[], Awaitable[CommandResult]],
+    ) -> None:
+        def answered(yes: bool | None) -> None:
+            if yes:
+                self._send(label, send)
+
+        self.push_screen(dialog, answered)
+
+    @work(exclusive=False, group="commands")
+    async def _send(self, label: str, send: Callable[[], Awaitable[CommandResult]]) -> None:
+        result = await send()
+        self.sent.append((label, result))
+        if result.ok:
+            self.notify(result.message or f"{label}: done", title=label)
+        else:
+            self.notify(result.message or f"{label}: refused", title=label, severity="error")
+        self.poll_now()
+
+    def action_hold(self) -> None:
+        """Hold the protocol clock (after confirmation)."""
+        self._confirm_then(
+            ConfirmDialog(
+                "Hold the protocol clock?",
+                "Setpoints stay where they are now until you resume (key r).",
+                confirm_label="hold",
+            ),
+            "hold",
+            self.commands.hold,
+        )
+
+    def action_resume(self) -> None:
+        """Resume after a hold (after confirmation)."""
+        self._confirm_then(
+            ConfirmDialog(
+                "Resume the protocol clock?",
+                "The protocol goes on from where it was held.",
+                confirm_label="resume",
+            ),
+            "resume",
+            self.commands.resume,
+        )
+
+    def action_abort(self) -> None:
+        """Abort the run (after confirmation)."""
+        self._confirm_then(
+            ConfirmDialog(
+                "ABORT the run?",
+                "Every output goes to its safe state and the run log is closed. "
+                "This cannot be undone.",
+                confirm_label="abort the run",
+                danger=True,
+            ),
+            "abort",
+            self.commands.abort,
+        )
+
+    def action_note(self) -> None:
+        """Write a note to the audit trail."""
+
+        def written(text: str | None) -> None:
+            if text:
+                self._send("note", lambda: self.commands.note(text))
+
+        self.push_screen(NoteDialog(), written)
+
+    def on_alarm_screen_ack_requested(self, message: AlarmScreen.AckRequested) -> None:
+        """Acknowledge an alarm (after confirmation)."""
+        alarm = message.alarm
+        where = alarm.chamber or "the rig"
+        self._confirm_then(
+            ConfirmDialog(
+                f"Acknowledge {alarm.code} on {where}?",
+                alarm.reason,
+                confirm_label="acknowledge",
+            ),
+            "ack",
+            lambda: self.commands.ack(alarm.code, alarm.chamber),
+        )
+
+    # -- replay controls ------------------------------------------------------------------
+
+    def _replay(self) -> ReplaySource | None:
+        source = self.source
+        return source if isinstance(source, ReplaySource) else None
+
+    def _after_control(self) -> None:
+        snapshot = self.source.poll()
+        if snapshot is not None:
+            self._deliver(snapshot)
+
+    def action_play_pause(self) -> None:
+        """Play or pause the replay."""
+        if (replay := self._replay()) is not None:
+            replay.toggle()
+            self._after_control()
+
+    def action_speed(self, factor: float) -> None:
+        """Multiply the replay speed."""
+        if (replay := self._replay()) is not None:
+            replay.set_speed(replay.speed * factor)
+            self._after_control()
+
+    def action_seek(self, delta_s: float) -> None:
+        """Move the replay position by ``delta_s`` seconds of run time."""
+        if (replay := self._replay()) is not None:
+            replay.seek_by(delta_s)
+            self._after_control()
+
+    def action_seek_end(self, fraction: float) -> None:
+        """Move the replay position to the start (0) or the end (1) of the log."""
+        if (replay := self._replay()) is not None:
+            replay.seek_fraction(fraction)
+            self._after_control()

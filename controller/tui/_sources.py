@@ -1,0 +1,436 @@
+"""Data sources: turn a run log (or, later, a broker) into snapshots for the views.
+
+Rules of this module
+--------------------
+- A source is the only thing in the UI that reads data. Widgets never see a reader, a frame
+  or a driver; they get :class:`~._snapshot.Snapshot` objects from the app, which asks its
+  source on a timer (``poll``) and posts the result as a message.
+- ``open`` and ``poll`` are quick and bounded: ``open`` reads the log's metadata and the
+  last few ticks only (so ``squall watch`` paints at once however long the run is), and one
+  ``poll`` reads at most ``max_rows_per_poll`` sample rows. A source that falls further
+  behind (a suspended laptop) skips ahead to the newest tick rather than replaying a backlog.
+- ``history`` may be slow (it reads hours of one chamber) and is meant for a worker thread:
+  it opens its own reader, so it never shares a connection with ``poll``.
+- Sources never write to the log and never stop a run. Closing the UI closes the reader only.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+import pandas as pd
+
+from controller.storage import ClockKind, IncubationState, RunLogReader, RunMeta
+
+from ._fold import alarm_rows, apply_alarms, event_rows, fold_alarms, held_at, utc_seconds
+from ._snapshot import (
+    AlarmEntry,
+    ChamberState,
+    RunMode,
+    RunState,
+    RunStatus,
+    Snapshot,
+    Trace,
+    finite_or_none,
+)
+from ._timeline import Timeline, full_timeline, quick_timeline
+
+__all__ = [
+    "TRACE_COLUMNS",
+    "DataSource",
+    "LogSource",
+    "chamber_states",
+    "trace_from_frame",
+]
+
+#: Sample columns the detail charts need.
+TRACE_COLUMNS = (
+    "time",
+    "temperature_c",
+    "temperature_setpoint_c",
+    "o2_umol_l",
+    "o2_sat_pct",
+    "incubation",
+)
+
+_STATE_COLUMNS = (
+    "chamber",
+    "time",
+    "phase",
+    "temperature_c",
+    "temperature_setpoint_c",
+    "par",
+    "par_setpoint",
+    "flow_cm_s",
+    "flow_setpoint_cm_s",
+    "o2_umol_l",
+    "o2_sat_pct",
+    "incubation",
+    "alarm",
+)
+
+
+@runtime_checkable
+class DataSource(Protocol):
+    """What the app needs from a source of chamber data."""
+
+    @property
+    def mode(self) -> RunMode:
+        """Live or replay."""
+        ...
+
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """The run's chambers, in rig order."""
+        ...
+
+    @property
+    def timeline(self) -> Timeline:
+        """The protocol's timeline as known so far."""
+        ...
+
+    def open(self) -> Snapshot:
+        """Read what is needed for the first paint and return the first snapshot."""
+        ...
+
+    def poll(self) -> Snapshot | None:
+        """Bounded work: read what is new; return a snapshot, or None if nothing changed."""
+        ...
+
+    def history(self, chamber: str, span_s: float) -> Trace:
+        """One chamber's samples over the last ``span_s`` seconds (s); may block."""
+        ...
+
+    def refine_timeline(self) -> Timeline:
+        """Compile the protocol to place events; may block; returns the new timeline."""
+        ...
+
+    def close(self) -> None:
+        """Release files and connections (never affects the run)."""
+        ...
+
+
+def _incubation(value: object) -> IncubationState | None:
+    if value is None or value is pd.NA or value != value:
+        return None
+    return IncubationState(str(value))
+
+
+def _alarm_code(value: object) -> str | None:
+    if value is None or value is pd.NA or value != value:
+        return None
+    text = str(value)
+    return text or None
+
+
+def chamber_states(frame: pd.DataFrame) -> dict[str, ChamberState]:
+    """The newest state of each chamber present in a samples frame (no alarm levels yet).
+
+    Parameters
+    ----------
+    frame
+        Sample rows in write order (columns as :meth:`RunLogReader.samples` gives them).
+
+    Returns
+    -------
+    dict
+        Chamber id → its state at its last row in ``frame``.
+    """
+    if frame.empty:
+        return {}
+    last = frame.drop_duplicates("chamber", keep="last")
+    utc = utc_seconds(last["time"])
+    out: dict[str, ChamberState] = {}
+    columns = [last[c].to_numpy(dtype=object) for c in _STATE_COLUMNS]
+    for i, values in enumerate(zip(*columns, strict=True)):
+        (chamber, _, phase, t, tsp, par, parsp, flow, flowsp, o2, sat, inc, alarm) = values
+        out[str(chamber)] = ChamberState(
+            chamber=str(chamber),
+            utc_s=float(utc[i]),
+            phase=str(phase),
+            temperature_c=finite_or_none(t),
+            temperature_setpoint_c=finite_or_none(tsp),
+            par=finite_or_none(par),
+            par_setpoint=finite_or_none(parsp),
+            flow_cm_s=finite_or_none(flow),
+            flow_setpoint_cm_s=finite_or_none(flowsp),
+            o2_umol_l=finite_or_none(o2),
+            o2_sat_pct=finite_or_none(sat),
+            incubation=_incubation(inc),
+            alarm_code=_alarm_code(alarm),
+        )
+    return out
+
+
+def trace_from_frame(chamber: str, frame: pd.DataFrame) -> Trace:
+    """A chart trace from a samples frame of one chamber with :data:`TRACE_COLUMNS`.
+
+    Parameters
+    ----------
+    chamber
+        Chamber identifier.
+    frame
+        Its sample rows in write order.
+
+    Returns
+    -------
+    Trace
+        Arrays sorted by UTC time (a resumed run's rows stay in order).
+    """
+    utc = utc_seconds(frame["time"])
+    order = np.argsort(utc, kind="stable")
+    return Trace(
+        chamber=chamber,
+        utc_s=utc[order],
+        temperature_c=frame["temperature_c"].to_numpy(dtype="float64")[order],
+        temperature_setpoint_c=frame["temperature_setpoint_c"].to_numpy(dtype="float64")[order],
+        o2_umol_l=frame["o2_umol_l"].to_numpy(dtype="float64")[order],
+        o2_sat_pct=frame["o2_sat_pct"].to_numpy(dtype="float64")[order],
+        closed=(frame["incubation"].astype(object) == IncubationState.CLOSED.value).to_numpy(
+            dtype=bool
+        )[order],
+    )
+
+
+class LogSource:
+    """Follow a run log as its run writes it (or read a finished one as it ended).
+
+    Parameters
+    ----------
+    path
+        The run log.
+    max_rows_per_poll
+        Most sample rows one poll reads, dimensionless; default 8 ticks of every chamber.
+    silent_after_s
+        Real seconds without a new sample after which an unfinished run shows as silent, s.
+    wall_clock
+        Real UTC time as POSIX s (injected so tests are deterministic).
+    real_clock
+        Monotonic real time, s (injected so tests are deterministic).
+    protocol_dir
+        Folder the protocol's CSV series are relative to, for placing events; default the
+        working folder.
+
+    Raises
+    ------
+    SquallError
+        The file is missing or not a readable run log.
+    """
+
+    def __init__(
+        self,
+        path: str | Path,
+        *,
+        max_rows_per_poll: int | None = None,
+        silent_after_s: float = 60.0,
+        wall_clock: Callable[[], float] = time.time,
+        real_clock: Callable[[], float] = time.monotonic,
+        protocol_dir: Path | None = None,
+    ) -> None:
+        self._path = Path(path)
+        self._reader = RunLogReader(self._path)
+        try:
+            self._meta: RunMeta = self._reader.meta()
+        except BaseException:
+            self._reader.close()
+            raise
+        self._chambers = tuple(c.chamber for c in self._meta.chambers)
+        n = max(1, len(self._chambers))
+        self._max_rows = int(max_rows_per_poll or 8 * n)
+        self._silent_after_s = float(silent_after_s)
+        self._wall_clock = wall_clock
+        self._real_clock = real_clock
+        self._protocol_dir = protocol_dir
+        self._timeline = quick_timeline(self._meta.protocol_text)
+        self._latest: dict[str, ChamberState] = {c: ChamberState(chamber=c) for c in self._chambers}
+        self._since = 0
+        self._version = 0
+        self._newest_row: tuple[float, float, str] | None = None  # (utc_s, elapsed_s, phase)
+        self._arrival_s: float | None = None
+        self._alarms: tuple[AlarmEntry, ...] = ()
+        self._held = False
+        self._end_reason = ""
+        self._last: Snapshot | None = None
+
+    # -- properties -----------------------------------------------------------------------
+
+    @property
+    def mode(self) -> RunMode:
+        """Always live."""
+        return RunMode.LIVE
+
+    @property
+    def path(self) -> Path:
+        """The run log."""
+        return self._path
+
+    @property
+    def meta(self) -> RunMeta:
+        """The run's metadata."""
+        return self._meta
+
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """The run's chambers, in rig order."""
+        return self._chambers
+
+    @property
+    def timeline(self) -> Timeline:
+        """The protocol's timeline as known so far."""
+        return self._timeline
+
+    # -- reading --------------------------------------------------------------------------
+
+    def open(self) -> Snapshot:
+        """Read metadata and the last few ticks; return the first snapshot.
+
+        Returns
+        -------
+        Snapshot
+            The newest state of every chamber (chambers without samples are empty).
+        """
+        last = self._reader.last_rowid()
+        self._since = max(0, last - 2 * len(self._chambers))
+        snapshot = self._read(force=True)
+        assert snapshot is not None
+        return snapshot
+
+    def poll(self) -> Snapshot | None:
+        """Read new rows (at most ``max_rows_per_poll``) and the rare tables.
+
+        Returns
+        -------
+        Snapshot or None
+            A new snapshot when anything changed (new samples, alarms, hold, end, or the run
+            turning silent), else None.
+        """
+        return self._read(force=False)
+
+    def _read(self, *, force: bool) -> Snapshot | None:
+        reader = self._reader
+        frame = reader.tail(self._since, limit=self._max_rows)
+        if len(frame) == self._max_rows:
+            newest = reader.last_rowid()
+            if newest - int(frame.index[-1]) > self._max_rows:  # far behind: skip ahead
+                self._since = max(0, newest - 2 * len(self._chambers))
+                frame = reader.tail(self._since, limit=self._max_rows)
+        changed = force
+        if len(frame):
+            self._since = int(frame.index[-1])
+            for chamber, state in chamber_states(frame).items():
+                self._latest[chamber] = state
+            last = frame.iloc[-1]
+            self._newest_row = (
+                float(utc_seconds(frame["time"].iloc[-1:])[0]),
+                float(last["elapsed_s"]),
+                str(last["phase"]),
+            )
+            arrival = self._real_clock()
+            if force and self._meta.clock_kind is ClockKind.REAL:
+                # on opening, the newest row may be old: age it by the wall clock
+                arrival -= max(0.0, self._wall_clock() - self._newest_row[0])
+            self._arrival_s = arrival
+            changed = True
+        alarms = fold_alarms(alarm_rows(reader.alarms()))
+        if alarms != self._alarms:
+            self._alarms, changed = alarms, True
+        held = held_at(event_rows(reader.events()))
+        if held != self._held:
+            self._held, changed = held, True
+        if not len(frame) and not self._end_reason:
+            end = reader.info().end
+            if end is not None:
+                self._end_reason, changed = end.end_reason.value, True
+        run = self._run_state()
+        if self._last is not None and run.status is not self._last.run.status:
+            changed = True
+        if not changed:
+            return None
+        self._version += 1
+        states = tuple(apply_alarms(self._latest[c], self._alarms) for c in self._chambers)
+        self._last = Snapshot(run=run, chambers=states, alarms=self._alarms, version=self._version)
+        return self._last
+
+    def _age_s(self) -> float | None:
+        """Real seconds since the newest sample was logged (as far as this source saw)."""
+        if self._arrival_s is None:
+            return None
+        return max(0.0, self._real_clock() - self._arrival_s)
+
+    def _run_state(self) -> RunState:
+        newest = self._newest_row
+        age = self._age_s()
+        if self._end_reason:
+            status = RunStatus.FINISHED
+        elif newest is None:
+            status = RunStatus.WAITING
+        elif self._held:
+            status = RunStatus.HELD
+        elif age is not None and age > self._silent_after_s:
+            status = RunStatus.SILENT
+        else:
+            status = RunStatus.RUNNING
+        return RunState(
+            run_id=self._meta.run_id,
+            title=self._timeline.title or self._meta.run_id,
+            mode=RunMode.LIVE,
+            status=status,
+            phase=newest[2] if newest else "",
+            elapsed_s=newest[1] if newest else 0.0,
+            duration_s=self._timeline.duration_s,
+            utc_s=newest[0] if newest else None,
+            start_utc_s=self._meta.start_utc_s,
+            end_reason=self._end_reason,
+            age_s=age,
+        )
+
+    def history(self, chamber: str, span_s: float) -> Trace:
+        """One chamber's samples over the ``span_s`` seconds before its newest sample.
+
+        Opens its own reader, so it may run in a worker thread while ``poll`` runs.
+
+        Parameters
+        ----------
+        chamber
+            Chamber identifier.
+        span_s
+            How far back, s.
+
+        Returns
+        -------
+        Trace
+            The samples, oldest first.
+        """
+        with RunLogReader(self._path) as reader:
+            tail = reader.tail(max(0, reader.last_rowid() - 4 * len(self._chambers)))
+            mine = tail[tail["chamber"] == chamber]
+            if mine.empty:
+                frame = reader.samples(chamber, columns=TRACE_COLUMNS)
+            else:
+                t_last = float(mine["t_s"].iloc[-1])
+                frame = reader.samples(chamber, columns=TRACE_COLUMNS, t_from=t_last - span_s)
+        trace = trace_from_frame(chamber, frame)
+        if len(trace):
+            trace = trace.window(float(trace.utc_s[-1]), span_s)
+        return trace
+
+    def refine_timeline(self) -> Timeline:
+        """Compile the stored protocol to place events and sampling reminders (may block).
+
+        Returns
+        -------
+        Timeline
+            The complete timeline, or the quick one with a note if it does not compile.
+        """
+        self._timeline = full_timeline(
+            self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
+        )
+        return self._timeline
+
+    def close(self) -> None:
+        """Close the reader (the run goes on)."""
+        self._reader.close()
