@@ -110,9 +110,9 @@ class TransportError(RuntimeFailure):
     Parameters
     ----------
     message
-        What happened.
+        What happened (no unit).
     link
-        Name of the link (host:port or port path), for messages and logs.
+        Name of the link (host:port or port path), for messages and logs (no unit).
     """
 
     def __init__(self, message: str, *, link: str) -> None:
@@ -138,9 +138,9 @@ class DeviceRefused(TransportError):
     Parameters
     ----------
     message
-        What was asked.
+        What was asked (no unit).
     link
-        Name of the link.
+        Name of the link (no unit).
     raw
         Exception code as received, 0..255 (no unit).
     unit_id

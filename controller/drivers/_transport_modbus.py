@@ -78,9 +78,9 @@ class ModbusTransport:
     name
         Link name used in errors and logs, e.g. ``"tcp 127.0.0.1:15020"`` (no unit).
     factory
-        Makes a new, unconnected pymodbus client (called inside the event loop).
+        Makes a new, unconnected pymodbus client, called inside the event loop (no unit).
     policy
-        Timeouts, attempts and back-off of every call.
+        Timeouts, attempts and back-off of every call (s, count).
     """
 
     def __init__(
@@ -117,7 +117,7 @@ class ModbusTransport:
         port
             TCP port, 1..65535 (no unit).
         policy
-            Timeouts, attempts and back-off.
+            Timeouts, attempts and back-off (s, count).
 
         Returns
         -------
@@ -163,7 +163,7 @@ class ModbusTransport:
         stop_bits
             1 or 2 (count).
         policy
-            Timeouts, attempts and back-off.
+            Timeouts, attempts and back-off (s, count).
 
         Returns
         -------

@@ -158,11 +158,11 @@ class HardwareIO:
     ----------
     io
         An explicit I/O map (links and optode ports, no ports file: see
-        :func:`~controller.rig.resolve_io`), checked against ``chambers``.
+        :func:`~controller.rig.resolve_io`), checked against ``chambers`` (no unit).
     chambers
         The rig's chamber ids in rig order (no unit).
     clock
-        The run's clock (optode cadence and time stamps).
+        The run's clock (optode cadence and time stamps; no unit).
     watchdog_timeout_s
         Device watchdog timeout written to every module, s (0.5..6000); must exceed the
         control tick period with room to spare (common practice: three periods).
@@ -247,15 +247,15 @@ class HardwareIO:
         Parameters
         ----------
         rig
-            The rig, with an ``io`` table.
+            The rig, with an ``io`` table (no unit).
         clock
-            The run's clock.
+            The run's clock (no unit).
         base_dir
-            Folder of the rig file (``io.from_announcement`` is relative to it).
+            Folder of the rig file; ``io.from_announcement`` is relative to it (no unit).
         plan
-            The run's control plan: its settings and each chamber's safe outputs.
+            The run's control plan: its settings and each chamber's safe outputs (no unit).
         settings
-            Run settings when there is no plan; default :class:`RunSettings`.
+            Run settings when there is no plan; default :class:`RunSettings` (no unit).
 
         Returns
         -------
@@ -274,7 +274,7 @@ class HardwareIO:
         safe = {}
         if plan is not None:
             safe = {c: s.interlocks.safe_outputs() for c, s in plan.chambers.items()}
-        watchdog_s = io.watchdog_timeout_s or 3.0 * settings.period_s
+        watchdog_s = io.watchdog_timeout_s or min(3.0 * settings.period_s, 6000.0)
         if watchdog_s < 1.5 * settings.period_s:
             raise SquallError(
                 f"{watchdog_s:g} s would trip the modules between control ticks of "
