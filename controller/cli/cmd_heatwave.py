@@ -337,10 +337,17 @@ def register(sub: Any) -> None:
         help="copy the N-th event (as numbered by 'heatwave detect') of --series",
     )
     design.add_argument(
-        "--groups", nargs="+", default=["treatment"], metavar="GROUP", help="groups it applies to"
+        "--groups",
+        nargs="+",
+        default=["treatment"],
+        metavar="GROUP",
+        help="groups it applies to (default: treatment)",
     )
     design.add_argument(
-        "--starts", default="exposure", metavar="PHASE", help="phase (or offset) it starts at"
+        "--starts",
+        default="exposure",
+        metavar="PHASE",
+        help="phase (or offset) it starts at (default: exposure)",
     )
     design.add_argument("--name", metavar="TEXT", help="event name shown in plots and logs")
     design.add_argument("-o", "--output", type=Path, metavar="FILE", help="write the block to FILE")
