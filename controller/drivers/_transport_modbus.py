@@ -16,8 +16,11 @@ Rules of this module
   connection is lost (peer closed it, reset, serial port gone) the next attempt opens a new
   one. A device that merely stays silent does not cost a reconnect; the other blocks behind
   the same link keep their connection.
-- pymodbus serialises requests on one connection, so concurrent calls from many chambers
-  queue on the link; each still has its own timeout, which covers its wait in the queue.
+- One request is on the wire at a time (a Modbus link answers in order; an RTU line can
+  carry only one). Concurrent calls from many chambers queue on the link's lock, and an
+  attempt's timeout starts once its request is sent, so it measures the device, not the
+  queue; the queue is bounded by the timeouts of the requests ahead, and callers bound
+  their total wait with their own ``asyncio.timeout``.
 - The pymodbus client is created inside the running event loop (it makes futures when
   built), so a transport may be constructed anywhere.
 """
@@ -95,6 +98,7 @@ class ModbusTransport:
         self._factory = factory
         self._client: Client | None = None
         self._connect_lock: asyncio.Lock | None = None
+        self._wire_lock: asyncio.Lock | None = None
         self._closed = False
         self.connects = 0
         """Connections opened so far (the first one included), count."""
@@ -273,8 +277,10 @@ class ModbusTransport:
                 continue
             if request is None:
                 return None
+            if self._wire_lock is None:
+                self._wire_lock = asyncio.Lock()
             try:
-                async with asyncio.timeout(self.policy.timeout_s):
+                async with self._wire_lock, asyncio.timeout(self.policy.timeout_s):
                     reply = await request(client)
             except TimeoutError:
                 lost, detail = False, f"no reply within {self.policy.timeout_s:g} s"

@@ -92,7 +92,9 @@ class ModbusLink(FileModel):
         default_factory=RegisterMapConfig,
         description="Block layout of this link's chambers (unit id, addresses, word order).",
     )
-    timeout_s: float = Field(0.5, gt=0, le=30, description="Longest wait for one reply, s.")
+    timeout_s: float = Field(
+        0.5, gt=0, le=30, description="Longest wait for one reply once its request is sent, s."
+    )
     attempts: int = Field(3, ge=1, le=10, description="Attempts per request, count.")
     backoff_s: float = Field(
         0.05, ge=0, le=10, description="Pause before the second attempt (doubling after), s."
@@ -257,6 +259,11 @@ class RigIo(FileModel):
 # --------------------------------------------------------------------------- ports files
 
 
+_LOOPBACK_TIMEOUT_S = 0.1
+"""Reply timeout of the simulator's link, s: on loopback a block answers within milliseconds,
+so a short timeout lets retries fit even a 1 s control tick."""
+
+
 class _Loose(BaseModel):
     model_config = ConfigDict(extra="ignore", frozen=True)
 
@@ -334,6 +341,7 @@ def io_from_ports(
         link = ModbusLink(
             name="simulator",
             tcp=TcpConnection(host=ports.modbus.host, port=ports.modbus.port),
+            timeout_s=_LOOPBACK_TIMEOUT_S,
             chambers=list(chamber_ids),
             register_map=RegisterMapConfig(word_order=ports.modbus.word_order, chambers=overrides),
         )

@@ -167,6 +167,28 @@ def test_a_silent_module_costs_every_attempt_then_no_reply() -> None:
     virtual(body)
 
 
+def test_a_reply_timeout_measures_the_device_not_the_queue_behind_a_silent_one() -> None:
+    rack = new_rack()
+    once = RetryPolicy(timeout_s=0.5, attempts=1)
+
+    async def body(clock: VirtualClock) -> None:
+        async with served(rack) as server:
+            link = ModbusTransport.tcp("127.0.0.1", server.announcement.port, policy=once)
+            await link.connect()
+            rack.inject(Fault(kind=FaultKind.COMM_TIMEOUT, chamber="c1", at_s=rack.t_s))
+            t0 = clock.now_s()
+            silent = asyncio.ensure_future(link.read_input_registers(1, 0, 6))
+            await asyncio.sleep(0)  # c1's request goes on the wire first
+            words = await link.read_input_registers(1, 32, 6)  # c2 waits its turn, then answers
+            assert clock.now_s() - t0 == pytest.approx(0.5, abs=1e-6)
+            assert decode_inputs(words).level_pct == pytest.approx(100.0)
+            with pytest.raises(NoReply):
+                await silent
+            await link.close()
+
+    virtual(body)
+
+
 def test_the_link_reconnects_after_the_server_restarts() -> None:
     rack = new_rack()
 
