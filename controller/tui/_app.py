@@ -79,7 +79,9 @@ class SquallApp(App[None]):
         :data:`REPLAY_FRAME_S` in replay. Tests pass a long period and call
         :meth:`poll_now` instead, so nothing waits on real time.
     refine_timeline
-        Compile the protocol in a worker thread after the first paint to place its events.
+        Read the protocol (phases, duration, events) in a worker thread after the first
+        paint (True, the default: the first paint does not wait for the protocol models),
+        or before the first snapshot (False: deterministic, for tests and screenshots).
     """
 
     CSS_PATH = "squall.tcss"
@@ -150,6 +152,8 @@ class SquallApp(App[None]):
 
     async def on_mount(self) -> None:
         """Open the source, show the board, start polling."""
+        if not self._refine:
+            self.timeline = self.source.refine_timeline()
         first = self.source.open()
         self.snapshot = first
         await self.push_screen(OverviewScreen())
@@ -169,8 +173,7 @@ class SquallApp(App[None]):
 
     def _timeline_arrived(self, timeline: Timeline) -> None:
         self.timeline = timeline
-        if self.snapshot is not None and isinstance(self.screen, TimelineScreen):
-            self.screen.show(self.snapshot)
+        self.poll_now()  # the source now knows the duration: a new snapshot shows it
 
     # -- data flow ------------------------------------------------------------------------
 

@@ -12,7 +12,15 @@ from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
 
-from ._look import PALETTE, alarm_badge, alarm_style, clock_utc, fmt_duration, status_badge
+from ._look import (
+    PALETTE,
+    alarm_badge,
+    alarm_style,
+    clock_utc,
+    fmt_age,
+    fmt_duration,
+    status_badge,
+)
 from ._snapshot import AlarmEntry, RunMode, RunState
 
 __all__ = ["AlarmLine", "RunBar", "progress_bar", "speed_text"]
@@ -85,7 +93,7 @@ class RunBar(Widget):
         top.append("  phase ", style=mist)
         top.append(run.phase or "-", style=f"bold {foam}")
         if run.mode is RunMode.LIVE and run.age_s is not None:
-            top.append(f"  last tick {fmt_duration(run.age_s)} ago", style=mist)
+            top.append(f"  last tick {fmt_age(run.age_s)} ago", style=mist)
         top.append("  ")
         top.append(run.title, style=foam)
         bottom = Text(no_wrap=True, overflow="ellipsis")

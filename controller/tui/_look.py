@@ -29,6 +29,7 @@ __all__ = [
     "clock_utc",
     "deviation_style",
     "fmt",
+    "fmt_age",
     "fmt_duration",
     "fmt_signed",
     "incubation_badge",
@@ -225,6 +226,26 @@ def fmt_duration(seconds: float | None) -> str:
     if days:
         return f"{days}d {hours:02d}:{minutes:02d}"
     return f"{hours:02d}:{minutes:02d}:{secs:02d}"
+
+
+def fmt_age(seconds: float | None) -> str:
+    """How long ago, briefly: ``4 s``, ``12 min``, ``3 h 05 min``, ``2 d 04 h``.
+
+    Parameters
+    ----------
+    seconds
+        Age, s.
+    """
+    if seconds is None or not math.isfinite(seconds):
+        return "-"
+    total = int(max(0.0, seconds))
+    if total < 60:
+        return f"{total} s"
+    if total < 3600:
+        return f"{total // 60} min"
+    if total < 86400:
+        return f"{total // 3600} h {total % 3600 // 60:02d} min"
+    return f"{total // 86400} d {total % 86400 // 3600:02d} h"
 
 
 def clock_utc(utc_s: float | None) -> str:

@@ -39,7 +39,7 @@ from ._fold import (
     utc_seconds,
 )
 from ._snapshot import ChamberState, RunMode, RunState, RunStatus, Snapshot, Trace
-from ._timeline import Timeline, full_timeline, quick_timeline
+from ._timeline import Timeline, full_timeline, title_only
 
 __all__ = ["ReplaySource"]
 
@@ -171,7 +171,7 @@ class ReplaySource:
         self._max_rows = int(max_rows_per_poll)
         self._real_clock = real_clock
         self._protocol_dir = protocol_dir
-        self._timeline = quick_timeline(self._meta.protocol_text)
+        self._timeline = title_only(self._meta.protocol_text)
         self._speed = self._clamp_speed(speed)
         self._playing = True
         self._since = 0
@@ -511,6 +511,7 @@ class ReplaySource:
         self._timeline = full_timeline(
             self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
         )
+        self._dirty = True
         return self._timeline
 
     def close(self) -> None:

@@ -37,7 +37,7 @@ from ._snapshot import (
     Trace,
     finite_or_none,
 )
-from ._timeline import Timeline, full_timeline, quick_timeline
+from ._timeline import Timeline, full_timeline, title_only
 
 __all__ = [
     "TRACE_COLUMNS",
@@ -245,7 +245,7 @@ class LogSource:
         self._wall_clock = wall_clock
         self._real_clock = real_clock
         self._protocol_dir = protocol_dir
-        self._timeline = quick_timeline(self._meta.protocol_text)
+        self._timeline = title_only(self._meta.protocol_text)
         self._latest: dict[str, ChamberState] = {c: ChamberState(chamber=c) for c in self._chambers}
         self._since = 0
         self._version = 0
@@ -255,6 +255,7 @@ class LogSource:
         self._held = False
         self._end_reason = ""
         self._last: Snapshot | None = None
+        self._timeline_changed = False
 
     # -- properties -----------------------------------------------------------------------
 
@@ -341,10 +342,12 @@ class LogSource:
         held = held_at(event_rows(reader.events()))
         if held != self._held:
             self._held, changed = held, True
-        if not len(frame) and not self._end_reason:
+        if (force or not len(frame)) and not self._end_reason:
             end = reader.info().end
             if end is not None:
                 self._end_reason, changed = end.end_reason.value, True
+        if self._timeline_changed:  # the duration became known: show it
+            self._timeline_changed, changed = False, True
         run = self._run_state()
         if self._last is not None and run.status is not self._last.run.status:
             changed = True
@@ -429,6 +432,7 @@ class LogSource:
         self._timeline = full_timeline(
             self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
         )
+        self._timeline_changed = True
         return self._timeline
 
     def close(self) -> None:

@@ -4,25 +4,30 @@ Rules of this module
 --------------------
 - The run log stores the protocol text as run; the timeline comes from it, never from a file
   on disk that may have changed since.
-- Two depths: :func:`quick_timeline` validates the protocol and lays its phases end to end
-  (milliseconds, done before the first paint); :func:`full_timeline` also compiles it to
-  place events (heatwaves, storms…) and sampling reminders. Compiling may need CSV series
-  next to the protocol file, which a replayed log rarely has: then the quick timeline stands.
+- Three depths: :func:`title_only` reads just the title with the standard TOML parser (no
+  protocol models, so the first paint does not wait for them); :func:`quick_timeline`
+  validates the protocol and lays its phases end to end; :func:`full_timeline` also compiles
+  it to place events (heatwaves, storms…) and sampling reminders. Compiling may need CSV
+  series next to the protocol file, which a replayed log rarely has: then the quick
+  timeline stands. The protocol package is imported inside the functions that need it.
 - A protocol that cannot be read at all gives an empty timeline with its duration unknown,
   never an error: the views still show the samples.
 """
 
 from __future__ import annotations
 
+import tomllib
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from controller.errors import SquallError
-from controller.files import parse_toml, validate_data
-from controller.protocol import Protocol, compile_protocol
 
-__all__ = ["Span", "Timeline", "full_timeline", "quick_timeline"]
+if TYPE_CHECKING:
+    from controller.protocol import Protocol
+
+__all__ = ["Span", "Timeline", "full_timeline", "quick_timeline", "title_only"]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -91,7 +96,34 @@ class Timeline:
 
 
 def _read(text: str, name: str) -> Protocol:
+    from controller.files import parse_toml, validate_data
+    from controller.protocol import Protocol
+
     return validate_data(parse_toml(text, file=name), Protocol, text=text, file=name)
+
+
+def title_only(protocol_text: str) -> Timeline:
+    """A timeline that knows only the protocol's title (duration unknown), read cheaply.
+
+    Parameters
+    ----------
+    protocol_text
+        The protocol's TOML text as stored in the run log.
+
+    Returns
+    -------
+    Timeline
+        Title (or "" when the text is not TOML), no phases, duration None.
+    """
+    try:
+        title = tomllib.loads(protocol_text).get("title", "")
+    except tomllib.TOMLDecodeError:
+        title = ""
+    return Timeline(
+        title=title if isinstance(title, str) else "",
+        duration_s=None,
+        note="reading the protocol…",
+    )
 
 
 def _phases(protocol: Protocol) -> tuple[Span, ...]:
@@ -159,6 +191,8 @@ def full_timeline(
     quick = quick_timeline(protocol_text, name=name)
     if quick.duration_s is None:
         return quick
+    from controller.protocol import compile_protocol
+
     try:
         protocol = _read(protocol_text, name)
         compiled = compile_protocol(
