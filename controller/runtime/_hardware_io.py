@@ -32,18 +32,18 @@ Rules of this module
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import logging
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Awaitable, Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import TracebackType
-from typing import Self
+from typing import Self, TypeVar
 
 from controller.clock import Clock
 from controller.control import Outputs
 from controller.drivers import (
-    ErrorReply,
     InputBits,
     InputValues,
     Measurement,
@@ -83,6 +83,8 @@ from controller.runtime._settings import ControlPlan, RunSettings
 
 __all__ = ["HardwareIO"]
 
+T = TypeVar("T")
+
 _log = logging.getLogger(__name__)
 
 _OFF = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
@@ -97,6 +99,11 @@ _RELAY_REFRESH = 10
 #: Optode statuses whose values must not be used (clamped or unreliable), dimensionless.
 _UNUSABLE = OptodeStatus.LOW_SIGNAL | OptodeStatus.O2_RANGE
 _STOP_FAILURES = (TransportError, SquallError, TimeoutError)
+_ANALOG = (
+    ("temperature_c", Quantity.TEMPERATURE),
+    ("par", Quantity.PAR),
+    ("flow_cm_s", Quantity.FLOW),
+)
 
 
 @dataclass(kw_only=True)
@@ -115,7 +122,6 @@ class _Block:
     """Relay coils as last written, or None when the module's coils are not known."""
     relay_age: int = 0
     """Writes since the relays were last written, count."""
-    trips_seen: int = 0
 
 
 @dataclass(kw_only=True)
@@ -134,20 +140,18 @@ class _Optode:
     first: asyncio.Event = field(default_factory=asyncio.Event)
 
 
-def _policy(link: ModbusLink) -> RetryPolicy:
-    return RetryPolicy(timeout_s=link.timeout_s, attempts=link.attempts, backoff_s=link.backoff_s)
-
-
 def _transport(link: ModbusLink) -> ModbusTransport:
+    policy = RetryPolicy(timeout_s=link.timeout_s, attempts=link.attempts, backoff_s=link.backoff_s)
     if link.tcp is not None:
-        return ModbusTransport.tcp(link.tcp.host, link.tcp.port, policy=_policy(link))
+        return ModbusTransport.tcp(link.tcp.host, link.tcp.port, policy=policy)
     assert link.rtu is not None  # the model allows exactly one of the two
+    parity = link.rtu.parity.value
     return ModbusTransport.rtu(
         link.rtu.port,
         baud=link.rtu.baud,
-        parity=link.rtu.parity.value,  # type: ignore[arg-type]
+        parity=parity,
         stop_bits=link.rtu.stop_bits,
-        policy=_policy(link),
+        policy=policy,
     )
 
 
@@ -191,13 +195,13 @@ class HardwareIO:
         self._clock = clock
         self._chambers = tuple(chambers)
         self._budget_s = float(budget_s)
-        (self._timeout_word,) = encode_point(
-            _TIMEOUT_POINT, watchdog_timeout_s, where="io.watchdog_timeout_s"
-        )
-        if watchdog_timeout_s < 0.5:
-            raise SquallError("below 0.5 s", field="io.watchdog_timeout_s")
+        where = "io.watchdog_timeout_s"
+        if watchdog_timeout_s < 0.5:  # and encode_point refuses more than 6000 s
+            raise SquallError("below 0.5 s", field=where)
+        (self._timeout_word,) = encode_point(_TIMEOUT_POINT, watchdog_timeout_s, where=where)
         self.watchdog_timeout_s = float(watchdog_timeout_s)
         self.optode_period_s = io.optode_period_s
+        self._optode_max_age_s = 2.0 * io.optode_period_s  # one missed poll is tolerated
         self.links: dict[str, ModbusTransport] = {}
         """Modbus transport per link name."""
         self._blocks: dict[str, _Block] = {}
@@ -284,7 +288,6 @@ class HardwareIO:
         budget_s = 0.8 * min(settings.read_timeout_s, settings.write_timeout_s)
         return cls(io, ids, clock, watchdog_timeout_s=watchdog_s, safe=safe, budget_s=budget_s)
 
-    # ------------------------------------------------------------------ properties
     @property
     def chambers(self) -> tuple[str, ...]:
         """Chamber identifiers in rig order."""
@@ -350,7 +353,6 @@ class HardwareIO:
             if not self._optodes:
                 await asyncio.Event().wait()  # nothing else to do until cancelled
 
-    # ------------------------------------------------------------------ health log
     def _note(self, chamber: str, device: str, ok: bool, detail: object = "") -> None:
         key = (chamber, device)
         if self._healthy.get(key, True) != ok:
@@ -406,26 +408,21 @@ class HardwareIO:
         """
         now = self._clock.now_s()
         block = self._blocks[chamber]
-        inputs, contacts = await asyncio.gather(self._inputs(block), self._contacts(block))
+        inputs, contacts = await asyncio.gather(
+            self._fetch(block, self._inputs), self._fetch(block, self._contacts)
+        )
         failed: set[Quantity] = set()
         values: dict[str, float | bool | None] = {}
         if inputs is None:
             failed |= {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW}
         else:
             values |= _corrected(inputs, self._corrections.get(chamber))
-            for key, quantity in (
-                ("temperature_c", Quantity.TEMPERATURE),
-                ("par", Quantity.PAR),
-                ("flow_cm_s", Quantity.FLOW),
-            ):
-                if values[key] is None:
-                    failed.add(quantity)
+            failed |= {quantity for key, quantity in _ANALOG if values[key] is None}
         if contacts is None:
             failed |= {Quantity.LEVEL, Quantity.E_STOP}
         else:
             values |= {"level_ok": contacts.level_ok, "e_stop": not contacts.estop_ok}
             if contacts.watchdog_tripped:
-                block.trips_seen += 1
                 block.relays = None  # the trip set the relays from the safe drives
                 _log.warning("%s: the module's watchdog holds its outputs safe", chamber)
         comm_ok = inputs is not None and contacts is not None
@@ -447,34 +444,25 @@ class HardwareIO:
             **values,  # type: ignore[arg-type]
         )
 
-    @property
-    def _optode_max_age_s(self) -> float:
-        """Oldest optode measurement still reported, s: two periods (one missed poll)."""
-        return 2.0 * self.optode_period_s
-
-    async def _inputs(self, block: _Block) -> InputValues | None:
+    async def _fetch(self, block: _Block, what: Callable[[_Block], Awaitable[T]]) -> T | None:
+        """One read of a block under the budget; a failure is logged and becomes None."""
         try:
             async with asyncio.timeout(self._budget_s):
-                words = await block.link.read_input_registers(
-                    block.unit_id, block.base, _INPUT_WORDS
-                )
-            values = decode_inputs(words, block.word_order, where=f"{block.chamber}.inputs")
+                value = await what(block)
         except _STOP_FAILURES as exc:
             block.needs_setup = True
             self._note(block.chamber, "modbus", False, exc)
             return None
         self._note(block.chamber, "modbus", True)
-        return values
+        return value
 
-    async def _contacts(self, block: _Block) -> InputBits | None:
-        try:
-            async with asyncio.timeout(self._budget_s):
-                bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
-            return decode_input_bits(bits, where=f"{block.chamber}.contacts")
-        except _STOP_FAILURES as exc:
-            block.needs_setup = True
-            self._note(block.chamber, "modbus", False, exc)
-            return None
+    async def _inputs(self, block: _Block) -> InputValues:
+        words = await block.link.read_input_registers(block.unit_id, block.base, _INPUT_WORDS)
+        return decode_inputs(words, block.word_order, where=f"{block.chamber}.inputs")
+
+    async def _contacts(self, block: _Block) -> InputBits:
+        bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
+        return decode_input_bits(bits, where=f"{block.chamber}.contacts")
 
     # ------------------------------------------------------------------ writes
     async def write(self, chamber: str, outputs: Outputs) -> bool:
@@ -530,7 +518,6 @@ class HardwareIO:
         except DeviceRefused as exc:
             if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
                 raise
-            # tripped: the module refuses drives until fed; feed alone, then drive
             _log.warning("%s: watchdog tripped; feeding, then driving again", block.chamber)
             block.relays = None
             block.count = next_watchdog_count(block.count)
@@ -583,16 +570,11 @@ class HardwareIO:
             self._note(opt.chamber, "optode", False, exc)
         else:
             self._note(opt.chamber, "optode", True)
-            reply = got[-1]
-            if isinstance(reply, ErrorReply):
-                _log.warning("%s: optode refused the sample: %s", opt.chamber, reply.code.name)
-            elif not isinstance(reply, Measurement):
-                kind = type(reply).__name__
-                _log.warning("%s: optode answered SAMPLE with %s", opt.chamber, kind)
-            elif reply.status & _UNUSABLE:
-                _log.warning("%s: optode reading unusable (%s)", opt.chamber, reply.status)
-            else:
+            reply = got[-1]  # a refusal (ERR), or a reading flagged unusable, gives no value
+            if isinstance(reply, Measurement) and not reply.status & _UNUSABLE:
                 o2 = (reply.o2_umol_l, reply.o2_sat_pct)
+            else:
+                _log.warning("%s: optode gave no usable oxygen: %s", opt.chamber, reply)
         # replaced only now: a read during the exchange still sees the previous measurement
         opt.polled_s = self._clock.now_s()
         opt.o2_umol_l, opt.o2_sat_pct = o2
@@ -615,9 +597,4 @@ def _corrected(inputs: InputValues, fix: InputCorrection | None) -> dict[str, fl
 
 
 def _values(outputs: Outputs) -> OutputValues:
-    return OutputValues(
-        heater_pct=outputs.heater_pct,
-        chiller_pct=outputs.chiller_pct,
-        lamp_pct=outputs.lamp_pct,
-        pump_pct=outputs.pump_pct,
-    )
+    return OutputValues(**dataclasses.asdict(outputs))
