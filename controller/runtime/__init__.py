@@ -17,6 +17,7 @@ from controller._lazy import lazy_exports
 
 if TYPE_CHECKING:
     from controller.runtime._decide import OFF, ChamberDecision, Decider, Decision, Target
+    from controller.runtime._hardware_io import HardwareIO
     from controller.runtime._io import ChamberIO, ChamberReadings, Quantity, stale_readings
     from controller.runtime._logsink import LogSink, alarm_record
     from controller.runtime._loop import ControlLoop, RunSummary, TickStats, TickStatus
@@ -57,6 +58,7 @@ _NAMES = {
     "RunSummary": "_loop",
     "SetpointTable": "_setpoints",
     "SimulatedIO": "_sim_io",
+    "HardwareIO": "_hardware_io",
     "SimulatedRun": "_simulated",
     "Target": "_decide",
     "TickStats": "_loop",
@@ -83,6 +85,7 @@ __all__ = [
     "ControlPlan",
     "Decider",
     "Decision",
+    "HardwareIO",
     "LogSink",
     "NodeSettings",
     "Quantity",
