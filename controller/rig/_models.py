@@ -16,10 +16,11 @@ from pydantic import Field, model_validator
 
 from controller._model import FileModel
 from controller.errors import SquallError
+from controller.rig._control import ChamberControl
 from controller.rig._io import RigIo
 from controller.rig._sim import Bath, ChamberSim, RackSim
 
-__all__ = ["Chamber", "ChamberLimits", "Rig"]
+__all__ = ["Chamber", "ChamberControl", "ChamberLimits", "Rig"]
 
 
 class ChamberLimits(FileModel):
@@ -77,6 +78,12 @@ class Chamber(FileModel):
     limits: ChamberLimits = Field(default_factory=ChamberLimits)
     sim: ChamberSim = Field(
         default_factory=ChamberSim, description="Simulator parameters of this chamber."
+    )
+    control: ChamberControl | None = Field(
+        None,
+        description="Temperature-loop gains of this chamber's thermal node (e.g. from 'squall "
+        "tune'); absent = derived from the thermal description. Chambers of one bath that "
+        "give them must give the same.",
     )
 
     @model_validator(mode="after")
@@ -139,7 +146,22 @@ class Rig(FileModel):
                 )
         if self.io is not None:
             self.io.check_chambers([c.id for c in self.chambers])
+        self._bath_gains_agree()
         return self
+
+    def _bath_gains_agree(self) -> None:
+        """Chambers of one bath are one temperature loop: their [chambers.control] agree."""
+        first: dict[str, ChamberControl] = {}
+        for i, chamber in enumerate(self.chambers):
+            if chamber.bath is None or chamber.control is None:
+                continue
+            seen = first.setdefault(chamber.bath, chamber.control)
+            if not seen.same_gains(chamber.control):
+                raise SquallError(
+                    f"chambers of bath {chamber.bath!r} share one temperature loop, but "
+                    f"{chamber.id!r} gives other gains than an earlier chamber of the bath",
+                    field=f"chambers.{i}.control",
+                )
 
     def bath(self, bath_id: str) -> Bath | None:
         """Return the defined bath with this id, or ``None`` when it is not defined."""
