@@ -1,0 +1,696 @@
+"""The publisher task: a controller's samples, status, alarms and events to an MQTT broker.
+
+Rules of this module
+--------------------
+- The control loop never waits for the network. It hands records over with
+  :meth:`TelemetryPublisher.offer`, which is synchronous, O(1) per record, and only fills a
+  bounded :class:`~controller.telemetry.TelemetryBuffer` and sets an event; everything that
+  touches the broker happens in :meth:`TelemetryPublisher.run`, a task of its own.
+- The status is derived from what is offered: run events set the state (``run_start`` →
+  running, ``hold`` → held, ``hold_end`` → running, ``run_stop`` → finished, ``abort`` →
+  aborted), samples and events carry the phase, the protocol time and the chambers.
+  :meth:`describe_run` adds what the records do not carry (run id, protocol, duration).
+  Status is retained, published on connection, on every change of state or phase, when
+  the drop counters moved, and at least every ``status_interval_s``.
+- Broker loss: the session ends, the record being published goes back to the head of its
+  lane, and the task reconnects after a back-off that doubles from ``reconnect_min_s`` to
+  ``reconnect_max_s`` (with a jitter of ±20 % seeded by the controller id, so a rack of
+  controllers does not reconnect in step). A successful connection resets the back-off.
+  The last will (retained) marks the controller offline if the connection dies; a clean
+  stop publishes a final retained status instead.
+- Nothing here may end the run: :meth:`run` returns only by cancellation. Broker errors,
+  refused logins and bugs in encoding one record are logged (once per streak) and the
+  task carries on.
+- Remote commands: the publisher always listens on its command topic, so every attempt is
+  seen, answered on ``cmd/result`` and passed to ``log_command``. A command is carried out
+  (``execute``) only when remote commands are enabled, it validates, and its user is on the
+  allow-list; the broker must restrict who may write the command topic (MQTT 3.1.1 does not
+  tell a subscriber who published).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+import random
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+from typing import Any, Protocol
+
+import aiomqtt
+
+from controller import __version__
+from controller.clock import Clock
+from controller.storage import AlarmRecord, EventKind, EventRecord, SampleRow
+from controller.telemetry._buffer import TelemetryBuffer
+from controller.telemetry._config import TelemetryConfig
+from controller.telemetry._connect import make_client, raise_if_cancelling
+from controller.telemetry._payloads import (
+    MAX_COMMAND_BYTES,
+    CommandResult,
+    ControllerState,
+    ControllerStatus,
+    PayloadError,
+    RemoteCommand,
+    decode_model,
+    encode_model,
+    encode_record,
+)
+from controller.telemetry._topics import Topics
+
+__all__ = [
+    "CommandHandler",
+    "CommandLog",
+    "CommandOutcome",
+    "PublisherStats",
+    "TelemetryPublisher",
+    "TelemetrySink",
+    "TickLike",
+]
+
+_log = logging.getLogger(__name__)
+
+Offered = SampleRow | Sequence[SampleRow] | AlarmRecord | EventRecord
+
+_STATES = {
+    EventKind.RUN_START: ControllerState.RUNNING,
+    EventKind.HOLD: ControllerState.HELD,
+    EventKind.HOLD_END: ControllerState.RUNNING,
+    EventKind.RUN_STOP: ControllerState.FINISHED,
+    EventKind.ABORT: ControllerState.ABORTED,
+}
+_ENDED = (ControllerState.FINISHED, ControllerState.ABORTED)
+
+
+class TelemetrySink(Protocol):
+    """What the control loop feeds: anything with a non-blocking ``offer``."""
+
+    def offer(self, item: Offered) -> None:
+        """Take one tick's sample rows, one sample row, an alarm or an event; never block."""
+        ...
+
+
+class TickLike(Protocol):
+    """The fields of a tick report :meth:`TelemetryPublisher.on_tick` reads (the runtime's
+    ``TickStatus`` fits)."""
+
+    @property
+    def elapsed_s(self) -> float:
+        """Protocol time, s."""
+        ...
+
+    @property
+    def duration_s(self) -> float:
+        """Protocol length, s."""
+        ...
+
+    @property
+    def phase(self) -> str:
+        """Phase in force."""
+        ...
+
+    @property
+    def utc(self) -> datetime:
+        """Wall time of the tick, aware UTC."""
+        ...
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class CommandOutcome:
+    """What became of one message on the command topic.
+
+    Attributes
+    ----------
+    accepted
+        Whether the command was carried out.
+    reason
+        Why it was refused; empty when accepted.
+    command
+        The validated command, or None when the payload did not validate.
+    request_id, user, name
+        Request id, user and command name as far as they could be read, else None.
+    utc_s
+        When it was handled, UTC POSIX s.
+    """
+
+    accepted: bool
+    reason: str
+    command: RemoteCommand | None
+    request_id: str | None
+    user: str | None
+    name: str | None
+    utc_s: float
+
+
+#: Carries out an accepted command; returns None when done, or why it was refused.
+CommandHandler = Callable[[RemoteCommand], str | None]
+#: Records every command outcome (e.g. in the run's audit trail).
+CommandLog = Callable[[CommandOutcome], None]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class PublisherStats:
+    """Counters of a :class:`TelemetryPublisher`.
+
+    Attributes
+    ----------
+    connected
+        Whether a broker session is up.
+    connections
+        Sessions established so far, dimensionless.
+    published
+        Records published (samples, alarms, events), dimensionless.
+    statuses
+        Status messages published, dimensionless.
+    samples_queued, records_queued
+        Records waiting in the buffer, dimensionless.
+    samples_dropped, records_dropped
+        Records the buffer dropped, dimensionless.
+    commands_accepted, commands_refused
+        Remote commands carried out and refused, dimensionless.
+    last_error
+        The last connection problem, or empty.
+    """
+
+    connected: bool
+    connections: int
+    published: int
+    statuses: int
+    samples_queued: int
+    records_queued: int
+    samples_dropped: int
+    records_dropped: int
+    commands_accepted: int
+    commands_refused: int
+    last_error: str
+
+
+def _payload_bytes(payload: Any) -> bytes:
+    if isinstance(payload, bytes | bytearray):
+        return bytes(payload)
+    if isinstance(payload, str):
+        return payload.encode()
+    return b"" if payload is None else str(payload).encode()
+
+
+def _flatten(error: BaseException) -> BaseException:
+    """The first MQTT error inside an exception group, else ``error`` itself."""
+    if isinstance(error, BaseExceptionGroup):
+        for inner in error.exceptions:
+            found = _flatten(inner)
+            if isinstance(found, aiomqtt.MqttError):
+                return found
+    return error
+
+
+class TelemetryPublisher:
+    """Publishes one controller's telemetry; fed by the control loop through :meth:`offer`.
+
+    Parameters
+    ----------
+    config
+        Telemetry settings (broker, ids, credentials, TLS, buffer, commands).
+    clock
+        The controller's clock (back-off waits and status timing run on it).
+    execute
+        Carries out an accepted remote command; returns None when done or why it refused.
+        Without it every command is refused.
+    log_command
+        Called with the outcome of every message on the command topic, accepted or not.
+    base_dir
+        Folder a relative ``password_file`` is relative to (the rig file's).
+    software_version
+        Version reported in the status.
+
+    Raises
+    ------
+    SquallError
+        When the password file cannot be read.
+    """
+
+    def __init__(
+        self,
+        config: TelemetryConfig,
+        *,
+        clock: Clock,
+        execute: CommandHandler | None = None,
+        log_command: CommandLog | None = None,
+        base_dir: Path | None = None,
+        software_version: str = __version__,
+    ) -> None:
+        self.config = config
+        self.clock = clock
+        self.execute = execute
+        self.log_command = log_command
+        self.topics = Topics(config.prefix)
+        self._username, self._password = config.credentials(base_dir)
+        self._software_version = software_version
+        self._buffer = TelemetryBuffer(config.buffer_samples, config.buffer_records)
+        self._wake = asyncio.Event()
+        self._connected = asyncio.Event()
+        self._rng = random.Random(config.controller_id)
+        # status fields
+        self._state = ControllerState.IDLE
+        self._run: dict[str, Any] = {}
+        self._phase: str | None = None
+        self._elapsed_s: float | None = None
+        self._chambers: dict[str, None] = {}
+        self._status_dirty = True
+        self._last_status_s: float | None = None
+        self._last_drops = (0, 0)
+        # counters
+        self._connections = 0
+        self._published = 0
+        self._statuses = 0
+        self._accepted = 0
+        self._refused = 0
+        self._last_error = ""
+        self._failing = False
+
+    # ------------------------------------------------------------------ control-loop side
+    @property
+    def controller_id(self) -> str:
+        """This controller's id in topics."""
+        return self.config.controller_id
+
+    @property
+    def connected(self) -> bool:
+        """Whether a broker session is up now."""
+        return self._connected.is_set()
+
+    def offer(self, item: Offered) -> None:
+        """Hand over records to publish; returns at once, whatever the broker does.
+
+        Parameters
+        ----------
+        item
+            One tick's sample rows (a sequence), one sample row, an alarm record or an
+            event record. When the buffer is full the oldest sample rows are dropped and
+            counted; alarms and events are kept.
+        """
+        if isinstance(item, SampleRow | AlarmRecord | EventRecord):
+            self._note(item)
+            self._buffer.put(item)
+        else:
+            for row in item:
+                self._note(row)
+                self._buffer.put(row)
+        self._wake.set()
+
+    def _note(self, record: SampleRow | AlarmRecord | EventRecord) -> None:
+        """Update the status fields from a record."""
+        if isinstance(record, SampleRow):
+            if record.chamber not in self._chambers:
+                self._chambers[record.chamber] = None
+                self._status_dirty = True
+            self._elapsed_s = record.elapsed_s
+            self._set_phase(record.phase)
+            if self._state is ControllerState.IDLE:
+                self._set_state(ControllerState.RUNNING)
+        elif isinstance(record, EventRecord):
+            if record.elapsed_s is not None:
+                self._elapsed_s = record.elapsed_s
+            if record.kind is EventKind.PHASE_CHANGE and record.phase is not None:
+                self._set_phase(record.phase)
+            state = _STATES.get(record.kind)
+            if state is not None:
+                self._set_state(state)
+
+    def _set_phase(self, phase: str) -> None:
+        if phase != self._phase:
+            self._phase = phase
+            self._status_dirty = True
+
+    def _set_state(self, state: ControllerState) -> None:
+        if state is not self._state:
+            self._state = state
+            self._status_dirty = True
+            self._wake.set()
+
+    def describe_run(
+        self,
+        *,
+        run_id: str,
+        protocol: str,
+        chambers: Sequence[str],
+        duration_s: float,
+        period_s: float,
+    ) -> None:
+        """Tell the status what the records do not carry; call once when a run starts.
+
+        Parameters
+        ----------
+        run_id
+            Run identifier (the run log's name).
+        protocol
+            Protocol title or file name.
+        chambers
+            Chamber ids of the run, in display order.
+        duration_s
+            Protocol length, s.
+        period_s
+            Control tick period, s.
+        """
+        self._run = {
+            "run_id": run_id,
+            "protocol": protocol,
+            "duration_s": duration_s,
+            "period_s": period_s,
+        }
+        self._chambers = dict.fromkeys(chambers)
+        self._status_dirty = True
+        self._wake.set()
+
+    def on_tick(self, status: TickLike) -> None:
+        """Progress callback of the control loop (``ControlLoop(progress=...)``).
+
+        Parameters
+        ----------
+        status
+            The tick's report: protocol time (s), protocol length (s) and phase.
+        """
+        self._elapsed_s = status.elapsed_s
+        self._run.setdefault("duration_s", status.duration_s)
+        self._set_phase(status.phase)
+
+    def set_state(self, state: ControllerState) -> None:
+        """Set the controller state directly (for states no run event reports).
+
+        Parameters
+        ----------
+        state
+            The new state (not offline: that is the broker's and the stop's business).
+        """
+        if state is ControllerState.OFFLINE:
+            raise ValueError("offline is set by the last will or a clean stop")
+        self._set_state(state)
+
+    def status(self, *, online: bool = True) -> ControllerStatus:
+        """The status as it would be published now.
+
+        Parameters
+        ----------
+        online
+            False for the farewell status of a clean stop.
+
+        Returns
+        -------
+        ControllerStatus
+            The status (drop counters included).
+        """
+        state = self._state
+        if not online and state not in _ENDED:
+            state = ControllerState.OFFLINE
+        return ControllerStatus(
+            controller=self.controller_id,
+            online=online,
+            state=state,
+            software_version=self._software_version,
+            phase=self._phase,
+            elapsed_s=None if self._elapsed_s is None else max(0.0, self._elapsed_s),
+            utc_s=self.clock.utc().timestamp(),
+            chambers=tuple(self._chambers),
+            dropped_samples=self._buffer.samples_dropped,
+            dropped_records=self._buffer.records_dropped,
+            remote_commands=self.config.commands.enabled,
+            **self._run,
+        )
+
+    def stats(self) -> PublisherStats:
+        """Current counters.
+
+        Returns
+        -------
+        PublisherStats
+            Connection state, published, queued and dropped counts.
+        """
+        buffered = self._buffer.stats()
+        return PublisherStats(
+            connected=self.connected,
+            connections=self._connections,
+            published=self._published,
+            statuses=self._statuses,
+            samples_queued=buffered.samples_queued,
+            records_queued=buffered.records_queued,
+            samples_dropped=buffered.samples_dropped,
+            records_dropped=buffered.records_dropped,
+            commands_accepted=self._accepted,
+            commands_refused=self._refused,
+            last_error=self._last_error,
+        )
+
+    async def wait_connected(self) -> None:
+        """Return once a broker session is up (at once if it is)."""
+        await self._connected.wait()
+
+    # ------------------------------------------------------------------ network side
+    async def run(self) -> None:
+        """Publish until cancelled, reconnecting after every loss of the broker.
+
+        Never returns otherwise and never raises anything but ``CancelledError``: telemetry
+        problems must not end a run. On cancellation a connected publisher first publishes
+        what it can of the buffer and a final retained status within ``timeout_s``.
+        """
+        config = self.config
+        delay = config.reconnect_min_s
+        while True:
+            raise_if_cancelling()
+            before = self._connections
+            try:
+                await self._session()
+            except Exception as exc:
+                self._problem(_flatten(exc))
+            finally:
+                self._connected.clear()
+            if self._connections > before:
+                delay = config.reconnect_min_s
+            await self.clock.sleep(delay * (0.8 + 0.4 * self._rng.random()))
+            delay = min(config.reconnect_max_s, delay * 2.0)
+
+    def _problem(self, error: BaseException) -> None:
+        """Log a connection problem once per streak (later ones at debug level)."""
+        text = f"{type(error).__name__}: {error}" if str(error) else type(error).__name__
+        self._last_error = text
+        if isinstance(error, aiomqtt.MqttError):
+            if self._failing:
+                _log.debug("telemetry: broker %s still unavailable: %s", self.config.address, text)
+            else:
+                _log.warning("telemetry: broker %s unavailable: %s", self.config.address, text)
+            self._failing = True
+        else:
+            _log.error("telemetry: publisher session failed", exc_info=error)
+
+    def _will(self) -> aiomqtt.Will:
+        gone = ControllerStatus(
+            controller=self.controller_id,
+            online=False,
+            state=ControllerState.OFFLINE,
+            software_version=self._software_version,
+            remote_commands=self.config.commands.enabled,
+        )
+        return aiomqtt.Will(
+            topic=self.topics.status(self.controller_id),
+            payload=encode_model(gone),
+            qos=1,
+            retain=True,
+        )
+
+    async def _session(self) -> None:
+        config = self.config
+        client = make_client(
+            config.address,
+            identifier=f"squall-ctl-{self.controller_id}",
+            username=self._username,
+            password=self._password,
+            tls=config.tls,
+            keepalive_s=config.keepalive_s,
+            timeout_s=config.timeout_s,
+            will=self._will(),
+        )
+        async with client:
+            self._connections += 1
+            if self._failing:
+                _log.info("telemetry: connected to %s again", config.address)
+            self._failing = False
+            self._last_error = ""
+            await client.subscribe(self.topics.command(self.controller_id), qos=1)
+            raise_if_cancelling()
+            self._status_dirty = True
+            self._connected.set()
+            try:
+                async with asyncio.TaskGroup() as group:
+                    group.create_task(self._receive(client), name="telemetry-commands")
+                    group.create_task(self._send(client), name="telemetry-send")
+            except asyncio.CancelledError:
+                await self._farewell(client)
+                raise
+
+    async def _publish_status(self, client: aiomqtt.Client, *, online: bool = True) -> None:
+        status = self.status(online=online)
+        self._status_dirty = False
+        self._last_status_s = self.clock.now_s()
+        self._last_drops = (status.dropped_samples, status.dropped_records)
+        await client.publish(
+            self.topics.status(self.controller_id), encode_model(status), qos=1, retain=True
+        )
+        self._statuses += 1
+
+    def _status_due(self) -> bool:
+        if self._status_dirty or self._last_status_s is None:
+            return True
+        drops = (self._buffer.samples_dropped, self._buffer.records_dropped)
+        if drops != self._last_drops:
+            return True
+        return self.clock.now_s() - self._last_status_s >= self.config.status_interval_s
+
+    async def _publish_record(self, client: aiomqtt.Client) -> bool:
+        """Publish the next buffered record; False when the buffer is empty."""
+        record = self._buffer.pop()
+        if record is None:
+            return False
+        topics, cid = self.topics, self.controller_id
+        try:
+            payload = encode_record(record)
+            if isinstance(record, SampleRow):
+                topic, qos = topics.sample(cid, record.chamber), self.config.sample_qos
+            elif isinstance(record, AlarmRecord):
+                topic, qos = topics.alarm(cid), 1
+            else:
+                topic, qos = topics.event(cid), 1
+        except ValueError:
+            _log.exception("telemetry: cannot encode %r; skipped", record)
+            return True
+        try:
+            await client.publish(topic, payload, qos=qos)
+        except BaseException:
+            self._buffer.unpop(record)
+            raise
+        self._published += 1
+        return True
+
+    async def _send(self, client: aiomqtt.Client) -> None:
+        while True:
+            raise_if_cancelling()
+            if self._status_due():
+                await self._publish_status(client)
+            if await self._publish_record(client):
+                continue
+            self._wake.clear()
+            if self._status_due():
+                continue
+            last_s = self.clock.now_s() if self._last_status_s is None else self._last_status_s
+            wait_s = last_s + self.config.status_interval_s - self.clock.now_s()
+            try:
+                async with asyncio.timeout(max(0.0, wait_s)):
+                    await self._wake.wait()
+            except TimeoutError:
+                pass
+
+    async def _farewell(self, client: aiomqtt.Client) -> None:
+        """Flush what fits within the timeout, then the final retained status."""
+        try:
+            async with asyncio.timeout(self.config.timeout_s):
+                while await self._publish_record(client):
+                    pass
+                await self._publish_status(client, online=False)
+        except (TimeoutError, aiomqtt.MqttError) as exc:
+            _log.warning("telemetry: stopped before everything was published: %s", exc)
+
+    # ------------------------------------------------------------------ commands
+    async def _receive(self, client: aiomqtt.Client) -> None:
+        command_topic = self.topics.command(self.controller_id)
+        result_topic = self.topics.command_result(self.controller_id)
+        async for message in client.messages:
+            raise_if_cancelling()
+            if message.topic.value != command_topic:
+                continue
+            outcome = self.handle_command(_payload_bytes(message.payload))
+            result = CommandResult(
+                id=outcome.request_id,
+                user=outcome.user,
+                command=outcome.name,
+                accepted=outcome.accepted,
+                reason=outcome.reason,
+                utc_s=outcome.utc_s,
+            )
+            await client.publish(result_topic, encode_model(result), qos=1)
+
+    def handle_command(self, payload: bytes) -> CommandOutcome:
+        """Check, carry out and log one command payload (what the command topic feeds).
+
+        Parameters
+        ----------
+        payload
+            The message payload as received.
+
+        Returns
+        -------
+        CommandOutcome
+            Accepted, or refused with the reason; also passed to ``log_command``.
+        """
+        utc_s = self.clock.utc().timestamp()
+        command: RemoteCommand | None = None
+        request_id = user = name = None
+        try:
+            command = decode_model(payload, RemoteCommand, limit=MAX_COMMAND_BYTES)
+        except PayloadError as exc:
+            reason = f"malformed command: {exc}"
+            request_id, user, name = _loose_fields(payload)
+        else:
+            request_id, user, name = command.id, command.user, command.command.value
+            reason = self._refusal(command) or ""
+        outcome = CommandOutcome(
+            accepted=not reason,
+            reason=reason,
+            command=command,
+            request_id=request_id,
+            user=user,
+            name=name,
+            utc_s=utc_s,
+        )
+        if outcome.accepted:
+            self._accepted += 1
+            _log.info("telemetry: command %s from %s carried out", name, user)
+        else:
+            self._refused += 1
+            _log.warning("telemetry: command %s from %s refused: %s", name, user, reason)
+        if self.log_command is not None:
+            try:
+                self.log_command(outcome)
+            except Exception:
+                _log.exception("telemetry: logging a command failed")
+        return outcome
+
+    def _refusal(self, command: RemoteCommand) -> str | None:
+        """Why ``command`` is refused, or None once it has been carried out."""
+        settings = self.config.commands
+        if not settings.enabled:
+            return "remote commands are disabled on this controller"
+        if command.user not in settings.allowed_users:
+            return f"user {command.user!r} may not command this controller"
+        if self.execute is None:
+            return "this controller takes no remote commands (no handler)"
+        try:
+            return self.execute(command)
+        except Exception as exc:
+            _log.exception("telemetry: command %s failed", command.command.value)
+            return f"failed: {type(exc).__name__}: {exc}"
+
+
+def _loose_fields(payload: bytes) -> tuple[str | None, str | None, str | None]:
+    """Request id, user and command name of a payload that did not validate, if readable."""
+    try:
+        data = json.loads(payload[:MAX_COMMAND_BYTES])
+    except (ValueError, UnicodeDecodeError):
+        return None, None, None
+    if not isinstance(data, dict):
+        return None, None, None
+
+    def text(key: str) -> str | None:
+        value = data.get(key)
+        return value[:64] if isinstance(value, str) else None
+
+    return text("id"), text("user"), text("command")

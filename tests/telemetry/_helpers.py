@@ -1,0 +1,126 @@
+"""Helpers of the telemetry tests: quick configs, records, tasks and bounded waits."""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from collections.abc import AsyncIterator, Callable, Coroutine
+from datetime import UTC, datetime
+from typing import Any, TypeVar
+
+from controller.storage import (
+    AlarmAction,
+    AlarmLevel,
+    AlarmRecord,
+    EventKind,
+    EventRecord,
+    IncubationState,
+    SampleRow,
+)
+from controller.telemetry import (
+    ConnectionUpdate,
+    TelemetryConfig,
+    TelemetryUpdate,
+    TelemetryWatcher,
+)
+
+U = TypeVar("U")
+
+#: Wall time of clock time 0 in these tests (an invented date).
+START = datetime(2027, 7, 1, 6, 0, tzinfo=UTC)
+#: Longest wait for any expected message, s (real time; loopback answers in milliseconds).
+WAIT_S = 10.0
+
+
+def quick_config(url: str, controller_id: str = "rack-a", **changes: Any) -> TelemetryConfig:
+    """Telemetry settings with short waits, for tests on loopback."""
+    data: dict[str, Any] = {
+        "broker": url,
+        "controller_id": controller_id,
+        "reconnect_min_s": 0.05,
+        "reconnect_max_s": 0.2,
+        "timeout_s": 2.0,
+        "keepalive_s": 5,
+        **changes,
+    }
+    return TelemetryConfig.model_validate(data)
+
+
+def sample(chamber: str, k: int, *, phase: str = "baseline", period_s: float = 1.0) -> SampleRow:
+    """An invented sample row of tick ``k``."""
+    t = k * period_s
+    return SampleRow(
+        t_s=t,
+        utc_s=START.timestamp() + t,
+        elapsed_s=t,
+        chamber=chamber,
+        phase=phase,
+        temperature_c=20.0 + 0.001 * k,
+        temperature_setpoint_c=20.0,
+        par=300.0,
+        par_setpoint=300.0,
+        flow_cm_s=4.0,
+        flow_setpoint_cm_s=4.0,
+        o2_umol_l=250.0 + 0.1 * k,
+        o2_sat_pct=101.5,
+        heater_pct=12.5,
+        chiller_pct=0.0,
+        lamp_pct=40.0,
+        pump_pct=30.0,
+        incubation=IncubationState.OPEN,
+        alarm=None,
+    )
+
+
+def alarm(chamber: str, t_s: float, code: str = "over_temperature") -> AlarmRecord:
+    """An invented alarm raised at clock time ``t_s``."""
+    return AlarmRecord(
+        t_s=t_s,
+        utc_s=START.timestamp() + t_s,
+        action=AlarmAction.RAISE,
+        level=AlarmLevel.TRIP,
+        code=code,
+        reason="water 27.4 °C above the 27.0 °C trip limit",
+        chamber=chamber,
+    )
+
+
+def event(kind: EventKind, t_s: float, phase: str | None = None) -> EventRecord:
+    """An invented run event at clock time ``t_s``."""
+    return EventRecord(
+        t_s=t_s, utc_s=START.timestamp() + t_s, kind=kind, elapsed_s=t_s, phase=phase
+    )
+
+
+@contextlib.asynccontextmanager
+async def running(coro: Coroutine[Any, Any, None]) -> AsyncIterator[asyncio.Task[None]]:
+    """Run ``coro`` as a task for the body of the block; cancel and await it after."""
+    task = asyncio.get_running_loop().create_task(coro)
+    try:
+        yield task
+    finally:
+        task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await task
+
+
+async def next_update(
+    watcher: TelemetryWatcher,
+    match: Callable[[TelemetryUpdate], U | None],
+    *,
+    timeout_s: float = WAIT_S,
+) -> U:
+    """The first update for which ``match`` returns something (other updates are skipped)."""
+    async with asyncio.timeout(timeout_s):
+        async for update in watcher:
+            found = match(update)
+            if found is not None:
+                return found
+    raise AssertionError("the watcher stopped")
+
+
+async def connected(watcher: TelemetryWatcher) -> None:
+    """Wait until the watcher is connected and subscribed."""
+    await next_update(
+        watcher, lambda u: u if isinstance(u, ConnectionUpdate) and u.connected else None
+    )
