@@ -17,6 +17,7 @@ Rules of this module
 from __future__ import annotations
 
 from collections.abc import Awaitable, Callable
+from pathlib import Path
 from typing import ClassVar
 
 from textual import work
@@ -84,7 +85,7 @@ class SquallApp(App[None]):
         or before the first snapshot (False: deterministic, for tests and screenshots).
     """
 
-    CSS_PATH = "squall.tcss"
+    CSS_PATH = str(Path(__file__).with_name("squall.tcss"))  # absolute: subclasses live elsewhere
     TITLE = "squall"
     ENABLE_COMMAND_PALETTE = False
 
@@ -193,7 +194,7 @@ class SquallApp(App[None]):
             self._status = snapshot.run.status
             self.refresh_bindings()
         screen = self.screen
-        if isinstance(screen, ViewScreen) and screen.is_mounted:
+        if isinstance(screen, ViewScreen) and screen.ready:
             screen.show(snapshot)
 
     # -- navigation -----------------------------------------------------------------------

@@ -151,46 +151,42 @@ def draw(data: PlotData, width: int, height: int) -> list[list[tuple[str, str]]]
     dot_style: list[list[str | None]] = [[None] * cols for _ in range(rows)]
     shade = np.zeros(cols, dtype=bool)
     if data.shaded is not None and hi_i > lo_i:
-        for c in range(cols):
-            a, b = int(edges2[2 * c]), int(edges2[2 * c + 2])
-            shade[c] = bool(data.shaded[a:b].any()) if b > a else False
+        any_closed, _ = _bin_reduce(data.shaded.astype("float64"), edges2[::2], np.fmax)
+        shade = np.nan_to_num(any_closed) > 0
     if yr is not None:
         y_lo, y_hi = yr
         scale = (rows * 4 - 1) / (y_hi - y_lo)
+        last = rows * 4 - 1
         for s in data.series:
-            v = s.values
             if s.kind == "dash":
-                for c in range(cols):
-                    a, b = int(edges2[2 * c]), int(edges2[2 * c + 2])
-                    chunk = v[a:b]
-                    chunk = chunk[np.isfinite(chunk)]
-                    if chunk.size:
-                        r = int((y_hi - float(chunk.mean())) * scale) // 4
-                        grid[r][c], styles[r][c] = "╌", s.style
+                means = _bin_mean(s.values, edges2[::2])
+                for c in np.flatnonzero(np.isfinite(means)):
+                    r = min(last, max(0, int((y_hi - float(means[c])) * scale))) // 4
+                    grid[r][c], styles[r][c] = "╌", s.style
                 continue
-            for sub in range(2 * cols):
-                a, b = int(edges2[sub]), int(edges2[sub + 1])
-                chunk = v[a:b]
-                chunk = chunk[np.isfinite(chunk)]
-                if not chunk.size:
-                    continue
-                top = int((y_hi - float(chunk.max())) * scale)
-                bottom = int((y_hi - float(chunk.min())) * scale)
-                c, side = divmod(sub, 2)
+            highs, _ = _bin_reduce(s.values, edges2, np.fmax)
+            lows, _ = _bin_reduce(s.values, edges2, np.fmin)
+            for sub in np.flatnonzero(np.isfinite(highs)):
+                top = min(last, max(0, int((y_hi - float(highs[sub])) * scale)))
+                bottom = min(last, max(0, int((y_hi - float(lows[sub])) * scale)))
+                c, side = divmod(int(sub), 2)
                 table = _RIGHT_BITS if side else _LEFT_BITS
                 for dot in range(top, bottom + 1):
                     r, k = divmod(dot, 4)
                     bits[r, c] |= table[k]
                     dot_style[r][c] = s.style
-        for r in range(rows):
-            for c in range(cols):
-                if bits[r, c]:
-                    grid[r][c] = chr(0x2800 + int(bits[r, c]))
-                    styles[r][c] = dot_style[r][c] or foam
+        for r, c in zip(*np.nonzero(bits), strict=True):
+            grid[r][c] = chr(0x2800 + int(bits[r, c]))
+            styles[r][c] = dot_style[r][c] or foam
+    if yr is None:  # nothing in the span: say so inside the frame
+        message = "no data in this span"[:cols]
+        start = max(0, (cols - len(message)) // 2)
+        for i, ch in enumerate(message):
+            grid[rows // 2][start + i] = ch
     tint = f" on {PALETTE['water']}"
     for r in range(rows):
         if yr is None:
-            label = "" if r else "no data"
+            label = ""
         elif r == 0:
             label = _num(yr[1])
         elif r == rows - 1:
@@ -207,6 +203,36 @@ def draw(data: PlotData, width: int, height: int) -> list[list[tuple[str, str]]]
     lines.append(_merge(axis))
     lines.append(_labels(data.span_s, cols, width))
     return lines[:height] if height >= 4 else lines[:1]
+
+
+def _bin_reduce(
+    values: np.ndarray, edges: np.ndarray, ufunc: np.ufunc
+) -> tuple[np.ndarray, np.ndarray]:
+    """Reduce ``values`` over the bins ``edges[i]:edges[i+1]`` with a NaN-ignoring ufunc.
+
+    Returns the per-bin result (NaN for empty or all-NaN bins) and whether each bin is empty.
+    """
+    n = edges.size - 1
+    empty = edges[1:] <= edges[:-1]
+    out = np.full(n, np.nan)
+    values = values[: int(edges[-1])] if n > 0 else values  # reduceat runs to the array's end
+    if values.size == 0 or n <= 0 or empty.all():
+        return out, empty
+    starts = np.minimum(edges[:-1], values.size - 1)
+    reduced = ufunc.reduceat(values, starts)
+    out[~empty] = reduced[~empty]
+    return out, empty
+
+
+def _bin_mean(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
+    """Mean of the finite values in each bin ``edges[i]:edges[i+1]`` (NaN when none)."""
+    finite = np.isfinite(values)
+    sums, empty = _bin_reduce(np.where(finite, values, 0.0), edges, np.add)
+    counts, _ = _bin_reduce(finite.astype("float64"), edges, np.add)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        means = sums / counts
+    means[empty | ~(counts > 0)] = np.nan
+    return means
 
 
 def _num(value: float) -> str:

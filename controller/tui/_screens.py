@@ -39,10 +39,20 @@ __all__ = ["AlarmScreen", "OverviewScreen", "TimelineScreen", "TimelineView", "V
 class ViewScreen(Screen[None]):
     """Base of the app's screens: run bar, body, alarm line, footer."""
 
+    ready = False
+    """Whether the screen's widgets exist (set on mount); the app shows snapshots only then."""
+
     @property
     def squall(self) -> SquallApp:
         """The app, typed."""
         return cast("SquallApp", self.app)
+
+    def on_mount(self) -> None:
+        """The widgets exist now: show the newest snapshot."""
+        self.ready = True
+        snapshot = self.squall.snapshot
+        if snapshot is not None:
+            self.show(snapshot)
 
     def compose(self) -> ComposeResult:
         """Run bar, the screen's body, alarm line, footer."""
@@ -58,7 +68,7 @@ class ViewScreen(Screen[None]):
     def on_screen_resume(self) -> None:
         """Show the newest snapshot when coming back to the top."""
         snapshot = self.squall.snapshot
-        if snapshot is not None:
+        if snapshot is not None and self.ready:
             self.show(snapshot)
 
     def show(self, snapshot: Snapshot) -> None:
@@ -86,8 +96,8 @@ class OverviewScreen(ViewScreen):
         self.query_one(ChamberBoard).focus()
 
     def on_screen_resume(self) -> None:
-        """Newest snapshot, and the cursor on the chamber last looked at in detail."""
-        super().on_screen_resume()
+        """Put the cursor on the chamber last looked at in detail (the base class shows the
+        newest snapshot; Textual calls both handlers)."""
         chamber = self.squall.last_chamber
         if chamber is not None:
             self.query_one(ChamberBoard).select(chamber)

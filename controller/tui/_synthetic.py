@@ -144,9 +144,7 @@ class SyntheticRun:
         )
         self.writer = RunLogWriter(path, meta=meta, commit_interval_s=commit_interval_s)
         self.writer.record_event(
-            EventRecord(
-                t_s=0.0, utc_s=self.start_utc_s, kind=EventKind.RUN_START, elapsed_s=0.0
-            )
+            EventRecord(t_s=0.0, utc_s=self.start_utc_s, kind=EventKind.RUN_START, elapsed_s=0.0)
         )
 
     @property
@@ -176,9 +174,7 @@ class SyntheticRun:
         phase, setpoint = self.phase_at(t)
         if phase != self._phase:
             self.writer.record_event(
-                EventRecord(
-                    t_s=t, utc_s=utc, kind=EventKind.PHASE_CHANGE, elapsed_s=t, phase=phase
-                )
+                EventRecord(t_s=t, utc_s=utc, kind=EventKind.PHASE_CHANGE, elapsed_s=t, phase=phase)
             )
             self._phase = phase
         hour = (utc % 86400.0) / 3600.0
