@@ -50,6 +50,7 @@ from controller.telemetry._config import TelemetryConfig
 from controller.telemetry._connect import make_client, raise_if_cancelling
 from controller.telemetry._payloads import (
     MAX_COMMAND_BYTES,
+    CommandName,
     CommandResult,
     ControllerState,
     ControllerStatus,
@@ -637,8 +638,12 @@ class TelemetryPublisher:
         try:
             command = decode_model(payload, RemoteCommand, limit=MAX_COMMAND_BYTES)
         except PayloadError as exc:
-            reason = f"malformed command: {exc}"
             request_id, user, name = _loose_fields(payload)
+            known = [c.value for c in CommandName]
+            if exc.field == "command" and name is not None and name not in known:
+                reason = f"unknown command {name!r} (known: {', '.join(known)})"
+            else:
+                reason = f"malformed command: {exc}"
         else:
             request_id, user, name = command.id, command.user, command.command.value
             reason = self._refusal(command) or ""

@@ -22,7 +22,7 @@ import shutil
 import socket
 import subprocess
 import threading
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Protocol
@@ -307,6 +307,10 @@ def make_broker(
     return broker
 
 
+#: What the ``broker_factory`` fixture gives: ``factory(users=..., acl=..., tls=...)``.
+BrokerFactory = Callable[..., MosquittoBroker | AmqttBroker]
+
+
 def close_broker(broker: MosquittoBroker | AmqttBroker) -> None:
     """Stop a broker made by :func:`make_broker` and release what it holds."""
     if isinstance(broker, AmqttBroker):
@@ -331,9 +335,17 @@ class CutProxy:
         self._tasks: set[asyncio.Task[None]] = set()
 
     async def start(self) -> None:
-        """Listen on an ephemeral port."""
-        self._server = await asyncio.start_server(self._relay, self.host, 0)
+        """Listen (on an ephemeral port the first time, then on the same port again)."""
+        self._server = await asyncio.start_server(self._relay, self.host, self.port)
         self.port = int(self._server.sockets[0].getsockname()[1])
+
+    async def go_down(self) -> None:
+        """Cut every connection and refuse new ones until :meth:`start` (a network outage)."""
+        self.cut()
+        if self._server is not None:
+            self._server.close()
+            await self._server.wait_closed()
+            self._server = None
 
     async def _relay(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
         up_reader, up_writer = await asyncio.open_connection(*self.target)
@@ -358,11 +370,8 @@ class CutProxy:
         self._transports.clear()
 
     async def close(self) -> None:
-        """Cut everything and stop listening."""
-        self.cut()
-        if self._server is not None:
-            self._server.close()
-            await self._server.wait_closed()
+        """Cut everything, stop listening and end the relay tasks."""
+        await self.go_down()
         for task in list(self._tasks):
             task.cancel()
         if self._tasks:

@@ -8,6 +8,7 @@ from collections.abc import AsyncIterator, Callable, Coroutine
 from datetime import UTC, datetime
 from typing import Any, TypeVar
 
+from controller.clock import RealClock
 from controller.storage import (
     AlarmAction,
     AlarmLevel,
@@ -90,6 +91,24 @@ def event(kind: EventKind, t_s: float, phase: str | None = None) -> EventRecord:
     return EventRecord(
         t_s=t_s, utc_s=START.timestamp() + t_s, kind=kind, elapsed_s=t_s, phase=phase
     )
+
+
+class SignallingClock(RealClock):
+    """A real-time clock that reports every ``sleep`` (the publisher's back-off after a
+    failed or lost connection) in :attr:`sleeps`, so a test can wait for one."""
+
+    def __init__(self) -> None:
+        super().__init__(START)
+        self.sleeps: asyncio.Queue[float] = asyncio.Queue()
+
+    async def sleep(self, dt_s: float) -> None:
+        self.sleeps.put_nowait(dt_s)
+        await super().sleep(dt_s)
+
+    async def next_sleep(self, timeout_s: float = WAIT_S) -> float:
+        """Wait for the next back-off sleep to start; return its length, s."""
+        async with asyncio.timeout(timeout_s):
+            return await self.sleeps.get()
 
 
 @contextlib.asynccontextmanager

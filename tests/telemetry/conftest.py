@@ -7,13 +7,14 @@ when installed (CI installs it with ``.ci/mosquitto.sh``), else the in-process a
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 
 import pytest
 
 from ._brokers import (
     AmqttBroker,
+    BrokerFactory,
     MosquittoBroker,
     TlsFiles,
     broker_kind,
@@ -21,8 +22,6 @@ from ._brokers import (
     make_broker,
     make_tls_files,
 )
-
-BrokerFactory = Callable[..., MosquittoBroker | AmqttBroker]
 
 
 def pytest_report_header() -> str:
