@@ -92,7 +92,7 @@ class RunBar(Widget):
             top.append(f" ({run.end_reason})", style=mist)
         top.append("  phase ", style=mist)
         top.append(run.phase or "-", style=f"bold {foam}")
-        if run.mode is RunMode.LIVE and run.age_s is not None:
+        if run.mode is RunMode.LIVE and run.age_s is not None and not run.end_reason:
             top.append(f"  last tick {fmt_age(run.age_s)} ago", style=mist)
         top.append("  ")
         top.append(run.title, style=foam)

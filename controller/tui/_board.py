@@ -83,12 +83,12 @@ def board_columns(width: int, id_width: int) -> tuple[Column, ...]:
         Column("cursor", "", 1),
         Column("id", "id", idw),
         Column("alarm", "state", 6),
-        Column("temp", "  °C", 5),
-        Column("set", "  set", 5),
-        Column("dev", "    Δ", 5),
+        Column("temp", "°C", 5),
+        Column("set", "set", 5),
+        Column("dev", "Δ", 5),
         Column("par", "PAR" if not wide else "PAR/set", 4 if not wide else 9),
         Column("flow", "flow" if not wide else "flow/set", 4 if not wide else 9),
-        Column("o2", " O₂µM", 5),
+        Column("o2", "O₂µM", 5),
         Column("sat", "sat%", 4),
         Column("inc", "incub", 6),
     ]
@@ -167,6 +167,18 @@ def render_cells(
     return cells
 
 
+_LEFT_ALIGNED = frozenset({"cursor", "id", "alarm", "inc", "code", "phase"})
+
+
+def _header(column: Column) -> str:
+    """A column title, right-aligned over numbers, left-aligned over words."""
+    if not column.width:
+        return column.header
+    if column.key in _LEFT_ALIGNED:
+        return column.header.ljust(column.width)
+    return column.header.rjust(column.width)
+
+
 @lru_cache(maxsize=256)
 def _style(text: str) -> Style:
     return Style.parse(text)
@@ -205,7 +217,7 @@ class BoardHeader(Widget):
         """The header line."""
         width = self.size.width
         cols = board_columns(width, self.id_width)
-        cells = [(c.header.ljust(c.width) if c.width else c.header, "") for c in cols]
+        cells = [(_header(c), "") for c in cols]
         return _strip(cells, width, "") if y == 0 else Strip.blank(width)
 
 

@@ -199,6 +199,8 @@ def fmt_signed(value: float | None, width: int, decimals: int) -> str:
     """
     if value is None or not math.isfinite(value):
         return "-".rjust(width)
+    if round(value, decimals) == 0:
+        value = 0.0  # no "-0.00"
     text = f"{value:+.{decimals}f}"
     if len(text) > width and decimals:
         text = f"{value:+.{max(0, decimals - 1)}f}"
