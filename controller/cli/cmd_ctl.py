@@ -402,11 +402,15 @@ def _handle(args: argparse.Namespace) -> int:
     return 0
 
 
-def _cell(value: Any) -> str:
+def _cell(value: Any, key: str = "") -> str:
     if value is None:
         return "–"
     if isinstance(value, bool):
         return "yes" if value else "no"
+    if key.endswith("_s") and isinstance(value, (int, float)) and value >= 0:
+        from controller.protocol import format_duration
+
+        return format_duration(float(value))
     if isinstance(value, float):
         return format(value, ".6g")
     if isinstance(value, (list, tuple)) and all(not isinstance(v, (dict, list)) for v in value):
@@ -427,7 +431,7 @@ def _rows_table(title: str, rows: list[tuple[str, Mapping[str, Any]]]) -> Any:
     for column in columns:
         table.add_column(column)
     for key, row in rows:
-        table.add_row(key, *(_cell(row.get(c)) for c in columns))
+        table.add_row(key, *(_cell(row.get(c), c) for c in columns))
     return table
 
 
@@ -451,7 +455,7 @@ def _print_status(status: Mapping[str, Any]) -> None:
         elif isinstance(value, list) and value and all(isinstance(v, Mapping) for v in value):
             nested.append(_rows_table(key, [(str(i + 1), v) for i, v in enumerate(value)]))
         else:
-            scalars.add_row(key, _cell(value))
+            scalars.add_row(key, _cell(value, key))
     console.print(scalars)
     for table in nested:
         console.print(table)

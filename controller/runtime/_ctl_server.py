@@ -22,7 +22,9 @@ Rules of this module
   ``MAX_REQUEST_B`` is answered with an error and skipped up to its end.
 - Logging: every command is logged through :mod:`logging` (accepted ones at INFO, refusals
   at WARNING; ``status`` queries at DEBUG since views poll them). The target's hooks audit
-  the commands they carry out; refusals go to the ``audit`` callable when one is given.
+  every command that reaches them, carried out or refused; what never reaches a hook (a
+  malformed request, a refused peer, a hook that timed out or failed) goes to the ``audit``
+  callable when one is given.
 - The target is the running control loop, seen only through :class:`ControlTarget`. Hooks may
   be plain methods or coroutines and run in the loop's own event loop; a hook that refuses
   raises one of ``refusals`` and its message becomes the reply's error; any other exception
@@ -416,14 +418,20 @@ class ControlServer:
         except asyncio.CancelledError:
             raise
         except Exception as exc:  # a refusal by the hook: its message is the answer
-            said = exc.args[0] if isinstance(exc, KeyError) and exc.args else exc
+            said: object = exc
+            if isinstance(exc, SquallError):
+                said = exc.message  # the field is the command itself
+            elif isinstance(exc, KeyError) and exc.args:
+                said = exc.args[0]  # str() of a KeyError quotes its message
             message = " ".join(str(said).split()) or type(exc).__name__
-            if not isinstance(exc, self.refusals):
+            refused = isinstance(exc, self.refusals)
+            if not refused:
                 _log.error("control socket: %s failed", request.cmd, exc_info=exc)
                 message = f"{request.cmd} failed in the controller: {type(exc).__name__}: {message}"
             elif not message.startswith("refused"):
                 message = f"refused: {message}"
-            await self._refuse(writer, user, request.cmd, text, message)
+            # a hook audits the requests it refuses itself; everything else is audited here
+            await self._refuse(writer, user, request.cmd, text, message, audit=not refused)
             return
         level = logging.DEBUG if request.cmd == "status" else logging.INFO
         _log.log(
@@ -451,10 +459,18 @@ class ControlServer:
         return result
 
     async def _refuse(
-        self, writer: asyncio.StreamWriter, user: str, cmd: str, text: str, message: str
+        self,
+        writer: asyncio.StreamWriter,
+        user: str,
+        cmd: str,
+        text: str,
+        message: str,
+        *,
+        audit: bool = True,
     ) -> None:
         _log.warning("control socket: %s from %s refused: %s", cmd, user, message)
-        self._audit(user, cmd, text, message)
+        if audit:
+            self._audit(user, cmd, text, message)
         await self._send(writer, encode_reply(False, message))
 
     def _audit(self, user: str, cmd: str, text: str, result: str) -> None:

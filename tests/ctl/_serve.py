@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from controller.errors import SquallError
 from controller.runtime._ctl_server import ControlServer
 
 ME = pwd.getpwuid(os.geteuid()).pw_name
@@ -77,6 +78,8 @@ class FakeLoop:
 
     def note(self, text: str, user: str) -> None:
         self.calls.append(("note", text, user))
+        if text == "after the end":  # the control loop's OperatorError is a SquallError
+            raise SquallError("the run has ended", field="note")
 
 
 @contextlib.contextmanager

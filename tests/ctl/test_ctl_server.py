@@ -205,7 +205,7 @@ def test_every_command_reaches_its_hook_with_the_peer_user(
     assert f"control socket: abort by {ME}" in logged
 
 
-def test_a_refusal_by_the_hook_is_a_clear_error_logged_and_audited(
+def test_a_refusal_by_the_hook_is_a_clear_error_and_logged(
     tmp_path: Path, caplog: pytest.LogCaptureFixture
 ) -> None:
     target = FakeLoop()
@@ -216,16 +216,17 @@ def test_a_refusal_by_the_hook_is_a_clear_error_logged_and_audited(
             path,
             request("resume"),
             request("skip-to", phase="nowhere"),
+            request("note", text="after the end"),
             b"nonsense\n",
         )
     assert replies == [
         {"ok": False, "error": "refused: not held"},
         {"ok": False, "error": "refused: no phase 'nowhere'"},
+        {"ok": False, "error": "refused: the run has ended"},
         {"ok": False, "error": "malformed request: not JSON (Expecting value at column 1)"},
     ]
+    # the hooks audit what they refuse themselves; the server audits what never reached one
     assert audited == [
-        (ME, "resume", "", "refused: not held"),
-        (ME, "skip-to", "nowhere", "refused: no phase 'nowhere'"),
         (ME, "?", "", "malformed request: not JSON (Expecting value at column 1)"),
     ]
     warnings = [r.getMessage() for r in caplog.records if r.levelno == logging.WARNING]
@@ -236,13 +237,13 @@ def test_a_bug_in_a_hook_is_reported_as_a_failure_not_a_refusal(
     tmp_path: Path, caplog: pytest.LogCaptureFixture
 ) -> None:
     target = FakeLoop(explode=True)
+    audited: list[tuple[str, str, str, str]] = []
     path = control_path(tmp_path / "run.sqlite")
-    with served(ControlServer(target, path)):
+    with served(ControlServer(target, path, audit=lambda *a: audited.append(a))):
         (reply, after) = exchange(path, request("hold"), request("status"))
-    assert reply == {
-        "ok": False,
-        "error": "hold failed in the controller: TypeError: a bug in the hook",
-    }
+    error = "hold failed in the controller: TypeError: a bug in the hook"
+    assert reply == {"ok": False, "error": error}
+    assert audited == [(ME, "hold", "", error)]
     assert after["ok"] is True
     assert any(r.exc_info for r in caplog.records if r.levelno == logging.ERROR)
 
