@@ -7,8 +7,11 @@ Rules
 - The view reads the log while the run writes it (SQLite WAL; it never blocks the run), and
   quitting the view (``q``) never stops the run.
 - A bad LOG (missing, not a run log, damaged, newer schema) is one line and exit 2, before
-  the terminal is switched to the full-screen view. ``--broker`` (MQTT telemetry from other
-  computers) is not available in this squall yet: exit 2 with a message saying so.
+  the terminal is switched to the full-screen view.
+- ``--broker URL`` watches every controller publishing telemetry to an MQTT broker instead
+  of a log (chambers shown as ``<controller>/<chamber>``); the view connects, and reconnects,
+  in the background. A malformed URL is one line and exit 2. Commands from this view are
+  not offered yet (the controllers' remote commands are off by default anyway).
 - Textual is imported inside the handler only, so ``squall --help`` stays fast.
 """
 
@@ -54,20 +57,28 @@ def register(sub: Any) -> None:
         "--broker",
         metavar="URL",
         default=None,
-        help="watch controllers through an MQTT broker instead of a log (not available yet)",
+        help="watch every controller publishing to this MQTT broker "
+        "(mqtt://[user[:password]@]host[:port] or mqtts://...) instead of a log",
     )
     parser.set_defaults(handler=_handle)
 
 
 def _handle(args: argparse.Namespace) -> int:
     """Open the log (or refuse with one line), then run the view."""
+    from controller.tui._commands import NoCommands
+    from controller.tui._launch import (
+        command_channel,
+        newest_log,
+        open_broker,
+        open_live,
+        run_view,
+    )
+
     if args.broker is not None:
-        raise SquallError(
-            "watching through an MQTT broker is not available in this squall yet; "
-            "watch a run log instead: squall watch LOG",
-            field="--broker",
-        )
-    from controller.tui._launch import command_channel, newest_log, open_live, run_view
+        if args.log is not None:
+            raise SquallError("give a run log or --broker, not both", field="--broker")
+        source = open_broker(args.broker)
+        return run_view(source, NoCommands("commands through the broker are not offered here"))
 
     log = args.log if args.log is not None else newest_log()
     source = open_live(log)

@@ -5,7 +5,8 @@ Rules of this module
 - The app owns one :class:`~._sources.DataSource` and one
   :class:`~._commands.CommandChannel`. A timer asks the source for news (``poll``) and posts
   each new snapshot as a :class:`SquallApp.SnapshotReady` message, which the app hands to the
-  screen on top. A future broker bridge posts the same message from its own task.
+  screen on top. A source fed by pushes (MQTT telemetry) also has an async ``bridge()``,
+  which the app runs as a worker for as long as it runs.
 - Widgets hold reactive state and never read data or call drivers; screens never send
   commands. Commands go through the app after a confirmation, and the answer comes back as a
   notification; the change itself shows up through the data, as everything else does.
@@ -160,6 +161,9 @@ class SquallApp(App[None]):
         await self.push_screen(OverviewScreen())
         self._deliver(first)
         self.set_interval(self.poll_s, self.poll_now, name="poll-source")
+        bridge = getattr(self.source, "bridge", None)
+        if bridge is not None:  # a pushed source (telemetry): its task feeds it
+            self.run_worker(bridge(), name="bridge", group="bridge", exclusive=True)
         if self._refine:
             self._refine_timeline()
 

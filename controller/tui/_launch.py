@@ -25,6 +25,7 @@ __all__ = [
     "RUNS_DIR",
     "command_channel",
     "newest_log",
+    "open_broker",
     "open_live",
     "open_replay",
     "parse_replay_speed",
@@ -121,6 +122,24 @@ def open_live(log: Path) -> LogSource:
         Missing, not a run log, or unreadable (one line, naming the file).
     """
     return LogSource(log, protocol_dir=log.parent)
+
+
+def open_broker(url: str) -> DataSource:
+    """A source of every controller publishing to an MQTT broker.
+
+    Parameters
+    ----------
+    url
+        ``mqtt://[user[:password]@]host[:port]`` or ``mqtts://...``.
+
+    Raises
+    ------
+    SquallError
+        A malformed URL (the connection itself is made, and retried, by the view).
+    """
+    from ._broker import BrokerSource
+
+    return BrokerSource(url)
 
 
 def open_replay(log: Path, speed: float) -> ReplaySource:
