@@ -54,7 +54,7 @@ if TYPE_CHECKING:
     )
     from ._quality import QUALITY_INPUT_COLUMNS, QualityAccumulator, run_quality
     from ._regression import SlopeFit, SlopeSums, fit_o2_slope, fit_sums
-    from ._report import analysis_figures, report_html, write_report
+    from ._report import analysis_figures, analysis_images, report_html, write_report
     from ._response import (
         CROSSING_COLUMNS,
         DIFFERENCE_COLUMNS,
@@ -95,6 +95,7 @@ _NAMES = {
     "WindowAccumulator": "_windows",
     "WindowFlag": "_settings",
     "analysis_figures": "_report",
+    "analysis_images": "_report",
     "analysis_json": "_export",
     "analyze_log": "_log",
     "areal_flux": "_metabolism",
@@ -156,6 +157,7 @@ __all__ = [
     "WindowAccumulator",
     "WindowFlag",
     "analysis_figures",
+    "analysis_images",
     "analysis_json",
     "analyze_log",
     "areal_flux",

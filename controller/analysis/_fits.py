@@ -43,6 +43,7 @@ __all__ = [
 ]
 
 F = npt.NDArray[np.float64]
+_PARALLEL_EV = 1e-9  # activation energies closer than this are treated as equal, eV
 
 
 def inverse_temperature_ev(temp_c: npt.ArrayLike, t_ref_c: float) -> F:
@@ -272,7 +273,8 @@ def crossing_temperature(
     Returns
     -------
     Crossing or None
-        None when the two activation energies are equal (parallel curves never cross).
+        None when the activation energies are equal to within 1e-9 eV (parallel curves never
+        cross) or the curves would only meet at no positive absolute temperature.
 
     Notes
     -----
@@ -284,14 +286,16 @@ def crossing_temperature(
     if gpp.t_ref_c != resp.t_ref_c:
         raise ValueError("both fits need the same reference temperature")
     diff = gpp.ea_ev - resp.ea_ev
-    if diff == 0:
+    if abs(diff) <= _PARALLEL_EV:
         return None
     u_star = (resp.ln_rate_ref - gpp.ln_rate_ref) / diff
+    t_star = _celsius_of_u(u_star, gpp.t_ref_c)
+    if not math.isfinite(t_star):
+        return None
     jac_g = np.array([-1.0, -u_star]) / diff
     jac_r = np.array([1.0, u_star]) / diff
     var = float(jac_g @ np.array(gpp.cov) @ jac_g + jac_r @ np.array(resp.cov) @ jac_r)
     half = float(stats.norm.ppf(0.5 + confidence / 2.0)) * math.sqrt(max(var, 0.0))
-    t_star = _celsius_of_u(u_star, gpp.t_ref_c)
     low = _celsius_of_u(u_star - half, gpp.t_ref_c)
     high = _celsius_of_u(u_star + half, gpp.t_ref_c)
     lo_seen = max(gpp.t_min_c, resp.t_min_c)

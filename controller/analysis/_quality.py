@@ -26,7 +26,6 @@ import numpy.typing as npt
 import pandas as pd
 
 from ._settings import AnalysisSettings
-from ._windows import group_rows
 
 __all__ = ["QUALITY_INPUT_COLUMNS", "QualityAccumulator", "run_quality"]
 
@@ -51,7 +50,8 @@ _VARIABLES = (
     ("par", "par", "par_setpoint", ""),
     ("flow", "flow_cm_s", "flow_setpoint_cm_s", "_cm_s"),
 )
-_SUMS = ("n", "sum", "sum2", "out", "msum", "ssum")
+_PARTS = ("n", "sum", "sum2", "out", "msum", "ssum")
+_SUM_COLUMNS = ("ticks", "light", *(f"{v[0]}_{part}" for v in _VARIABLES for part in _PARTS))
 
 
 class QualityAccumulator:
@@ -65,10 +65,15 @@ class QualityAccumulator:
 
     def __init__(self, settings: AnalysisSettings) -> None:
         self._settings = settings
-        self._stats: pd.DataFrame | None = None
+        self._keys: dict[tuple[str, str], int] = {}
+        self._sums = np.zeros((0, len(_SUM_COLUMNS)))
+        self._maxes = np.zeros((0, len(_VARIABLES)))
+        self._first = np.zeros(0)
+        self._last = np.zeros(0)
         self._last_s: dict[str, float] = {}
         self._period_s: dict[str, float] = {}
         self._gaps: dict[tuple[str, str], list[float]] = {}
+        self._rank: dict[str, int] = {}
 
     def update(self, samples: pd.DataFrame) -> None:
         """Add a chunk of samples (rows in time order within each chamber).
@@ -81,14 +86,19 @@ class QualityAccumulator:
         if samples.empty:
             return
         s = self._settings
-        data: dict[str, object] = {
-            "chamber": samples["chamber"].astype(str).to_numpy(),
-            "phase": samples["phase"].astype(str).to_numpy(),
-            "ticks": np.ones(len(samples)),
-            "light": (samples["par_setpoint"].to_numpy(float) > 0).astype(float),
-            "first_s": samples["run_s"].to_numpy(float),
-            "last_s": samples["run_s"].to_numpy(float),
-        }
+        chamber_codes, chambers = pd.factorize(samples["chamber"], sort=False)
+        phase_codes, phases = pd.factorize(samples["phase"], sort=False, use_na_sentinel=False)
+        for chamber in chambers:
+            self._rank.setdefault(str(chamber), len(self._rank))
+        combined = chamber_codes.astype(np.int64) * len(phases) + phase_codes
+        groups, row_group = np.unique(combined, return_inverse=True)
+        size = len(groups)
+        run_s = samples["run_s"].to_numpy(float)
+        columns: list[np.ndarray] = [
+            np.ones(len(samples)),
+            (samples["par_setpoint"].to_numpy(float) > 0).astype(float),
+        ]
+        maxes: list[np.ndarray] = []
         is_open = (samples["incubation"] == "open").to_numpy(dtype=bool, na_value=False)
         for name, measured_col, setpoint_col, _ in _VARIABLES:
             measured = samples[measured_col].to_numpy(float)
@@ -104,44 +114,73 @@ class QualityAccumulator:
             else:
                 band = np.full(len(dev), s.band_c)
             d0 = np.where(valid, dev, 0.0)
-            data[f"{name}_n"] = valid.astype(float)
-            data[f"{name}_sum"] = d0
-            data[f"{name}_sum2"] = d0 * d0
-            data[f"{name}_out"] = (valid & (np.abs(d0) > band)).astype(float)
-            data[f"{name}_msum"] = np.where(valid, measured, 0.0)
-            data[f"{name}_ssum"] = np.where(valid, setpoint, 0.0)
-            data[f"{name}_max"] = np.where(valid, np.abs(dev), np.nan)
-        frame = pd.DataFrame(data)
-        grouped = frame.groupby(["chamber", "phase"], sort=False)
-        sums = [c for c in frame.columns if c not in ("chamber", "phase", "first_s", "last_s")]
-        sums = [c for c in sums if not c.endswith("_max")]
-        part = grouped[sums].sum()
-        part = part.join(grouped[[f"{v[0]}_max" for v in _VARIABLES]].max())
-        part = part.join(grouped["first_s"].min()).join(grouped["last_s"].max())
-        self._merge(part)
-        self._find_gaps(samples)
+            columns += [
+                valid.astype(float),
+                d0,
+                d0 * d0,
+                (valid & (np.abs(d0) > band)).astype(float),
+                np.where(valid, measured, 0.0),
+                np.where(valid, setpoint, 0.0),
+            ]
+            maxes.append(np.where(valid, np.abs(d0), -np.inf))
+        sums = np.stack([np.bincount(row_group, weights=c, minlength=size) for c in columns], 1)
+        peak = np.full((size, len(maxes)), -np.inf)
+        for j, values in enumerate(maxes):
+            np.maximum.at(peak[:, j], row_group, values)
+        first = np.full(size, np.inf)
+        last = np.full(size, -np.inf)
+        np.minimum.at(first, row_group, run_s)
+        np.maximum.at(last, row_group, run_s)
+        keys = [(str(chambers[g // len(phases)]), str(phases[g % len(phases)])) for g in groups]
+        self._merge(keys, sums, peak, first, last)
+        self._find_gaps(run_s, chamber_codes, chambers, phase_codes, phases)
 
-    def _merge(self, part: pd.DataFrame) -> None:
-        if self._stats is None:
-            self._stats = part
-            return
-        old = self._stats
-        both = old.index.intersection(part.index)
-        new_keys = part.index.difference(old.index)
-        merged = old.copy()
-        for column in part.columns:
-            if column.endswith("_max") or column == "last_s":
-                merged.loc[both, column] = np.fmax(old.loc[both, column], part.loc[both, column])
-            elif column == "first_s":
-                merged.loc[both, column] = np.fmin(old.loc[both, column], part.loc[both, column])
-            else:
-                merged.loc[both, column] = old.loc[both, column] + part.loc[both, column]
-        self._stats = pd.concat([merged, part.loc[new_keys]])
+    def _merge(self, keys: list[tuple[str, str]], sums: F, peak: F, first: F, last: F) -> None:
+        """Fold one chunk's per-group statistics into the running ones."""
+        new = [k for k in keys if k not in self._keys]
+        if new:
+            for key in new:
+                self._keys[key] = len(self._keys)
+            grow = len(new)
+            self._sums = np.vstack([self._sums, np.zeros((grow, self._sums.shape[1]))])
+            self._maxes = np.vstack([self._maxes, np.full((grow, self._maxes.shape[1]), -np.inf)])
+            self._first = np.concatenate([self._first, np.full(grow, np.inf)])
+            self._last = np.concatenate([self._last, np.full(grow, -np.inf)])
+        rows = np.array([self._keys[k] for k in keys], dtype=np.intp)
+        self._sums[rows] += sums
+        self._maxes[rows] = np.maximum(self._maxes[rows], peak)
+        self._first[rows] = np.minimum(self._first[rows], first)
+        self._last[rows] = np.maximum(self._last[rows], last)
 
-    def _find_gaps(self, samples: pd.DataFrame) -> None:
-        run_s = samples["run_s"].to_numpy(float)
-        phases = samples["phase"].astype(str).to_numpy()
-        for chamber, rows in group_rows(samples["chamber"]):
+    @property
+    def _stats(self) -> pd.DataFrame | None:
+        """Running statistics as a frame indexed by (chamber, phase); None before data."""
+        if not self._keys:
+            return None
+        index = pd.MultiIndex.from_tuples(list(self._keys), names=["chamber", "phase"])
+        frame = pd.DataFrame(self._sums, index=index, columns=list(_SUM_COLUMNS))
+        for j, (name, *_rest) in enumerate(_VARIABLES):
+            frame[f"{name}_max"] = np.where(
+                np.isfinite(self._maxes[:, j]), self._maxes[:, j], np.nan
+            )
+        frame["first_s"] = self._first
+        frame["last_s"] = self._last
+        return frame
+
+    def _find_gaps(
+        self,
+        run_s: F,
+        chamber_codes: npt.NDArray[np.intp],
+        chambers: pd.Index,
+        phase_codes: npt.NDArray[np.intp],
+        phases: pd.Index,
+    ) -> None:
+        order = np.argsort(chamber_codes, kind="stable")
+        bounds = np.flatnonzero(np.diff(chamber_codes[order])) + 1
+        for rows in np.split(order, bounds):
+            if len(rows) == 0:
+                continue
+            chamber = str(chambers[chamber_codes[rows[0]]])
             t = run_s[rows]
             previous = self._last_s.get(chamber)
             times = t if previous is None else np.concatenate(([previous], t))
@@ -156,7 +195,7 @@ class QualityAccumulator:
             steps = np.diff(times)
             offset = 0 if previous is None else 1
             for k in np.flatnonzero(steps > self._settings.gap_periods * period):
-                phase = str(phases[rows[k + 1 - offset]])
+                phase = str(phases[phase_codes[rows[k + 1 - offset]]])
                 self._gaps.setdefault((chamber, phase), []).append(float(steps[k] - period))
             self._last_s[chamber] = float(t[-1])
 
@@ -192,7 +231,8 @@ class QualityAccumulator:
         Returns
         -------
         pandas.DataFrame
-            One row per chamber and phase in order of first appearance: ``chamber``,
+            One row per chamber and phase (phases in the order they began, chambers in the
+            order they first appear in the log): ``chamber``,
             ``phase``, ``start_s``, ``end_s`` (s since the run's start), ``hours`` (h),
             ``ticks``, ``period_s`` (s); for temperature (``_c``, °C), PAR (µmol photons
             m⁻² s⁻¹) and flow (``_cm_s``): ``<v>_mean``, ``<v>_setpoint_mean``, ``<v>_bias``,
@@ -204,6 +244,9 @@ class QualityAccumulator:
         if self._stats is None:
             return pd.DataFrame()
         st = self._stats
+        # phases in the order they began, chambers in the order they first appeared
+        ranks = [self._rank[c] for c in st.index.get_level_values(0)]
+        st = st.iloc[np.lexsort((ranks, st["first_s"].to_numpy()))]
         keys = st.index.to_frame(index=False)
         out = keys.copy()
         out["start_s"] = st["first_s"].to_numpy()
@@ -227,7 +270,7 @@ class QualityAccumulator:
                 out[f"{name}_outside_min"] = st[f"{name}_out"].to_numpy() * period / 60.0
                 out[f"{name}_outside_pct"] = 100.0 * st[f"{name}_out"].to_numpy() / n
         out["photoperiod_h"] = (st["light"] / st["ticks"] * 24.0).to_numpy()
-        out["alarms"], out["trips"] = self._alarm_counts(keys, alarms)
+        out["alarms"], out["trips"] = _alarm_counts(keys, st, alarms)
         pairs = zip(keys["chamber"], keys["phase"], strict=True)
         gaps = [self._gaps.get((c, p), []) for c, p in pairs]
         out["gaps"] = [len(g) for g in gaps]
@@ -236,30 +279,32 @@ class QualityAccumulator:
             out[column] = values
         return out
 
-    def _alarm_counts(
-        self, keys: pd.DataFrame, alarms: pd.DataFrame | None
-    ) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64]]:
-        counts = np.zeros(len(keys), dtype=np.int64)
-        trips = np.zeros(len(keys), dtype=np.int64)
-        if alarms is None or alarms.empty or self._stats is None:
-            return counts, trips
-        starts = self._stats["first_s"].to_numpy()
-        ends = self._stats["last_s"].to_numpy()
-        chambers = keys["chamber"].to_numpy()
-        raised = alarms[alarms["action"].astype(str) == "raise"]
-        for alarm in raised.itertuples(index=False):
-            target = getattr(alarm, "chamber", None)
-            if target is None or pd.isna(target):
-                targets = list(dict.fromkeys(chambers))
-            else:
-                targets = [str(target)]
-            for chamber in targets:
-                row = _phase_row(chambers, starts, ends, chamber, float(alarm.run_s))
-                if row is None:
-                    continue
-                counts[row] += 1
-                trips[row] += int(str(alarm.level) == "trip")
+
+def _alarm_counts(
+    keys: pd.DataFrame, stats: pd.DataFrame, alarms: pd.DataFrame | None
+) -> tuple[npt.NDArray[np.int64], npt.NDArray[np.int64]]:
+    """Alarm raises and interlock trips per row of ``keys`` (rows of ``stats``)."""
+    counts = np.zeros(len(keys), dtype=np.int64)
+    trips = np.zeros(len(keys), dtype=np.int64)
+    if alarms is None or alarms.empty:
         return counts, trips
+    starts = stats["first_s"].to_numpy()
+    ends = stats["last_s"].to_numpy()
+    chambers = keys["chamber"].to_numpy()
+    raised = alarms[alarms["action"].astype(str) == "raise"]
+    for alarm in raised.itertuples(index=False):
+        target = getattr(alarm, "chamber", None)
+        if target is None or pd.isna(target):
+            targets = list(dict.fromkeys(chambers))
+        else:
+            targets = [str(target)]
+        for chamber in targets:
+            row = _phase_row(chambers, starts, ends, chamber, float(alarm.run_s))
+            if row is None:
+                continue
+            counts[row] += 1
+            trips[row] += int(str(alarm.level) == "trip")
+    return counts, trips
 
 
 def _phase_row(chambers: np.ndarray, starts: F, ends: F, chamber: str, t_s: float) -> int | None:

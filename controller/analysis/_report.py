@@ -35,7 +35,7 @@ from ._export import rig_name, windows_with_rates
 from ._log import Analysis
 from ._response import response_points
 
-__all__ = ["analysis_figures", "report_html", "write_report"]
+__all__ = ["analysis_figures", "analysis_images", "report_html", "write_report"]
 
 _STYLE = """
 body { font-family: system-ui, sans-serif; color: #222; max-width: 72rem; margin: 2rem auto;
@@ -97,6 +97,22 @@ def analysis_figures(analysis: Analysis) -> list[tuple[str, Figure]]:
     return out
 
 
+def analysis_images(analysis: Analysis) -> list[tuple[str, bytes]]:
+    """Every figure of :func:`analysis_figures` rendered as PNG bytes.
+
+    Parameters
+    ----------
+    analysis
+        A finished analysis.
+
+    Returns
+    -------
+    list of (name, bytes)
+        File-name stem and PNG data of each figure.
+    """
+    return [(name, figure_png(fig)) for name, fig in analysis_figures(analysis)]
+
+
 def _cell(value: object) -> tuple[str, bool]:
     """Escaped text of a table cell and whether it is text (left-aligned)."""
     if value is None or value is pd.NA or value is pd.NaT:
@@ -129,8 +145,8 @@ def _table(frame: pd.DataFrame, columns: Sequence[str]) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
 
 
-def _image(fig: Figure, alt: str) -> str:
-    data = base64.b64encode(figure_png(fig)).decode("ascii")
+def _image(png: bytes, alt: str) -> str:
+    data = base64.b64encode(png).decode("ascii")
     return f'<p><img alt="{html.escape(alt)}" src="data:image/png;base64,{data}"></p>'
 
 
@@ -182,13 +198,15 @@ _FIT_COLUMNS = (
 )  # fmt: skip
 
 
-def report_html(analysis: Analysis) -> str:
+def report_html(analysis: Analysis, images: Sequence[tuple[str, bytes]] | None = None) -> str:
     """The self-contained HTML report of an analysis.
 
     Parameters
     ----------
     analysis
         A finished analysis.
+    images
+        The figures as :func:`analysis_images` returns them (rendered here when None).
 
     Returns
     -------
@@ -196,7 +214,7 @@ def report_html(analysis: Analysis) -> str:
         An HTML5 document (UTF-8 text).
     """
     meta = analysis.info.meta
-    figures = dict(analysis_figures(analysis))
+    figures = dict(analysis_images(analysis) if images is None else images)
     notes = "".join(f"<li>{html.escape(n)}</li>" for n in analysis.notes)
     groups = "".join(
         f"<li>{html.escape(g.name)} ({html.escape(g.role)}): "
@@ -246,7 +264,9 @@ def report_html(analysis: Analysis) -> str:
     return "\n".join(parts) + "\n"
 
 
-def write_report(analysis: Analysis, path: str | Path) -> Path:
+def write_report(
+    analysis: Analysis, path: str | Path, images: Sequence[tuple[str, bytes]] | None = None
+) -> Path:
     """Write :func:`report_html` to a file.
 
     Parameters
@@ -255,6 +275,8 @@ def write_report(analysis: Analysis, path: str | Path) -> Path:
         A finished analysis.
     path
         Output file, usually ``.html`` (replaced if it exists).
+    images
+        The figures as :func:`analysis_images` returns them (rendered here when None).
 
     Returns
     -------
@@ -262,5 +284,5 @@ def write_report(analysis: Analysis, path: str | Path) -> Path:
         The file written.
     """
     path = Path(path)
-    path.write_text(report_html(analysis), encoding="utf-8")
+    path.write_text(report_html(analysis, images), encoding="utf-8")
     return path
