@@ -22,7 +22,7 @@ from simulator._faults import ActuatorMasks, FaultBook
 from simulator._params import RackParams
 from simulator._physics import lamp_curve, pump_fraction
 
-__all__ = ["Actuators", "Arrival", "Effective", "effective_drives", "substeps"]
+__all__ = ["Actuators", "Arrivals", "Effective", "effective_drives", "substeps"]
 
 F = NDArray[np.float64]
 
@@ -31,28 +31,12 @@ _GRID_TOL = 1e-6
 _POWER = 1  # heater or chiller commands changed
 _LAMP = 2
 _PUMP = 4
-_ROW_FLAG = (_POWER, _POWER, _LAMP, _PUMP)
 
 
-class Arrival(NamedTuple):
-    """A heater/chiller power change reaching a node's water inside a segment.
-
-    Attributes
-    ----------
-    k
-        Index of the first sub-step that feels it, dimensionless (0 ≤ k < n).
-    node
-        Thermal node, dimensionless index.
-    heater_w
-        Heater power from then on, W.
-    chiller_w
-        Chiller heat removal from then on, W.
-    """
-
-    k: int
-    node: int
-    heater_w: float
-    chiller_w: float
+Arrivals = list[tuple[tuple[int, ...], list[float]]]
+"""Power changes reaching the water inside a segment, in rounds of at most one per node:
+(k_j per node, the index of the first sub-step that feels it, n where nothing arrives;
+change of net heater − chiller power per node, W)."""
 
 
 class Effective(NamedTuple):
@@ -127,7 +111,7 @@ class Actuators:
     Attributes
     ----------
     heater_pct, chiller_pct
-        Effective heater and chiller drive of each thermal node, %, shape ``(M,)``.
+        Effective heater and chiller drive of each thermal node, %, M values.
     lamp_pct, pump_pct
         Effective lamp and pump drive of each chamber, %, shape ``(N,)``.
     lit
@@ -154,15 +138,17 @@ class Actuators:
         self._heater_w_pct = (p.heater_max_w / 100.0).tolist()
         self._chiller_w_pct = (p.chiller_max_w / 100.0).tolist()
         self._dead_s = p.dead_time_s.tolist()
+        self._drivers = p.driver_of_node.tolist()
         self._sent: list[tuple[float, float]] = [(0.0, 0.0)] * m
         self._line: list[deque[tuple[float, float, float]]] = [deque() for _ in range(m)]
         self._next_arrival_s = math.inf
         self._faulted = False
         self._energy_j = [[0.0] * m, [0.0] * m]  # heater, chiller, up to _since_s
         self._since_s = [0.0] * m  # when each node's present power began, s
+        self._water = ([0.0] * m, [0.0] * m)  # heater, chiller power reaching the water, W
         self.water_w = np.zeros((2, m))
-        self.heater_pct = np.zeros(m)
-        self.chiller_pct = np.zeros(m)
+        self.heater_pct: list[float] = [0.0] * m
+        self.chiller_pct: list[float] = [0.0] * m
         self.lamp_pct = np.zeros(n)
         self.pump_pct = np.zeros(n)
         self.lit = np.zeros(n)
@@ -179,12 +165,28 @@ class Actuators:
         """True when commands changed since the last :meth:`refresh`."""
         return self._dirty != 0
 
-    def command(self, chamber: int, row: int, value: float) -> None:
-        """Store a drive (%) for a chamber; row 0 heater, 1 chiller, 2 lamp, 3 pump."""
-        cmd = self._cmd[row]
-        if cmd[chamber] != value:
-            cmd[chamber] = value
-            self._dirty |= _ROW_FLAG[row]
+    def command(
+        self,
+        chamber: int,
+        heater: float | None,
+        chiller: float | None,
+        lamp: float | None,
+        pump: float | None,
+    ) -> None:
+        """Store drives (%) for a chamber; None leaves a drive as it is."""
+        cmd = self._cmd
+        if heater is not None and cmd[0][chamber] != heater:
+            cmd[0][chamber] = heater
+            self._dirty |= _POWER
+        if chiller is not None and cmd[1][chamber] != chiller:
+            cmd[1][chamber] = chiller
+            self._dirty |= _POWER
+        if lamp is not None and cmd[2][chamber] != lamp:
+            cmd[2][chamber] = lamp
+            self._dirty |= _LAMP
+        if pump is not None and cmd[3][chamber] != pump:
+            cmd[3][chamber] = pump
+            self._dirty |= _PUMP
 
     def commands(self) -> F:
         """Commanded drives, %, shape ``(4, N)`` (heater, chiller, lamp, pump)."""
@@ -220,7 +222,8 @@ class Actuators:
                 self._set_lamp(eff.lamp_pct)
             if not np.array_equal(eff.pump_pct, self.pump_pct):
                 self._set_pump(eff.pump_pct)
-            self.heater_pct, self.chiller_pct = eff.heater_pct, eff.chiller_pct
+            self.heater_pct = eff.heater_pct.tolist()
+            self.chiller_pct = eff.chiller_pct.tolist()
             self._queue(t_s)
             return
         if dirty & _LAMP:
@@ -228,9 +231,9 @@ class Actuators:
         if dirty & _PUMP:
             self._set_pump(np.array(self._cmd[3]))
         if dirty & _POWER:
-            drv = self._p.driver_of_node
-            self.heater_pct = np.array(self._cmd[0])[drv]
-            self.chiller_pct = np.array(self._cmd[1])[drv]
+            heater, chiller = self._cmd[0], self._cmd[1]
+            self.heater_pct = [heater[d] for d in self._drivers]
+            self.chiller_pct = [chiller[d] for d in self._drivers]
             self._queue(t_s)
 
     def _set_lamp(self, lamp_pct: F) -> None:
@@ -251,8 +254,8 @@ class Actuators:
 
     def _queue(self, t_s: float) -> None:
         """Queue each node's changed heater and chiller power to arrive after its dead time."""
-        heater = self.heater_pct.tolist()
-        chiller = self.chiller_pct.tolist()
+        heater = self.heater_pct
+        chiller = self.chiller_pct
         for j in range(self._m):
             watts = (heater[j] * self._heater_w_pct[j], chiller[j] * self._chiller_w_pct[j])
             if watts == self._sent[j]:
@@ -270,21 +273,22 @@ class Actuators:
         """Let queued power changes that have arrived by ``t_s`` (s) reach the water."""
         if t_s + _EPS_S < self._next_arrival_s:
             return
-        water = self.water_w
+        heater, chiller = self._water
         heater_j, chiller_j = self._energy_j
         since = self._since_s
         best = math.inf
         for j, line in enumerate(self._line):
             while line and line[0][0] <= t_s + _EPS_S:
                 arrive, heater_w, chiller_w = line.popleft()
-                heater_j[j] += float(water[0, j]) * (arrive - since[j])
-                chiller_j[j] += float(water[1, j]) * (arrive - since[j])
+                heater_j[j] += heater[j] * (arrive - since[j])
+                chiller_j[j] += chiller[j] * (arrive - since[j])
                 since[j] = arrive
-                water[0, j] = heater_w
-                water[1, j] = chiller_w
+                heater[j] = heater_w
+                chiller[j] = chiller_w
             if line and line[0][0] < best:
                 best = line[0][0]
         self._next_arrival_s = best
+        self.water_w = np.array(self._water)
 
     def energy_j(self, t_s: float) -> F:
         """Heat delivered by each node's heater and removed by its chiller since start.
@@ -302,35 +306,60 @@ class Actuators:
         done = np.array(self._energy_j)
         return done + self.water_w * (t_s - np.array(self._since_s))
 
-    def arrivals(self, t0_s: float, t1_s: float, h: float) -> tuple[list[Arrival], float | None]:
-        """Queued power changes inside (t0, t1) on a grid of sub-steps of ``h`` seconds.
+    def arrivals(self, t0_s: float, t1_s: float, n: int, h: float) -> tuple[Arrivals, float | None]:
+        """Queued power changes inside (t0, t1) on a grid of n sub-steps of ``h`` seconds.
 
         Returns
         -------
         tuple
-            The arrivals on sub-step boundaries (in time order per node), and the first
-            arrival that falls between boundaries (s), or None. The caller shortens the
-            segment to end there.
+            The arrivals on sub-step boundaries (see :data:`Arrivals`), and the first arrival
+            that falls between boundaries (s), or None: the caller then shortens the segment
+            to end there and asks again.
         """
         if self._next_arrival_s >= t1_s - _EPS_S:
             return [], None
-        found: list[Arrival] = []
-        off_grid: float | None = None
+        m = self._m
+        rounds: list[tuple[list[int], list[float]]] = []
+        snaps: list[tuple[deque[tuple[float, float, float]], int, tuple[float, float, float]]] = []
+        heater, chiller = self._water
         for j, line in enumerate(self._line):
+            net = heater[j] - chiller[j]
             for index, (arrive, heater_w, chiller_w) in enumerate(line):
                 if arrive >= t1_s - _EPS_S:
                     break
                 k = (arrive - t0_s) / h
-                near = round(k)
+                near = max(0, round(k))
                 if abs(k - near) > _GRID_TOL:
-                    if off_grid is None or arrive < off_grid:
-                        off_grid = arrive
-                    break
-                snapped = t0_s + max(0, near) * h
+                    return [], self._first_off_grid(t0_s, t1_s, h)
+                snapped = t0_s + near * h
                 if snapped != arrive:  # account heat from the boundary the water feels it at
-                    line[index] = (snapped, heater_w, chiller_w)
-                found.append(Arrival(max(0, near), j, heater_w, chiller_w))
-        return found, off_grid
+                    snaps.append((line, index, (snapped, heater_w, chiller_w)))
+                if index == len(rounds):
+                    rounds.append(([n] * m, [0.0] * m))
+                ks, delta = rounds[index]
+                ks[j] = near
+                delta[j] = heater_w - chiller_w - net
+                net = heater_w - chiller_w
+        for line, index, entry in snaps:
+            line[index] = entry
+        return [(tuple(ks), delta) for ks, delta in rounds], None
+
+    def _first_off_grid(self, t0_s: float, t1_s: float, h: float) -> float:
+        """Earliest queued arrival inside (t0, t1) between sub-step boundaries, s."""
+        best = math.inf
+        for line in self._line:
+            for arrive, _, _ in line:
+                if arrive >= t1_s - _EPS_S:
+                    break
+                k = (arrive - t0_s) / h
+                if abs(k - max(0, round(k))) > _GRID_TOL:
+                    best = min(best, arrive)
+                    break
+        return best
+
+    def sent_w(self) -> F:
+        """The latest heater and chiller power queued per node, W, shape ``(2, M)``."""
+        return np.array(self._sent, dtype=float).reshape(self._m, 2).T.copy()
 
     def pending(self) -> list[list[tuple[float, float, float]]]:
         """Queued (arrival s, heater W, chiller W) per node, earliest first (copies)."""
@@ -342,6 +371,8 @@ class Actuators:
         water_w: F,
         lines: list[list[tuple[float, float, float]]],
         book: FaultBook,
+        energy_j: F,
+        t_s: float,
     ) -> None:
         """Take over a state computed elsewhere (the open-loop integrator).
 
@@ -355,23 +386,30 @@ class Actuators:
             Power changes still on their way per node: (arrival s, heater W, chiller W).
         book
             The rack's faults (for the effective drives).
+        energy_j
+            Heater and chiller energy since start, J, shape ``(2, M)``.
+        t_s
+            Present simulated time, s.
         """
+        self._energy_j = [energy_j[0].tolist(), energy_j[1].tolist()]
+        self._since_s = [t_s] * self._m
         self._cmd = [[float(v) for v in row] for row in cmd]
         eff = effective_drives(self._p, cmd[0], cmd[1], cmd[2], cmd[3], book.masks)
         if not np.array_equal(eff.lamp_pct, self.lamp_pct):
             self._set_lamp(np.array(eff.lamp_pct, dtype=float))
         if not np.array_equal(eff.pump_pct, self.pump_pct):
             self._set_pump(np.array(eff.pump_pct, dtype=float))
-        self.heater_pct = np.array(eff.heater_pct, dtype=float)
-        self.chiller_pct = np.array(eff.chiller_pct, dtype=float)
+        self.heater_pct = np.asarray(eff.heater_pct, dtype=float).tolist()
+        self.chiller_pct = np.asarray(eff.chiller_pct, dtype=float).tolist()
         self._faulted = book.masks.actuators_hit
-        heater = self.heater_pct.tolist()
-        chiller = self.chiller_pct.tolist()
+        heater = self.heater_pct
+        chiller = self.chiller_pct
         self._sent = [
             (heater[j] * self._heater_w_pct[j], chiller[j] * self._chiller_w_pct[j])
             for j in range(self._m)
         ]
         self.water_w = np.array(water_w, dtype=float)
+        self._water = (self.water_w[0].tolist(), self.water_w[1].tolist())
         self._line = [deque(line) for line in lines]
         heads = [line[0][0] for line in self._line if line]
         self._next_arrival_s = min(heads) if heads else math.inf

@@ -24,6 +24,7 @@ B = NDArray[np.bool_]
 F = NDArray[np.float64]
 
 _EPS_S = 1e-9
+_NOTHING: list[ScheduledFault] = []  # returned, never changed, when nothing began
 
 
 @dataclass(slots=True)
@@ -142,7 +143,7 @@ class FaultBook:
         Returns the faults that just began and whether the active set changed at all.
         """
         if not self._stale and t_s + _EPS_S < self.next_edge_s:
-            return [], False
+            return _NOTHING, False
         self._stale = False
         self._faults = [f for f in self._faults if f.end_s > t_s + _EPS_S]
         now_active = [f for f in self._faults if f.active_at(t_s)]

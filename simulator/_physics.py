@@ -1,15 +1,18 @@
-"""Pure stepping functions for a stretch of simulated time with constant actuator inputs.
+"""Pure stepping functions for stretches of simulated time.
 
-Rule: no clock, no state, no randomness. The workhorse is :func:`recurrence`, which solves
-the linear recurrence every exactly discretised first-order process reduces to, for a whole
-segment of ``n`` sub-steps at once instead of one Python step at a time; the rest are the
-actuator calibration curves.
+Rule: no clock, no state, no randomness. The workhorses solve the linear recurrence every
+exactly discretised first-order process reduces to, y_k = a_k·y_(k−1) + u_k, for many steps
+at once instead of one Python step at a time: :func:`recurrence` for one segment with a
+constant a (time along axis 0), :func:`series_recurrence` for a long series whose a may
+change from step to step (chamber-major, time along the last axis). The rest are sensor-lag
+weights and the actuator calibration curves.
 """
 
 from __future__ import annotations
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.signal import lfilter
 
 __all__ = [
     "ageing_factor",
@@ -18,12 +21,14 @@ __all__ = [
     "lamp_curve",
     "pump_fraction",
     "recurrence",
+    "series_recurrence",
 ]
 
 F = NDArray[np.float64]
 
 _MIN_TAU_S = 1e-9
 _MAX_EXPONENT = 500.0
+_ONE = np.ones(1)
 _NEGLIGIBLE = 1e-15
 _STEPS = np.arange(1, 3601, dtype=float)[:, None]
 
@@ -119,6 +124,103 @@ def apply_floor(a: F, u: F, y0: F, out: F) -> None:
         for k in range(u.shape[0]):
             y = max(0.0, ac * y + float(u[k, col]))
             out[k, col] = y
+
+
+def series_recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
+    """Solve y_k = a_k·y_(k−1) + u_k along the last axis, for many rows at once.
+
+    Parameters
+    ----------
+    a
+        Decay factor of each row and step, dimensionless, 0 ≤ a ≤ 1, shape ``(c, L)``, or
+        ``(c, 1)`` for a factor constant along each row.
+    u
+        Input of each step, in the unit of ``y``, shape ``(c, L)``.
+    y0
+        Value before the first step, shape ``(c,)``.
+    floor
+        When True, y never goes below 0 (y_k = max(0, a_k·y_(k−1) + u_k)), exactly.
+
+    Returns
+    -------
+    numpy.ndarray
+        y_1..y_L, shape ``(c, L)``, in the unit of ``y0``.
+
+    Notes
+    -----
+    Rows whose factor is constant are filtered with ``scipy.signal.lfilter`` (the recurrence
+    itself, y = u filtered by 1/(1 − a·z⁻¹), started from a·y_0). Other rows use
+    y_k = P_k·(y_0 + Σ_(j≤k) u_j/P_j) with P_k = Π_(j≤k) a_j, in chunks along which −ln P
+    stays below 500 (a step that alone exceeds it is taken directly). The floor is exact:
+    from the first step that goes negative, y stays 0 while u ≤ 0 and the recurrence
+    restarts from 0 at the next positive input.
+    """
+    rows, length = u.shape
+    out = np.empty((rows, length))
+    if length == 0:
+        return out
+    y0 = np.asarray(y0, dtype=float)
+    if a.shape[1] == 1:
+        constant = np.ones(rows, dtype=bool)
+        factor = a[:, 0]
+    else:
+        constant = (a == a[:, :1]).all(axis=1)
+        factor = a[:, 0]
+    for r in np.flatnonzero(constant):  # one row at a time: lfilter's 1-D path is fastest
+        value = float(factor[r])
+        out[r] = lfilter(_ONE, [1.0, -value], u[r], zi=[value * float(y0[r])])[0]
+    varying = np.flatnonzero(~constant)
+    if len(varying):
+        a_v = a[varying]
+        with np.errstate(divide="ignore"):
+            rate = -np.log(a_v)
+        out[varying] = _chunked_series(a_v, rate, u[varying], y0[varying])
+    if floor:
+        for r in np.flatnonzero(out.min(axis=1) < 0.0):
+            _floor_row(np.broadcast_to(a[r], (length,)), u[r], out[r])
+    return out
+
+
+def _chunked_series(a: F, rate: F, u: F, y0: F) -> F:
+    """:func:`series_recurrence` without floor or forgetful rows."""
+    length = u.shape[1]
+    worst = np.minimum(rate.max(axis=0), 2.0 * _MAX_EXPONENT)  # finite, so reach is too
+    reach = np.cumsum(worst)
+    out = np.empty_like(u)
+    start = np.array(y0, dtype=float)
+    lo = 0
+    while lo < length:
+        if worst[lo] > _MAX_EXPONENT:  # one step that forgets (nearly) everything
+            start = a[:, lo] * start + u[:, lo]
+            out[:, lo] = start
+            lo += 1
+            continue
+        base = reach[lo - 1] if lo else 0.0
+        hi = int(np.searchsorted(reach, base + _MAX_EXPONENT, side="right"))
+        hi = max(lo + 1, min(hi, length))  # Σ worst over [lo, hi) ≤ 500
+        growth = np.exp(-np.cumsum(rate[:, lo:hi], axis=1))
+        acc = np.cumsum(u[:, lo:hi] / growth, axis=1)
+        acc += start[:, None]
+        acc *= growth
+        out[:, lo:hi] = acc
+        start = acc[:, -1].copy()
+        lo = hi
+    return out
+
+
+def _floor_row(a: F, u: F, y: F) -> None:
+    """Redo one row of :func:`series_recurrence` with its floor at 0, in place."""
+    i = int(np.argmax(y < 0.0))
+    while y[i] < 0.0:
+        y[i] = 0.0
+        rest = np.flatnonzero(u[i + 1 :] > 0.0)
+        if not len(rest):
+            y[i + 1 :] = 0.0
+            return
+        j = i + 1 + int(rest[0])
+        y[i + 1 : j] = 0.0  # a·0 + u ≤ 0 keeps it at 0
+        y[j:] = series_recurrence(a[None, j:], u[None, j:], np.zeros(1))[0]
+        i = j + int(np.argmax(y[j:] < 0.0))
 
 
 def lag_weights(tau_s: F, h: float, n: int) -> tuple[F, F]:

@@ -23,8 +23,10 @@ import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
-from simulator._actuators import Actuators, Arrival, substeps
+from simulator._actuators import Actuators, Arrivals, substeps
+from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
+from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
 from simulator._physics import ageing_factor
@@ -77,8 +79,9 @@ class Rack:
         self._index = {cid: i for i, cid in enumerate(p.chamber_ids)}
         self._m = len(p.node_names)
         self._rng = np.random.default_rng(p.seed if seed is None else seed)
-        table = SaturationTable(p.salinity, p.pressure_kpa, kelvin=True)
-        self._stepper = Stepper(p, table, Metabolism(p))
+        self._table = SaturationTable(p.salinity, p.pressure_kpa)
+        self._bio = Metabolism(p)
+        self._stepper = Stepper(p, self._table, self._bio)
         self._step_s = p.physics_step_s
         self._instant_lamps = not bool((p.warmup_tau_s > 0.0).all())
         self._ageing = bool((p.ageing_frac_per_1000_h > 0.0).any())
@@ -95,9 +98,23 @@ class Rack:
         )
         self._volume = p.volume_l.copy()
         self._volume_version = 0
-        self._lamp_s = p.lamp_hours0_h * 3600.0
-        self._par_key: tuple[object, ...] = ()
-        self._par_warm_cache = np.zeros(len(temps))
+        # Lamp hours: lit time up to _lamp_since_s, plus the lit pattern since then.
+        self._lamp_base_s = p.lamp_hours0_h * 3600.0
+        self._lamp_since_s = 0.0
+        self._lamp_lit = np.zeros(len(temps))
+        self._lamp_version = -1
+        # PAR of the warm lamps at their drive and present age; while lit it ages by the
+        # factor (1 − loss)^(Δh/1000) = e^(λ·lit·span) per segment, cached per span.
+        self._age_rate = (
+            np.log1p(
+                -p.ageing_frac_per_1000_h,
+                out=np.full(len(temps), -np.inf),
+                where=p.ageing_frac_per_1000_h < 1.0,
+            )
+            / 3.6e6
+        )
+        self._age_steps: dict[float, F] = {}
+        self._par_warm = np.zeros(len(temps))
         # Heat bookkeeping (heater and chiller energy live with the actuators): ∫(T − T_room)dt,
         # and the flushing loss folded per stretch of constant flow ("epoch"), G being
         # constant within one.
@@ -146,11 +163,11 @@ class Rack:
             if book.masks.leaking and t0 + _LEAK_SEGMENT_S < seg_end:
                 seg_end = t0 + _LEAK_SEGMENT_S
             n, h = substeps(seg_end - t0, step)
-            arrivals, off_grid = act.arrivals(t0, seg_end, h)
+            arrivals, off_grid = act.arrivals(t0, seg_end, n, h)
             while off_grid is not None:
                 seg_end = off_grid
                 n, h = substeps(seg_end - t0, step)
-                arrivals, off_grid = act.arrivals(t0, seg_end, h)
+                arrivals, off_grid = act.arrivals(t0, seg_end, n, h)
             self._integrate(n, h, arrivals)
             self._t = seg_end
             self._settle()
@@ -171,15 +188,13 @@ class Rack:
         i = self._index.get(chamber_id)
         if i is None:
             raise KeyError(f"no chamber {chamber_id!r} in this rack")
-        act = self._act
-        if heater_pct is not None:
-            act.command(i, 0, _drive(heater_pct, "heater_pct"))
-        if chiller_pct is not None:
-            act.command(i, 1, _drive(chiller_pct, "chiller_pct"))
-        if lamp_pct is not None:
-            act.command(i, 2, _drive(lamp_pct, "lamp_pct"))
-        if pump_pct is not None:
-            act.command(i, 3, _drive(pump_pct, "pump_pct"))
+        self._act.command(
+            i,
+            None if heater_pct is None else _drive(heater_pct, "heater_pct"),
+            None if chiller_pct is None else _drive(chiller_pct, "chiller_pct"),
+            None if lamp_pct is None else _drive(lamp_pct, "lamp_pct"),
+            None if pump_pct is None else _drive(pump_pct, "pump_pct"),
+        )
 
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
@@ -285,8 +300,34 @@ class Rack:
             flush_loss_j=float(self._flush_loss()[node]),
             probe_temperature_c=float(water.probe_c[i]),
             optode_o2_umol_l=float(water.optode_umol_l[i]),
-            lamp_hours_h=float(self._lamp_s[i] / 3600.0),
+            lamp_hours_h=float(self._lamp_s()[i] / 3600.0),
         )
+
+    def water_temperatures_c(self) -> F:
+        """True water temperature of every chamber in rig order, °C, shape ``(N,)``."""
+        return np.asarray(self._water.temp_c[self._p.node_of_chamber], dtype=float)
+
+    # ---------------------------------------------------------- open loop
+    def run_open_loop(self, schedule: OpenLoopSchedule) -> OpenLoopRun:
+        """Run a whole drive program from now, integrated in vectorised blocks.
+
+        Gives the trajectories (to rounding) of calling :meth:`set_outputs` on every chamber
+        at each of the schedule's switches and :meth:`advance` to the next: same sub-steps,
+        dead times and faults. The rack ends at the program's end, the last row commanded.
+        Sensors are not read (no noise is drawn), except that a stuck-sensor fault beginning
+        during the program freezes its reading as it would when stepping.
+
+        Parameters
+        ----------
+        schedule
+            Switch times (s from now) and drives (%) per row and chamber.
+
+        Returns
+        -------
+        OpenLoopRun
+            The true state at the end of every row.
+        """
+        return run_open_loop(self, schedule)
 
     # ============================================================ internals
     def _chamber(self, chamber_id: str) -> int:
@@ -314,7 +355,16 @@ class Rack:
         self._act.deliver(self._t)
 
     def _refresh(self, faults_changed: bool) -> None:
-        self._act.refresh(self._t, self._book, faults_changed)
+        act = self._act
+        act.refresh(self._t, self._book, faults_changed)
+        if act.lamp_version != self._lamp_version:  # lamps changed: new PAR, new lit pattern
+            self._lamp_base_s = self._lamp_s()
+            self._lamp_since_s = self._t
+            self._lamp_lit = act.lit
+            self._lamp_version = act.lamp_version
+            self._age_steps.clear()
+            age = ageing_factor(self._lamp_base_s / 3600.0, self._p.ageing_frac_per_1000_h)
+            self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
         if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
             tau = self._p.warmup_tau_s
             warmth = np.where(tau > 0.0, self._water.warmth, self._act.lit)
@@ -346,25 +396,15 @@ class Rack:
         p = self._p
         return saturation_umol_l(temps, p.salinity, p.pressure_kpa)
 
-    def _par_warm(self) -> F:
-        """PAR of each lamp when warm, at its drive and age, µmol m⁻² s⁻¹.
-
-        The same array object is returned while drive and age are unchanged (the stepper
-        reuses its light weights then); a new one whenever either changes.
-        """
-        act = self._act
-        key = (act.lamp_version, self._lamp_s if self._ageing else None)
-        seen = self._par_key
-        if seen and seen[0] == key[0] and seen[1] is key[1]:
-            return self._par_warm_cache
-        age = ageing_factor(self._lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
-        self._par_warm_cache = np.asarray(act.new_lamp_par * age, dtype=float)
-        self._par_key = key
-        return self._par_warm_cache
+    def _lamp_s(self) -> F:
+        """Seconds each lamp has been lit, s."""
+        return np.asarray(
+            self._lamp_base_s + self._lamp_lit * (self._t - self._lamp_since_s), dtype=float
+        )
 
     def _par_now(self) -> F:
         cold = self._p.cold_output_frac
-        return np.asarray(self._par_warm() * (cold + (1.0 - cold) * self._water.warmth))
+        return np.asarray(self._par_warm * (cold + (1.0 - cold) * self._water.warmth))
 
     def _flush_loss(self) -> F:
         """Heat carried out by flushing since start, J, shape ``(M,)``."""
@@ -376,10 +416,14 @@ class Rack:
 
     def _new_water(self, key: tuple[int, int]) -> None:
         """Flows or volumes changed: close the flushing epoch and recompute what follows."""
-        p = self._p
         self._flush_done = self._flush_loss()
         self._epoch_excess = self._excess.copy()
         self._epoch_span_s = self._span_s
+        self._configure_water(key)
+
+    def _configure_water(self, key: tuple[int, int]) -> None:
+        """Flushing heat flow, O2 exchange and heat capacity for the present flows and volumes."""
+        p = self._p
         flush = self._act.flush_l_s
         self._water_key = key
         self._water_id += 1
@@ -387,7 +431,7 @@ class Rack:
         self._exchange = flush / self._volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
         self._node_capacity = self._capacity()
 
-    def _integrate(self, n: int, h: float, arrivals: list[Arrival]) -> None:
+    def _integrate(self, n: int, h: float, arrivals: Arrivals) -> None:
         """Step every chamber from now through n sub-steps of h seconds."""
         act = self._act
         key = (act.flow_version, self._volume_version)
@@ -397,7 +441,7 @@ class Rack:
             act.water_w,
             arrivals,
             act.lit,
-            self._par_warm(),
+            self._par_warm,
             self._flush_w_k,
             self._exchange,
             self._node_capacity,
@@ -406,8 +450,12 @@ class Rack:
         )
         self._water, excess = self._stepper.step(self._water, drive, n, h)
         span = n * h
-        if act.any_lit:
-            self._lamp_s = self._lamp_s + act.lit * span
+        if act.any_lit and self._ageing:
+            factor = self._age_steps.get(span)
+            if factor is None:
+                exponent = np.where(act.lit > 0.0, self._age_rate * span, 0.0)
+                factor = self._age_steps[span] = np.exp(exponent)
+            self._par_warm = self._par_warm * factor
         self._excess += excess
         self._span_s += span
         masks = self._book.masks
@@ -417,6 +465,53 @@ class Rack:
                 self._volume - masks.leak_l_s * span, _MIN_VOLUME_FRAC * p.volume_l
             )
             self._volume_version += 1
+
+    def _sample(self) -> F:
+        """Temperature, O2, PAR, probe and optode of every chamber now, shape ``(5, N)``."""
+        w = self._water
+        temps = w.temp_c[self._p.node_of_chamber]
+        return np.stack((temps, w.o2_umol_l, self._par_now(), w.probe_c, w.optode_umol_l))
+
+    def _block_start(self) -> BlockStart:
+        """The state the open-loop integrator starts a block from (now)."""
+        act = self._act
+        key = (act.flow_version, self._volume_version)
+        if key != self._water_key:  # e.g. volumes changed by a leak that just ended
+            self._new_water(key)
+        return BlockStart(
+            water=self._water,
+            water_w=act.water_w,
+            lines=act.pending(),
+            sent_w=act.sent_w(),
+            lamp_s=self._lamp_s(),
+            volume_l=self._volume,
+            capacity_j_k=self._node_capacity,
+        )
+
+    def _block_end(self, done: BlockEnd, cmd: F, t_s: float) -> None:
+        """Take over the state the open-loop integrator reached at ``t_s`` (s), then settle."""
+        act = self._act
+        energy = act.energy_j(self._t) + done.heat_j
+        self._flush_done = self._flush_loss() + done.flush_loss_j
+        self._excess = self._excess + done.excess_k_s
+        self._span_s += done.span_s
+        self._epoch_excess = self._excess.copy()
+        self._epoch_span_s = self._span_s
+        act.load(cmd, done.water_w, done.lines, self._book, energy, t_s)
+        self._t = t_s
+        water = done.water
+        if np.array_equal(water.warmth, act.lit):
+            water = water._replace(warmth=act.lit)
+        self._water = water
+        self._lamp_base_s = done.lamp_s
+        self._lamp_since_s = t_s
+        self._lamp_lit = act.lit
+        self._lamp_version = act.lamp_version
+        self._age_steps.clear()
+        age = ageing_factor(done.lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
+        self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
+        self._configure_water((act.flow_version, self._volume_version))
+        self._settle()
 
     def _reachable(self, i: int, sensor: str) -> object | None:
         """Raise SensorNoReply if the sensor is silent; return a stuck value if frozen."""

@@ -156,8 +156,6 @@ class SaturationTable:
         Practical salinity of each chamber (PSS-78), dimensionless, shape ``(N,)``.
     pressure_kpa
         Barometric pressure, kPa.
-    kelvin
-        When True, the table is looked up with temperatures in kelvin instead of °C.
 
     Notes
     -----
@@ -167,41 +165,34 @@ class SaturationTable:
     offset (after clamping to ±490 °C) before the lookup.
     """
 
-    def __init__(self, salinity: F, pressure_kpa: float, *, kelvin: bool = False) -> None:
+    def __init__(self, salinity: F, pressure_kpa: float) -> None:
         grid = np.arange(_TABLE_MIN_C, _TABLE_MAX_C + _TABLE_STEP_C / 2, _TABLE_STEP_C)
-        origin = ZERO_CELSIUS_K if kelvin else 0.0
         sal, sal_of = np.unique(np.asarray(salinity, dtype=float), return_inverse=True)
         xs: list[F] = []
         ys: list[F] = []
         for g, s in enumerate(sal):
             sat = saturation_umol_l(grid, s, pressure_kpa)
             offset = g * _BLOCK_C
-            xs.append(np.concatenate(([-_PAD_C], grid, [_PAD_C])) + (offset + origin))
+            xs.append(np.concatenate(([-_PAD_C], grid, [_PAD_C])) + offset)
             ys.append(np.concatenate(([sat[0]], sat, [sat[-1]])))
         self._grid: F = np.concatenate(xs)
         self._values: F = np.concatenate(ys)
         self._single = len(sal) == 1
         self._offset: F = np.asarray(sal_of, dtype=float).reshape(-1) * _BLOCK_C
-        self._low = origin - _CLAMP_C
-        self._high = origin + _CLAMP_C
 
-    def __call__(self, temp: F) -> F:
-        """Saturation at ``temp`` (°C, or K for a kelvin table), µmol L⁻¹.
-
-        ``temp`` has shape ``(..., N)``, or ``(N, n)`` (chamber-major) when called through
-        :meth:`rows`.
-        """
+    def __call__(self, temp_c: F) -> F:
+        """Saturation at ``temp_c`` (°C, shape ``(..., N)``), µmol L⁻¹."""
         if self._single:
-            return np.interp(temp, self._grid, self._values)
-        shifted = np.clip(temp, self._low, self._high)
+            return np.interp(temp_c, self._grid, self._values)
+        shifted = np.clip(temp_c, -_CLAMP_C, _CLAMP_C)
         shifted += self._offset
         return np.interp(shifted, self._grid, self._values)
 
-    def rows(self, temp: F) -> F:
-        """Saturation for chamber-major temperatures (°C or K), shape ``(N, n)``, µmol L⁻¹."""
+    def rows(self, temp_c: F) -> F:
+        """Saturation at chamber-major ``temp_c`` (°C, shape ``(N, n)``), µmol L⁻¹."""
         if self._single:
-            return np.interp(temp, self._grid, self._values)
-        shifted = np.clip(temp, self._low, self._high)
+            return np.interp(temp_c, self._grid, self._values)
+        shifted = np.clip(temp_c, -_CLAMP_C, _CLAMP_C)
         shifted += self._offset[:, None]
         return np.interp(shifted, self._grid, self._values)
 

@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.signal import lfilter
 
-from simulator._actuators import Arrival
+from simulator._actuators import Arrivals
 from simulator._oxygen import Metabolism
 from simulator._params import RackParams
 from simulator._physics import lag_weights, recurrence
@@ -80,8 +80,7 @@ class Drive(NamedTuple):
     water_w
         Heater and chiller power reaching each node at the segment start, W, shape ``(2, M)``.
     arrivals
-        Power changes reaching the water at sub-step boundaries inside the segment, in time
-        order per node.
+        Power changes reaching the water at sub-step boundaries inside the segment.
     lit
         1 where the lamp is on, else 0, dimensionless, shape ``(N,)``.
     par_warm
@@ -100,7 +99,7 @@ class Drive(NamedTuple):
     """
 
     water_w: F
-    arrivals: list[Arrival]
+    arrivals: Arrivals
     lit: F
     par_warm: F
     flush_w_k: F
@@ -116,7 +115,6 @@ class _Grid:
 
     probe_w: F  # lag weights of the temperature at t = 0..n·h, (N, n + 1)
     probe_end: F  # a^n of each probe, (N,)
-    probe_offset: F  # 273.15·Σ weights (the path is in kelvin, the probe in °C), (N,)
     optode_w: F  # lag weights of the O2 at t = 0..n·h, (N, n + 1)
     optode_end: F
     warm_decay: F  # e^(−m·h/τ_warm-up) for m = 0..n, (N, n + 1)
@@ -133,7 +131,6 @@ class _Water:
     rate: F  # h/τ of each node, (M,)
     tau_s: F  # τ = C/(UA + G), s, (M,)
     powers: F  # a^m for m = 0..n, (M, n + 1)
-    power_end: F  # a^n, (M,)
     inv_g: F  # 1/(UA + G), K W⁻¹, (M,)
     t_base_c: F  # (UA·T_room + G·T_in)/(UA + G), °C, (M,)
     settle_k_s: F  # τ(1 − a^n): ∫ of the transient per K of T_0 − T∞, s, (M,)
@@ -141,7 +138,7 @@ class _Water:
     o2_keep: F  # a_o = e^(−k·h), (N,)
     o2_phi: F  # φ = (1 − a_o)/k, s, (N,)
     exchanging: bool  # any chamber exchanges O2 with saturated water
-    shifts: dict[tuple[int, ...], tuple[F, F, F]]  # arrival pattern → (step response, end, ∫)
+    shifts: dict[tuple[int, ...], tuple[F, F]]  # arrival pattern → (step response, its ∫)
 
 
 class Stepper:
@@ -152,7 +149,7 @@ class Stepper:
     p
         Resolved rack parameters.
     saturation
-        O2 saturation of each chamber's water as a function of temperature in kelvin.
+        O2 saturation of each chamber's water as a function of temperature.
     biology
         The communities' net O2 source.
     """
@@ -172,8 +169,10 @@ class Stepper:
         self._warm_gain = 1.0 - p.cold_output_frac
         self._grids: dict[tuple[int, float], _Grid] = {}
         self._waters: dict[tuple[int, float, int], _Water] = {}
-        self._weights_key: tuple[object, ...] = ()
+        self._weights_key: tuple[object, ...] = (None, None, None)
         self._weights: F = np.zeros((len(node_of), 2, 1))
+        self._light_glow: F = np.zeros(len(node_of))
+        self._full_light: F = np.zeros(len(node_of))
 
     # ------------------------------------------------------------------ segment
     def step(self, state: WaterState, drive: Drive, n: int, h: float) -> tuple[WaterState, F]:
@@ -198,30 +197,34 @@ class Stepper:
         """
         grid = self._grid(n, h)
         water = self._water(n, h, drive)
-        t0 = state.temp_c
         watts = drive.water_w
         t_inf = watts[0] - watts[1]
         t_inf *= water.inv_g
         t_inf += water.t_base_c
-        lead = t0 - t_inf
+        lead = state.temp_c - t_inf
         path = lead[:, None] * water.powers
-        path += (t_inf + ZERO_CELSIUS_K)[:, None]
-        t_end = lead * water.power_end
-        t_end += t_inf
-        excess = (t_inf - self._room_c) * (n * h)
+        path += t_inf[:, None]
+        excess = t_inf - self._room_c
+        excess *= n * h
         excess += lead * water.settle_k_s
-        if drive.arrivals:
-            self._arrive(drive.arrivals, watts, water, n, h, path, t_end, excess)
+        for ks, delta in drive.arrivals:
+            step, integral = self._shift(water, ks, n, h)
+            change = np.multiply(delta, water.inv_g)
+            path += change[:, None] * step
+            excess += change * integral
 
         chambers = path if self._own_water else path.take(self._node_of, axis=0)
         starts = chambers[:, :-1]
-        inv = np.divide(1.0, starts)
+        inv = np.add(starts, ZERO_CELSIUS_K)
+        np.divide(1.0, inv, out=inv)
         weights, warmth_end = self._light(state.warmth, drive, grid)
         bio = self._bio
         terms = grid.terms
         bio.factors(inv, weights, terms)
-        if bio.stressed and float(path.max()) > bio.lowest_threshold_k:
-            bio.stress(starts, terms)
+        if bio.stressed:
+            hottest = float(path.max())
+            if hottest > bio.lowest_threshold_c:
+                bio.stress(starts, terms, hottest)
         if water.exchanging:
             grid.saturation[...] = self._saturation.rows(starts)
         start = grid.start
@@ -232,51 +235,15 @@ class Stepper:
             self._floored(ends, state, grid, water, n)
 
         probe = np.vecdot(grid.probe_w, chambers)
-        probe -= grid.probe_offset
         probe += grid.probe_end * state.probe_c
-        return WaterState(t_end, ends[0], probe, ends[1], warmth_end), excess
+        return WaterState(path[:, -1], ends[0], probe, ends[1], warmth_end), excess
 
     # ------------------------------------------------------------------ pieces
-    def _arrive(
-        self,
-        arrivals: list[Arrival],
-        watts: F,
-        water: _Water,
-        n: int,
-        h: float,
-        path: F,
-        t_end: F,
-        excess: F,
-    ) -> None:
-        """Superpose the step responses of power changes inside the segment (in place)."""
-        m = self._m
-        net = (watts[0] - watts[1]).tolist()
-        inv_g = water.inv_g.tolist()
-        pending = arrivals
-        while pending:  # each round takes at most one arrival per node
-            taken = [False] * m
-            ks = [n] * m
-            delta = [0.0] * m
-            later: list[Arrival] = []
-            for arrival in pending:
-                k, j, heater_w, chiller_w = arrival
-                if taken[j]:
-                    later.append(arrival)
-                    continue
-                taken[j] = True
-                ks[j] = k
-                new = heater_w - chiller_w
-                delta[j] = (new - net[j]) * inv_g[j]
-                net[j] = new
-            step, step_end, step_int = self._shift(water, tuple(ks), n, h)
-            d = np.array(delta)
-            path += d[:, None] * step
-            t_end += d * step_end
-            excess += d * step_int
-            pending = later
+    def _shift(self, water: _Water, ks: tuple[int, ...], n: int, h: float) -> tuple[F, F]:
+        """Unit step responses of the nodes to a change at boundary k_j, and their integrals.
 
-    def _shift(self, water: _Water, ks: tuple[int, ...], n: int, h: float) -> tuple[F, F, F]:
-        """Unit step responses of the nodes to a change at boundary k_j (cached per pattern)."""
+        Cached per arrival pattern; a node with k_j = n has no change (all zeros).
+        """
         found = water.shifts.get(ks)
         if found is None:
             k = np.array(ks, dtype=float)[:, None]
@@ -287,7 +254,7 @@ class Stepper:
             integral = left * h + water.tau_s * np.expm1(-left * water.rate)
             if len(water.shifts) >= _CACHE_SIZE:
                 water.shifts.clear()
-            found = water.shifts[ks] = (step, step[:, -1].copy(), integral)
+            found = water.shifts[ks] = (step, integral)
         return found
 
     def _floored(self, ends: F, state: WaterState, grid: _Grid, water: _Water, n: int) -> None:
@@ -302,26 +269,34 @@ class Stepper:
         ends[1] += np.vecdot(grid.optode_w[:, 1:], path)
 
     def _light(self, warmth: F, drive: Drive, grid: _Grid) -> tuple[F, F]:
-        """Production/respiration weights (``(N, 2, 1)`` or ``(N, 2, n)``) and end warmth."""
+        """Production/respiration weights (``(N, 2, 1)`` or ``(N, 2, n)``) and end warmth.
+
+        A settled lamp (warmth equal to ``lit``) hands ``lit`` itself on as its warmth, so
+        that the next segment recognises it by identity.
+        """
         lit = drive.lit
-        if (warmth == lit).all():
-            # the same arrays as last time (the rack replaces, never mutates them): reuse
-            seen = self._weights_key
-            if (
-                seen
-                and seen[0] is drive.par_warm
-                and seen[1] is warmth
-                and seen[2] is drive.volume_l
-            ):
-                return self._weights, warmth
-            par = drive.par_warm * (self._cold + self._warm_gain * warmth)
-            self._weights = self._bio.weights(self._bio.light(par), drive.volume_l)
-            self._weights_key = (drive.par_warm, warmth, drive.volume_l)
-            return self._weights, warmth
+        if warmth is lit or (warmth == lit).all():
+            # The rack replaces these arrays, never mutates them: identity says "unchanged".
+            par = drive.par_warm
+            seen_par, seen_lit, seen_volume = self._weights_key
+            same_water = seen_lit is lit and seen_volume is drive.volume_l
+            if same_water and seen_par is par:
+                return self._weights, lit
+            if not same_water:
+                self._light_glow = self._cold + self._warm_gain * lit
+                base = self._bio.per_volume(drive.volume_l)
+                self._weights = np.empty((len(lit), 2, 1))
+                self._weights[:, 1, 0] = base[:, 1]
+                self._full_light = base[:, 0]
+            light = self._bio.light(par * self._light_glow)
+            np.multiply(light, self._full_light, out=self._weights[:, 0, 0])
+            self._weights_key = (par, lit, drive.volume_l)
+            return self._weights, lit
         path = (warmth - lit)[:, None] * grid.warm_decay
         path += lit[:, None]
         end = path[:, -1]
-        end = np.where(np.abs(end - lit) < _SETTLED, lit, end)
+        settled = np.abs(end - lit) < _SETTLED
+        end = lit if settled.all() else np.where(settled, lit, end)
         glow = self._warm_gain[:, None] * path[:, :-1]
         glow += self._cold[:, None]
         par = drive.par_warm[:, None] * glow
@@ -342,14 +317,12 @@ class Stepper:
         chambers = len(p.chamber_ids)
         probe_end, probe_w = lag_weights(p.temperature_tau_s, h, n)
         optode_end, optode_w = lag_weights(p.optode_tau_s, h, n)
-        probe_w = np.ascontiguousarray(probe_w.T)
         tau = np.maximum(p.warmup_tau_s, 1e-9)
         decay = np.exp(-(np.arange(n + 1, dtype=float)[None, :] * h) / tau[:, None])
         scratch = np.zeros((chambers, 3 * n + 2))
         return _Grid(
-            probe_w=probe_w,
+            probe_w=np.ascontiguousarray(probe_w.T),
             probe_end=probe_end,
-            probe_offset=ZERO_CELSIUS_K * probe_w.sum(axis=1),
             optode_w=np.ascontiguousarray(optode_w.T),
             optode_end=optode_end,
             warm_decay=decay,
@@ -384,7 +357,6 @@ class Stepper:
             rate=rate,
             tau_s=tau,
             powers=powers,
-            power_end=powers[:, -1].copy(),
             inv_g=inv_g,
             t_base_c=base * inv_g,
             settle_k_s=-tau * np.expm1(-n * rate),

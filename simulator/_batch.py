@@ -1,0 +1,616 @@
+"""The vectorised integrator of an open-loop block: many segments' sub-steps at once.
+
+Rule: a block is a stretch of time in which the faults do not change and nothing leaks, cut
+into pieces at the schedule's switch times. This module plans the sub-step grid exactly as
+:meth:`simulator.Rack.advance` would (pieces cut at 3600 sub-steps, and at dead-time arrivals
+that fall between sub-step boundaries), works out the heater and chiller power every
+sub-step feels (the delay lines), and integrates heat, light, O2 and the sensor lags over
+all sub-steps with :func:`simulator._physics.series_recurrence`, in chunks of at most
+``CHUNK`` sub-steps to bound memory. The discretisation is the stepwise one (exact
+exponential steps, O2 source and saturation held at sub-step starts, first-order hold for
+the sensors), so the results agree with stepping to rounding. Arrays are chamber-major
+(rows are nodes or chambers, time runs along the row).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from simulator._actuators import Effective, substeps
+from simulator._oxygen import Metabolism
+from simulator._params import RackParams
+from simulator._physics import lamp_curve, pump_fraction, series_recurrence
+from simulator._science import ZERO_CELSIUS_K, SaturationTable
+from simulator._step import WaterState
+
+__all__ = ["CHUNK", "BlockEnd", "BlockStart", "Line", "integrate_block"]
+
+F = NDArray[np.float64]
+I = NDArray[np.intp]  # noqa: E741
+Line = list[tuple[float, float, float]]
+
+CHUNK = 8192
+"""Most sub-steps integrated in one go, dimensionless."""
+
+_EPS_S = 1e-9
+_GRID_TOL = 1e-6
+_MAX_SUBSTEPS = 3600
+_SETTLED = 1e-9
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BlockStart:
+    """The rack at the start of a block (everything the integrator needs besides params).
+
+    Attributes
+    ----------
+    water
+        Water and sensor state.
+    water_w
+        Heater and chiller power reaching each node now, W, shape ``(2, M)``.
+    lines
+        Power changes on their way per node: (arrival s, heater W, chiller W).
+    sent_w
+        The latest heater and chiller power queued per node, W, shape ``(2, M)``.
+    lamp_s
+        Seconds each lamp has been lit, s, shape ``(N,)``.
+    volume_l
+        Water in each chamber, L, shape ``(N,)``.
+    capacity_j_k
+        Heat capacity of each node, J K⁻¹, shape ``(M,)``.
+    """
+
+    water: WaterState
+    water_w: F
+    lines: list[Line]
+    sent_w: F
+    lamp_s: F
+    volume_l: F
+    capacity_j_k: F
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BlockEnd:
+    """What a block did (state at its end, sums over it, samples at row ends).
+
+    Attributes
+    ----------
+    water
+        Water and sensor state at the block end.
+    water_w
+        Heater and chiller power reaching each node at the end, W, shape ``(2, M)``.
+    lines
+        Power changes still on their way per node.
+    heat_j
+        Heater and chiller energy over the block, J, shape ``(2, M)``.
+    excess_k_s
+        ∫(T − T_room)dt over the block, K s, shape ``(M,)``.
+    flush_loss_j
+        Heat carried out by flushing over the block, J, shape ``(M,)``.
+    span_s
+        Time integrated, s.
+    lamp_s
+        Seconds each lamp has been lit at the end, s, shape ``(N,)``.
+    """
+
+    water: WaterState
+    water_w: F
+    lines: list[Line]
+    heat_j: F
+    excess_k_s: F
+    flush_loss_j: F
+    span_s: float
+    lamp_s: F
+
+
+@dataclass(frozen=True, slots=True)
+class _Segments:
+    t0: F  # start, s
+    t1: F  # end, s
+    n: I  # sub-steps
+    h: F  # sub-step length, s
+    piece: I  # the piece each segment belongs to
+    last: NDArray[np.bool_]  # the segment ends its piece
+
+
+def integrate_block(
+    p: RackParams,
+    saturation: SaturationTable,
+    bio: Metabolism,
+    start: BlockStart,
+    piece_t: F,
+    eff: Effective,
+    queued: NDArray[np.bool_],
+    sample_to: I,
+    out: F,
+) -> BlockEnd:
+    """Integrate every chamber over the pieces of one block.
+
+    Parameters
+    ----------
+    p
+        Resolved rack parameters.
+    saturation
+        O2 saturation of each chamber's water (°C → µmol L⁻¹).
+    bio
+        The communities' net O2 source.
+    start
+        The rack at the block start (time ``piece_t[0]``).
+    piece_t
+        Piece boundaries, s, shape ``(P + 1,)``, increasing.
+    eff
+        Effective drives (%) of each piece: heater and chiller ``(P, M)``, lamp and pump
+        ``(P, N)``.
+    queued
+        Whether commands were given at the start of each piece (heater and chiller power
+        is then queued, as :meth:`simulator.Rack.set_outputs` would), shape ``(P,)``.
+    sample_to
+        Column of ``out`` receiving the state at the end of each piece, or −1 for none,
+        shape ``(P,)``.
+    out
+        Receives temperature (°C), O2 (µmol L⁻¹), PAR (µmol m⁻² s⁻¹), probe (°C) and
+        optode (µmol L⁻¹) of every chamber, shape ``(5, N, columns)``.
+
+    Returns
+    -------
+    BlockEnd
+        The state at ``piece_t[-1]`` and what happened on the way.
+    """
+    times, heater, chiller = _arrival_series(p, start, piece_t, eff, queued)
+    seg, arrival_at = _plan(p.physics_step_s, piece_t, times)
+    per_piece = np.bincount(seg.piece, minlength=len(piece_t) - 1)
+    lit_p = (eff.lamp_pct > 0.0).astype(float)
+    lamp_run = _runs(eff.lamp_pct)
+    lamp_first = np.flatnonzero(np.diff(lamp_run, prepend=-1))
+    par_new_p = lamp_curve(eff.lamp_pct[lamp_first], p.par_at_full, p.curve_shape)[lamp_run]
+    flow_run = _runs(eff.pump_pct)
+    flow_first = np.flatnonzero(np.diff(flow_run, prepend=-1))
+    flows = pump_fraction(eff.pump_pct[flow_first], p.dead_band_pct) * p.flush_at_full_l_s
+    span = seg.n * seg.h
+    lit_s = np.repeat(lit_p, per_piece, axis=0)
+    lit_time = lit_s * span[:, None]
+    lamp_s = np.empty((len(span) + 1, len(p.chamber_ids)))  # at segment starts, and the end
+    lamp_s[0] = start.lamp_s
+    np.cumsum(lit_time, axis=0, out=lamp_s[1:])
+    lamp_s[1:] += start.lamp_s
+    par_new_s = np.repeat(par_new_p, per_piece, axis=0)
+    age = _age(lamp_s, _age_rate(p))
+    par_warm_s = par_new_s * age[:-1]
+    par_end_s = par_new_s * age[1:]  # the warm PAR at each segment end (for samples)
+    flow_s = np.repeat(flow_run, per_piece)  # which run of constant flows each segment is in
+    sample_s = np.full(len(span), -1, dtype=np.intp)
+    sample_s[seg.last] = sample_to
+    water = start.water
+    state = [water.temp_c, water.o2_umol_l, water.probe_c, water.optode_umol_l, water.warmth]
+    m_nodes = len(start.capacity_j_k)
+    heat = np.zeros((2, m_nodes))
+    excess = np.zeros(m_nodes)
+    flush_loss = np.zeros(m_nodes)
+    for s0, s1 in _chunks(seg.n):
+        sums = _chunk(
+            p, saturation, bio, start, seg, s0, s1, times, heater, chiller, arrival_at,
+            lit_s, par_warm_s, par_end_s, flows, flow_s, sample_s, out, state,
+        )  # fmt: skip
+        heat += sums[0]
+        excess += sums[1]
+        flush_loss += sums[2]
+    t_end = float(piece_t[-1])
+    water_w = np.empty((2, len(times)))
+    lines: list[Line] = []
+    for j, arrive in enumerate(times):
+        now = int(np.searchsorted(arrive, t_end + _EPS_S, side="right")) - 1
+        water_w[0, j] = heater[j][now]
+        water_w[1, j] = chiller[j][now]
+        lines.append(
+            [(float(arrive[i]), float(heater[j][i]), float(chiller[j][i]))
+             for i in range(now + 1, len(arrive))]
+        )  # fmt: skip
+    lit_end = lit_p[-1]
+    warmth = state[4]
+    warmth = np.where(np.abs(warmth - lit_end) < _SETTLED, lit_end, warmth)
+    return BlockEnd(
+        water=WaterState(state[0], state[1], state[2], state[3], warmth),
+        water_w=water_w,
+        lines=lines,
+        heat_j=heat,
+        excess_k_s=excess,
+        flush_loss_j=flush_loss,
+        span_s=float(span.sum()),
+        lamp_s=lamp_s[-1].copy(),
+    )
+
+
+def _arrival_series(
+    p: RackParams, start: BlockStart, piece_t: F, eff: Effective, queued: NDArray[np.bool_]
+) -> tuple[list[F], list[F], list[F]]:
+    """Per node: times from which each heater/chiller power holds (first −inf), and powers."""
+    t0 = piece_t[:-1][queued]
+    heat_w = eff.heater_pct[queued] * (p.heater_max_w / 100.0)
+    cold_w = eff.chiller_pct[queued] * (p.chiller_max_w / 100.0)
+    times: list[F] = []
+    heater: list[F] = []
+    chiller: list[F] = []
+    for j in range(len(p.node_names)):
+        h_new, c_new = heat_w[:, j], cold_w[:, j]
+        prev_h = np.concatenate(([start.sent_w[0, j]], h_new[:-1]))
+        prev_c = np.concatenate(([start.sent_w[1, j]], c_new[:-1]))
+        changed = (h_new != prev_h) | (c_new != prev_c)  # an unchanged power is not queued
+        arrive = t0[changed] + float(p.dead_time_s[j])
+        pending = start.lines[j]
+        if len(arrive):  # a change queued at the same moment replaces the pending one
+            pending = [entry for entry in pending if entry[0] != arrive[0]]
+        times.append(np.concatenate(([-math.inf], [e[0] for e in pending], arrive)))
+        heater.append(
+            np.concatenate(([start.water_w[0, j]], [e[1] for e in pending], h_new[changed]))
+        )
+        chiller.append(
+            np.concatenate(([start.water_w[1, j]], [e[2] for e in pending], c_new[changed]))
+        )
+    return times, heater, chiller
+
+
+def _plan(step_s: float, piece_t: F, times: list[F]) -> tuple[_Segments, list[I]]:
+    """Segments and sub-steps of every piece, as :meth:`simulator.Rack.advance` cuts them.
+
+    Also returns, per node, the index of the first sub-step that feels each arrival (from
+    ``times[j][1:]``): the first sub-step starting at or after it, within a millionth of a
+    sub-step.
+    """
+    longest = _MAX_SUBSTEPS * step_s
+    p0, p1 = piece_t[:-1], piece_t[1:]
+    count = np.maximum(1, np.ceil((p1 - p0 - _EPS_S) / longest)).astype(np.intp)
+    if (count == 1).all():
+        piece = np.arange(len(p0))
+        t0, t1 = p0, p1
+    else:
+        piece = np.repeat(np.arange(len(p0)), count)
+        first = np.cumsum(count) - count
+        t0 = p0[piece] + (np.arange(len(piece)) - first[piece]) * longest
+        t1 = np.minimum(t0 + longest, p1[piece])
+        t1[np.cumsum(count) - 1] = p1  # the last segment of a piece ends at the piece end
+    n = np.maximum(1, np.ceil((t1 - t0) / step_s - 1e-9)).astype(np.intp)
+    h = (t1 - t0) / n
+    arrive = np.concatenate([a[1:] for a in times])
+    s = np.searchsorted(t0, arrive, side="right") - 1
+    s_ok = np.maximum(s, 0)
+    inside = (s >= 0) & (arrive > t0[s_ok] + _EPS_S) & (arrive < t1[s_ok] - _EPS_S)
+    k = (arrive - t0[s_ok]) / h[s_ok]
+    off = inside & (np.abs(k - np.maximum(0.0, np.round(k))) > _GRID_TOL)
+    if off.any():  # rare: split those pieces as advance() would, one by one
+        seg = _replan(step_s, piece_t, np.unique(piece[s[off]]), np.sort(arrive))
+        return seg, _positions(seg, times)
+    last = np.zeros(len(piece), dtype=bool)
+    last[np.cumsum(count) - 1] = True
+    seg = _Segments(t0, t1, n, h, piece, last)
+    begin = np.cumsum(n) - n
+    at = np.where(s >= 0, begin[s_ok] + np.ceil(k - _GRID_TOL).astype(np.intp), 0)
+    split = np.cumsum([len(a) - 1 for a in times])[:-1]
+    return seg, np.split(at, split)
+
+
+def _positions(seg: _Segments, times: list[F]) -> list[I]:
+    """First sub-step feeling each arrival (see :func:`_plan`), per node."""
+    begin = np.cumsum(seg.n) - seg.n
+    out = []
+    for arrive in times:
+        s = np.maximum(np.searchsorted(seg.t0, arrive[1:], side="right") - 1, 0)
+        k = np.ceil((arrive[1:] - seg.t0[s]) / seg.h[s] - _GRID_TOL).astype(np.intp)
+        out.append(np.where(arrive[1:] >= seg.t0[0], begin[s] + k, 0))
+    return out
+
+
+def _replan(step_s: float, piece_t: F, odd: I, arrivals: F) -> _Segments:
+    """Plan all pieces, stepping those in ``odd`` with the stepwise rules in Python."""
+    rows: list[tuple[float, float, int, float, int, bool]] = []
+    longest = _MAX_SUBSTEPS * step_s
+    odd_set = set(odd.tolist())
+    for i in range(len(piece_t) - 1):
+        t, end = float(piece_t[i]), float(piece_t[i + 1])
+        cuts: list[tuple[float, float, int, float]] = []
+        while t < end - _EPS_S:
+            seg_end = min(end, t + longest)
+            n, h = substeps(seg_end - t, step_s)
+            if i in odd_set:
+                off = _first_off_grid(arrivals, t, seg_end, h)
+                while off is not None:
+                    seg_end = off
+                    n, h = substeps(seg_end - t, step_s)
+                    off = _first_off_grid(arrivals, t, seg_end, h)
+            cuts.append((t, seg_end, n, h))
+            t = seg_end
+        if not cuts:
+            n, h = substeps(end - float(piece_t[i]), step_s)
+            cuts.append((float(piece_t[i]), end, n, h))
+        cuts[-1] = (cuts[-1][0], end, cuts[-1][2], (end - cuts[-1][0]) / cuts[-1][2])
+        rows += [(a, b, n, h, i, q == len(cuts) - 1) for q, (a, b, n, h) in enumerate(cuts)]
+    return _Segments(
+        t0=np.array([r[0] for r in rows]),
+        t1=np.array([r[1] for r in rows]),
+        n=np.array([r[2] for r in rows], dtype=np.intp),
+        h=np.array([r[3] for r in rows]),
+        piece=np.array([r[4] for r in rows], dtype=np.intp),
+        last=np.array([r[5] for r in rows], dtype=bool),
+    )
+
+
+def _first_off_grid(arrivals: F, t0: float, t1: float, h: float) -> float | None:
+    """Earliest arrival in (t0, t1) that falls between the sub-step boundaries, s."""
+    lo = int(np.searchsorted(arrivals, t0 + _EPS_S, side="right"))
+    hi = int(np.searchsorted(arrivals, t1 - _EPS_S, side="left"))
+    for arrive in arrivals[lo:hi]:
+        k = (arrive - t0) / h
+        if abs(k - max(0, round(k))) > _GRID_TOL:
+            return float(arrive)
+    return None
+
+
+def _chunks(n: I) -> list[tuple[int, int]]:
+    """Runs of segments holding at most CHUNK sub-steps each (at least one segment)."""
+    total = np.cumsum(n)
+    out: list[tuple[int, int]] = []
+    s0 = 0
+    while s0 < len(n):
+        base = int(total[s0 - 1]) if s0 else 0
+        s1 = max(s0 + 1, int(np.searchsorted(total, base + CHUNK, side="right")))
+        out.append((s0, s1))
+        s0 = s1
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class _Coefficients:
+    """Per-sub-step coefficients; ``(rows, 1)`` when one combination serves the chunk."""
+
+    h: F  # sub-step length, s, (1, L) or (1, 1)
+    keep_t: F  # e^(−h/τ) of each node, (M, ·)
+    fresh_t: F  # 1 − e^(−h/τ)
+    transient_s: F  # τ(1 − e^(−h/τ)), s
+    inv_g: F  # 1/(UA + G), K W⁻¹
+    t_base_c: F  # (UA·T_room + G·T_in)/(UA + G), °C
+    g_flush: F  # G, W K⁻¹
+    warm_keep: F  # e^(−h/τ_warm-up) of each chamber, (N, ·)
+    o2_keep: F  # e^(−k·h)
+    o2_fresh: F  # 1 − e^(−k·h)
+    o2_phi: F  # (1 − e^(−k·h))/k, s
+    exchanging: bool
+    probe: tuple[F, F]  # (a, c) of the probe lag
+    optode: tuple[F, F]  # (a, c) of the optode lag
+
+
+def _coefficients(
+    p: RackParams, start: BlockStart, h_seg: F, flows: F, flow_seg: I, n: I
+) -> _Coefficients:
+    """Coefficients of each distinct (sub-step length, flows) pair, spread over sub-steps."""
+    lengths, length_of = np.unique(h_seg, return_inverse=True)
+    pair = flow_seg * len(lengths) + length_of
+    pairs, pair_of = np.unique(pair, return_inverse=True)
+    h = lengths[pairs % len(lengths)][None, :]  # (1, C)
+    flush = flows[pairs // len(lengths)].T  # (N, C)
+    g_flush = np.zeros((len(start.capacity_j_k), flush.shape[1]))
+    np.add.at(g_flush, p.node_of_chamber, flush * p.rho_cp_j_l_k[:, None])
+    g_tot = p.ua_w_k[:, None] + g_flush
+    tau = start.capacity_j_k[:, None] / g_tot
+    fresh_t = -np.expm1(-h / tau)
+    k = flush / start.volume_l[:, None] + np.where(flush > 0.0, p.reaeration_per_s[:, None], 0.0)
+    kh = k * h
+    o2_fresh = -np.expm1(-kh)
+    base = p.ua_w_k[:, None] * p.room_temperature_c + g_flush * p.inflow_temperature_c
+
+    def spread(x: F) -> F:
+        return x if len(pairs) == 1 else np.repeat(x[:, pair_of], n, axis=1)
+
+    probe = _lag_coefficients(p.temperature_tau_s, h)
+    optode = _lag_coefficients(p.optode_tau_s, h)
+    return _Coefficients(
+        h=spread(h),
+        keep_t=spread(1.0 - fresh_t),
+        fresh_t=spread(fresh_t),
+        transient_s=spread(tau * fresh_t),
+        inv_g=spread(1.0 / g_tot),
+        t_base_c=spread(base / g_tot),
+        g_flush=spread(g_flush),
+        warm_keep=spread(np.exp(-h / np.maximum(p.warmup_tau_s, 1e-9)[:, None])),
+        o2_keep=spread(np.exp(-kh)),
+        o2_fresh=spread(o2_fresh),
+        o2_phi=spread(np.where(kh > 0.0, o2_fresh / np.where(kh > 0.0, k, 1.0), h)),
+        exchanging=bool((kh > 0.0).any()),
+        probe=(spread(probe[0]), spread(probe[1])),
+        optode=(spread(optode[0]), spread(optode[1])),
+    )
+
+
+def _lag_coefficients(tau_s: F, h: F) -> tuple[F, F]:
+    """a = e^(−h/τ) and c = τ(1 − a)/h of first-order lags (as lag_weights), shape (N, C)."""
+    ratio = h / np.maximum(tau_s, 1e-9)[:, None]
+    return np.exp(-ratio), -np.expm1(-ratio) / ratio
+
+
+def _powers(values: F, at: I, g0: int, g1: int) -> F:
+    """Power of one node in sub-steps g0..g1−1 of the block (its delay line), W.
+
+    ``values[0]`` holds before the first arrival; arrival i (``values[i + 1]``) is felt
+    from sub-step ``at[i]`` on.
+    """
+    lo = int(np.searchsorted(at, g0, side="right"))  # values[lo] holds at g0
+    hi = int(np.searchsorted(at, g1, side="left"))
+    counts = np.diff(np.concatenate(([g0], at[lo:hi], [g1])))
+    return np.repeat(values[lo : hi + 1], counts)
+
+
+def _chunk(
+    p: RackParams,
+    saturation: SaturationTable,
+    bio: Metabolism,
+    start: BlockStart,
+    seg: _Segments,
+    s0: int,
+    s1: int,
+    times: list[F],
+    heater: list[F],
+    chiller: list[F],
+    arrival_at: list[I],
+    lit_s: F,
+    par_warm_s: F,
+    par_end_s: F,
+    flows: F,
+    flow_s: I,
+    sample_s: I,
+    out: F,
+    state: list[F],
+) -> tuple[F, F, F]:
+    """Integrate segments s0..s1−1, sampling into ``out`` and updating ``state`` in place.
+
+    Returns heater and chiller energy (J, (2, M)), ∫(T − T_room)dt (K s, (M,)) and the
+    flushing heat loss (J, (M,)) over these segments.
+    """
+    n = seg.n[s0:s1]
+    ends = np.cumsum(n) - 1
+    length = int(ends[-1] + 1)
+    g0 = int(np.sum(seg.n[:s0]))
+    co = _coefficients(p, start, seg.h[s0:s1], flows, flow_s[s0:s1], n)
+    node_of = p.node_of_chamber
+    m_nodes = len(times)
+    chambers = len(node_of)
+
+    # heater and chiller power felt in each sub-step (the delay lines), and its energy
+    net = np.empty((m_nodes, length))
+    heat = np.empty((2, m_nodes))
+    for j in range(m_nodes):
+        hw = _powers(heater[j], arrival_at[j], g0, g0 + length)
+        cw = _powers(chiller[j], arrival_at[j], g0, g0 + length)
+        np.subtract(hw, cw, out=net[j])
+        if co.h.shape[1] == 1:
+            heat[:, j] = (float(hw.sum()) * float(co.h[0, 0]), float(cw.sum()) * float(co.h[0, 0]))
+        else:
+            heat[:, j] = (float(np.dot(hw, co.h[0])), float(np.dot(cw, co.h[0])))
+
+    # thermal nodes: T_k = a·T_(k−1) + (1 − a)·T∞_k
+    t_inf = net
+    t_inf *= co.inv_g
+    t_inf += co.t_base_c
+    temp_end = series_recurrence(co.keep_t, t_inf * co.fresh_t, state[0])
+    temp_start = _shift(state[0], temp_end)
+    transient = temp_start - t_inf
+    transient *= co.transient_s
+    t_inf -= p.room_temperature_c
+    t_inf *= co.h
+    t_inf += transient  # ∫(T − T_room)dt per sub-step
+    excess = t_inf.sum(axis=1)
+    t_inf += (p.room_temperature_c - p.inflow_temperature_c) * co.h  # now ∫(T − T_in)dt
+    t_inf *= co.g_flush
+    flush_loss = t_inf.sum(axis=1)
+    ch_start = temp_start[node_of]
+    ch_end = temp_end[node_of]
+
+    # lamps: warm-up and PAR; light limitation per segment where the lamp is settled
+    lit_seg = lit_s[s0:s1].T  # (N, S)
+    warm0 = state[4]
+    settled = (lit_seg == warm0[:, None]).all(axis=1) | (p.warmup_tau_s <= 0.0)
+    cold = p.cold_output_frac[:, None]
+    glow_seg = cold + (1.0 - cold) * lit_seg
+    light = np.repeat(bio.light(par_warm_s[s0:s1].T * glow_seg), n, axis=1)
+    warm_end = np.repeat(lit_seg, n, axis=1)
+    moving = np.flatnonzero(~settled)
+    if len(moving):
+        keep_w = co.warm_keep[moving]
+        lit_m = warm_end[moving]
+        warm_end[moving] = series_recurrence(keep_w, (1.0 - keep_w) * lit_m, warm0[moving])
+        glow = _shift(warm0[moving], warm_end[moving])
+        glow *= 1.0 - cold[moving]
+        glow += cold[moving]
+        glow *= np.repeat(par_warm_s[s0:s1].T[moving], n, axis=1)
+        light[moving] = bio.light(glow, moving)
+
+    # community O2: dC/dt = (GPP − R)·A/V − k·(C − C_sat), held over each sub-step
+    inv = ch_start + ZERO_CELSIUS_K
+    np.divide(1.0, inv, out=inv)
+    full = bio.per_volume(start.volume_l)
+    weights = np.empty((chambers, 2, length))
+    weights[:, 0] = light
+    weights[:, 0] *= full[:, 0:1]
+    weights[:, 1] = full[:, 1:2]
+    terms = np.empty((chambers, 2, length))
+    bio.factors(inv, weights, terms)
+    if bio.stressed:
+        hottest = float(ch_start.max())
+        if hottest > bio.lowest_threshold_c:
+            bio.stress(ch_start, terms, hottest)
+    u = np.subtract(terms[:, 0], terms[:, 1])
+    u *= co.o2_phi
+    if co.exchanging:
+        sat = saturation.rows(ch_start)
+        sat *= co.o2_fresh
+        u += sat
+    o2_end = series_recurrence(co.o2_keep, u, state[1], floor=True)
+
+    # sensors: first-order lags with a first-order hold of their input
+    probe = _lag(co.probe, state[0][node_of], ch_end, state[2])
+    optode = _lag(co.optode, state[1], o2_end, state[3])
+
+    # samples at the ends of pieces
+    to = sample_s[s0:s1]
+    pick = to >= 0
+    at = ends[pick]
+    cols = to[pick]
+    if len(cols):
+        out[0][:, cols] = ch_end[:, at]
+        out[1][:, cols] = o2_end[:, at]
+        glow_end = warm_end[:, at]
+        glow_end *= 1.0 - cold
+        glow_end += cold
+        glow_end *= par_end_s[s0:s1][pick].T
+        out[2][:, cols] = glow_end
+        out[3][:, cols] = probe[:, at]
+        out[4][:, cols] = optode[:, at]
+    state[:] = [
+        temp_end[:, -1].copy(),
+        o2_end[:, -1].copy(),
+        probe[:, -1].copy(),
+        optode[:, -1].copy(),
+        warm_end[:, -1].copy(),
+    ]
+    return heat, excess, flush_loss
+
+
+def _runs(rows: F) -> I:
+    """Index of the run of equal consecutive rows each row belongs to, shape ``(P,)``."""
+    changed = (rows[1:] != rows[:-1]).any(axis=1)
+    return np.concatenate(([0], np.cumsum(changed))).astype(np.intp)
+
+
+def _age_rate(p: RackParams) -> F:
+    """λ = ln(1 − loss)/(3.6e6 s) of each lamp, s⁻¹ (−inf for a total loss)."""
+    loss = p.ageing_frac_per_1000_h
+    rate = np.log1p(-loss, out=np.full(len(loss), -np.inf), where=loss < 1.0)
+    return np.asarray(rate / 3.6e6, dtype=float)
+
+
+def _age(lamp_s: F, rate: F) -> F:
+    """Output fraction (1 − loss)^(hours/1000) = e^(λ·s) of lamps lit for ``lamp_s`` s."""
+    exponent = np.where(lamp_s > 0.0, lamp_s * rate, 0.0)
+    return np.exp(exponent)
+
+
+def _shift(first: F, path: F) -> F:
+    """Values at sub-step starts: ``first`` followed by all but the last of ``path``."""
+    out = np.empty_like(path)
+    out[:, 0] = first
+    out[:, 1:] = path[:, :-1]
+    return out
+
+
+def _lag(coefficients: tuple[F, F], x0: F, x_end: F, y0: F) -> F:
+    """First-order lag with its input linear over each sub-step (as lag_weights).
+
+    ``x0`` is the input before the first sub-step, ``x_end`` the input at each sub-step end.
+    """
+    a, c = coefficients
+    u = (1.0 - c) * x_end
+    back = a - c
+    u[:, 1:] -= (back if back.shape[1] == 1 else back[:, 1:]) * x_end[:, :-1]
+    u[:, 0] -= back[:, 0] * x0
+    return series_recurrence(a, u, y0)
