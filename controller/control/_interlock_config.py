@@ -1,8 +1,9 @@
-"""Configuration and inputs of the interlocks: conditions, levels, limits, readings, outputs.
+"""The interlocks' vocabulary: conditions, levels, limits, readings, outputs, and what an
+evaluation reports (safety states, events, actions).
 
 Rule: these types validate themselves when built, so an impossible limit set (a trip limit
-outside the probe's plausible range, a negative delay) cannot reach the state machine in
-``_interlocks.py``.
+outside the probe's plausible range, a negative delay) or an inconsistent event cannot reach
+or leave the state machine in ``_interlocks.py``, which decides every transition.
 """
 
 from __future__ import annotations
@@ -14,12 +15,16 @@ from enum import Enum
 from types import MappingProxyType
 
 __all__ = [
+    "Actions",
     "Condition",
     "ConditionPolicy",
+    "EventKind",
+    "InterlockEvent",
     "InterlockLimits",
     "Level",
     "Outputs",
     "Readings",
+    "SafetyState",
     "default_policies",
 ]
 
@@ -233,3 +238,82 @@ class Readings:
     level_ok: bool | None = None
     comm_ok: bool | None = None
     e_stop: bool | None = None
+
+
+class SafetyState(Enum):
+    """The chamber's overall interlock state."""
+
+    __hash__ = object.__hash__  # members are singletons; the C hash is 2x faster
+
+    STARTING = "starting"  # no healthy evaluation yet: outputs safe
+    NORMAL = "normal"
+    WARNING = "warning"
+    ALARM = "alarm"
+    TRIPPED = "tripped"  # a trip-level condition holds: outputs safe
+
+
+class EventKind(Enum):
+    """Kinds of interlock events written to the run log."""
+
+    __hash__ = object.__hash__  # members are singletons; the C hash is 2x faster
+
+    RAISED = "raised"
+    CLEARED = "cleared"
+    LATCHED = "latched"
+    ACKNOWLEDGED = "acknowledged"
+    SAFETY_CHANGED = "safety-changed"
+
+
+@dataclass(frozen=True, kw_only=True)
+class InterlockEvent:
+    """One thing that happened, with its reason.
+
+    Parameters
+    ----------
+    kind
+        What happened.
+    t_s
+        Clock time, s.
+    message
+        Human-readable reason (values and thresholds with units).
+    condition
+        The condition concerned; None only for SAFETY_CHANGED.
+    level
+        The condition's level; None only for SAFETY_CHANGED.
+    safety
+        The new overall state; set only for SAFETY_CHANGED.
+    """
+
+    kind: EventKind
+    t_s: float
+    message: str
+    condition: Condition | None = None
+    level: Level | None = None
+    safety: SafetyState | None = None
+
+    def __post_init__(self) -> None:
+        overall = self.kind is EventKind.SAFETY_CHANGED
+        if overall != (self.safety is not None) or overall == (self.condition is not None):
+            raise ValueError("SAFETY_CHANGED events carry a safety state and no condition")
+        if (self.condition is None) != (self.level is None):
+            raise ValueError("condition events carry the condition's level")
+
+
+@dataclass(frozen=True, kw_only=True)
+class Actions:
+    """What the control loop must do after an evaluation.
+
+    Parameters
+    ----------
+    force
+        Outputs to apply instead of the controller's, or None to let control decide.
+    alarm
+        The most severe holding condition (first in declaration order among equals), or None.
+    """
+
+    force: Outputs | None
+    alarm: Condition | None
+
+    def apply(self, wanted: Outputs) -> Outputs:
+        """Return the outputs to drive: the forced ones if any, else ``wanted``."""
+        return wanted if self.force is None else self.force

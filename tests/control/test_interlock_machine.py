@@ -157,6 +157,62 @@ def test_trip_reason_names_value_and_limit() -> None:
     assert actions.alarm is Condition.OVER_TEMPERATURE
 
 
+# The reason each THRESHOLDS case must carry when it trips: the measured value and the limit
+# with their units, as the run log shows them (texts are formatted only when a state changes).
+REASONS = [
+    "temperature 30.000 °C, limit 30.000 °C",
+    "temperature 10.000 °C, limit 10.000 °C",
+    "probe reads 60.000 °C, plausible only between -5.000 and 60.000 °C",
+    "probe reads -5.000 °C, plausible only between -5.000 and 60.000 °C",
+    "probe reads inf °C, plausible only between -5.000 and 60.000 °C",  # NaN is implausible
+    "no probe reply for 30.0 s (limit 30.0 s)",
+    "probe unchanged within 0 °C for 900 s (limit 900 s)",
+    "temperature changing at +7.031 °C/h over 64 s (limit 7.031 °C/h)",
+    "temperature changing at -7.031 °C/h over 64 s (limit 7.031 °C/h)",
+    "water level switch low",
+    "no good device exchange for 10.0 s (limit 10.0 s)",
+    "emergency stop pressed",
+]
+
+
+@pytest.mark.parametrize(
+    ("case", "reason"),
+    list(zip(THRESHOLDS, REASONS, strict=True)),
+    ids=[f"{case[0].value}-{i}" for i, case in enumerate(THRESHOLDS)],
+)
+def test_every_trip_event_carries_its_reason(
+    case: tuple[Condition, list[tuple[float, Readings]], list[tuple[float, Readings]]],
+    reason: str,
+) -> None:
+    condition, below, reached = case
+    state = running()
+    for t_s, readings in below:  # short of the threshold: nothing about this condition
+        state, _, events = evaluate(state, readings, LIMITS, t_s)
+        assert [e for e in events if e.condition is condition] == []
+    state = series(running(), reached[:-1])
+    _, _, events = evaluate(state, reached[-1][1], LIMITS, reached[-1][0])
+    mine = [e for e in events if e.condition is condition]
+    assert [(e.kind, e.message) for e in mine] == [(EventKind.RAISED, reason)]
+    changed = [e for e in events if e.kind is EventKind.SAFETY_CHANGED]
+    level = LIMITS.policies[condition].level.value
+    assert [e.message for e in changed] == [f"normal -> {changed[0].safety.value}: "
+                                            f"{condition.value} ({level})"]  # fmt: skip
+
+
+def test_latched_and_cleared_events_carry_the_reason_at_that_tick() -> None:
+    state = at(running(), ok(30.5), 10.0)
+    state, _, events = evaluate(state, ok(25.0), LIMITS, 20.0)
+    assert [e.message for e in events] == [
+        "temperature 25.000 °C, limit 30.000 °C; latched until acknowledged"
+    ]
+    state = at(running(), ok(None), 30.0)  # stale (not latching), then a reply
+    _, _, events = evaluate(state, ok(20.0), LIMITS, 31.0)
+    assert [(e.kind, e.message) for e in events] == [
+        (EventKind.CLEARED, "no probe reply for 0.0 s (limit 30.0 s)"),
+        (EventKind.SAFETY_CHANGED, "tripped -> normal: all clear"),
+    ]
+
+
 def test_frozen_probe_tolerates_change_within_epsilon_only() -> None:
     limits = replace(LIMITS, frozen_epsilon_c=0.01)
     state = running(limits)
