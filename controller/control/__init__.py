@@ -1,10 +1,25 @@
-"""Pure control core: PID step, tuning rules and safety interlocks.
+"""Pure control core: PID step, tuning rules, safety interlocks and the incubation cycle.
 
 Rule: nothing in this package does I/O, reads a clock, keeps globals or imports asyncio,
 device or UI libraries; the runtime passes readings and times in and applies what comes
 out. ``tests/test_import_lint.py`` enforces the import part.
 """
 
+from controller.control._incubation import (
+    ClosedWindow,
+    CycleInputs,
+    CycleSignal,
+    CycleState,
+    CycleStep,
+    IllegalCycleSignal,
+    IncubationSettings,
+    IncubationStatus,
+    WindowEnd,
+    cycle_step,
+    cycle_table_markdown,
+    end_window,
+    light_change_times,
+)
 from controller.control._interlock_config import (
     Condition,
     ConditionPolicy,
@@ -56,12 +71,20 @@ from controller.control._tuning import (
 
 __all__ = [
     "Actions",
+    "ClosedWindow",
     "Condition",
     "ConditionPolicy",
     "ConditionState",
+    "CycleInputs",
+    "CycleSignal",
+    "CycleState",
+    "CycleStep",
     "EventKind",
     "Fopdt",
+    "IllegalCycleSignal",
     "IllegalInterlockEvent",
+    "IncubationSettings",
+    "IncubationStatus",
     "InterlockEvent",
     "InterlockLimits",
     "InterlockState",
@@ -76,12 +99,17 @@ __all__ = [
     "SafetyState",
     "Signal",
     "TimeProportionState",
+    "WindowEnd",
     "ZieglerNicholsRule",
     "acknowledge",
+    "cycle_step",
+    "cycle_table_markdown",
     "default_policies",
+    "end_window",
     "evaluate",
     "fopdt_from_relay",
     "fopdt_from_ultimate",
+    "light_change_times",
     "pid_step",
     "pid_track",
     "rate_limit",
