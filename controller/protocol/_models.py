@@ -31,7 +31,7 @@ from controller.protocol._blocks import (
     kind_errors,
     program_errors,
 )
-from controller.protocol._durations import Duration, UtcOffset, parse_duration
+from controller.protocol._durations import Duration, Offset, UtcOffset, parse_duration
 from controller.protocol._errors import Loc, raise_errors, tidy_validation_error
 from controller.protocol._events import Event
 
@@ -39,6 +39,7 @@ __all__ = [
     "FORMAT",
     "Group",
     "GroupRole",
+    "Incubation",
     "Phase",
     "Programs",
     "Protocol",
@@ -196,6 +197,64 @@ class Sampling(FileModel):
     what: str = Field(min_length=1, description="What to sample.")
 
 
+class Incubation(FileModel):
+    """The closed-incubation cycle: chambers sealed for O2 flux windows, flushed between.
+
+    Every setting left out comes from the rig's ``[incubation]`` table, else from the
+    built-in default (:class:`controller.control.IncubationSettings`).
+    """
+
+    enabled: bool = Field(
+        True, description="Run the cycle; false switches off a rig's default cycle."
+    )
+    chambers: list[ChamberId] | None = Field(
+        None, min_length=1, description="Chambers that cycle; default every protocol chamber."
+    )
+    o2_low_pct: float | None = Field(
+        None, gt=0, le=300, description="Lower edge of the O2 band, % air saturation."
+    )
+    o2_high_pct: float | None = Field(
+        None, gt=0, le=300, description="Upper edge of the O2 band, % air saturation."
+    )
+    min_closed: Offset | None = Field(
+        None, description="Shortest window worth starting (before a light change or phase end)."
+    )
+    max_closed: Duration | None = Field(None, description="Longest closed window.")
+    flush: Duration | None = Field(None, description="Flushing time between windows.")
+    settle: Offset | None = Field(
+        None, description="Wait after a light change before closing (acclimation)."
+    )
+    pinned_to_light: bool | None = Field(
+        None,
+        description="One window per light and per dark period: close after the light changes "
+        "and settles, flush before the next change.",
+    )
+    reclose_margin_pct: float | None = Field(
+        None,
+        ge=0,
+        le=100,
+        description="Close only with O2 this far inside both band edges, % air saturation.",
+    )
+    light_threshold_par: float | None = Field(
+        None,
+        ge=0,
+        le=5000,
+        description="PAR setpoint above which a period is light, µmol photons m-2 s-1.",
+    )
+
+    @model_validator(mode="after")
+    def _ordered(self) -> Self:
+        errors: list[tuple[Loc, str]] = []
+        low, high = self.o2_low_pct, self.o2_high_pct
+        if low is not None and high is not None and low >= high:
+            errors.append((("o2_high_pct",), "must be above o2_low_pct"))
+        short, long = self.min_closed, self.max_closed
+        if short is not None and long is not None and short > long:
+            errors.append((("min_closed",), "must not be longer than max_closed"))
+        raise_errors("Incubation", errors)
+        return self
+
+
 class Protocol(FileModel):
     """A whole experiment: groups of chambers, phases of programs, events, sampling."""
 
@@ -219,6 +278,9 @@ class Protocol(FileModel):
     phases: list[Phase] = Field(min_length=1, description="The timeline, in order.")
     events: list[Event] = Field(default_factory=list, description="Events overlaid on groups.")
     sampling: list[Sampling] = Field(default_factory=list, description="Sampling reminders.")
+    incubation: Incubation | None = Field(
+        None, description="Closed-incubation cycle for O2 flux windows (optional)."
+    )
 
     @model_validator(mode="wrap")
     @classmethod
@@ -236,6 +298,7 @@ class Protocol(FileModel):
         if not any(loc[-1] == "name" and loc[0] == "phases" for loc, _ in errors):
             errors += self._check_events()
             errors += self._check_sampling()
+        errors += self._check_incubation()
         raise_errors("Protocol", errors)
         return self
 
@@ -453,6 +516,20 @@ class Protocol(FileModel):
                 )
         return errors
 
+    def _check_incubation(self) -> list[tuple[Loc, str]]:
+        if self.incubation is None or self.incubation.chambers is None:
+            return []
+        known = self.chambers()
+        return [
+            (
+                ("incubation", "chambers", index),
+                f"chamber {chamber!r} is in no group; the protocol's chambers are "
+                f"{', '.join(known)}",
+            )
+            for index, chamber in enumerate(self.incubation.chambers)
+            if chamber not in known
+        ]
+
 
 def _looks_like_duration(text: str) -> bool:
     try:
@@ -467,7 +544,15 @@ def _known_keys() -> set[str]:
 
     keys: set[str] = set()
     modules = (_blocks, _events)
-    classes: list[type[FileModel]] = [Protocol, Site, Group, Programs, Phase, Sampling]
+    classes: list[type[FileModel]] = [
+        Protocol,
+        Site,
+        Group,
+        Programs,
+        Phase,
+        Sampling,
+        Incubation,
+    ]
     for module in modules:
         classes += [
             obj

@@ -20,7 +20,7 @@ from controller.rig._control import ChamberControl
 from controller.rig._io import RigIo
 from controller.rig._sim import Bath, ChamberSim, RackSim
 
-__all__ = ["Chamber", "ChamberControl", "ChamberLimits", "Rig"]
+__all__ = ["Chamber", "ChamberControl", "ChamberLimits", "Rig", "RigIncubation"]
 
 
 class ChamberLimits(FileModel):
@@ -96,6 +96,62 @@ class Chamber(FileModel):
         return self
 
 
+class RigIncubation(FileModel):
+    """The rig's default closed-incubation cycle, for protocols without an ``[incubation]``
+    table of their own; a protocol's table overrides it setting by setting (and
+    ``enabled = false`` there switches it off). Settings left out take the built-in defaults
+    of :class:`controller.control.IncubationSettings`."""
+
+    o2_low_pct: float | None = Field(
+        None, gt=0, le=300, description="Lower edge of the O2 band, % air saturation."
+    )
+    o2_high_pct: float | None = Field(
+        None, gt=0, le=300, description="Upper edge of the O2 band, % air saturation."
+    )
+    min_closed_s: float | None = Field(
+        None, ge=0, le=30 * 86400, description="Shortest window worth starting, s."
+    )
+    max_closed_s: float | None = Field(
+        None, gt=0, le=30 * 86400, description="Longest closed window, s."
+    )
+    flush_s: float | None = Field(
+        None, gt=0, le=30 * 86400, description="Flushing time between windows, s."
+    )
+    settle_s: float | None = Field(
+        None, ge=0, le=30 * 86400, description="Wait after a light change before closing, s."
+    )
+    pinned_to_light: bool | None = Field(
+        None, description="One window per light and per dark period."
+    )
+    reclose_margin_pct: float | None = Field(
+        None,
+        ge=0,
+        le=100,
+        description="Close only with O2 this far inside both band edges, % air saturation.",
+    )
+    light_threshold_par: float | None = Field(
+        None,
+        ge=0,
+        le=5000,
+        description="PAR setpoint above which a period is light, µmol photons m⁻² s⁻¹.",
+    )
+
+    def check(self, where: str) -> None:
+        """Refuse an empty band or a minimum above the maximum.
+
+        Parameters
+        ----------
+        where
+            Dotted path of this table in the file (no unit).
+        """
+        low, high = self.o2_low_pct, self.o2_high_pct
+        if low is not None and high is not None and low >= high:
+            raise SquallError("must be above o2_low_pct", field=f"{where}.o2_high_pct")
+        short, long = self.min_closed_s, self.max_closed_s
+        if short is not None and long is not None and short > long:
+            raise SquallError("must not be longer than max_closed_s", field=f"{where}.min_closed_s")
+
+
 class Rig(FileModel):
     """A rack of chambers and the hardware behind them."""
 
@@ -110,6 +166,9 @@ class Rig(FileModel):
     sim: RackSim = Field(default_factory=RackSim, description="Rack-wide simulator settings.")
     io: RigIo | None = Field(
         None, description="How the controller reaches the devices (links, optode ports)."
+    )
+    incubation: RigIncubation | None = Field(
+        None, description="Default closed-incubation cycle for protocols run on this rig."
     )
 
     @model_validator(mode="after")
@@ -146,6 +205,8 @@ class Rig(FileModel):
                 )
         if self.io is not None:
             self.io.check_chambers([c.id for c in self.chambers])
+        if self.incubation is not None:
+            self.incubation.check("incubation")
         self._bath_gains_agree()
         return self
 
