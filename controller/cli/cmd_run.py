@@ -1,11 +1,21 @@
-"""``squall run PROTOCOL --rig RIG [--sim] [--speed N|max] [--log FILE] [--start ISO8601]``.
+"""``squall run PROTOCOL --rig RIG [--sim] [--speed N|max] [--log FILE] [--start ISO8601]``
+and ``squall run --resume LOG [--sim] [--speed N|max]``.
 
 Rules
 -----
 - ``--sim`` runs the rig's simulated chambers in this process on a simulated clock:
   ``--speed max`` (the default) as fast as the computer goes, ``--speed N`` at N times real
-  time. Without ``--sim`` the rig's hardware transports are needed; until they exist the
-  command refuses with one line (exit 2).
+  time. Without ``--sim`` the run drives the devices of the rig's ``[io]`` table in real
+  time (a real rack, or ``squall simulate`` on loopback endpoints).
+- ``--resume LOG`` continues an interrupted run: protocol and rig are the text the log keeps
+  (never the files as they are now), the tick period is the original one, protocol time
+  continues where the wall clock has got to (a run interrupted while held resumes held), the
+  gap is recorded, outputs stay safe until the first healthy tick, and rows are appended
+  after the last logged one. ``--sim`` must match how the run was launched.
+- One controller per log (``<log>.lock``) and, on devices, one per rig (``<rig file>.lock``
+  next to the rig file): a second one is refused with one line, exit 2. Both locks are
+  ``flock`` locks, dropped by the kernel when a controller dies, so a crashed run can be
+  resumed at once.
 - Bad protocol, rig, start time, speed or log path: one located line, exit 2, nothing
   written. An existing log is never overwritten.
 - On a terminal a progress bar shows phase, simulated time and alarms; otherwise the run is
@@ -31,7 +41,13 @@ from controller.errors import RuntimeFailure, SquallError
 from controller.protocol import format_duration
 
 if TYPE_CHECKING:
-    from controller.runtime import RunSettings, RunSummary, TickStatus
+    from controller.runtime import (
+        HardwareRun,
+        RunSettings,
+        RunSummary,
+        SimulatedRun,
+        TickStatus,
+    )
 
 __all__ = ["DEFAULT_PERIOD_S", "parse_speed", "register"]
 
@@ -59,15 +75,24 @@ def register(sub: Any) -> None:
             "process on a simulated clock."
         ),
     )
-    parser.add_argument("protocol", metavar="PROTOCOL", type=Path, help="protocol file (TOML)")
-    parser.add_argument("--rig", metavar="RIG", type=Path, required=True, help="rig file (TOML)")
+    parser.add_argument(
+        "protocol", metavar="PROTOCOL", type=Path, nargs="?", help="protocol file (TOML)"
+    )
+    parser.add_argument("--rig", metavar="RIG", type=Path, help="rig file (TOML)")
+    parser.add_argument(
+        "--resume",
+        metavar="LOG",
+        type=Path,
+        default=None,
+        help="continue the interrupted run of this log (protocol and rig from the log)",
+    )
     parser.add_argument(
         "--sim", action="store_true", help="simulate the rig's chambers in this process"
     )
     parser.add_argument(
         "--speed",
         metavar="N|max",
-        default="max",
+        default=None,
         help="with --sim: 'max' (default) runs as fast as possible, N runs at N x real time",
     )
     parser.add_argument(
@@ -88,8 +113,9 @@ def register(sub: Any) -> None:
         "--period",
         metavar="SECONDS",
         type=float,
-        default=DEFAULT_PERIOD_S,
-        help=f"control tick period in seconds (default {DEFAULT_PERIOD_S:g})",
+        default=None,
+        help=f"control tick period in seconds (default {DEFAULT_PERIOD_S:g}; a resumed run "
+        "keeps its own)",
     )
     parser.set_defaults(handler=_handle)
 
@@ -176,30 +202,68 @@ def _report(console: Console, summary: RunSummary, wall_s: float, interactive: b
     ratio = summary.run_s / wall_s if wall_s > 0 else math.inf
     if interactive:
         console.print(
-            f"{summary.end_reason.value}: {format_duration(summary.run_s)} simulated in "
+            f"{summary.end_reason.value}: {format_duration(summary.run_s)} run in "
             f"{wall_s:.1f} s ({ratio:,.0f}x), {summary.ticks.ticks} ticks, "
-            f"{summary.rows_written} rows, {len(summary.alarms)} alarms raised",
+            f"{summary.rows_written} rows, {summary.windows} closed windows, "
+            f"{len(summary.alarms)} alarms raised",
             highlight=False,
         )
     print(f"log: {summary.log_path}")
 
 
-def _handle(args: argparse.Namespace) -> int:
-    """Run the protocol; print where the log is."""
-    speed = parse_speed(args.speed)
-    start = _parse_start(args.start)
-    settings = _settings(args.period)
-    if not args.sim:
+def _check_combination(args: argparse.Namespace) -> None:
+    """Refuse options that do not go together, with one line naming the option."""
+    if args.resume is not None:
+        extra = [
+            name
+            for name, value in (
+                ("PROTOCOL", args.protocol),
+                ("--rig", args.rig),
+                ("--log", args.log),
+                ("--start", args.start),
+                ("--period", args.period),
+            )
+            if value is not None
+        ]
+        if extra:
+            raise SquallError(
+                f"a resumed run takes its protocol, rig, log and tick period from the log; "
+                f"drop {', '.join(extra)}",
+                field="--resume",
+            )
+    elif args.protocol is None or args.rig is None:
         raise SquallError(
-            "hardware transports are not configured yet; use --sim to run the rig's "
-            "simulated chambers",
-            field="--sim",
+            "give a protocol and --rig RIG (or --resume LOG to continue a run)",
+            field="--rig" if args.protocol is not None else "PROTOCOL",
         )
-    from controller.runtime import SimulatedRun
+    if args.speed is not None and not args.sim:
+        raise SquallError("--speed applies to simulated runs only (add --sim)", field="--speed")
 
-    run = SimulatedRun.prepare(
-        args.protocol, args.rig, args.log, speed=speed, start_utc=start, settings=settings
+
+def _prepare(args: argparse.Namespace) -> SimulatedRun | HardwareRun:
+    """Assemble the run the arguments ask for (nothing is written before it is checked)."""
+    from controller.runtime import HardwareRun, SimulatedRun
+
+    speed = parse_speed(args.speed or "max")
+    if args.resume is not None:
+        if args.sim:
+            return SimulatedRun.resume(args.resume, speed=speed, settings_for=_settings)
+        return HardwareRun.resume(args.resume, settings_for=_settings)
+    start = _parse_start(args.start)
+    settings = _settings(DEFAULT_PERIOD_S if args.period is None else args.period)
+    if args.sim:
+        return SimulatedRun.prepare(
+            args.protocol, args.rig, args.log, speed=speed, start_utc=start, settings=settings
+        )
+    return HardwareRun.prepare(
+        args.protocol, args.rig, args.log, start_utc=start, settings=settings
     )
+
+
+def _handle(args: argparse.Namespace) -> int:
+    """Run (or resume) the protocol; print where the log is."""
+    _check_combination(args)
+    run = _prepare(args)
     console = Console(stderr=False)
     interactive = sys.stdout.isatty()
     bar = _Bar(console) if interactive else None

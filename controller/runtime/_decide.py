@@ -20,6 +20,12 @@ Rules of this module
   off; so do uncontrolled light and flow for lamps and pumps.
 - The heater and chiller commands go to the node's driver chamber; the node's other chambers
   are sent 0 % for them (and their log rows show the node's drives, which heat their water).
+- Closed incubation: after the interlocks, each chamber with a cycle
+  (:func:`~controller.control.cycle_step`) learns its fresh O2 reading, whether its light is
+  on (PAR setpoint above the cycle's threshold), the schedule look-ahead the loop passes in
+  and whether its outputs are forced. A closed chamber's pump is off (its flow trim is frozen
+  meanwhile, so the flow comes back without a bump); a forced chamber gets the forced pump,
+  and its window ends with reason ``alarm``.
 """
 
 from __future__ import annotations
@@ -31,7 +37,11 @@ from dataclasses import dataclass, field
 
 from controller.control import (
     Actions,
+    ClosedWindow,
     Condition,
+    CycleInputs,
+    CycleState,
+    IncubationStatus,
     InterlockEvent,
     InterlockState,
     Outputs,
@@ -40,6 +50,10 @@ from controller.control import (
     Readings,
     SafetyState,
     TimeProportionState,
+    WindowEnd,
+    acknowledge,
+    cycle_step,
+    end_window,
     evaluate,
     pid_step,
     pid_track,
@@ -47,10 +61,10 @@ from controller.control import (
     split_range,
     time_proportion_step,
 )
-from controller.runtime._io import ChamberReadings
+from controller.runtime._io import ChamberReadings, Quantity
 from controller.runtime._settings import ControlPlan, NodeSettings
 
-__all__ = ["OFF", "ChamberDecision", "Decider", "Decision", "Target"]
+__all__ = ["OFF", "ChamberDecision", "Decider", "Decision", "Schedule", "Target"]
 
 _log = logging.getLogger(__name__)
 
@@ -92,12 +106,34 @@ class ChamberDecision:
         The chamber's interlock state.
     setpoint_c
         Temperature setpoint applied to the node's PID after rate limiting, °C, or None.
+    incubation
+        The chamber's incubation status after this tick, or None when it does not cycle.
     """
 
     outputs: Outputs
     alarm: Condition | None
     safety: SafetyState
     setpoint_c: float | None
+    incubation: IncubationStatus | None = None
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Schedule:
+    """What the incubation cycles learn about the protocol at one tick.
+
+    Attributes
+    ----------
+    phase
+        Phase in force.
+    phase_ends_in_s
+        Protocol time until the phase ends, s.
+    light_change_in_s
+        Protocol time until each cycling chamber's light next switches, s (``inf`` if never).
+    """
+
+    phase: str
+    phase_ends_in_s: float
+    light_change_in_s: Mapping[str, float]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -112,11 +148,14 @@ class Decision:
         Per protocol chamber, what was decided.
     events
         Interlock events of this tick, with their chamber.
+    windows
+        Closed incubation windows that ended at this tick, with their chamber.
     """
 
     writes: Mapping[str, Outputs]
     chambers: Mapping[str, ChamberDecision]
     events: tuple[tuple[str, InterlockEvent], ...]
+    windows: tuple[tuple[str, ClosedWindow], ...] = ()
 
 
 @dataclass(slots=True)
@@ -134,6 +173,7 @@ class _ChamberState:
     pump: PidState
     write_ok: bool = True
     force: Outputs | None = None
+    cycle: CycleState | None = None
 
 
 def _feed(
@@ -168,7 +208,12 @@ class Decider:
         self.plan = plan
         self._nodes = {n.name: _NodeState(pid=PidState()) for n in plan.nodes}
         self._chambers = {
-            c: _ChamberState(interlock=InterlockState(), lamp=PidState(), pump=PidState())
+            c: _ChamberState(
+                interlock=InterlockState(),
+                lamp=PidState(),
+                pump=PidState(),
+                cycle=CycleState() if c in plan.incubation else None,
+            )
             for c in plan.chambers
         }
         self._last_t_s: float | None = None
@@ -229,11 +274,85 @@ class Decider:
         """
         return self._chambers[chamber].interlock
 
+    def incubation(self, chamber: str) -> IncubationStatus | None:
+        """The incubation status of a protocol chamber after the latest tick.
+
+        Parameters
+        ----------
+        chamber
+            Protocol chamber identifier.
+
+        Returns
+        -------
+        IncubationStatus or None
+            Open or closed; None when the chamber does not cycle.
+        """
+        cycle = self._chambers[chamber].cycle
+        return None if cycle is None else cycle.status
+
+    def acknowledge(
+        self, chamber: str, condition: Condition, t_s: float
+    ) -> tuple[InterlockEvent, ...]:
+        """Acknowledge one interlock condition of a chamber (an operator action).
+
+        Parameters
+        ----------
+        chamber
+            Protocol chamber identifier.
+        condition
+            The condition acknowledged.
+        t_s
+            Clock time, s.
+
+        Returns
+        -------
+        tuple of InterlockEvent
+            The acknowledgement event(s).
+
+        Raises
+        ------
+        IllegalInterlockEvent
+            Nothing to acknowledge; the state is unchanged.
+        """
+        state = self._chambers[chamber]
+        limits = self.plan.chambers[chamber].interlocks
+        state.interlock, _, events = acknowledge(state.interlock, condition, limits, t_s)
+        return events
+
+    def end_windows(
+        self, t_s: float, reason: WindowEnd, detail: str = ""
+    ) -> tuple[tuple[str, ClosedWindow], ...]:
+        """End every closed window now and restart the flush of every cycling chamber.
+
+        Parameters
+        ----------
+        t_s
+            Clock time, s.
+        reason
+            Why (operator, end of the run).
+        detail
+            Words for the log.
+
+        Returns
+        -------
+        tuple
+            (chamber, window) of the windows that were closed, clock times in s.
+        """
+        ended: list[tuple[str, ClosedWindow]] = []
+        for chamber, state in self._chambers.items():
+            if state.cycle is not None:
+                step = end_window(state.cycle, t_s, reason, detail)
+                state.cycle = step.state
+                if step.window is not None:
+                    ended.append((chamber, step.window))
+        return tuple(ended)
+
     def decide(
         self,
         readings: Mapping[str, ChamberReadings],
         targets: Mapping[str, Target],
         t_s: float,
+        schedule: Schedule | None = None,
     ) -> Decision:
         """Decide one tick.
 
@@ -245,11 +364,14 @@ class Decider:
             The protocol's setpoints of every protocol chamber at this tick.
         t_s
             Clock time of the tick, s (not before the previous tick).
+        schedule
+            Phase and look-ahead for the incubation cycles (protocol time in s); without it
+            the cycles stand still.
 
         Returns
         -------
         Decision
-            Outputs to write, per-chamber decisions and interlock events.
+            Outputs to write, per-chamber decisions, interlock events and ended windows.
         """
         plan = self.plan
         dt_s = plan.settings.period_s if self._last_t_s is None else t_s - self._last_t_s
@@ -275,6 +397,7 @@ class Decider:
             state.force = action.force
             actions[chamber] = action
             events.extend((chamber, event) for event in happened)
+        windows = self._cycles(readings, targets, actions, t_s, schedule)
         drives: dict[str, tuple[float, float, float | None]] = {}
         for node in plan.nodes:
             drives[node.name] = self._node(node, readings, targets, actions, t_s, dt_s)
@@ -284,6 +407,7 @@ class Decider:
             state = self._chambers[chamber]
             action = actions[chamber]
             heater, chiller, setpoint = drives[cs.node]
+            closed = state.cycle is not None and state.cycle.status is IncubationStatus.CLOSED
             if action.force is not None:
                 lamp, pump = action.force.lamp_pct, action.force.pump_pct
             else:
@@ -291,20 +415,24 @@ class Decider:
                 state.lamp, lamp = _feed(
                     state.lamp, cs.lamp_trim, cs.par_full, target.par, reading.par, dt_s
                 )
-                state.pump, pump = _feed(
-                    state.pump,
-                    cs.flow_trim,
-                    cs.flow_full_cm_s,
-                    target.flow_cm_s,
-                    reading.flow_cm_s,
-                    dt_s,
-                )
+                if closed:  # flushing pump off; the flow trim waits for the window's end
+                    pump = 0.0
+                else:
+                    state.pump, pump = _feed(
+                        state.pump,
+                        cs.flow_trim,
+                        cs.flow_full_cm_s,
+                        target.flow_cm_s,
+                        reading.flow_cm_s,
+                        dt_s,
+                    )
             shown = Outputs(heater_pct=heater, chiller_pct=chiller, lamp_pct=lamp, pump_pct=pump)
             decided[chamber] = ChamberDecision(
                 outputs=shown,
                 alarm=action.alarm,
                 safety=state.interlock.safety,
                 setpoint_c=setpoint,
+                incubation=None if state.cycle is None else state.cycle.status,
             )
             writes[chamber] = (
                 shown
@@ -317,7 +445,42 @@ class Decider:
                 writes[node.driver] = Outputs(
                     heater_pct=heater, chiller_pct=chiller, lamp_pct=0.0, pump_pct=0.0
                 )
-        return Decision(writes=writes, chambers=decided, events=tuple(events))
+        return Decision(writes=writes, chambers=decided, events=tuple(events), windows=windows)
+
+    def _cycles(
+        self,
+        readings: Mapping[str, ChamberReadings],
+        targets: Mapping[str, Target],
+        actions: Mapping[str, Actions],
+        t_s: float,
+        schedule: Schedule | None,
+    ) -> tuple[tuple[str, ClosedWindow], ...]:
+        """Step every chamber's incubation cycle; return the windows that ended."""
+        if schedule is None:
+            return ()
+        ended: list[tuple[str, ClosedWindow]] = []
+        for chamber, settings in self.plan.incubation.items():
+            state = self._chambers[chamber]
+            assert state.cycle is not None
+            reading, par = readings[chamber], targets[chamber].par
+            o2 = reading.o2_sat_pct if reading.fresh(Quantity.OXYGEN) else None
+            step = cycle_step(
+                state.cycle,
+                CycleInputs(
+                    t_s=t_s,
+                    o2_sat_pct=o2,
+                    light=par is not None and par > settings.light_threshold_par,
+                    light_change_in_s=schedule.light_change_in_s.get(chamber, math.inf),
+                    phase=schedule.phase,
+                    phase_ends_in_s=schedule.phase_ends_in_s,
+                    forced=actions[chamber].force is not None,
+                ),
+                settings,
+            )
+            state.cycle = step.state
+            if step.window is not None:
+                ended.append((chamber, step.window))
+        return tuple(ended)
 
     def _node(
         self,

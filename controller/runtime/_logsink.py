@@ -3,9 +3,11 @@
 Rules of this module
 --------------------
 - The control loop never waits for the disk: it queues each tick's sample rows and any
-  alarms or events with :meth:`LogSink.put`, and the sink's task writes them in the order
+  alarms, events, closed incubation windows and operator (audit) records with
+  :meth:`LogSink.put`, and the sink's task writes them in the order
   they were queued (consecutive sample batches go down in one ``executemany``). The run log's
-  writer commits alarms and events at once and samples at its commit interval.
+  writer commits alarms, events, windows and audit records at once and samples at its commit
+  interval.
 - A failed write (disk full, I/O error) is logged and counted, never raised into the loop:
   controlling the chambers matters more than recording them, and the writer stays usable
   for the next batch.
@@ -26,16 +28,19 @@ from controller.storage import (
     AlarmAction,
     AlarmLevel,
     AlarmRecord,
+    AuditRecord,
     EventRecord,
     RunLogWriter,
     SampleRow,
+    WindowRecord,
 )
 
 __all__ = ["LogSink", "alarm_record"]
 
 _log = logging.getLogger(__name__)
 
-Item = list[SampleRow] | AlarmRecord | EventRecord
+Item = list[SampleRow] | AlarmRecord | EventRecord | WindowRecord | AuditRecord
+Record = AlarmRecord | EventRecord | WindowRecord | AuditRecord
 
 _ACTIONS = {
     InterlockEventKind.RAISED: AlarmAction.RAISE,
@@ -95,7 +100,7 @@ class LogSink:
         self.rows_lost = 0
         """Sample rows a failed write dropped, dimensionless."""
         self.records_lost = 0
-        """Alarm and event records a failed write dropped, dimensionless."""
+        """Alarm, event, window and audit records a failed write dropped, dimensionless."""
 
     def put(self, item: Item) -> None:
         """Queue records for the log.
@@ -103,7 +108,7 @@ class LogSink:
         Parameters
         ----------
         item
-            One tick's sample rows, an alarm record or an event record.
+            One tick's sample rows, or an alarm, event, window or audit record.
         """
         self._queue.append(item)
         self._wake.set()
@@ -145,13 +150,18 @@ class LogSink:
         else:
             self.rows_written += len(rows)
 
-    def _record(self, record: AlarmRecord | EventRecord) -> None:
+    def _record(self, record: Record) -> None:
         uncommitted = self.writer.pending_rows
+        writer = self.writer
         try:
             if isinstance(record, AlarmRecord):
-                self.writer.record_alarm(record)
+                writer.record_alarm(record)
+            elif isinstance(record, EventRecord):
+                writer.record_event(record)
+            elif isinstance(record, WindowRecord):
+                writer.record_window(record)
             else:
-                self.writer.record_event(record)
+                writer.record_audit(record)
         except RuntimeFailure as exc:
             # the record commits together with pending samples, which are rolled back too
             self.records_lost += 1

@@ -4,22 +4,31 @@ Rules of this module
 --------------------
 - Supervision: one ``asyncio.TaskGroup`` runs the chamber I/O's background task, the logger
   task and the control task. If any of them fails, the group cancels the others; whatever
-  happens (completion, error, cancellation), a shielded shutdown path then writes safe
-  outputs to every chamber and closes the run log with how the run ended. ``CancelledError``
-  is never swallowed: after the shutdown it propagates.
+  happens (completion, abort, error, cancellation), a shielded shutdown path then writes
+  safe outputs to every chamber, ends any closed incubation window and closes the run log
+  with how the run ended. ``CancelledError`` is never swallowed: after the shutdown it
+  propagates. (The one cancellation the loop takes back is its own: an operator's abort
+  wakes the control task from its wait for the next tick.)
 - Ticks: tick k is due at ``start + k·period`` on the clock, so lateness never accumulates
   into drift. A late tick runs at once and is counted; when whole periods were missed the
   loop skips to the latest due tick and counts the skipped ones, never running a backlog.
+- Two times: clock time (when) and protocol time (where the run stands in the protocol,
+  :class:`~controller.runtime._protocol_clock.ProtocolClock`). They advance together until
+  an operator holds (protocol time stops, setpoints are kept), resumes or skips
+  (:mod:`._operator`), or a resumed run starts at the protocol time the wall clock has
+  reached. A tick's setpoints are those at the protocol time its due time maps to; the run
+  ends when that reaches the protocol's duration.
 - One tick: read every chamber concurrently (every read bounded by the tick's read deadline,
   so one slow device does not hold up the others; what has not answered by then is stale),
-  decide (:class:`~controller.runtime._decide.Decider`:
-  interlocks, setpoints, PID, lamps, pumps), write every chamber concurrently, queue one log
-  row per protocol chamber, then report progress. Log rows carry the readings as read (None
-  when stale), the protocol's setpoints (what the experiment asks, not the rate-limited value
-  the PID follows) and the outputs decided.
+  decide (:class:`~controller.runtime._decide.Decider`: interlocks, incubation cycles,
+  setpoints, PID, lamps, pumps), write every chamber concurrently, queue one log row per
+  protocol chamber, the alarms and the windows that ended, then report progress. Log rows
+  carry the readings as read (None when stale), the protocol's setpoints (what the
+  experiment asks, not the rate-limited value the PID follows), the outputs decided and the
+  incubation status (chambers without a cycle: open while their pump runs).
 - Outputs start safe: before the first tick every chamber is sent its safe state (idle
   chambers: everything off), and the interlocks hold chambers safe until their first healthy
-  tick.
+  tick. A resumed run records the gap (event ``gap``) before its first tick.
 """
 
 from __future__ import annotations
@@ -28,20 +37,20 @@ import asyncio
 import logging
 import math
 from collections.abc import Callable, Coroutine, Mapping
-from dataclasses import dataclass, field
-from datetime import datetime
-from pathlib import Path
 from typing import Any
 
 from controller.clock import Clock
-from controller.control import Outputs
+from controller.control import Outputs, WindowEnd
 from controller.errors import RuntimeFailure
-from controller.protocol import CompiledProtocol
-from controller.runtime._decide import OFF, Decider
+from controller.protocol import CompiledProtocol, format_duration
+from controller.runtime._decide import OFF, Decider, Schedule
 from controller.runtime._io import ChamberIO, ChamberReadings, stale_readings
 from controller.runtime._logsink import LogSink, alarm_record
-from controller.runtime._setpoints import SetpointTable
+from controller.runtime._operator import OperatorHooks, RunState
+from controller.runtime._protocol_clock import ProtocolClock, StartPoint
+from controller.runtime._setpoints import Lookahead, SetpointTable
 from controller.runtime._settings import ControlPlan
+from controller.runtime._summary import RunSummary, TickCounter, TickStats, TickStatus
 from controller.storage import (
     EventKind,
     EventRecord,
@@ -55,144 +64,6 @@ from controller.storage import (
 __all__ = ["ControlLoop", "RunSummary", "TickStats", "TickStatus"]
 
 _log = logging.getLogger(__name__)
-
-#: Width of a lateness histogram bin, s.
-_BIN_S = 0.001
-#: Bins of the lateness histogram (the last one collects everything beyond), dimensionless.
-_BINS = 5000
-
-
-@dataclass(frozen=True, kw_only=True)
-class TickStats:
-    """How punctual the ticks were.
-
-    Attributes
-    ----------
-    ticks
-        Ticks run, dimensionless.
-    late
-        Ticks that started more than the settings' lateness limit after they were due,
-        dimensionless.
-    missed
-        Due ticks skipped because the loop was more than a period behind, dimensionless.
-    max_lateness_s
-        Largest start lateness, s.
-    p99_lateness_s
-        99th percentile of start lateness, s (to 1 ms, from a histogram).
-    """
-
-    ticks: int
-    late: int
-    missed: int
-    max_lateness_s: float
-    p99_lateness_s: float
-
-
-class _TickCounter:
-    """Accumulates tick lateness in a fixed histogram (memory does not grow with the run)."""
-
-    def __init__(self, late_after_s: float) -> None:
-        self.late_after_s = late_after_s
-        self.ticks = 0
-        self.late = 0
-        self.missed = 0
-        self.max_s = 0.0
-        self.bins = [0] * _BINS
-
-    def add(self, lateness_s: float) -> None:
-        lateness_s = max(0.0, lateness_s)
-        self.ticks += 1
-        if lateness_s > self.late_after_s:
-            self.late += 1
-        self.max_s = max(self.max_s, lateness_s)
-        self.bins[min(_BINS - 1, int(lateness_s / _BIN_S))] += 1
-
-    def stats(self) -> TickStats:
-        p99 = 0.0
-        if self.ticks:
-            need = math.ceil(0.99 * self.ticks)
-            seen = 0
-            for i, count in enumerate(self.bins):
-                seen += count
-                if seen >= need:
-                    p99 = min(self.max_s, (i + 1) * _BIN_S) if count else 0.0
-                    break
-        return TickStats(
-            ticks=self.ticks,
-            late=self.late,
-            missed=self.missed,
-            max_lateness_s=self.max_s,
-            p99_lateness_s=p99,
-        )
-
-
-@dataclass(frozen=True, kw_only=True)
-class TickStatus:
-    """What a progress display learns after each tick.
-
-    Attributes
-    ----------
-    tick
-        Tick number, dimensionless.
-    ticks_total
-        Ticks the protocol needs, dimensionless.
-    elapsed_s
-        Protocol time, s.
-    duration_s
-        Protocol length, s.
-    phase
-        Phase in force.
-    utc
-        Wall time of the tick, aware UTC.
-    alarms
-        Holding interlock condition code by chamber (chambers without one are absent).
-    """
-
-    tick: int
-    ticks_total: int
-    elapsed_s: float
-    duration_s: float
-    phase: str
-    utc: datetime
-    alarms: Mapping[str, str]
-
-
-@dataclass(frozen=True, kw_only=True)
-class RunSummary:
-    """How a run went.
-
-    Attributes
-    ----------
-    log_path
-        The run log.
-    end_reason
-        completed, aborted or stopped.
-    start_utc, end_utc
-        Wall times of the run's start and end, aware UTC.
-    run_s
-        Clock time from start to end, s (simulated seconds on a virtual clock).
-    ticks
-        Tick punctuality.
-    rows_written
-        Sample rows written to the log, dimensionless.
-    rows_lost
-        Sample rows a failed log write dropped, dimensionless.
-    alarms
-        Every alarm raised, as (chamber, condition code), in order.
-    detail
-        Why the run ended when it did not complete (the error), else empty.
-    """
-
-    log_path: Path
-    end_reason: RunEndReason
-    start_utc: datetime
-    end_utc: datetime
-    run_s: float
-    ticks: TickStats
-    rows_written: int
-    rows_lost: int
-    alarms: tuple[tuple[str, str], ...] = field(default=())
-    detail: str = ""
 
 
 async def _shielded(coro: Coroutine[Any, Any, None]) -> None:
@@ -217,7 +88,7 @@ def _leaf(error: BaseException) -> BaseException:
     return error
 
 
-class ControlLoop:
+class ControlLoop(OperatorHooks):
     """One run of a protocol on a rack's chamber I/O.
 
     Parameters
@@ -229,11 +100,20 @@ class ControlLoop:
     compiled
         The compiled protocol (its chambers are those of ``plan``).
     plan
-        Control plan of the rig for this protocol.
+        Control plan of the rig for this protocol (with its incubation cycles).
     writer
-        Open run-log writer; the loop finishes it.
+        Open run-log writer (new, or resumed); the loop finishes it.
     progress
         Called after every tick with a :class:`TickStatus`; must be quick.
+    start
+        Where protocol time starts (0 s and running for a new run; for a resumed run the
+        protocol time the wall clock has reached, held if the run was held, and the gap).
+
+    Notes
+    -----
+    Operators command a running loop with :meth:`hold`, :meth:`resume`, :meth:`skip_to`,
+    :meth:`abort`, :meth:`ack`, :meth:`note` and read it with :meth:`status`
+    (:class:`~controller.runtime._operator.OperatorHooks`).
     """
 
     def __init__(
@@ -245,6 +125,7 @@ class ControlLoop:
         plan: ControlPlan,
         writer: RunLogWriter,
         progress: Callable[[TickStatus], None] | None = None,
+        start: StartPoint | None = None,
     ) -> None:
         self.io = io
         self.clock = clock
@@ -253,10 +134,16 @@ class ControlLoop:
         self.decider = Decider(plan)
         self.sink = LogSink(writer)
         self.progress = progress
+        self.start = start or StartPoint()
         settings = plan.settings
         self._chambers = tuple(plan.chambers)
         self._table = SetpointTable(compiled, self._chambers, settings.period_s)
-        self._counter = _TickCounter(settings.lateness_limit_s)
+        self._ahead = Lookahead(
+            compiled,
+            tuple(plan.incubation),
+            {c: s.light_threshold_par for c, s in plan.incubation.items()},
+        )
+        self._counter = TickCounter(settings.lateness_limit_s)
         self._ticks_total = max(1, math.ceil(compiled.duration_s / settings.period_s - 1e-9))
         self._alarms: list[tuple[str, str]] = []
         self._holding: dict[str, str] = {}
@@ -265,45 +152,65 @@ class ControlLoop:
         self._failing: set[tuple[str, str]] = set()
         self._t0_s = 0.0
         self._utc0_s = 0.0
+        self._pclock: ProtocolClock | None = None
+        self._state = RunState.STARTING
+        self._latest: dict[str, SampleRow] = {}
+        self._abort_by: str | None = None
+        self._windows = 0
+        self._sleeping = False
+        self._control_task: asyncio.Task[None] | None = None
+        self.done = asyncio.Event()
+        """Set once the run has ended: outputs safe, log finished (or closed)."""
 
     # ------------------------------------------------------------------ supervision
     async def run(self) -> RunSummary:
-        """Run the protocol to its end (or until an error or cancellation).
+        """Run the protocol to its end (or until an abort, an error or a cancellation).
 
         Returns
         -------
         RunSummary
-            How the run went (only on completion; otherwise the error propagates after the
-            shutdown path has made every chamber safe and closed the log).
+            How the run went (on completion or abort; otherwise the error propagates after
+            the shutdown path has made every chamber safe and closed the log).
         """
         clock = self.clock
         self._t0_s = clock.now_s()
         self._utc0_s = clock.utc(self._t0_s).timestamp()
+        self._pclock = ProtocolClock(
+            self._t0_s, self.start.elapsed_at(self._utc0_s), held=self.start.held
+        )
         reason, detail = RunEndReason.ABORTED, ""
-        async with self.io:
-            try:
-                ready = asyncio.Event()
-                async with asyncio.TaskGroup() as group:
-                    self._tasks = [
-                        group.create_task(self.io.run(ready), name="chamber-io"),
-                        group.create_task(self.sink.run(), name="run-log"),
-                    ]
-                    group.create_task(self._control(ready), name="control")
-                reason = RunEndReason.COMPLETED
-            except asyncio.CancelledError:
-                reason, detail = RunEndReason.STOPPED, "cancelled"
-                raise
-            except BaseExceptionGroup as group_error:
-                leaf = _leaf(group_error)
-                detail = f"{type(leaf).__name__}: {leaf}"
-                if leaf is not group_error:
-                    raise leaf from None
-                raise
-            except BaseException as error:
-                detail = f"{type(error).__name__}: {error}"
-                raise
-            finally:
-                await _shielded(self._shutdown(reason, detail))
+        try:
+            async with self.io:
+                try:
+                    ready = asyncio.Event()
+                    async with asyncio.TaskGroup() as group:
+                        self._tasks = [
+                            group.create_task(self.io.run(ready), name="chamber-io"),
+                            group.create_task(self.sink.run(), name="run-log"),
+                        ]
+                        self._control_task = group.create_task(self._control(ready), name="control")
+                    if self._abort_by is None:
+                        reason = RunEndReason.COMPLETED
+                    else:
+                        reason, detail = RunEndReason.ABORTED, f"aborted by {self._abort_by}"
+                except asyncio.CancelledError:
+                    reason, detail = RunEndReason.STOPPED, "cancelled"
+                    raise
+                except BaseExceptionGroup as group_error:
+                    leaf = _leaf(group_error)
+                    detail = f"{type(leaf).__name__}: {leaf}"
+                    if leaf is not group_error:
+                        raise leaf from None
+                    raise
+                except BaseException as error:
+                    detail = f"{type(error).__name__}: {error}"
+                    raise
+                finally:
+                    self._state = RunState.STOPPING
+                    await _shielded(self._shutdown(reason, detail))
+        finally:
+            self._state = RunState.FINISHED
+            self.done.set()
         return self._summary(reason, detail)
 
     def _summary(self, reason: RunEndReason, detail: str) -> RunSummary:
@@ -319,11 +226,12 @@ class ControlLoop:
             rows_lost=self.sink.rows_lost,
             alarms=tuple(self._alarms),
             detail=detail,
+            windows=self._windows,
         )
 
     async def _shutdown(self, reason: RunEndReason, detail: str) -> None:
-        """Write safe outputs everywhere (lowered by any active trip's own safe state), then
-        record the end and close the log. Never raises."""
+        """Write safe outputs everywhere (lowered by any active trip's own safe state), end
+        the closed windows, then record the end and close the log. Never raises."""
         safe = {c: OFF for c in self.io.chambers}
         for chamber in self.plan.chambers:
             safe[chamber] = self.decider.stop_outputs(chamber)
@@ -339,19 +247,22 @@ class ControlLoop:
         try:
             sink.drain()
             t_s = self.clock.now_s()
-            utc_s = self._utc0_s + (t_s - self._t0_s)
+            utc_s = self._utc_of(t_s)
+            why = WindowEnd.OPERATOR if self._abort_by is not None else WindowEnd.RUN_END
+            self._record_windows(self.decider.end_windows(t_s, why, f"run {reason.value}"))
             kind = EventKind.RUN_STOP if reason is not RunEndReason.ABORTED else EventKind.ABORT
             note = f"safe outputs written; {reason.value}"
             if failed:
                 note += f"; safe outputs not confirmed for {', '.join(failed)}"
             if detail:
                 note += f"; {detail}"
+            elapsed = None if self._pclock is None else self._pclock.elapsed(t_s)
             sink.put(
                 EventRecord(
                     t_s=t_s,
                     utc_s=utc_s,
                     kind=kind,
-                    elapsed_s=t_s - self._t0_s,
+                    elapsed_s=None if elapsed is None else min(elapsed, self.compiled.duration_s),
                     phase=self._phase,
                     detail=note,
                 )
@@ -366,7 +277,24 @@ class ControlLoop:
                 _log.exception("shutdown: the run log could not be closed")
 
     # ------------------------------------------------------------------ ticking
-    async def _control(self, ready: asyncio.Event) -> None:
+    async def _nap(self, t_s: float) -> bool:
+        """Sleep until clock time ``t_s``; False when an abort came first (or meanwhile)."""
+        if self._abort_by is not None:
+            return False
+        self._sleeping = True
+        try:
+            await self.clock.sleep_until(t_s)
+        except asyncio.CancelledError:
+            task = asyncio.current_task()
+            # only the abort's own cancellation is taken back; any other one propagates
+            if self._abort_by is None or task is None or task.uncancel() > 0:
+                raise
+        finally:
+            self._sleeping = False
+        return self._abort_by is None
+
+    async def _begin(self, ready: asyncio.Event) -> None:
+        """Wait for the devices, send every chamber its safe state, record the start."""
         settings = self.plan.settings
         clock = self.clock
         try:
@@ -380,33 +308,65 @@ class ControlLoop:
         for chamber, cs in self.plan.chambers.items():
             start[chamber] = cs.interlocks.safe_outputs()
         await self._write_all(start)
-        t0, period, total = self._t0_s, settings.period_s, self._ticks_total
-        self.sink.put(
-            EventRecord(
-                t_s=clock.now_s(),
-                utc_s=self._utc0_s + clock.now_s() - t0,
-                kind=EventKind.RUN_START,
-                elapsed_s=0.0,
-                detail=f"{len(self._chambers)} chambers, tick {period:g} s",
+        now = clock.now_s()
+        assert self._pclock is not None
+        elapsed = self._pclock.elapsed(now)
+        point = self.start
+        if point.last_utc_s is None:
+            self.sink.put(
+                EventRecord(
+                    t_s=now,
+                    utc_s=self._utc_of(now),
+                    kind=EventKind.RUN_START,
+                    elapsed_s=elapsed,
+                    detail=f"{len(self._chambers)} chambers, tick {settings.period_s:g} s",
+                )
             )
-        )
+        else:
+            how = (
+                "the run was held: protocol time kept"
+                if point.held
+                else "protocol time moved on with the wall clock"
+            )
+            gap_s = max(0.0, self._utc_of(now) - point.last_utc_s)
+            self.sink.put(
+                EventRecord(
+                    t_s=now,
+                    utc_s=self._utc_of(now),
+                    kind=EventKind.GAP,
+                    elapsed_s=elapsed,
+                    duration_s=gap_s,
+                    detail=f"no data for {format_duration(gap_s)} (controller down); {how}; "
+                    f"resumed at +{format_duration(elapsed)}",
+                )
+            )
+        self._state = RunState.HELD if point.held else RunState.RUNNING
+
+    async def _control(self, ready: asyncio.Event) -> None:
+        await self._begin(ready)
+        clock = self.clock
+        assert self._pclock is not None
+        pclock = self._pclock
+        t0, period = self._t0_s, self.plan.settings.period_s
+        end_s = self.compiled.duration_s - 1e-9 * period
         k = 0
-        while k < total:
+        while await self._nap(t0 + k * period):
             due = t0 + k * period
-            await clock.sleep_until(due)
             now = clock.now_s()
             if now - due >= period:  # whole periods missed: run the latest due tick only
                 behind = math.floor((now - due) / period)
-                if k + behind >= total:
-                    self._counter.missed += total - k
-                    break
                 self._counter.missed += behind
                 k += behind
                 due = t0 + k * period
+            if pclock.elapsed(due) >= end_s:
+                break
             self._counter.add(now - due)
-            await self._tick(k, now)
+            await self._tick(k, now, due)
             k += 1
-        await clock.sleep_until(t0 + self.compiled.duration_s)
+        if self._abort_by is None:
+            finish = pclock.clock_time_of(self.compiled.duration_s)
+            if math.isfinite(finish):
+                await self._nap(finish)
         for task in self._tasks:
             task.cancel()
 
@@ -481,12 +441,27 @@ class ControlLoop:
         else:
             _log.warning("%s: %s got no answer (timed out or refused)", chamber, what)
 
-    async def _tick(self, k: int, now: float) -> None:
-        elapsed = now - self._t0_s
-        utc_s = self._utc0_s + elapsed
-        phase, targets = self._table.at(k)
+    def _schedule(self, phase: str, elapsed_s: float) -> Schedule | None:
+        """What the incubation cycles learn about the protocol at protocol time ``elapsed_s``."""
+        if not self.plan.incubation:
+            return None
+        ahead = self._ahead
+        return Schedule(
+            phase=phase,
+            phase_ends_in_s=ahead.phase_ends_in_s(elapsed_s),
+            light_change_in_s={
+                c: ahead.light_change_in_s(c, elapsed_s) for c in self.plan.incubation
+            },
+        )
+
+    async def _tick(self, k: int, now: float, due: float) -> None:
+        assert self._pclock is not None
+        elapsed_due = self._pclock.elapsed(due)
+        elapsed = self._pclock.elapsed(now)
+        utc_s = self._utc_of(now)
+        phase, targets = self._table.at_elapsed(elapsed_due)
         readings = await self._read_all(now)
-        decision = self.decider.decide(readings, targets, now)
+        decision = self.decider.decide(readings, targets, now, self._schedule(phase, elapsed_due))
         written = await self._write_all(decision.writes)
         for chamber, ok in written.items():
             self.decider.note_write(chamber, ok)
@@ -508,6 +483,7 @@ class ControlLoop:
                 sink.put(record)
                 if record.action.value == "raise":
                     self._alarms.append((chamber, record.code))
+        self._record_windows(decision.windows)
         rows: list[SampleRow] = []
         holding = self._holding
         for chamber in self._chambers:
@@ -522,29 +498,33 @@ class ControlLoop:
                 holding.pop(chamber, None)
             else:
                 holding[chamber] = alarm
-            rows.append(
-                SampleRow(
-                    t_s=now,
-                    utc_s=utc_s,
-                    elapsed_s=elapsed,
-                    chamber=chamber,
-                    phase=phase,
-                    temperature_c=reading.temperature_c,
-                    temperature_setpoint_c=target.temperature_c,
-                    par=reading.par,
-                    par_setpoint=target.par,
-                    flow_cm_s=reading.flow_cm_s,
-                    flow_setpoint_cm_s=target.flow_cm_s,
-                    o2_umol_l=reading.o2_umol_l,
-                    o2_sat_pct=reading.o2_sat_pct,
-                    heater_pct=out.heater_pct,
-                    chiller_pct=out.chiller_pct,
-                    lamp_pct=out.lamp_pct,
-                    pump_pct=out.pump_pct,
-                    incubation=IncubationState.OPEN if out.pump_pct > 0 else IncubationState.CLOSED,
-                    alarm=alarm,
-                )
+            if chosen.incubation is not None:
+                incubation = IncubationState(chosen.incubation.value)
+            else:
+                incubation = IncubationState.OPEN if out.pump_pct > 0 else IncubationState.CLOSED
+            row = SampleRow(
+                t_s=now,
+                utc_s=utc_s,
+                elapsed_s=elapsed,
+                chamber=chamber,
+                phase=phase,
+                temperature_c=reading.temperature_c,
+                temperature_setpoint_c=target.temperature_c,
+                par=reading.par,
+                par_setpoint=target.par,
+                flow_cm_s=reading.flow_cm_s,
+                flow_setpoint_cm_s=target.flow_cm_s,
+                o2_umol_l=reading.o2_umol_l,
+                o2_sat_pct=reading.o2_sat_pct,
+                heater_pct=out.heater_pct,
+                chiller_pct=out.chiller_pct,
+                lamp_pct=out.lamp_pct,
+                pump_pct=out.pump_pct,
+                incubation=incubation,
+                alarm=alarm,
             )
+            rows.append(row)
+            self._latest[chamber] = row
         sink.put(rows)
         if self.progress is not None:
             self.progress(

@@ -21,6 +21,11 @@ Rules of this module
 - Lamps and pumps are driven by feed-forward through a linear calibration (0 % → 0,
   100 % → the chamber's ``max_par`` / ``max_flow_cm_s``), corrected by a slow PI trim on the
   PAR or flow sensor, which absorbs a curved lamp or a pump dead band.
+- The closed-incubation cycle of a chamber (:func:`incubation_settings`) takes each setting
+  from the protocol's ``[incubation]`` table, else the rig's, else the built-in default of
+  :class:`~controller.control.IncubationSettings`. One pump both flushes a chamber and makes
+  the flow over its community, so a closed chamber has neither: the flow setpoint applies
+  while the chamber is open.
 """
 
 from __future__ import annotations
@@ -29,6 +34,7 @@ import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from types import MappingProxyType
+from typing import TYPE_CHECKING
 
 import gsw
 
@@ -36,17 +42,23 @@ from controller.control import (
     Condition,
     ConditionPolicy,
     Fopdt,
+    IncubationSettings,
     InterlockLimits,
     PidParams,
     simc,
 )
+from controller.errors import SquallError
 from controller.rig import Rig, ThermalSim
+
+if TYPE_CHECKING:
+    from controller.protocol import Protocol
 
 __all__ = [
     "ChamberSettings",
     "ControlPlan",
     "NodeSettings",
     "RunSettings",
+    "incubation_settings",
     "node_model",
     "plan_control",
 ]
@@ -76,8 +88,10 @@ class RunSettings:
         Longest wait for the devices to become ready before the first tick, s.
     commit_interval_s
         Run-log commit interval in clock time, s (bounds the data a crash loses); default
-        1 s on a real-time clock, scaled by the speed of a simulated clock, and 600 s
-        simulated on one that runs as fast as possible (well under a second of wall time).
+        half a second on a real-time clock (so with ticks of 1 s or more every tick is
+        committed and a crash loses at most the tick in progress), scaled by the speed of a
+        simulated clock, and 600 s simulated on one that runs as fast as possible (well under
+        a second of wall time).
     tau_c_factor
         SIMC closed-loop time constant as a multiple of the dead time, dimensionless
         (1 = "tight" control, larger = smoother and more robust).
@@ -168,7 +182,7 @@ class RunSettings:
         """
         if self.commit_interval_s is not None:
             return self.commit_interval_s
-        return 600.0 if speed is None else max(1.0, speed)
+        return 600.0 if speed is None else 0.5 * max(1.0, speed)
 
     @property
     def trim_integral_s(self) -> float:
@@ -258,12 +272,17 @@ class ControlPlan:
         Per protocol chamber, in rig order.
     idle
         Rig chambers the protocol does not use; they are kept off.
+    incubation
+        Closed-incubation cycle settings of the chambers that cycle (others never close).
     """
 
     settings: RunSettings
     nodes: tuple[NodeSettings, ...]
     chambers: Mapping[str, ChamberSettings]
     idle: tuple[str, ...]
+    incubation: Mapping[str, IncubationSettings] = field(
+        default_factory=lambda: MappingProxyType({})
+    )
 
     @property
     def drivers(self) -> Mapping[str, NodeSettings]:
@@ -342,7 +361,12 @@ def _interlocks(
     )
 
 
-def plan_control(rig: Rig, chambers: Sequence[str], settings: RunSettings) -> ControlPlan:
+def plan_control(
+    rig: Rig,
+    chambers: Sequence[str],
+    settings: RunSettings,
+    incubation: Mapping[str, IncubationSettings] | None = None,
+) -> ControlPlan:
     """Build the control plan for the protocol's chambers on a rig.
 
     Parameters
@@ -353,6 +377,9 @@ def plan_control(rig: Rig, chambers: Sequence[str], settings: RunSettings) -> Co
         The protocol's chamber ids.
     settings
         Run-wide settings.
+    incubation
+        Closed-incubation cycle settings by chamber (see :func:`incubation_settings`);
+        default none: no chamber closes.
 
     Returns
     -------
@@ -418,9 +445,74 @@ def plan_control(rig: Rig, chambers: Sequence[str], settings: RunSettings) -> Co
             ),
         )
     idle = tuple(c.id for c in rig.chambers if c.id not in wanted)
+    cycling = dict(incubation or {})
+    strays = set(cycling) - wanted
+    if strays:
+        raise KeyError(f"incubation settings for chambers not in the run: {sorted(strays)}")
     return ControlPlan(
         settings=settings,
         nodes=tuple(nodes),
         chambers=MappingProxyType(per_chamber),
         idle=idle,
+        incubation=MappingProxyType(cycling),
     )
+
+
+#: Protocol [incubation] key -> (rig [incubation] key, IncubationSettings field).
+_INCUBATION_KEYS = {
+    "o2_low_pct": ("o2_low_pct", "o2_low_pct"),
+    "o2_high_pct": ("o2_high_pct", "o2_high_pct"),
+    "min_closed": ("min_closed_s", "min_closed_s"),
+    "max_closed": ("max_closed_s", "max_closed_s"),
+    "flush": ("flush_s", "flush_s"),
+    "settle": ("settle_s", "settle_s"),
+    "pinned_to_light": ("pinned_to_light", "pinned_to_light"),
+    "reclose_margin_pct": ("reclose_margin_pct", "reclose_margin_pct"),
+    "light_threshold_par": ("light_threshold_par", "light_threshold_par"),
+}
+
+
+def incubation_settings(
+    protocol: Protocol, rig: Rig, chambers: Sequence[str]
+) -> dict[str, IncubationSettings]:
+    """The closed-incubation cycle of each protocol chamber that cycles.
+
+    Parameters
+    ----------
+    protocol
+        The validated protocol; its ``[incubation]`` table (if any) wins setting by setting.
+    rig
+        The rig; its ``[incubation]`` table gives the defaults (and switches the cycle on for
+        protocols without a table of their own).
+    chambers
+        The protocol's chamber ids.
+
+    Returns
+    -------
+    dict
+        Settings by chamber id (band in % air saturation, durations in s); empty when neither
+        file asks for the cycle or the protocol sets ``enabled = false``.
+
+    Raises
+    ------
+    SquallError
+        The merged settings contradict each other (e.g. the protocol's low edge above the
+        rig's high edge), with the field ``incubation``.
+    """
+    table, default = protocol.incubation, rig.incubation
+    if (table is None and default is None) or (table is not None and not table.enabled):
+        return {}
+    values: dict[str, object] = {}
+    for key, (rig_key, name) in _INCUBATION_KEYS.items():
+        value = getattr(table, key) if table is not None else None
+        if value is None and default is not None:
+            value = getattr(default, rig_key)
+        if value is not None:
+            values[name] = value
+    try:
+        merged = IncubationSettings(**values)  # type: ignore[arg-type]
+    except ValueError as exc:
+        where = "the protocol's [incubation] with the rig's defaults" if default else ""
+        raise SquallError(f"{exc}{f' ({where})' if where else ''}", field="incubation") from None
+    chosen = table.chambers if table is not None and table.chambers is not None else chambers
+    return {c: merged for c in chambers if c in set(chosen)}

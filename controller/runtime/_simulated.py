@@ -2,15 +2,15 @@
 
 Rules of this module
 --------------------
-- Every problem in the protocol, the rig, a CSV they name, the log path or the protocol's fit
-  to the rig is a :class:`~controller.errors.SquallError` located in its file (exit 2 at the
-  CLI), raised before anything is created on disk.
+- Inputs and the run log come from :mod:`._inputs`: every problem is a located
+  :class:`~controller.errors.SquallError` raised before anything is created on disk, and a
+  log is never overwritten.
 - The run's start: ``start_utc`` if given, else the protocol's ``begins`` date-time, else now
   (to the second). The simulated clock, the rack and the compiled protocol share it.
-- A log is never overwritten; the default is ``runs/<protocol stem>-<UTC launch time>.sqlite``
-  in the working folder.
 - The simulated I/O modules keep the rig's ``[io]`` settings where it has them (optode
   cadence, device watchdog; default three tick periods).
+- A resumed simulated run (:meth:`SimulatedRun.resume`) starts a fresh rack, its wall clock
+  at the log's last sample plus the real time the run was down.
 - :class:`SimulatedRun` exposes the assembled pieces (clock, rack, I/O, plan, writer) so tests
   and benchmarks can inject faults or wrap the I/O before running.
 """
@@ -18,197 +18,32 @@ Rules of this module
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
-from dataclasses import dataclass
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
 from controller.clock import Clock, VirtualClock, run_with_clock
 from controller.errors import SquallError
-from controller.files import load_model, locate, parse_toml, read_text, validate_data
-from controller.protocol import CompiledProtocol, Protocol, Severity, compile_protocol
-from controller.rig import Rig
+from controller.runtime._inputs import (
+    RunInputs,
+    create_run_log,
+    default_log_path,
+    load_run_inputs,
+    open_resumed,
+    resumed_inputs,
+)
 from controller.runtime._io import ChamberIO
+from controller.runtime._launch import check_resumable, last_written_utc_s
 from controller.runtime._loop import ControlLoop, RunSummary, TickStatus
+from controller.runtime._protocol_clock import StartPoint
 from controller.runtime._settings import ControlPlan, RunSettings, plan_control
 from controller.runtime._sim_io import SimulatedIO
-from controller.storage import ChamberRecord, ClockKind, RunLogWriter, RunMeta
+from controller.storage import ClockKind, RunLogWriter
 from simulator import Rack
 
-__all__ = [
-    "RunInputs",
-    "SimulatedRun",
-    "create_run_log",
-    "default_log_path",
-    "load_run_inputs",
-    "run_simulated",
-]
-
-
-@dataclass(frozen=True, kw_only=True)
-class RunInputs:
-    """A protocol and a rig, validated, compiled and checked against each other.
-
-    Attributes
-    ----------
-    protocol_path, rig_path
-        The files as named.
-    protocol_text, rig_text
-        Their text (stored in the run log).
-    rig
-        The validated rig.
-    compiled
-        The protocol compiled from the run's start (rig findings attached).
-    """
-
-    protocol_path: Path
-    rig_path: Path
-    protocol_text: str
-    rig_text: str
-    rig: Rig
-    compiled: CompiledProtocol
-
-
-def load_run_inputs(
-    protocol_path: Path, rig_path: Path, start_utc: datetime | None = None
-) -> RunInputs:
-    """Read, validate, compile and check a protocol against a rig.
-
-    Parameters
-    ----------
-    protocol_path
-        Protocol file (TOML).
-    rig_path
-        Rig file (TOML).
-    start_utc
-        Elapsed time 0, aware; default the protocol's ``begins``, else now (whole seconds).
-
-    Returns
-    -------
-    RunInputs
-        Everything a run needs from the two files.
-
-    Raises
-    ------
-    SquallError
-        Located in the protocol or rig file: invalid files, CSVs that do not cover the
-        protocol, or a protocol the rig cannot run (the first error finding, with the count
-        of the others).
-    """
-    protocol_path, rig_path = Path(protocol_path), Path(rig_path)
-    rig = load_model(rig_path, Rig)
-    rig_text = read_text(rig_path)
-    text = read_text(protocol_path)
-    protocol = validate_data(
-        parse_toml(text, file=protocol_path), Protocol, text=text, file=protocol_path
-    )
-    if start_utc is None:
-        if isinstance(protocol.begins, datetime):
-            start_utc = protocol.begins
-        else:
-            start_utc = datetime.now(UTC).replace(microsecond=0)
-    elif start_utc.tzinfo is None or start_utc.utcoffset() is None:
-        raise SquallError("the start time needs a zone (e.g. 2027-07-10T08:00:00+00:00)")
-    try:
-        compiled = compile_protocol(
-            protocol, start_utc=start_utc.astimezone(UTC), base_dir=protocol_path.parent, rig=rig
-        )
-    except SquallError as exc:
-        raise locate(exc, text=text, file=protocol_path) from None
-    errors = [f for f in compiled.findings if f.severity is Severity.ERROR]
-    if errors:
-        first = errors[0]
-        more = f" (and {len(errors) - 1} more; see 'squall check')" if len(errors) > 1 else ""
-        problem = SquallError(
-            f"the rig {rig.name!r} cannot run this protocol: {first.message}{more}",
-            field=first.field,
-        )
-        if first.field is None:
-            raise SquallError(problem.message, file=protocol_path)
-        raise locate(problem, text=text, file=protocol_path)
-    return RunInputs(
-        protocol_path=protocol_path,
-        rig_path=rig_path,
-        protocol_text=text,
-        rig_text=rig_text,
-        rig=rig,
-        compiled=compiled,
-    )
-
-
-def default_log_path(protocol_path: Path, launched_utc: datetime | None = None) -> Path:
-    """``runs/<protocol stem>-<UTC launch time>.sqlite`` in the working folder.
-
-    Parameters
-    ----------
-    protocol_path
-        The protocol file.
-    launched_utc
-        Launch time, aware; default now.
-
-    Returns
-    -------
-    Path
-        The default log path (relative).
-    """
-    when = launched_utc or datetime.now(UTC)
-    stamp = when.astimezone(UTC).strftime("%Y%m%dT%H%M%SZ")
-    return Path("runs") / f"{Path(protocol_path).stem}-{stamp}.sqlite"
-
-
-def create_run_log(
-    inputs: RunInputs,
-    plan: ControlPlan,
-    log_path: Path,
-    *,
-    clock_kind: ClockKind,
-    commit_interval_s: float,
-) -> RunLogWriter:
-    """Create the run log of a run (simulated or on hardware), its folder if needed.
-
-    Parameters
-    ----------
-    inputs
-        Protocol and rig (their text is stored in the log).
-    plan
-        The control plan; its chambers are the run's.
-    log_path
-        The log file; an existing file is never overwritten.
-    clock_kind
-        Real or virtual clock.
-    commit_interval_s
-        Commit interval in clock time, s.
-
-    Returns
-    -------
-    RunLogWriter
-        The open writer (the control loop finishes it).
-    """
-    path = Path(log_path)
-    if path.exists():
-        raise SquallError("a file already exists there; refusing to overwrite it", file=path)
-    meta = RunMeta(
-        run_id=path.stem,
-        protocol_text=inputs.protocol_text,
-        rig_text=inputs.rig_text,
-        start_utc_s=inputs.compiled.start_utc.timestamp(),
-        clock_kind=clock_kind,
-        chambers=tuple(
-            ChamberRecord(
-                chamber=c.id,
-                water_volume_l=c.water_volume_l,
-                sediment_area_m2=c.sediment_area_m2,
-                bath=c.bath,
-            )
-            for c in inputs.rig.chambers
-            if c.id in plan.chambers
-        ),
-    )
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise SquallError(f"cannot create the log folder: {exc.strerror}", file=path) from exc
-    return RunLogWriter(path, meta=meta, commit_interval_s=commit_interval_s)
+__all__ = ["SimulatedRun", "run_simulated"]
 
 
 @dataclass(kw_only=True)
@@ -229,6 +64,8 @@ class SimulatedRun:
         Chamber I/O over the rack.
     writer
         The open run-log writer.
+    start
+        Where protocol time starts (a resumed run's position and hold).
     """
 
     inputs: RunInputs
@@ -237,6 +74,7 @@ class SimulatedRun:
     rack: Rack
     io: SimulatedIO
     writer: RunLogWriter
+    start: StartPoint = field(default_factory=StartPoint)
 
     @classmethod
     def prepare(
@@ -312,10 +150,31 @@ class SimulatedRun:
             Ready to :meth:`run`.
         """
         settings = settings or RunSettings()
-        compiled, rig = inputs.compiled, inputs.rig
-        plan = plan_control(rig, compiled.chambers, settings)
-        clock = VirtualClock(compiled.start_utc, speed)
-        rack = Rack(rig, seed=seed, start_utc=compiled.start_utc)
+        plan = plan_control(inputs.rig, inputs.compiled.chambers, settings, inputs.incubation)
+        writer = create_run_log(
+            inputs,
+            plan,
+            log_path,
+            clock_kind=ClockKind.VIRTUAL,
+            commit_interval_s=settings.commit_interval_for(speed),
+        )
+        return cls._build(inputs, plan, writer, inputs.compiled.start_utc, speed, seed)
+
+    @classmethod
+    def _build(
+        cls,
+        inputs: RunInputs,
+        plan: ControlPlan,
+        writer: RunLogWriter,
+        clock_start: datetime,
+        speed: float | None,
+        seed: int | None,
+        start: StartPoint | None = None,
+    ) -> SimulatedRun:
+        """The clock, rack and I/O of a run whose log is open."""
+        settings, rig = plan.settings, inputs.rig
+        clock = VirtualClock(clock_start, speed)
+        rack = Rack(rig, seed=seed, start_utc=clock_start)
         step_s = settings.period_s if speed is None else None
         safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}
         wiring = rig.io  # the rig's [io] settings apply to its simulated modules too
@@ -328,14 +187,76 @@ class SimulatedRun:
             watchdog_s=watchdog_s or 3.0 * settings.period_s,
             safe=safe,
         )
-        writer = create_run_log(
-            inputs,
-            plan,
-            log_path,
-            clock_kind=ClockKind.VIRTUAL,
-            commit_interval_s=settings.commit_interval_for(speed),
+        return cls(
+            inputs=inputs,
+            plan=plan,
+            clock=clock,
+            rack=rack,
+            io=io,
+            writer=writer,
+            start=start or StartPoint(),
         )
-        return cls(inputs=inputs, plan=plan, clock=clock, rack=rack, io=io, writer=writer)
+
+    @classmethod
+    def resume(
+        cls,
+        log_path: Path,
+        *,
+        speed: float | None = None,
+        settings_for: Callable[[float], RunSettings] | None = None,
+        seed: int | None = None,
+    ) -> SimulatedRun:
+        """Continue an interrupted simulated run from its log.
+
+        Parameters
+        ----------
+        log_path
+            The interrupted run log; protocol and rig come from its text.
+        speed
+            None: as fast as possible; otherwise simulated seconds per real second.
+        settings_for
+            Builds the run settings from the original tick period (s); default
+            ``RunSettings(period_s=...)``.
+        seed
+            Sensor-noise seed, dimensionless; default the rig's.
+
+        Returns
+        -------
+        SimulatedRun
+            Ready to :meth:`run`, appending to the log.
+
+        Notes
+        -----
+        A simulated rack lives only while its run does: the resumed rack starts afresh from
+        the rig's initial state. Its wall clock resumes at the log's last sample plus the
+        real time since the log was last written (at least one tick), as if the simulated
+        chambers had gone on in real time meanwhile; the protocol position follows from that
+        (or stays put if the run was held).
+        """
+        log_path = Path(log_path)
+        if speed is not None and not (math.isfinite(speed) and speed > 0):
+            raise SquallError(f"speed must be a number above 0, got {speed!r}", field="--speed")
+        meta, launch = check_resumable(log_path)
+        if not launch.simulated:
+            raise SquallError(
+                "this run drove the rig's devices, not a simulation: resume it without --sim",
+                file=log_path,
+            )
+        inputs = resumed_inputs(log_path, meta, launch)
+        settings = (settings_for or _period_settings)(launch.period_s)
+        plan = plan_control(inputs.rig, inputs.compiled.chambers, settings, inputs.incubation)
+        down_s = max(settings.period_s, time.time() - last_written_utc_s(log_path))
+        writer, point = open_resumed(log_path, inputs, plan, settings.commit_interval_for(speed))
+        try:
+            last_utc = point.last_utc_s if point.last_utc_s is not None else meta.start_utc_s
+            clock_start = datetime.fromtimestamp(last_utc + down_s, tz=UTC)
+            start = StartPoint(
+                elapsed_s=point.last_elapsed_s or 0.0, held=point.held, last_utc_s=last_utc
+            )
+            return cls._build(inputs, plan, writer, clock_start, speed, seed, start)
+        except BaseException:
+            writer.close()
+            raise
 
     def loop(
         self,
@@ -364,24 +285,39 @@ class SimulatedRun:
             plan=self.plan,
             writer=self.writer,
             progress=progress,
+            start=self.start,
         )
 
-    def run(self, progress: Callable[[TickStatus], None] | None = None) -> RunSummary:
+    def run(
+        self,
+        progress: Callable[[TickStatus], None] | None = None,
+        *,
+        loop: ControlLoop | None = None,
+        runner: Callable[[ControlLoop], Awaitable[RunSummary]] | None = None,
+    ) -> RunSummary:
         """Run the protocol to its end on the virtual clock.
 
         Parameters
         ----------
         progress
             Called after every tick.
+        loop
+            The control loop to run (from :meth:`loop`, e.g. to reach its operator hooks);
+            default a new one with ``progress``.
+        runner
+            Runs the loop inside the clock's event loop (e.g. with the control socket open);
+            default ``loop.run()``.
 
         Returns
         -------
         RunSummary
             How the run went; the log is finished.
         """
-        loop = self.loop(progress=progress)
+        loop = loop or self.loop(progress=progress)
 
         async def main(_clock: Clock) -> RunSummary:
+            if runner is not None:
+                return await runner(loop)
             return await loop.run()
 
         try:
@@ -429,3 +365,8 @@ def run_simulated(
         protocol_path, rig_path, log_path, speed=speed, start_utc=start_utc, settings=settings
     )
     return run.run(progress)
+
+
+def _period_settings(period_s: float) -> RunSettings:
+    """Default run settings with a given tick period."""
+    return RunSettings(period_s=period_s)

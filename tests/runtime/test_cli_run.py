@@ -57,7 +57,7 @@ def test_squall_run_sim_speed_max_writes_a_finished_readable_log(
     assert "refusing to overwrite" in err and str(log) in err
 
 
-def test_without_sim_the_run_is_refused_until_hardware_transports_exist(
+def test_without_sim_a_rig_without_an_io_table_is_refused_before_anything_is_written(
     repo_root: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     protocol = shortened_storm(repo_root, tmp_path)
@@ -65,8 +65,9 @@ def test_without_sim_the_run_is_refused_until_hardware_transports_exist(
     code = main(["run", str(protocol), "--rig", str(rig), "--log", str(tmp_path / "x.sqlite")])
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1
-    assert "hardware transports are not configured" in err
+    assert f"{rig}" in err and "io: the rig has no [io] table" in err
     assert not (tmp_path / "x.sqlite").exists()
+    assert not rig.with_name(rig.name + ".lock").exists()  # refused before locking the rig
 
 
 def test_a_bad_protocol_is_one_located_line_and_no_log(
