@@ -460,8 +460,14 @@ class TelemetryPublisher:
         while True:
             raise_if_cancelling()
             before = self._connections
+            # Each session is a task of its own: on Python 3.11 a TaskGroup whose child fails
+            # while the parent waits leaves the parent's cancellation count raised, which
+            # must not outlive the session (``raise_if_cancelling`` reads that count).
+            session = asyncio.get_running_loop().create_task(
+                self._session(), name="telemetry-session"
+            )
             try:
-                await self._session()
+                await session
             except Exception as exc:
                 self._problem(_flatten(exc))
             finally:

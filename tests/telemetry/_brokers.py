@@ -4,9 +4,11 @@
   port and a temporary config (anonymous, or a password file made with
   ``mosquitto_passwd``; optional ACL file and TLS listener). Readiness is read from its log
   ("... running"), never guessed with a sleep.
-- :class:`AmqttBroker` runs the pure-Python ``amqtt`` broker in a thread with its own event
-  loop, with the same options (password file with argon2 hashes; no ACL). It is the
-  fallback when Mosquitto is not installed, so the README's test command still passes.
+- :class:`AmqttBroker` runs the pure-Python ``amqtt`` broker in a child process
+  (``amqtt_child.py``), with the same options (password file with argon2 hashes; no ACL).
+  It is the fallback when Mosquitto is not installed, so the README's test command still
+  passes. A process of its own, like Mosquitto, so stopping it drops every connection at
+  once and its work does not share the tests' interpreter.
 - Both can be stopped and started again on the same port (a broker outage), and both lose
   their retained messages when stopped (no persistence), as a restarted broker would.
 - ``SQUALL_TEST_BROKER=mosquitto|amqtt`` forces one kind.
@@ -16,11 +18,13 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import json
 import os
 import pwd
 import shutil
 import socket
 import subprocess
+import sys
 import threading
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
@@ -85,6 +89,34 @@ def make_tls_files(folder: Path) -> TlsFiles | None:
     run("x509", "-req", "-in", "server.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
         "-CAcreateserial", "-out", "server.crt", "-days", "2", "-extfile", str(ext))  # fmt: skip
     return TlsFiles(folder / "ca.crt", folder / "server.crt", folder / "server.key")
+
+
+def _wait_for_line(proc: subprocess.Popen[str], marker: str, log: list[str]) -> bool:
+    """Wait until the process prints a line containing ``marker``; keep reading its output
+    into ``log`` afterwards (so its pipe never fills). False if it ended or timed out."""
+    stream = proc.stderr if proc.stderr is not None else proc.stdout
+    assert stream is not None
+    seen = threading.Event()
+
+    def read() -> None:
+        for line in stream:
+            log.append(line.rstrip())
+            if marker in line:
+                seen.set()
+        seen.set()  # the process ended: stop waiting
+
+    threading.Thread(target=read, daemon=True).start()
+    return seen.wait(START_TIMEOUT_S) and proc.poll() is None
+
+
+def _terminate(proc: subprocess.Popen[str]) -> None:
+    """End a broker process and reap it."""
+    proc.terminate()
+    try:
+        proc.wait(START_TIMEOUT_S)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(START_TIMEOUT_S)
 
 
 class Broker(Protocol):
@@ -188,37 +220,20 @@ class MosquittoBroker(_UrlMixin):
             stderr=subprocess.PIPE,  # its log: stderr is unbuffered, stdout is not
             text=True,
         )
-        running = threading.Event()
-
-        def read() -> None:
-            assert proc.stderr is not None
-            for line in proc.stderr:
-                self.log.append(line.rstrip())
-                if " running" in line:
-                    running.set()
-            running.set()  # the process ended: stop waiting
-
-        threading.Thread(target=read, daemon=True).start()
         self._proc = proc
-        if not running.wait(START_TIMEOUT_S) or proc.poll() is not None:
+        if not _wait_for_line(proc, " running", self.log):
             self.stop()
             raise RuntimeError("mosquitto did not start:\n" + "\n".join(self.log))
 
     def stop(self) -> None:
         """Stop the broker (its retained messages are lost)."""
         proc, self._proc = self._proc, None
-        if proc is None:
-            return
-        proc.terminate()
-        try:
-            proc.wait(START_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(START_TIMEOUT_S)
+        if proc is not None:
+            _terminate(proc)
 
 
 class AmqttBroker(_UrlMixin):
-    """The amqtt broker in a thread of its own (see the module notes)."""
+    """The amqtt broker in a child process (``amqtt_child.py``; see the module notes)."""
 
     kind = "amqtt"
 
@@ -249,48 +264,32 @@ class AmqttBroker(_UrlMixin):
             pwfile = folder / "passwords"
             pwfile.write_text("".join(f"{u}:{hasher.hash(p)}\n" for u, p in users.items()))
             plugins["amqtt.plugins.authentication.FileAuthPlugin"] = {"password_file": str(pwfile)}
-        self.config = {"listeners": {"default": listener}, "plugins": plugins}
-        self._loop: asyncio.AbstractEventLoop | None = None
-        self._thread: threading.Thread | None = None
-        self._broker: Any = None
-
-    def _call(self, coro: Any) -> Any:
-        assert self._loop is not None
-        return asyncio.run_coroutine_threadsafe(coro, self._loop).result(START_TIMEOUT_S)
+        self.config = folder / "amqtt.json"
+        self.config.write_text(json.dumps({"listeners": {"default": listener}, "plugins": plugins}))
+        self.log: list[str] = []
+        self._proc: subprocess.Popen[str] | None = None
 
     def start(self) -> None:
-        """Start the broker and wait until it listens."""
-        from amqtt.broker import Broker as AmqttServer
-
-        if self._broker is not None:
+        """Start the broker process and wait until it listens."""
+        if self._proc is not None:
             raise RuntimeError("already running")
-        if self._loop is None:
-            self._loop = asyncio.new_event_loop()
-            self._thread = threading.Thread(target=self._loop.run_forever, daemon=True)
-            self._thread.start()
-
-        async def create() -> Any:
-            return AmqttServer(self.config)
-
-        broker = self._call(create())
-        self._call(broker.start())
-        self._broker = broker
+        child = Path(__file__).with_name("amqtt_child.py")
+        proc = subprocess.Popen(
+            [sys.executable, str(child), str(self.config)],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+        )
+        self._proc = proc
+        if not _wait_for_line(proc, "ready", self.log):
+            self.stop()
+            raise RuntimeError("the amqtt broker did not start:\n" + "\n".join(self.log))
 
     def stop(self) -> None:
-        """Stop the broker (its retained messages are lost)."""
-        broker, self._broker = self._broker, None
-        if broker is not None:
-            self._call(broker.shutdown())
-
-    def close(self) -> None:
-        """Stop the broker and its thread."""
-        self.stop()
-        loop, self._loop = self._loop, None
-        if loop is not None:
-            loop.call_soon_threadsafe(loop.stop)
-            if self._thread is not None:
-                self._thread.join(START_TIMEOUT_S)
-            loop.close()
+        """Stop the broker process (its connections drop, its retained messages are lost)."""
+        proc, self._proc = self._proc, None
+        if proc is not None:
+            _terminate(proc)
 
 
 def make_broker(
@@ -312,11 +311,8 @@ BrokerFactory = Callable[..., MosquittoBroker | AmqttBroker]
 
 
 def close_broker(broker: MosquittoBroker | AmqttBroker) -> None:
-    """Stop a broker made by :func:`make_broker` and release what it holds."""
-    if isinstance(broker, AmqttBroker):
-        broker.close()
-    else:
-        broker.stop()
+    """Stop a broker made by :func:`make_broker`."""
+    broker.stop()
 
 
 class CutProxy:
