@@ -19,6 +19,7 @@ from controller.control._incubation import (
     cycle_table_markdown,
     end_window,
     light_change_times,
+    next_status,
 )
 from controller.control._interlock_config import (
     Condition,
@@ -110,6 +111,7 @@ __all__ = [
     "fopdt_from_relay",
     "fopdt_from_ultimate",
     "light_change_times",
+    "next_status",
     "pid_step",
     "pid_track",
     "rate_limit",

@@ -53,6 +53,7 @@ __all__ = [
     "cycle_table_markdown",
     "end_window",
     "light_change_times",
+    "next_status",
 ]
 
 
@@ -291,7 +292,26 @@ class CycleStep:
         return self.state.status is IncubationStatus.CLOSED
 
 
-def _next(status: IncubationStatus, signal: CycleSignal) -> IncubationStatus:
+def next_status(status: IncubationStatus, signal: CycleSignal) -> IncubationStatus:
+    """The status a signal leads to, by the transition table.
+
+    Parameters
+    ----------
+    status
+        Current status.
+    signal
+        The signal.
+
+    Returns
+    -------
+    IncubationStatus
+        The next status.
+
+    Raises
+    ------
+    IllegalCycleSignal
+        The table has no entry for the pair (e.g. CLOSE while closed).
+    """
     try:
         return _TRANSITIONS[(status, signal)]
     except KeyError:
@@ -395,7 +415,7 @@ def cycle_step(state: CycleState, inputs: CycleInputs, settings: IncubationSetti
         signal = _FLUSH
     else:
         signal = _CLOSE if _may_close(state, inputs, settings) else _STAY
-    status = _next(state.status, signal)
+    status = next_status(state.status, signal)
     if signal is _CLOSE:
         state = replace(
             state,
@@ -452,7 +472,7 @@ def end_window(state: CycleState, t_s: float, reason: WindowEnd, detail: str = "
             reason=reason,
             detail=detail,
         )
-    status = _next(state.status, _FLUSH)
+    status = next_status(state.status, _FLUSH)
     state = replace(
         state,
         status=status,
