@@ -220,6 +220,7 @@ def replay(folder: Path, seconds: float, days: float) -> None:
         work: list[float]
         stamps: list[float]
         cpu: list[float]
+        loaded: list[int]
 
         def poll_now(self) -> None:
             start = time.perf_counter()
@@ -230,11 +231,12 @@ def replay(folder: Path, seconds: float, days: float) -> None:
             self.work.append(end - start)
             self.stamps.append(end)
             self.cpu.append(time.process_time())
+            self.loaded.append(self.source.loaded_rows)  # type: ignore[attr-defined]
 
     async def play(screen: str) -> tuple[list[float], list[float], list[float], float, int]:
         source = ReplaySource(log, speed=3600.0)
         app = Timed(source)
-        app.work, app.stamps, app.cpu = [], [], []
+        app.work, app.stamps, app.cpu, app.loaded = [], [], [], []
         async with app.run_test(size=SIZE) as pilot:
             if screen == "detail":
                 await pilot.press("down", "enter")
@@ -242,9 +244,12 @@ def replay(folder: Path, seconds: float, days: float) -> None:
             app.work.clear()
             app.stamps.clear()
             app.cpu.clear()
+            app.loaded.clear()
             await asyncio.sleep(seconds)
             elapsed = app.snapshot.run.elapsed_s if app.snapshot else 0.0
-        return app.work, app.stamps, app.cpu, elapsed, source.loaded_rows
+        full = source.loaded_rows
+        steady = [w for w, n in zip(app.work, app.loaded, strict=True) if n == full]
+        return app.work, app.stamps, app.cpu, elapsed, full, steady
 
     print(f"\n3. replay of {days:g} days x {CHAMBERS} chambers at 1-min ticks ")
     print(f"   ({ticks * CHAMBERS} rows, written in {made_s:.1f} s) at 3600x, {seconds:g} s, ")
@@ -252,7 +257,7 @@ def replay(folder: Path, seconds: float, days: float) -> None:
     print("   screen   frames  work p50/p95/p99/max ms     interval p50/p95/max ms  CPU/frame ms")
     interval_p95: dict[str, float] = {}
     for screen in ("board", "detail"):
-        work, stamps, cpu, elapsed, loaded = asyncio.run(play(screen))
+        work, stamps, cpu, elapsed, loaded, steady = asyncio.run(play(screen))
         w = [1000 * x for x in work]
         gaps = [1000 * (b - a) for a, b in itertools.pairwise(stamps)]
         per_frame = 1000 * (cpu[-1] - cpu[0]) / max(1, len(cpu) - 1) if len(cpu) > 1 else 0.0
@@ -262,9 +267,11 @@ def replay(folder: Path, seconds: float, days: float) -> None:
             f"{_pct(w, 99):5.1f} {max(w, default=0):6.1f}      {_pct(gaps, 50):5.0f} "
             f"{_pct(gaps, 95):5.0f} {max(gaps, default=0):5.0f}      {per_frame:6.1f}"
         )
+        s = [1000 * x for x in steady]
         print(
-            f"           replayed {elapsed / 3600:.1f} h of the run; {loaded} rows loaded "
-            "(loading runs in the frames: the first seconds carry it)"
+            f"           replayed {elapsed / 3600:.1f} h of the run; {loaded} rows loaded in "
+            f"chunks during the first frames; once loaded ({len(s)} frames): work p50/p95/max "
+            f"{_pct(s, 50):.1f} {_pct(s, 95):.1f} {max(s, default=0):.1f} ms"
         )
     for screen, p95 in interval_p95.items():
         print(

@@ -197,6 +197,8 @@ class SquallApp(App[None]):
         if snapshot.run.status is not self._status:
             self._status = snapshot.run.status
             self.refresh_bindings()
+        if not self.is_running:
+            return  # shutting down: widgets are pruned before the timers stop
         screen = self.screen
         if isinstance(screen, ViewScreen) and screen.ready:
             screen.show(snapshot)

@@ -18,6 +18,7 @@ from typing import ClassVar
 
 from rich.segment import Segment
 from rich.style import Style
+from textual import events
 from textual.binding import Binding, BindingType
 from textual.geometry import Region, Size
 from textual.message import Message
@@ -339,11 +340,9 @@ class ChamberBoard(ScrollView, can_focus=True):
         if self.selected is not None:
             self.post_message(self.Opened(self.selected))
 
-    def on_click(self, event: object) -> None:
+    def on_click(self, event: events.Click) -> None:
         """A click selects the line under the mouse (the board is keyboard-first)."""
-        y = getattr(event, "y", None)
-        if isinstance(y, int):
-            self.cursor = self.validate_cursor(int(self.scroll_offset.y) + y)
+        self.cursor = self.validate_cursor(int(self.scroll_offset.y) + event.y)
 
     def render_line(self, y: int) -> Strip:
         """One chamber's line (the line API)."""

@@ -22,6 +22,8 @@ from textual.binding import Binding, BindingType
 from textual.reactive import reactive
 from textual.widget import Widget
 
+from controller.storage import IncubationState
+
 from ._look import (
     PALETTE,
     alarm_badge,
@@ -71,9 +73,7 @@ def append_state(trace: Trace, state: ChamberState, keep_s: float) -> Trace:
         temperature_setpoint_c=add(trace.temperature_setpoint_c, state.temperature_setpoint_c),
         o2_umol_l=add(trace.o2_umol_l, state.o2_umol_l),
         o2_sat_pct=add(trace.o2_sat_pct, state.o2_sat_pct),
-        closed=np.append(
-            trace.closed, state.incubation is not None and state.incubation == "closed"
-        ),
+        closed=np.append(trace.closed, state.incubation is IncubationState.CLOSED),
     )
     return grown.window(state.utc_s, keep_s)
 

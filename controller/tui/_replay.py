@@ -155,7 +155,7 @@ class ReplaySource:
         path: str | Path,
         *,
         speed: float = 60.0,
-        max_rows_per_poll: int = 50_000,
+        max_rows_per_poll: int = 10_000,
         real_clock: Callable[[], float] = time.monotonic,
         protocol_dir: Path | None = None,
     ) -> None:
