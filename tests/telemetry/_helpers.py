@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import re
 from collections.abc import AsyncIterator, Callable, Coroutine
 from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any, TypeVar
 
 from controller.clock import RealClock
@@ -143,3 +145,19 @@ async def connected(watcher: TelemetryWatcher) -> None:
     await next_update(
         watcher, lambda u: u if isinstance(u, ConnectionUpdate) and u.connected else None
     )
+
+
+#: The telemetry page of the hardware notes.
+DOC = Path(__file__).resolve().parents[2] / "hardware-notes" / "mqtt-topics.md"
+
+
+def doc_text() -> str:
+    """Text of hardware-notes/mqtt-topics.md."""
+    return DOC.read_text(encoding="utf-8")
+
+
+def doc_acl() -> str:
+    """The ACL file the page recommends (the code block after its file name)."""
+    found = re.search(r"`/etc/mosquitto/squall.acl`:\n\n```text\n(.*?)```", doc_text(), re.S)
+    assert found is not None, "the ACL example is missing from mqtt-topics.md"
+    return found.group(1)
