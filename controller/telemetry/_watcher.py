@@ -299,7 +299,12 @@ class TelemetryWatcher:
                     self._report(ConnectionUpdate(connected=True, detail=str(self.address)))
                     async for message in client.messages:
                         raise_if_cancelling()
-                        update = self.handle_message(message.topic.value, message.payload)
+                        try:
+                            update = self.handle_message(message.topic.value, message.payload)
+                        except Exception:  # a bug must not end the watch
+                            self.rejected += 1
+                            _log.exception("watch: cannot read a message on %s", message.topic)
+                            continue
                         if update is not None:
                             self._push(update)
             except aiomqtt.MqttError as exc:
