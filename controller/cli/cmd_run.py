@@ -18,6 +18,8 @@ Rules
   resumed at once.
 - Bad protocol, rig, start time, speed or log path: one located line, exit 2, nothing
   written. An existing log is never overwritten.
+- While it runs, the run takes operator commands (``squall ctl``) on its control socket
+  ``<log>.ctl/socket`` (owner-only; see :mod:`controller.runtime._ctl_server`).
 - On a terminal a progress bar shows phase, simulated time and alarms; otherwise the run is
   quiet. The log's path is printed at the end; exit 0 when the protocol ran to its end, 1 if
   the run failed (the outputs were made safe and the log closed first).
@@ -41,7 +43,10 @@ from controller.errors import RuntimeFailure, SquallError
 from controller.protocol import format_duration
 
 if TYPE_CHECKING:
+    from collections.abc import Awaitable
+
     from controller.runtime import (
+        ControlLoop,
         HardwareRun,
         RunSettings,
         RunSummary,
@@ -263,17 +268,27 @@ def _prepare(args: argparse.Namespace) -> SimulatedRun | HardwareRun:
 def _handle(args: argparse.Namespace) -> int:
     """Run (or resume) the protocol; print where the log is."""
     _check_combination(args)
+    from controller.runtime._ctl_server import run_with_control
+    from controller.runtime._ctl_wire import control_path
+
     run = _prepare(args)
     console = Console(stderr=False)
     interactive = sys.stdout.isatty()
     bar = _Bar(console) if interactive else None
+    ctl = control_path(run.writer.path)
+
+    def runner(loop: ControlLoop) -> Awaitable[RunSummary]:
+        return run_with_control(loop, ctl)  # operator commands for the whole run
+
+    if interactive:
+        console.print(f"operator commands: squall ctl --log {run.writer.path} status|hold|...")
     wall0 = time.perf_counter()
     try:
         if bar is not None:
             with bar.progress:
-                summary = run.run(progress=bar)
+                summary = run.run(progress=bar, runner=runner)
         else:
-            summary = run.run()
+            summary = run.run(runner=runner)
     except (SquallError, RuntimeFailure, KeyboardInterrupt):
         print(f"log: {run.writer.path}", file=sys.stderr)
         raise

@@ -64,6 +64,7 @@ __all__ = [
     "AuditFn",
     "ControlServer",
     "ControlTarget",
+    "loop_audit",
     "peer_uid",
     "run_with_control",
     "serve_control",
@@ -515,6 +516,42 @@ async def serve_control(
         await asyncio.shield(server.close())
 
 
+def loop_audit(loop: object) -> AuditFn | None:
+    """An audit callable writing to a control loop's run log, if the loop has one.
+
+    Parameters
+    ----------
+    loop
+        A control loop with ``clock`` and ``sink`` (:class:`~controller.runtime.LogSink`;
+        no unit).
+
+    Returns
+    -------
+    AuditFn or None
+        Queues an :class:`~controller.storage.AuditRecord` stamped with the loop's clock
+        time (s) and its UTC (POSIX s); None when the loop has no clock or sink (no unit).
+    """
+    clock, sink = getattr(loop, "clock", None), getattr(loop, "sink", None)
+    if clock is None or sink is None:
+        return None
+    from controller.storage import AuditRecord
+
+    def audit(user: str, command: str, text: str, result: str) -> None:
+        t_s = clock.now_s()
+        sink.put(
+            AuditRecord(
+                t_s=t_s,
+                utc_s=clock.utc(t_s).timestamp(),
+                user=user,
+                command=command,
+                text=text,
+                result=result,
+            )
+        )
+
+    return audit
+
+
 class _Runnable(ControlTarget, Protocol):
     """A control loop: the hooks plus ``run()``."""
 
@@ -548,8 +585,10 @@ async def run_with_control(
     Any
         What ``loop.run()`` returns (the run summary; no unit). The socket is bound before
         the run starts (a problem with it is a :class:`SquallError` and nothing runs) and
-        removed when the run ends, however it ends.
+        removed when the run ends, however it ends. Without ``audit``, refusals that never
+        reach a hook go to the loop's own audit trail (:func:`loop_audit`).
     """
+    audit = audit or loop_audit(loop)
     server = ControlServer(loop, path, allowed_uids=allowed_uids, audit=audit)
     await server.start()
     try:
