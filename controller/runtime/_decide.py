@@ -515,8 +515,11 @@ class Decider:
             chiller = min((f.chiller_pct for f in forced), default=0.0)
             manual = heater - chiller
             if measured is not None:
-                track_sp = target if target is not None else measured
-                state.pid = pid_track(state.pid, params, manual, measured, track_sp, dt_s).state
+                # automatic control restarts its rate-limited setpoint at the measurement, so
+                # the integral is tracked against that setpoint (tracking the protocol's
+                # setpoint instead left an integral that slammed the chiller or heater to
+                # full drive on the first tick after a trip cleared)
+                state.pid = pid_track(state.pid, params, manual, measured, measured, dt_s).state
                 state.setpoint_c = measured
             state.output_pct = manual
             return heater, chiller, (None if target is None else state.setpoint_c)
