@@ -30,6 +30,12 @@ from controller._lazy import lazy_exports
 
 if TYPE_CHECKING:
     from controller.telemetry._buffer import BufferStats, TelemetryBuffer
+    from controller.telemetry._commands import (
+        CommandGate,
+        CommandHandler,
+        CommandLog,
+        CommandOutcome,
+    )
     from controller.telemetry._config import (
         BrokerAddress,
         CommandsConfig,
@@ -53,9 +59,6 @@ if TYPE_CHECKING:
         encode_record,
     )
     from controller.telemetry._publisher import (
-        CommandHandler,
-        CommandLog,
-        CommandOutcome,
         PublisherStats,
         TelemetryPublisher,
         TelemetrySink,
@@ -85,10 +88,11 @@ _NAMES = {
     "AlarmUpdate": "_watcher",
     "BrokerAddress": "_config",
     "BufferStats": "_buffer",
-    "CommandHandler": "_publisher",
-    "CommandLog": "_publisher",
+    "CommandGate": "_commands",
+    "CommandHandler": "_commands",
+    "CommandLog": "_commands",
     "CommandName": "_payloads",
-    "CommandOutcome": "_publisher",
+    "CommandOutcome": "_commands",
     "CommandResult": "_payloads",
     "CommandResultUpdate": "_watcher",
     "CommandsConfig": "_config",
@@ -138,6 +142,7 @@ __all__ = [
     "AlarmUpdate",
     "BrokerAddress",
     "BufferStats",
+    "CommandGate",
     "CommandHandler",
     "CommandLog",
     "CommandName",

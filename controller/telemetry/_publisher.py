@@ -31,10 +31,9 @@ Rules of this module
 from __future__ import annotations
 
 import asyncio
-import json
 import logging
 import random
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -46,26 +45,19 @@ from controller import __version__
 from controller.clock import Clock
 from controller.storage import AlarmRecord, EventKind, EventRecord, SampleRow
 from controller.telemetry._buffer import TelemetryBuffer
+from controller.telemetry._commands import CommandGate, CommandHandler, CommandLog, CommandOutcome
 from controller.telemetry._config import TelemetryConfig
 from controller.telemetry._connect import make_client, raise_if_cancelling
 from controller.telemetry._payloads import (
-    MAX_COMMAND_BYTES,
-    CommandName,
     CommandResult,
     ControllerState,
     ControllerStatus,
-    PayloadError,
-    RemoteCommand,
-    decode_model,
     encode_model,
     encode_record,
 )
 from controller.telemetry._topics import Topics
 
 __all__ = [
-    "CommandHandler",
-    "CommandLog",
-    "CommandOutcome",
     "PublisherStats",
     "TelemetryPublisher",
     "TelemetrySink",
@@ -117,39 +109,6 @@ class TickLike(Protocol):
     def utc(self) -> datetime:
         """Wall time of the tick, aware UTC."""
         ...
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class CommandOutcome:
-    """What became of one message on the command topic.
-
-    Attributes
-    ----------
-    accepted
-        Whether the command was carried out.
-    reason
-        Why it was refused; empty when accepted.
-    command
-        The validated command, or None when the payload did not validate.
-    request_id, user, name
-        Request id, user and command name as far as they could be read, else None.
-    utc_s
-        When it was handled, UTC POSIX s.
-    """
-
-    accepted: bool
-    reason: str
-    command: RemoteCommand | None
-    request_id: str | None
-    user: str | None
-    name: str | None
-    utc_s: float
-
-
-#: Carries out an accepted command; returns None when done, or why it was refused.
-CommandHandler = Callable[[RemoteCommand], str | None]
-#: Records every command outcome (e.g. in the run's audit trail).
-CommandLog = Callable[[CommandOutcome], None]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -244,8 +203,7 @@ class TelemetryPublisher:
     ) -> None:
         self.config = config
         self.clock = clock
-        self.execute = execute
-        self.log_command = log_command
+        self.commands = CommandGate(config.commands, execute=execute, log_command=log_command)
         self.topics = Topics(config.prefix)
         self._username, self._password = config.credentials(base_dir)
         self._software_version = software_version
@@ -266,8 +224,6 @@ class TelemetryPublisher:
         self._connections = 0
         self._published = 0
         self._statuses = 0
-        self._accepted = 0
-        self._refused = 0
         self._last_error = ""
         self._failing = False
 
@@ -438,8 +394,8 @@ class TelemetryPublisher:
             records_queued=buffered.records_queued,
             samples_dropped=buffered.samples_dropped,
             records_dropped=buffered.records_dropped,
-            commands_accepted=self._accepted,
-            commands_refused=self._refused,
+            commands_accepted=self.commands.accepted,
+            commands_refused=self.commands.refused,
             last_error=self._last_error,
         )
 
@@ -638,70 +594,4 @@ class TelemetryPublisher:
         CommandOutcome
             Accepted, or refused with the reason; also passed to ``log_command``.
         """
-        utc_s = self.clock.utc().timestamp()
-        command: RemoteCommand | None = None
-        request_id = user = name = None
-        try:
-            command = decode_model(payload, RemoteCommand, limit=MAX_COMMAND_BYTES)
-        except PayloadError as exc:
-            request_id, user, name = _loose_fields(payload)
-            known = [c.value for c in CommandName]
-            if exc.field == "command" and name is not None and name not in known:
-                reason = f"unknown command {name!r} (known: {', '.join(known)})"
-            else:
-                reason = f"malformed command: {exc}"
-        else:
-            request_id, user, name = command.id, command.user, command.command.value
-            reason = self._refusal(command) or ""
-        outcome = CommandOutcome(
-            accepted=not reason,
-            reason=reason,
-            command=command,
-            request_id=request_id,
-            user=user,
-            name=name,
-            utc_s=utc_s,
-        )
-        if outcome.accepted:
-            self._accepted += 1
-            _log.info("telemetry: command %s from %s carried out", name, user)
-        else:
-            self._refused += 1
-            _log.warning("telemetry: command %s from %s refused: %s", name, user, reason)
-        if self.log_command is not None:
-            try:
-                self.log_command(outcome)
-            except Exception:
-                _log.exception("telemetry: logging a command failed")
-        return outcome
-
-    def _refusal(self, command: RemoteCommand) -> str | None:
-        """Why ``command`` is refused, or None once it has been carried out."""
-        settings = self.config.commands
-        if not settings.enabled:
-            return "remote commands are disabled on this controller"
-        if command.user not in settings.allowed_users:
-            return f"user {command.user!r} may not command this controller"
-        if self.execute is None:
-            return "this controller takes no remote commands (no handler)"
-        try:
-            return self.execute(command)
-        except Exception as exc:
-            _log.exception("telemetry: command %s failed", command.command.value)
-            return f"failed: {type(exc).__name__}: {exc}"
-
-
-def _loose_fields(payload: bytes) -> tuple[str | None, str | None, str | None]:
-    """Request id, user and command name of a payload that did not validate, if readable."""
-    try:
-        data = json.loads(payload[:MAX_COMMAND_BYTES])
-    except (ValueError, UnicodeDecodeError):
-        return None, None, None
-    if not isinstance(data, dict):
-        return None, None, None
-
-    def text(key: str) -> str | None:
-        value = data.get(key)
-        return value[:64] if isinstance(value, str) else None
-
-    return text("id"), text("user"), text("command")
+        return self.commands.handle(payload, self.clock.utc().timestamp())
