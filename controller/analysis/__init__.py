@@ -42,7 +42,14 @@ if TYPE_CHECKING:
         inverse_temperature_ev,
         light_levels,
     )
-    from ._log import READ_COLUMNS, TRACE_COLUMNS, Analysis, analyze_log, groups_from_protocol
+    from ._log import (
+        READ_COLUMNS,
+        TRACE_COLUMNS,
+        Analysis,
+        analyze_log,
+        groups_from_protocol,
+        read_sample_chunks,
+    )
     from ._metabolism import (
         DailyMetabolism,
         areal_flux,
@@ -115,6 +122,7 @@ _NAMES = {
     "light_levels": "_fits",
     "light_response": "_response",
     "pair_windows": "_metabolism",
+    "read_sample_chunks": "_log",
     "records": "_export",
     "report_html": "_report",
     "respiration_table": "_metabolism",
@@ -177,6 +185,7 @@ __all__ = [
     "light_levels",
     "light_response",
     "pair_windows",
+    "read_sample_chunks",
     "records",
     "report_html",
     "respiration_table",

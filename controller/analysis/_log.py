@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 import tomllib
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -41,7 +41,14 @@ from ._response import (
 from ._settings import AnalysisSettings
 from ._windows import WINDOW_INPUT_COLUMNS, WindowAccumulator, group_rows
 
-__all__ = ["READ_COLUMNS", "TRACE_COLUMNS", "Analysis", "analyze_log", "groups_from_protocol"]
+__all__ = [
+    "READ_COLUMNS",
+    "TRACE_COLUMNS",
+    "Analysis",
+    "analyze_log",
+    "groups_from_protocol",
+    "read_sample_chunks",
+]
 
 READ_COLUMNS = (
     "time",
@@ -74,6 +81,46 @@ class _ChunkReader(RunLogReader):
         cols = self._sample_columns(columns)
         where = ["seq > ?", "seq <= ?"]
         return self._sample_frame(cols, where, [int(after_seq), int(upto_seq)], limit=None)
+
+
+def _chunks(
+    reader: _ChunkReader, last: int, columns: Sequence[str], chunk_rows: int
+) -> Iterator[tuple[int, pd.DataFrame]]:
+    """(row id reached, frame) for consecutive chunks of rows ``1..last``."""
+    step = max(int(chunk_rows), 1)
+    for after in range(0, last, step):
+        upto = min(after + step, last)
+        yield upto, reader.sample_rows(after, upto, columns)
+
+
+def read_sample_chunks(
+    path: str | Path, columns: Sequence[str] = READ_COLUMNS, chunk_rows: int = 200_000
+) -> Iterator[pd.DataFrame]:
+    """Read a run log's samples in chunks of consecutive rows, as the analysis reads them.
+
+    Parameters
+    ----------
+    path
+        The run log.
+    columns
+        Frame column names to read (default :data:`READ_COLUMNS`).
+    chunk_rows
+        Rows per chunk, dimensionless.
+
+    Yields
+    ------
+    pandas.DataFrame
+        Consecutive chunks of the samples committed when reading began.
+
+    Raises
+    ------
+    SquallError
+        The log cannot be read.
+    """
+    with _ChunkReader(Path(path)) as reader:
+        last = reader.last_rowid()
+        for _, frame in _chunks(reader, last, columns, chunk_rows):
+            yield frame
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -303,9 +350,7 @@ def analyze_log(
         done = 0
         if progress is not None:
             progress(0, last)
-        for after in range(0, last, max(int(chunk_rows), 1)):
-            upto = min(after + int(chunk_rows), last)
-            frame = reader.sample_rows(after, upto, READ_COLUMNS)
+        for upto, frame in _chunks(reader, last, READ_COLUMNS, chunk_rows):
             frame["run_s"] = _run_seconds(frame["time"], start)
             win_acc.update(frame[list(WINDOW_INPUT_COLUMNS)])
             quality_acc.update(frame[list(QUALITY_INPUT_COLUMNS)])

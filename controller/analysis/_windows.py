@@ -116,6 +116,8 @@ class WindowAccumulator:
         o2 = samples["o2_umol_l"].to_numpy(dtype=float)
         closed = (samples["incubation"] == "closed").to_numpy(dtype=bool, na_value=False)
         usable = closed & np.isfinite(o2)
+        picked_rows: list[npt.NDArray[np.intp]] = []
+        picked_windows: list[npt.NDArray[np.intp]] = []
         for chamber, rows in group_rows(samples["chamber"]):
             found = self._by_chamber.get(chamber)
             if found is None:
@@ -128,27 +130,26 @@ class WindowAccumulator:
             k = np.searchsorted(starts, t, side="right") - 1
             inside = k >= 0
             inside[inside] &= t[inside] < ends[k[inside]]
-            if not inside.any():
-                continue
-            self._add(samples, rows[inside], ids[k[inside]], run_s, o2)
+            if inside.any():
+                picked_rows.append(rows[inside])
+                picked_windows.append(ids[k[inside]])
+        if picked_rows:
+            self._add(samples, np.concatenate(picked_rows), np.concatenate(picked_windows))
 
     def _add(
-        self,
-        samples: pd.DataFrame,
-        rows: npt.NDArray[np.intp],
-        win: npt.NDArray[np.intp],
-        run_s: F,
-        o2: F,
+        self, samples: pd.DataFrame, rows: npt.NDArray[np.intp], win: npt.NDArray[np.intp]
     ) -> None:
-        t, y = run_s[rows], o2[rows]
+        """Add the readings at ``rows`` of a chunk to windows ``win`` (time-ordered per window)."""
+        t = samples["run_s"].to_numpy(dtype=float)[rows]
+        y = samples["o2_umol_l"].to_numpy(dtype=float)[rows]
         firsts, first_pos = np.unique(win, return_index=True)
         fresh = np.isnan(self._y0[firsts])
         self._y0[firsts[fresh]] = y[first_pos[fresh]]
         if any(self._phase[w] is None for w in firsts):
-            phases = samples["phase"].to_numpy()[rows[first_pos]]
-            for w, phase in zip(firsts, phases, strict=True):
-                if self._phase[w] is None:
-                    self._phase[w] = None if pd.isna(phase) else str(phase)
+            codes, names = pd.factorize(samples["phase"])
+            for w, row in zip(firsts, rows[first_pos], strict=True):
+                if self._phase[w] is None and codes[row] >= 0:
+                    self._phase[w] = str(names[codes[row]])
         self._sums.add(win, (t - self._mid[win]) / 3600.0, y - self._y0[win])
         np.fmin.at(self._first, win, t)
         np.fmax.at(self._last, win, t)
