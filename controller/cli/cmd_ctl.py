@@ -50,6 +50,7 @@ _REPLY_LIMIT_B = 1 << 20
 
 
 def _who() -> str:
+    """The name this client gives (informational: the server records the peer's uid)."""
     try:
         return getpass.getuser()
     except (KeyError, OSError):
@@ -144,7 +145,13 @@ class ControlClient:
             raise RuntimeFailure(f"{self.path}: {exc}") from None
 
     async def status(self) -> Reply:
-        """The run's status (the reply's result is a mapping; no unit)."""
+        """Ask for the run's status.
+
+        Returns
+        -------
+        Reply
+            The reply; its result is the status mapping (units in its keys).
+        """
         return await self.request("status")
 
     async def skip_to(self, phase: str) -> CommandResult:

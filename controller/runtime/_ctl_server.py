@@ -16,10 +16,8 @@ Rules of this module
   other peer gets one refusal line and is disconnected. Where the platform cannot tell the
   peer's uid, every connection is refused (fail closed). The user passed to the hooks and
   written to the audit trail is the name of the peer's uid, never a name the client claims.
-- What: the wire protocol of :mod:`controller.runtime._ctl_wire`. A request that is not
-  JSON, not an object, of another version, an unknown command or with wrong arguments gets
-  an error reply, and the connection stays open for the next line. A line longer than
-  ``MAX_REQUEST_B`` is answered with an error and skipped up to its end.
+- What: the wire protocol of :mod:`controller.runtime._ctl_wire`. A malformed request gets
+  an error reply and the connection stays open; an over-long line is answered and skipped.
 - Logging: every command is logged through :mod:`logging` (accepted ones at INFO, refusals
   at WARNING; ``status`` queries at DEBUG since views poll them). The target's hooks audit
   every command that reaches them, carried out or refused; what never reaches a hook (a
@@ -80,39 +78,45 @@ _log = logging.getLogger(__name__)
 
 
 class ControlTarget(Protocol):
-    """What the control socket needs of a running controller (the control loop's hooks)."""
+    """What the control socket needs of a running controller (the control loop's hooks).
+
+    Every hook takes the operating-system user who asked (no unit) and may return a short
+    text for the operator (or None, or an awaitable of either). A hook refuses a request by
+    raising (see ``ControlServer.refusals``) and audits what it carries out or refuses.
+    """
 
     def status(self) -> Mapping[str, Any]:
-        """The run's state for operators (JSON-serialisable values)."""
+        """The run's state for operators: JSON-serialisable values (units in the keys)."""
         ...
 
     def hold(self, user: str) -> object:
-        """Freeze the protocol clock, setpoints kept."""
+        """Freeze the protocol clock, setpoints kept; ``user`` asked (no unit)."""
         ...
 
     def resume(self, user: str) -> object:
-        """Let the protocol clock run again."""
+        """Let the protocol clock run again; ``user`` asked (no unit)."""
         ...
 
     def skip_to(self, phase: str, user: str) -> object:
-        """Jump to the start of a phase."""
+        """Jump to the start of ``phase`` (a phase name); ``user`` asked (no unit)."""
         ...
 
     def abort(self, user: str) -> object:
-        """Drive every output safe and end the run."""
+        """Drive every output safe and end the run; ``user`` asked (no unit)."""
         ...
 
     def ack(self, alarm_code: str, chamber: str | None, user: str) -> object:
-        """Acknowledge an alarm of a chamber (None: every chamber)."""
+        """Acknowledge ``alarm_code`` of ``chamber`` (None: every chamber); no unit."""
         ...
 
     def note(self, text: str, user: str) -> object:
-        """Write a note to the audit trail."""
+        """Write ``text`` with time and ``user`` to the audit trail (no unit)."""
         ...
 
 
 # ---------------------------------------------------------------------- peers
 def _user_name(uid: int) -> str:
+    """The login name of a uid, or ``uid N`` when the password database has none."""
     try:
         return pwd.getpwuid(uid).pw_name
     except KeyError:
@@ -295,15 +299,6 @@ class ControlServer:
         with contextlib.suppress(OSError):
             os.rmdir(self.path.parent)
         self._inode = None
-
-    async def __aenter__(self) -> ControlServer:
-        """Start serving."""
-        await self.start()
-        return self
-
-    async def __aexit__(self, *exc: object) -> None:
-        """Stop serving and clean up."""
-        await self.close()
 
     # ------------------------------------------------------------------ connections
     async def _connection(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
