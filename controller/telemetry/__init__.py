@@ -17,6 +17,8 @@ schemas, the broker set-up and the access rules.
 - :class:`TelemetryPublisher`: the controller side, an asyncio task fed through the
   non-blocking :meth:`TelemetryPublisher.offer` (a :class:`TelemetrySink`), with a bounded
   :class:`TelemetryBuffer` that drops the oldest samples but keeps alarms and events.
+- :class:`CommandGate`: remote commands (off by default) checked against the settings and
+  an allow-list, carried out through a handler, every one logged.
 - :class:`TelemetryWatcher`: the watch side; ``async for`` over typed updates.
 - :class:`TelemetryConfig`: the ``[telemetry]`` table a rig file can carry.
 

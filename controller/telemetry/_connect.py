@@ -12,6 +12,9 @@ Rules of this module
 - A client must be made inside the running event loop (aiomqtt binds it to that loop).
   Connecting runs in a worker thread inside aiomqtt, so a slow or silent broker never holds
   up the loop.
+- aiomqtt waits for every answer with ``asyncio.wait_for``, which on Python 3.11 can lose a
+  cancellation that arrives together with the answer. Every loop that keeps a telemetry task
+  alive calls :func:`raise_if_cancelling` before each round, so a stop is never lost.
 """
 
 from __future__ import annotations

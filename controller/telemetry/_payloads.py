@@ -25,9 +25,16 @@ import json
 import math
 from datetime import UTC, datetime
 from enum import StrEnum
-from typing import Any, Literal, TypeVar
+from typing import Annotated, Any, Literal, TypeVar
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    ValidationError,
+    model_validator,
+)
 
 from controller.errors import SquallError
 from controller.storage import (
@@ -124,7 +131,9 @@ class ControllerStatus(BaseModel):
     duration_s: float | None = Field(None, ge=0, description="Protocol length, s.")
     period_s: float | None = Field(None, gt=0, description="Control tick period, s.")
     utc_s: float | None = Field(None, description="UTC wall time of this status, POSIX s.")
-    chambers: tuple[str, ...] = Field((), description="Chamber ids of the run.")
+    chambers: tuple[Annotated[str, StringConstraints(pattern=ID_PATTERN)], ...] = Field(
+        (), description="Chamber ids of the run."
+    )
     dropped_samples: int = Field(
         0, ge=0, description="Sample rows dropped by the publisher's buffer, dimensionless."
     )

@@ -22,10 +22,12 @@ Rules of this module
   refused logins and bugs in encoding one record are logged (once per streak) and the
   task carries on.
 - Remote commands: the publisher always listens on its command topic, so every attempt is
-  seen, answered on ``cmd/result`` and passed to ``log_command``. A command is carried out
-  (``execute``) only when remote commands are enabled, it validates, and its user is on the
-  allow-list; the broker must restrict who may write the command topic (MQTT 3.1.1 does not
-  tell a subscriber who published).
+  seen, answered on ``cmd/result`` and passed to ``log_command``; the checks are
+  :class:`~controller.telemetry.CommandGate`'s.
+- Time: back-off waits, status intervals and broker timeouts run on the event loop's clock,
+  which is the controller's clock. That is real time for a real run; a simulated run that
+  publishes should run at a modest ``speed`` (an as-fast-as-possible virtual clock would
+  jump over the broker's answers).
 """
 
 from __future__ import annotations
@@ -310,13 +312,22 @@ class TelemetryPublisher:
             Protocol length, s.
         period_s
             Control tick period, s.
+
+        Raises
+        ------
+        pydantic.ValidationError
+            For a negative duration, a period that is not above 0, or a bad chamber id.
         """
-        self._run = {
+        run = {
             "run_id": run_id,
             "protocol": protocol,
             "duration_s": duration_s,
             "period_s": period_s,
         }
+        ControllerStatus(  # check now, in the caller, not later in the publishing task
+            controller=self.controller_id, state=self._state, chambers=tuple(chambers), **run
+        )
+        self._run = run
         self._chambers = dict.fromkeys(chambers)
         self._status_dirty = True
         self._wake.set()

@@ -133,38 +133,123 @@ class Topics:
 
     # ------------------------------------------------------------------ building
     def status(self, controller: str) -> str:
-        """Retained status topic of a controller."""
+        """Retained status topic of a controller.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/status"
 
     def sample(self, controller: str, chamber: str) -> str:
-        """Sample topic of one chamber of a controller."""
+        """Sample topic of one chamber of a controller.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+        chamber
+            Chamber id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return (
             f"{self.prefix}/{check_id(controller, 'controller id')}"
             f"/chamber/{check_id(chamber, 'chamber id')}/sample"
         )
 
     def alarm(self, controller: str) -> str:
-        """Alarm topic of a controller."""
+        """Alarm topic of a controller.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/alarm"
 
     def event(self, controller: str) -> str:
-        """Event topic of a controller."""
+        """Event topic of a controller.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/event"
 
     def command(self, controller: str) -> str:
-        """Topic a controller takes remote commands from."""
+        """Topic a controller takes remote commands from.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/cmd"
 
     def command_result(self, controller: str) -> str:
-        """Topic a controller answers remote commands on."""
+        """Topic a controller answers remote commands on.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/cmd/result"
 
     def watch_all(self) -> str:
-        """Subscription that receives every controller's telemetry: ``<prefix>/+/#``."""
+        """Subscription that receives every controller's telemetry: ``<prefix>/+/#``.
+
+        Returns
+        -------
+        str
+            The topic filter.
+        """
         return f"{self.prefix}/+/#"
 
     def watch_one(self, controller: str) -> str:
-        """Subscription that receives one controller's telemetry: ``<prefix>/<id>/#``."""
+        """Subscription that receives one controller's telemetry: ``<prefix>/<id>/#``.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic filter.
+        """
         return f"{self.prefix}/{check_id(controller, 'controller id')}/#"
 
     # ------------------------------------------------------------------ parsing

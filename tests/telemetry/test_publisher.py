@@ -163,3 +163,12 @@ async def test_without_a_broker_offers_still_return_and_a_stop_is_prompt() -> No
         assert pub.stats().samples_queued == 2000  # the configured bound
         assert "refused" in pub.stats().last_error.lower()
     assert task.cancelled()
+
+
+def test_bad_run_facts_are_refused_when_given_not_later_while_publishing() -> None:
+    pub = publisher()
+    with pytest.raises(ValueError, match="duration_s"):
+        pub.describe_run(run_id="r", protocol="p", chambers=["B"], duration_s=-1.0, period_s=1.0)
+    with pytest.raises(ValueError, match="chambers"):
+        pub.describe_run(run_id="r", protocol="p", chambers=["A/1"], duration_s=1.0, period_s=1.0)
+    assert pub.status().run_id is None
