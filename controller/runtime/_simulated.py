@@ -236,6 +236,7 @@ class SimulatedRun:
         log_path = Path(log_path)
         if speed is not None and not (math.isfinite(speed) and speed > 0):
             raise SquallError(f"speed must be a number above 0, got {speed!r}", field="--speed")
+        written_utc_s = last_written_utc_s(log_path)  # before reading opens the -wal file
         meta, launch = check_resumable(log_path)
         if not launch.simulated:
             raise SquallError(
@@ -245,7 +246,7 @@ class SimulatedRun:
         inputs = resumed_inputs(log_path, meta, launch)
         settings = (settings_for or _period_settings)(launch.period_s)
         plan = plan_control(inputs.rig, inputs.compiled.chambers, settings, inputs.incubation)
-        down_s = max(settings.period_s, time.time() - last_written_utc_s(log_path))
+        down_s = max(settings.period_s, time.time() - written_utc_s)
         writer, point = open_resumed(log_path, inputs, plan, settings.commit_interval_for(speed))
         try:
             last_utc = point.last_utc_s if point.last_utc_s is not None else meta.start_utc_s
