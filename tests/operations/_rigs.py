@@ -222,3 +222,49 @@ def drive(
         if not run.writer.closed:
             run.writer.close()
     return summary, loop
+
+
+class Crash(Exception):
+    """Stands for the controller process dying (raised by :func:`crash`)."""
+
+
+def crash(
+    run: SimulatedRun, at_s: float, *, before: Sequence[Action] = (), io: ChamberIO | None = None
+) -> ControlLoop:
+    """Run ``run`` and let it die at clock time ``at_s`` as a killed process would: no safe
+    outputs written by the controller, no end event, records still queued for the log lost,
+    the log left unfinished (the rows already handed to SQLite are committed on closing).
+
+    Returns
+    -------
+    ControlLoop
+        The loop that died.
+    """
+
+    async def gone(_reason: object, _detail: object) -> None:
+        return None
+
+    def die(_loop: ControlLoop) -> None:
+        raise Crash
+
+    loop = run.loop(io=io)
+    loop._shutdown = gone  # type: ignore[method-assign]
+
+    async def act(t_s: float, action: Callable[[ControlLoop], object]) -> None:
+        await run.clock.sleep_until(t_s)
+        action(loop)
+
+    async def main(_clock: Clock) -> None:
+        async with asyncio.TaskGroup() as group:
+            for t_s, action in (*before, (at_s, die)):
+                group.create_task(act(t_s, action))
+            await loop.run()
+
+    try:
+        run_with_clock(run.clock, main)
+    except* Crash:
+        pass
+    finally:
+        if not run.writer.closed:
+            run.writer.close()
+    return loop
