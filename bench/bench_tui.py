@@ -47,7 +47,7 @@ GOAL_INTERVAL_MS = 150.0
 
 _WRITER = """
 import sys, time
-from controller.tui._synthetic import SyntheticRun
+from controller.tui import SyntheticRun
 run = SyntheticRun(sys.argv[1], chambers=int(sys.argv[2]), period_s=1.0, duration_s=86400.0,
                    commit_interval_s=0.0)
 for _ in range(int(sys.argv[3])):
@@ -136,7 +136,7 @@ def _wall(argv: list[str], env: dict[str, str] | None = None) -> float:
 
 def start_up(folder: Path, repeat: int) -> None:
     """Measurement 2: process start to first paint of ``squall watch``, against imports."""
-    from controller.tui._synthetic import SyntheticRun
+    from controller.tui import SyntheticRun
 
     log = folder / "start.sqlite"
     run = SyntheticRun(log, chambers=CHAMBERS, period_s=10.0)
@@ -205,8 +205,7 @@ for name, a, b in (("parser (all commands)", t0, t1), ("sources (pandas, storage
 
 def replay(folder: Path, seconds: float, days: float) -> None:
     """Measurement 3: frame times of a 7-day, 32-chamber replay at 3600x."""
-    from controller.tui import ReplaySource, SquallApp
-    from controller.tui._synthetic import SyntheticRun
+    from controller.tui import ReplaySource, SquallApp, SyntheticRun
 
     log = folder / "week.sqlite"
     ticks = int(days * 1440)

@@ -4,7 +4,9 @@ Layers, from data to screen:
 
 - Data sources turn a run log into typed, immutable snapshots: :class:`LogSource` follows a
   log as its run writes it (bounded work per poll), :class:`ReplaySource` plays a log back
-  with play/pause, speed and seek. Both satisfy :class:`DataSource`.
+  with play/pause, speed and seek, :class:`BrokerSource` shows every controller publishing
+  MQTT telemetry to a broker. All satisfy :class:`DataSource`. :class:`SyntheticRun` writes
+  invented logs for demos, benchmarks and tests.
 - :class:`SquallApp` asks its source on a timer and hands each :class:`Snapshot` to the
   screen on top: chamber board, chamber detail with charts, alarm list, protocol timeline.
   Widgets hold reactive state and never read data or call drivers.
@@ -23,6 +25,7 @@ from controller._lazy import lazy_exports
 if TYPE_CHECKING:
     from ._app import LIVE_POLL_S, REPLAY_FRAME_S, THEME, SquallApp
     from ._board import BoardHeader, ChamberBoard, board_columns
+    from ._broker import BrokerSource
     from ._commands import (
         Command,
         CommandChannel,
@@ -46,12 +49,14 @@ if TYPE_CHECKING:
         Trace,
     )
     from ._sources import DataSource, LogSource
+    from ._synthetic import SyntheticRun
     from ._timeline import Span, Timeline, full_timeline, quick_timeline
 
 _NAMES = {
     "AlarmEntry": "_snapshot",
     "AlarmScreen": "_screens",
     "BoardHeader": "_board",
+    "BrokerSource": "_broker",
     "ChamberBoard": "_board",
     "ChamberCard": "_detail",
     "ChamberState": "_snapshot",
@@ -79,6 +84,7 @@ _NAMES = {
     "SPANS_S": "_detail",
     "Snapshot": "_snapshot",
     "Span": "_timeline",
+    "SyntheticRun": "_synthetic",
     "SquallApp": "_app",
     "THEME": "_app",
     "Timeline": "_timeline",
@@ -101,6 +107,7 @@ __all__ = [
     "AlarmEntry",
     "AlarmScreen",
     "BoardHeader",
+    "BrokerSource",
     "ChamberBoard",
     "ChamberCard",
     "ChamberState",
@@ -126,6 +133,7 @@ __all__ = [
     "Snapshot",
     "Span",
     "SquallApp",
+    "SyntheticRun",
     "Timeline",
     "TimelineScreen",
     "Trace",

@@ -12,7 +12,7 @@ import pytest
 from controller.rig import Fault, FaultKind
 from controller.runtime import RunSettings, SimulatedRun
 from controller.storage import AlarmLevel
-from controller.tui._synthetic import SyntheticRun
+from controller.tui import SyntheticRun
 
 from ._rig import protocol_text, rig_text
 

@@ -20,6 +20,7 @@ from controller.tui import (
     CommandKind,
     ConfirmDialog,
     DetailScreen,
+    HelpDialog,
     LogSource,
     NoCommands,
     NoteDialog,
@@ -28,11 +29,11 @@ from controller.tui import (
     ReplaySource,
     RunStatus,
     SquallApp,
+    SyntheticRun,
     TimelineScreen,
 )
 from controller.tui._bars import AlarmLine, RunBar
 from controller.tui._board import BoardHeader
-from controller.tui._synthetic import SyntheticRun
 
 from .conftest import MakeSynthetic, with_trip
 
@@ -342,3 +343,19 @@ async def test_quitting_the_view_leaves_the_log_writable(synthetic: MakeSyntheti
     run.run_ticks(2)  # the run goes on after the view is gone
     with RunLogReader(run.writer.path) as reader:
         assert reader.last_rowid() == 2 * 5
+
+
+async def test_help_lists_every_key_and_symbol(synthetic: MakeSynthetic) -> None:
+    run = synthetic(chambers=2)
+    run.run_ticks(2)
+    app = live_app(run)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("question_mark")
+        await pilot.pause()
+        assert isinstance(app.screen, HelpDialog)
+        text = str(app.screen.query_one("#help-text").render())
+        for words in ("acknowledge", "hold the protocol clock", "play / pause", "● shut"):
+            assert words in text
+        await pilot.press("escape")
+        await pilot.pause()
+        assert isinstance(app.screen, OverviewScreen)
