@@ -21,6 +21,7 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from controller.errors import SquallError
@@ -184,7 +185,9 @@ def _handle(args: argparse.Namespace) -> int:
         TextColumn("analysing"),
         BarColumn(),
         MofNCompleteColumn(),
+        TextColumn("rows"),
         TimeElapsedColumn(),
+        console=Console(file=sys.stderr),
         transient=True,
         disable=not sys.stderr.isatty(),
     ) as bar:

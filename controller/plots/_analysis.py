@@ -259,14 +259,38 @@ def render_tracking(traces: pd.DataFrame, chambers: Sequence[str]) -> Figure:
 
 
 def figure_png(fig: Figure) -> bytes:
-    """The figure as PNG bytes at :data:`DPI` dots per inch."""
+    """Render a figure as PNG.
+
+    Parameters
+    ----------
+    fig
+        A figure from this module (size in inches).
+
+    Returns
+    -------
+    bytes
+        PNG data at :data:`DPI` dots per inch.
+    """
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=DPI)
     return buffer.getvalue()
 
 
 def save_png(fig: Figure, path: str | Path) -> Path:
-    """Write the figure as a PNG file at :data:`DPI` dots per inch; return the path."""
+    """Write a figure as a PNG file.
+
+    Parameters
+    ----------
+    fig
+        A figure from this module (size in inches).
+    path
+        Output file (replaced if it exists).
+
+    Returns
+    -------
+    Path
+        The file written, at :data:`DPI` dots per inch.
+    """
     path = Path(path)
     path.write_bytes(figure_png(fig))
     return path

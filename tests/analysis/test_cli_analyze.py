@@ -169,3 +169,20 @@ def test_an_output_in_a_missing_folder_is_refused(
     target = tmp_path / "no" / "such" / "report.html"
     assert main(["analyze", str(truth_log.path), "--report", str(target)]) == 2
     assert "--report" in capsys.readouterr().err
+
+
+class _Terminal(io.StringIO):
+    """A stand-in for stderr that says it is a terminal."""
+
+    def isatty(self) -> bool:
+        return True
+
+
+def test_a_terminal_gets_a_progress_bar_on_stderr(
+    truth_log: TruthLog, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    terminal = _Terminal()
+    monkeypatch.setattr("sys.stderr", terminal)
+    assert main(["analyze", str(truth_log.path)]) == 0
+    assert "analysing" in terminal.getvalue()
+    assert "analysing" not in capsys.readouterr().out  # stdout keeps only the summary
