@@ -172,13 +172,8 @@ def integrate_block(
     flows = pump_fraction(eff.pump_pct[flow_first], p.dead_band_pct) * p.flush_at_full_l_s
     span = seg.n * seg.h
     lit_s = np.repeat(lit_p, per_piece, axis=0)
-    lit_time = lit_s * span[:, None]
-    lamp_s = np.empty((len(span) + 1, len(p.chamber_ids)))  # at segment starts, and the end
-    lamp_s[0] = start.lamp_s
-    np.cumsum(lit_time, axis=0, out=lamp_s[1:])
-    lamp_s[1:] += start.lamp_s
     par_new_s = np.repeat(par_new_p, per_piece, axis=0)
-    age = _age(lamp_s, _age_rate(p))
+    age = _ages(start.lamp_s, lit_s, span, _age_rate(p))
     par_warm_s = par_new_s * age[:-1]
     par_end_s = par_new_s * age[1:]  # the warm PAR at each segment end (for samples)
     flow_s = np.repeat(flow_run, per_piece)  # which run of constant flows each segment is in
@@ -220,7 +215,7 @@ def integrate_block(
         excess_k_s=excess,
         flush_loss_j=flush_loss,
         span_s=float(span.sum()),
-        lamp_s=lamp_s[-1].copy(),
+        lamp_s=start.lamp_s + span @ lit_s,
     )
 
 
@@ -228,14 +223,17 @@ def _arrival_series(
     p: RackParams, start: BlockStart, piece_t: F, eff: Effective, queued: NDArray[np.bool_]
 ) -> tuple[list[F], list[F], list[F]]:
     """Per node: times from which each heater/chiller power holds (first −inf), and powers."""
-    t0 = piece_t[:-1][queued]
-    heat_w = eff.heater_pct[queued] * (p.heater_max_w / 100.0)
-    cold_w = eff.chiller_pct[queued] * (p.chiller_max_w / 100.0)
+    everywhere = bool(queued.all())
+    t0 = piece_t[:-1] if everywhere else piece_t[:-1][queued]
+    heat_w = eff.heater_pct.T * (p.heater_max_w / 100.0)[:, None]  # (M, P), rows contiguous
+    cold_w = eff.chiller_pct.T * (p.chiller_max_w / 100.0)[:, None]
+    if not everywhere:
+        heat_w, cold_w = heat_w[:, queued], cold_w[:, queued]
     times: list[F] = []
     heater: list[F] = []
     chiller: list[F] = []
     for j in range(len(p.node_names)):
-        h_new, c_new = heat_w[:, j], cold_w[:, j]
+        h_new, c_new = heat_w[j], cold_w[j]
         prev_h = np.concatenate(([start.sent_w[0, j]], h_new[:-1]))
         prev_c = np.concatenate(([start.sent_w[1, j]], c_new[:-1]))
         changed = (h_new != prev_h) | (c_new != prev_c)  # an unchanged power is not queued
@@ -557,21 +555,26 @@ def _chunk(
     at = ends[pick]
     cols = to[pick]
     if len(cols):
+        if cols[-1] - cols[0] == len(cols) - 1 and at[-1] - at[0] == len(at) - 1:
+            cols, at = slice(cols[0], cols[-1] + 1), slice(at[0], at[-1] + 1)  # type: ignore[assignment]
         out[0][:, cols] = ch_end[:, at]
         out[1][:, cols] = o2_end[:, at]
-        glow_end = warm_end[:, at]
+        glow_end = warm_end[:, at].copy()
         glow_end *= 1.0 - cold
         glow_end += cold
         glow_end *= par_end_s[s0:s1][pick].T
         out[2][:, cols] = glow_end
         out[3][:, cols] = probe[:, at]
         out[4][:, cols] = optode[:, at]
+    warmth = warm_end[:, -1].copy()
+    lit_end = lit_seg[:, -1]
+    warmth = np.where(np.abs(warmth - lit_end) < _SETTLED, lit_end, warmth)  # as stepping does
     state[:] = [
         temp_end[:, -1].copy(),
         o2_end[:, -1].copy(),
         probe[:, -1].copy(),
         optode[:, -1].copy(),
-        warm_end[:, -1].copy(),
+        warmth,
     ]
     return heat, excess, flush_loss
 
@@ -589,10 +592,34 @@ def _age_rate(p: RackParams) -> F:
     return np.asarray(rate / 3.6e6, dtype=float)
 
 
-def _age(lamp_s: F, rate: F) -> F:
-    """Output fraction (1 − loss)^(hours/1000) = e^(λ·s) of lamps lit for ``lamp_s`` s."""
-    exponent = np.where(lamp_s > 0.0, lamp_s * rate, 0.0)
-    return np.exp(exponent)
+def _ages(lamp_s: F, lit_s: F, span_s: F, rate: F) -> F:
+    """Output fraction of each lamp at the block start and after each segment.
+
+    Parameters
+    ----------
+    lamp_s
+        Seconds lit at the block start, s, shape ``(N,)``.
+    lit_s
+        1 where a lamp is lit during a segment, else 0, shape ``(S, N)``.
+    span_s
+        Length of each segment, s, shape ``(S,)``.
+    rate
+        λ = ln(1 − loss)/3.6e6 s, s⁻¹, shape ``(N,)``.
+
+    Returns
+    -------
+    numpy.ndarray
+        (1 − loss)^(hours/1000), shape ``(S + 1, N)``: e^(λ·s) at the start, then multiplied
+        by e^(λ·span) after each lit segment (as the stepping rack ages its lamps); the
+        segment lengths take few distinct values, so few exponentials are evaluated.
+    """
+    out = np.empty((len(span_s) + 1, len(lamp_s)))
+    out[0] = np.exp(np.where(lamp_s > 0.0, lamp_s * rate, 0.0))
+    spans, which = np.unique(span_s, return_inverse=True)
+    factor = np.exp(np.where(rate[None, :] > -np.inf, spans[:, None] * rate[None, :], -np.inf))
+    out[1:] = np.where(lit_s > 0.0, factor[which.reshape(-1)], 1.0)
+    np.cumprod(out, axis=0, out=out)
+    return out
 
 
 def _shift(first: F, path: F) -> F:

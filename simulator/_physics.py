@@ -209,18 +209,35 @@ def _chunked_series(a: F, rate: F, u: F, y0: F) -> F:
 
 
 def _floor_row(a: F, u: F, y: F) -> None:
-    """Redo one row of :func:`series_recurrence` with its floor at 0, in place."""
+    """Redo one row of :func:`series_recurrence` with its floor at 0, in place.
+
+    From a step that went negative, y is 0 until the next positive input; from there the
+    unfloored recurrence is solved forward in windows that double in length until it goes
+    negative again, so each return to zero costs a few vectorised calls.
+    """
+    length = len(u)
+    positive = np.flatnonzero(u > 0.0)
     i = int(np.argmax(y < 0.0))
-    while y[i] < 0.0:
-        y[i] = 0.0
-        rest = np.flatnonzero(u[i + 1 :] > 0.0)
-        if not len(rest):
-            y[i + 1 :] = 0.0
+    while True:
+        nxt = int(np.searchsorted(positive, i + 1))
+        if nxt == len(positive):
+            y[i:] = 0.0
             return
-        j = i + 1 + int(rest[0])
-        y[i + 1 : j] = 0.0  # a·0 + u ≤ 0 keeps it at 0
-        y[j:] = series_recurrence(a[None, j:], u[None, j:], np.zeros(1))[0]
-        i = j + int(np.argmax(y[j:] < 0.0))
+        j = int(positive[nxt])
+        y[i:j] = 0.0  # a·0 + u ≤ 0 keeps it at 0
+        start, width, before = j, 64, np.zeros(1)
+        while True:
+            stop = min(length, start + width)
+            part = series_recurrence(a[None, start:stop], u[None, start:stop], before)[0]
+            below = np.flatnonzero(part < 0.0)
+            if len(below):
+                y[start : start + int(below[0])] = part[: int(below[0])]
+                i = start + int(below[0])
+                break
+            y[start:stop] = part
+            if stop == length:
+                return
+            start, width, before = stop, 2 * width, part[-1:]
 
 
 def lag_weights(tau_s: F, h: float, n: int) -> tuple[F, F]:
