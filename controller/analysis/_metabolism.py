@@ -175,7 +175,7 @@ def _blank_partner(blanks: pd.DataFrame, row: pd.Series) -> int | None:
     lo = np.maximum(same["fit_start_s"].to_numpy(float), row["fit_start_s"])
     hi = np.minimum(same["fit_end_s"].to_numpy(float), row["fit_end_s"])
     overlap = hi - lo
-    if np.nanmax(overlap) > 0:
+    if np.isfinite(overlap).any() and np.nanmax(overlap) > 0:
         return int(same.index[int(np.nanargmax(overlap))])
     phase = same[same["phase"] == row["phase"]]
     if phase.empty:

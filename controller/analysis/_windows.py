@@ -8,6 +8,8 @@ Rules of this module
   ``[start_s + settle_s, end_s)``, the sample says the incubation was ``closed`` and its O2
   is a number. Readings before the settling time, after the chamber opened again, or taken
   while flushing are never fitted.
+- A window's phase is the protocol phase of its chamber's first sample inside it (settling
+  or not), so even a window with nothing to fit is counted in its phase.
 - Pure: frames in, frames out; the run log is read elsewhere (:mod:`._log`).
 """
 
@@ -100,6 +102,8 @@ class WindowAccumulator:
             idx = np.flatnonzero(chambers == chamber)
             idx = idx[np.argsort(self._fit_start[idx], kind="stable")]
             self._by_chamber[chamber] = (idx, self._fit_start[idx], self._end[idx])
+        self._start = start
+        self._unphased = size
 
     def update(self, samples: pd.DataFrame) -> None:
         """Add a chunk of samples (rows in time order within each chamber).
@@ -122,6 +126,8 @@ class WindowAccumulator:
             found = self._by_chamber.get(chamber)
             if found is None:
                 continue
+            if self._unphased:
+                self._note_phases(samples, rows, found[0])
             rows = rows[usable[rows]]
             if len(rows) == 0:
                 continue
@@ -136,6 +142,27 @@ class WindowAccumulator:
         if picked_rows:
             self._add(samples, np.concatenate(picked_rows), np.concatenate(picked_windows))
 
+    def _note_phases(
+        self, samples: pd.DataFrame, rows: npt.NDArray[np.intp], ids: npt.NDArray[np.intp]
+    ) -> None:
+        """Give windows still without a phase the phase of their first sample (any state)."""
+        t = samples["run_s"].to_numpy(dtype=float)[rows]
+        starts = self._start[ids]
+        k = np.searchsorted(starts, t, side="right") - 1
+        inside = k >= 0
+        inside[inside] &= t[inside] < self._end[ids[k[inside]]]
+        if not inside.any():
+            return
+        win = ids[k[inside]]
+        firsts, first_pos = np.unique(win, return_index=True)
+        if all(self._phase[w] is not None for w in firsts):
+            return
+        codes, names = pd.factorize(samples["phase"])
+        for w, row in zip(firsts, rows[inside][first_pos], strict=True):
+            if self._phase[w] is None and codes[row] >= 0:
+                self._phase[w] = str(names[codes[row]])
+                self._unphased -= 1
+
     def _add(
         self, samples: pd.DataFrame, rows: npt.NDArray[np.intp], win: npt.NDArray[np.intp]
     ) -> None:
@@ -145,11 +172,6 @@ class WindowAccumulator:
         firsts, first_pos = np.unique(win, return_index=True)
         fresh = np.isnan(self._y0[firsts])
         self._y0[firsts[fresh]] = y[first_pos[fresh]]
-        if any(self._phase[w] is None for w in firsts):
-            codes, names = pd.factorize(samples["phase"])
-            for w, row in zip(firsts, rows[first_pos], strict=True):
-                if self._phase[w] is None and codes[row] >= 0:
-                    self._phase[w] = str(names[codes[row]])
         self._sums.add(win, (t - self._mid[win]) / 3600.0, y - self._y0[win])
         np.fmin.at(self._first, win, t)
         np.fmax.at(self._last, win, t)

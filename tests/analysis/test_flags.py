@@ -55,6 +55,8 @@ def test_a_wider_band_and_a_longer_settling_change_the_verdicts(flag_log: FlagLo
     long_settle = analyze_log(flag_log.path, AnalysisSettings(settle_s=50 * 60.0))
     assert long_settle.windows.iloc[0]["flags"] == "no_data"  # the 45 min window is all settling
     assert long_settle.windows.iloc[0]["n"] == 0
+    assert long_settle.windows.iloc[0]["phase"] == "hot"  # still counted in its phase
+    assert long_settle.quality.iloc[0]["windows"] == 4
 
 
 @pytest.mark.parametrize(
