@@ -62,7 +62,8 @@ def register(sub: Any) -> None:
         metavar="FILE",
         type=Path,
         default=None,
-        help="write the windows table to FILE and the other tables beside it as FILE-<table>.csv",
+        help="write the windows table to FILE (e.g. run.csv) and the other tables beside it "
+        "(run-quality.csv, run-temperature-fits.csv, ...)",
     )
     parser.add_argument(
         "--plots", metavar="DIR", type=Path, default=None, help="write the figures as PNG"
