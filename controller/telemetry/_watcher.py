@@ -219,7 +219,7 @@ class TelemetryWatcher:
     # ------------------------------------------------------------------ consuming
     async def __aenter__(self) -> Self:
         """Start watching (connecting in the background)."""
-        if self._task is not None:
+        if self._task is not None and not self._task.done():
             raise RuntimeError("this watcher is already running")
         self._task = asyncio.get_running_loop().create_task(self.run(), name="telemetry-watch")
         return self
@@ -231,25 +231,27 @@ class TelemetryWatcher:
         tb: TracebackType | None,
     ) -> None:
         """Stop watching and disconnect."""
-        task, self._task = self._task, None
+        task = self._task
         if task is None:
             return
         task.cancel()
-        try:
-            await task
-        except asyncio.CancelledError:
-            current = asyncio.current_task()
-            if current is not None and current.cancelling():
-                raise
+        await asyncio.wait({task})  # raises only if this task itself is cancelled meanwhile
+        if not task.cancelled() and task.exception() is not None:
+            raise task.exception()  # type: ignore[misc]
 
     def __aiter__(self) -> Self:
         return self
 
     async def __anext__(self) -> TelemetryUpdate:
-        """The next update, waiting for one."""
+        """The next update, waiting for one; the iteration ends when watching stopped."""
         while not self._pending:
-            if self._task is None:
+            task = self._task
+            if task is None:
                 raise RuntimeError("use 'async with watcher:' (or run watcher.run()) first")
+            if task.done():
+                if not task.cancelled() and task.exception() is not None:
+                    raise RuntimeFailure(f"watching stopped: {task.exception()!r}")
+                raise StopAsyncIteration
             self._ready.clear()
             await self._ready.wait()
         return self._pending.popleft()
@@ -275,8 +277,15 @@ class TelemetryWatcher:
     # ------------------------------------------------------------------ connection
     async def run(self) -> None:
         """Connect, subscribe and queue updates until cancelled, reconnecting after losses."""
-        if self._task is None:
+        if self._task is None or self._task.done():
             self._task = asyncio.current_task()
+        try:
+            await self._watch()
+        finally:
+            self._ready.set()  # wake a consumer, which then sees that watching stopped
+
+    async def _watch(self) -> None:
+        self._last_report = None
         delay = self.reconnect_min_s
         while True:
             raise_if_cancelling()

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 from controller.clock import RealClock
 from controller.storage import AlarmRecord, EventKind, EventRecord, SampleRow
 from controller.telemetry import (
@@ -77,3 +79,18 @@ async def test_records_reach_the_watcher_unchanged_and_status_follows_the_run(
             lambda u: u.status if isinstance(u, StatusUpdate) and not u.status.online else None,
         )
         assert farewell.state is ControllerState.FINISHED
+
+
+async def test_iteration_ends_when_the_watch_stops_and_a_watch_can_start_again(
+    broker: Broker,
+) -> None:
+    watcher = TelemetryWatcher(broker.url(), reconnect_min_s=0.05)
+    with pytest.raises(RuntimeError, match="async with"):
+        await anext(watcher)
+    async with watcher:
+        await connected(watcher)
+        assert watcher.connected
+    assert not watcher.connected
+    assert [u async for u in watcher] == []  # stopped: nothing more, no waiting
+    async with watcher:  # the same watcher may watch again
+        await connected(watcher)
