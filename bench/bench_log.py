@@ -8,9 +8,11 @@ Each variant runs several times alternately and the best time counts, which damp
 a shared machine. Then reads the samples back through :class:`RunLogReader` and compares with a
 bare ``fetchall`` of the same columns.
 
-Goal (issue 4): writer rate ≥ 0.5 × bare rate.
+Goal (issue 4): writer rate ≥ 0.5 × bare rate, also printed as a ``RESULT:`` line for
+``bench/run``.
 
-Usage: ``python bench/bench_log.py [--ticks 1000] [--chambers 64] [--repeat 3]``
+Usage: ``python bench/bench_log.py [--ticks 1000] [--chambers 64] [--repeat 3] [--quick]``
+(``--quick``: 300 ticks, best of 2).
 """
 
 from __future__ import annotations
@@ -143,7 +145,10 @@ def main() -> None:
     parser.add_argument("--commit-interval-s", type=float, default=1.0, help="s")
     parser.add_argument("--repeat", type=int, default=3, help="runs per variant; best counts")
     parser.add_argument("--durable", action="store_true", help="synchronous=FULL in both")
+    parser.add_argument("--quick", action="store_true", help="300 ticks, best of 2")
     args = parser.parse_args()
+    if args.quick:
+        args.ticks, args.repeat = min(args.ticks, 300), min(args.repeat, 2)
 
     meta = _meta(args.chambers)
     ticks = _rows(args.ticks, args.chambers, args.tick_s)
@@ -202,6 +207,10 @@ def main() -> None:
         print(f"  samples(time, temperature_c)  {n_rows / t_two:12,.0f} rows/s")
         print(f"  bare fetchall, all columns    {n_rows / t_bare:12,.0f} rows/s")
         print(f"  ratio reader/bare (all)       {t_bare / t_all:12.2f}")
+        print(
+            f"RESULT: run-log write rate / bare executemany | {ratio:.2f} | >= {GOAL_RATIO} | "
+            f"{n_rows} rows, {args.chambers} chambers, best of {args.repeat}"
+        )
 
 
 def _timed(fn: Callable[[], object]) -> float:

@@ -13,7 +13,12 @@ tick, and whether the goal (7 days in at most 30 s of wall time) is met. With
 simulated rack (physics and sensor reads), the loop's decisions (interlocks, PID, lamps,
 pumps), the run-log writes, and the rest (asyncio scheduling, building log rows).
 
-Run: ``/work/venv/bin/python bench/bench_run.py [--periods 60,10] [--breakdown]``.
+Each period also gives a ``RESULT:`` line for ``bench/run`` (wall time against the 30 s
+goal, with the simulated/wall ratio as a note). With ``--quick`` the protocol is cut to
+6 h + 1 d + 6 h (the storm shortened to 12 h) and the 7-day wall time is estimated from its
+wall time per tick; the line says so.
+
+Run: ``/work/venv/bin/python bench/bench_run.py [--periods 60,10] [--breakdown] [--quick]``.
 """
 
 from __future__ import annotations
@@ -40,10 +45,23 @@ DAYS = 7
 GOAL_WALL_S = 30.0
 
 
-def seven_day_protocol(folder: Path) -> Path:
-    """Write the storm example cut to 1 d + 5 d + 1 d; return its path."""
+def seven_day_protocol(folder: Path, quick: bool = False) -> Path:
+    """Write the storm example cut to 1 d + 5 d + 1 d (quick: 6 h + 1 d + 6 h with a 12 h
+    storm); return its path."""
     text = (ROOT / "protocols" / "storm.toml").read_text(encoding="utf-8")
-    durations = iter(['"1d"', '"5d"', '"1d"'])
+    durations = iter(['"6h"', '"1d"', '"6h"'] if quick else ['"1d"', '"5d"', '"1d"'])
+    if quick:
+        head, sep, events = text.partition("[[events]]")
+        changes = (
+            (r'^offset = "[^"]+"$', 'offset = "4h"'),
+            (r'^duration = "[^"]+"$', 'duration = "12h"'),
+            (r'^at = "storm\+[^"]+"$', 'at = "storm+12h"'),  # the sampling date
+        )
+        for pattern, replacement in changes:
+            events, n = re.subn(pattern, replacement, events, count=1, flags=re.M)
+            if not sep or n != 1:
+                raise SystemExit("protocols/storm.toml has changed shape; adapt --quick")
+        text = head + sep + events
 
     def phase(match: re.Match[str]) -> str:
         return f"{match.group(1)}duration = {next(durations)}"
@@ -51,7 +69,7 @@ def seven_day_protocol(folder: Path) -> Path:
     text, n = re.subn(r'(\[\[phases\]\]\nname = "[^"]+"\n)duration = "[^"]+"', phase, text)
     if n != 3:
         raise SystemExit("protocols/storm.toml no longer has three phases; adapt the bench")
-    path = folder / "storm-7d.toml"
+    path = folder / ("storm-quick.toml" if quick else "storm-7d.toml")
     path.write_text(text, encoding="utf-8")
     return path
 
@@ -121,14 +139,18 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--periods", default="60", help="tick periods in s, comma-separated")
     parser.add_argument("--breakdown", action="store_true", help="also split the wall time")
+    parser.add_argument(
+        "--quick", action="store_true", help="run 1.5 days and estimate the 7-day wall time"
+    )
     args = parser.parse_args()
     periods = [float(p) for p in args.periods.split(",")]
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        protocol = seven_day_protocol(folder)
-        print(
-            f"{DAYS}-day protocol (storm example, 1 d + 5 d + 1 d), 8 chambers, --sim --speed max"
-        )
+        protocol = seven_day_protocol(folder, args.quick)
+        cut = "6 h + 1 d + 6 h, storm 12 h" if args.quick else "1 d + 5 d + 1 d"
+        span = "1.5-day" if args.quick else f"{DAYS}-day"
+        print(f"{span} protocol (storm example, {cut}), 8 chambers, --sim --speed max")
+        results: list[str] = []
         header = ("tick", "ticks", "rows", "wall s", "sim/wall", "ms/tick")
         widths = (6, 7, 8, 8, 9, 8)
         print(" ".join(f"{h:>{w}}" for h, w in zip(header, widths, strict=True)) + "  goal")
@@ -140,13 +162,24 @@ def main() -> None:
             assert info.end is not None, "the run did not finish"
             sim_s = info.end.end_t_s
             ticks = info.samples // 8
-            verdict = "met" if wall_s <= GOAL_WALL_S else f"missed (> {GOAL_WALL_S:g} s)"
+            week_s = wall_s * DAYS * 86400.0 / sim_s if args.quick else wall_s
+            verdict = "met" if week_s <= GOAL_WALL_S else f"missed (> {GOAL_WALL_S:g} s)"
+            if args.quick:
+                verdict += f"; {DAYS} d estimated at {week_s:.1f} s"
             print(
                 f"{period_s:>5g}s {ticks:>7} {info.samples:>8} {wall_s:>8.1f} "
                 f"{sim_s / wall_s:>9.0f} {1000 * wall_s / ticks:>8.2f}  {verdict}"
             )
+            results.append(
+                f"RESULT: {DAYS}-day 8-chamber run wall time, {period_s:g} s tick"
+                + (f" (estimated from {sim_s / 86400.0:g} d)" if args.quick else "")
+                + f" | {week_s:.1f} s | <= {GOAL_WALL_S:g} s | {sim_s / wall_s:.0f}x "
+                "simulated/wall, control and logging included"
+            )
         if args.breakdown:
             breakdown(protocol, folder / "breakdown.sqlite", periods[0])
+    for line in results:
+        print(line)
 
 
 if __name__ == "__main__":
