@@ -33,7 +33,7 @@ F = NDArray[np.float64]
 I = NDArray[np.intp]  # noqa: E741
 Line = list[tuple[float, float, float]]
 
-CHUNK = 8192
+CHUNK = 16384
 """Most sub-steps integrated in one go, dimensionless."""
 
 _EPS_S = 1e-9
@@ -174,8 +174,10 @@ def integrate_block(
     lit_s = np.repeat(lit_p, per_piece, axis=0)
     par_new_s = np.repeat(par_new_p, per_piece, axis=0)
     age = _ages(start.lamp_s, lit_s, span, _age_rate(p))
-    par_warm_s = par_new_s * age[:-1]
-    par_end_s = par_new_s * age[1:]  # the warm PAR at each segment end (for samples)
+    # chamber-major per-segment arrays (N, S): the chunks read contiguous rows
+    par_warm_s = np.ascontiguousarray((par_new_s * age[:-1]).T)
+    par_end_s = np.ascontiguousarray((par_new_s * age[1:]).T)  # warm PAR at segment ends
+    lit_rows = np.ascontiguousarray(lit_s.T)
     flow_s = np.repeat(flow_run, per_piece)  # which run of constant flows each segment is in
     sample_s = np.full(len(span), -1, dtype=np.intp)
     sample_s[seg.last] = sample_to
@@ -185,10 +187,11 @@ def integrate_block(
     heat = np.zeros((2, m_nodes))
     excess = np.zeros(m_nodes)
     flush_loss = np.zeros(m_nodes)
+    log_scale = bio.log_scale(start.volume_l)
     for s0, s1 in _chunks(seg.n):
         sums = _chunk(
             p, saturation, bio, start, seg, s0, s1, times, heater, chiller, arrival_at,
-            lit_s, par_warm_s, par_end_s, flows, flow_s, sample_s, out, state,
+            lit_rows, par_warm_s, par_end_s, flows, flow_s, sample_s, log_scale, out, state,
         )  # fmt: skip
         heat += sums[0]
         excess += sums[1]
@@ -451,12 +454,13 @@ def _chunk(
     heater: list[F],
     chiller: list[F],
     arrival_at: list[I],
-    lit_s: F,
+    lit_s: F,  # (N, S) from here on
     par_warm_s: F,
     par_end_s: F,
     flows: F,
     flow_s: I,
     sample_s: I,
+    log_scale: F,
     out: F,
     state: list[F],
 ) -> tuple[F, F, F]:
@@ -472,7 +476,6 @@ def _chunk(
     co = _coefficients(p, start, seg.h[s0:s1], flows, flow_s[s0:s1], n)
     node_of = p.node_of_chamber
     m_nodes = len(times)
-    chambers = len(node_of)
 
     # heater and chiller power felt in each sub-step (the delay lines), and its energy
     net = np.empty((m_nodes, length))
@@ -486,53 +489,61 @@ def _chunk(
         else:
             heat[:, j] = (float(np.dot(hw, co.h[0])), float(np.dot(cw, co.h[0])))
 
-    # thermal nodes: T_k = a·T_(k−1) + (1 − a)·T∞_k
+    # thermal nodes: T_k = a·T_(k−1) + (1 − a)·T∞_k, and the heat that left them
     t_inf = net
     t_inf *= co.inv_g
     t_inf += co.t_base_c
-    temp_end = series_recurrence(co.keep_t, t_inf * co.fresh_t, state[0])
-    temp_start = _shift(state[0], temp_end)
-    transient = temp_start - t_inf
-    transient *= co.transient_s
-    t_inf -= p.room_temperature_c
-    t_inf *= co.h
-    t_inf += transient  # ∫(T − T_room)dt per sub-step
-    excess = t_inf.sum(axis=1)
-    t_inf += (p.room_temperature_c - p.inflow_temperature_c) * co.h  # now ∫(T − T_in)dt
-    t_inf *= co.g_flush
-    flush_loss = t_inf.sum(axis=1)
-    ch_start = temp_start[node_of]
+    temp_end = series_recurrence(co.keep_t, t_inf, state[0], b0=co.fresh_t)
+    if co.h.shape[1] == 1:  # one sub-step length and flow: sums first, then coefficients
+        sum_inf = t_inf.sum(axis=1)
+        sum_start = state[0] + temp_end.sum(axis=1) - temp_end[:, -1]
+        h = float(co.h[0, 0])
+        excess = (sum_inf - length * p.room_temperature_c) * h
+        excess += (sum_start - sum_inf) * co.transient_s[:, 0]
+        drift = (p.room_temperature_c - p.inflow_temperature_c) * h * length
+        flush_loss = co.g_flush[:, 0] * (excess + drift)
+    else:
+        transient = _shift(state[0], temp_end)
+        transient -= t_inf
+        transient *= co.transient_s
+        t_inf -= p.room_temperature_c
+        t_inf *= co.h
+        t_inf += transient  # ∫(T − T_room)dt per sub-step
+        excess = t_inf.sum(axis=1)
+        t_inf += (p.room_temperature_c - p.inflow_temperature_c) * co.h  # now ∫(T − T_in)dt
+        t_inf *= co.g_flush
+        flush_loss = t_inf.sum(axis=1)
     ch_end = temp_end[node_of]
+    ch_start = _shift(state[0][node_of], ch_end)
 
-    # lamps: warm-up and PAR; light limitation per segment where the lamp is settled
-    lit_seg = lit_s[s0:s1].T  # (N, S)
+    # lamps: warm-up and light limitation (per segment where the lamp is settled)
+    lit_seg = lit_s[:, s0:s1]  # (N, S)
     warm0 = state[4]
     settled = (lit_seg == warm0[:, None]).all(axis=1) | (p.warmup_tau_s <= 0.0)
     cold = p.cold_output_frac[:, None]
     glow_seg = cold + (1.0 - cold) * lit_seg
-    light = np.repeat(bio.light(par_warm_s[s0:s1].T * glow_seg), n, axis=1)
-    warm_end = np.repeat(lit_seg, n, axis=1)
+    light = bio.light(par_warm_s[:, s0:s1] * glow_seg)
+    if length != s1 - s0:
+        light = np.repeat(light, n, axis=1)
     moving = np.flatnonzero(~settled)
+    warm_end: F | None = None
     if len(moving):
+        warm_end = np.repeat(lit_seg, n, axis=1)
         keep_w = co.warm_keep[moving]
-        lit_m = warm_end[moving]
-        warm_end[moving] = series_recurrence(keep_w, (1.0 - keep_w) * lit_m, warm0[moving])
+        warm_end[moving] = series_recurrence(
+            keep_w, warm_end[moving], warm0[moving], b0=1.0 - keep_w
+        )
         glow = _shift(warm0[moving], warm_end[moving])
         glow *= 1.0 - cold[moving]
         glow += cold[moving]
-        glow *= np.repeat(par_warm_s[s0:s1].T[moving], n, axis=1)
+        glow *= np.repeat(par_warm_s[moving, s0:s1], n, axis=1)
         light[moving] = bio.light(glow, moving)
 
     # community O2: dC/dt = (GPP − R)·A/V − k·(C − C_sat), held over each sub-step
     inv = ch_start + ZERO_CELSIUS_K
     np.divide(1.0, inv, out=inv)
-    full = bio.per_volume(start.volume_l)
-    weights = np.empty((chambers, 2, length))
-    weights[:, 0] = light
-    weights[:, 0] *= full[:, 0:1]
-    weights[:, 1] = full[:, 1:2]
-    terms = np.empty((chambers, 2, length))
-    bio.factors(inv, weights, terms)
+    terms = np.empty((len(node_of), 2, length))
+    bio.factors(inv, log_scale, light, terms)
     if bio.stressed:
         hottest = float(ch_start.max())
         if hottest > bio.lowest_threshold_c:
@@ -559,14 +570,14 @@ def _chunk(
             cols, at = slice(cols[0], cols[-1] + 1), slice(at[0], at[-1] + 1)  # type: ignore[assignment]
         out[0][:, cols] = ch_end[:, at]
         out[1][:, cols] = o2_end[:, at]
-        glow_end = warm_end[:, at].copy()
-        glow_end *= 1.0 - cold
+        glow_end = lit_seg[:, pick] if warm_end is None else warm_end[:, at]
+        glow_end = glow_end * (1.0 - cold)
         glow_end += cold
-        glow_end *= par_end_s[s0:s1][pick].T
+        glow_end *= par_end_s[:, s0:s1][:, pick]
         out[2][:, cols] = glow_end
         out[3][:, cols] = probe[:, at]
         out[4][:, cols] = optode[:, at]
-    warmth = warm_end[:, -1].copy()
+    warmth = lit_seg[:, -1].copy() if warm_end is None else warm_end[:, -1].copy()
     lit_end = lit_seg[:, -1]
     warmth = np.where(np.abs(warmth - lit_end) < _SETTLED, lit_end, warmth)  # as stepping does
     state[:] = [
@@ -633,11 +644,8 @@ def _shift(first: F, path: F) -> F:
 def _lag(coefficients: tuple[F, F], x0: F, x_end: F, y0: F) -> F:
     """First-order lag with its input linear over each sub-step (as lag_weights).
 
-    ``x0`` is the input before the first sub-step, ``x_end`` the input at each sub-step end.
+    y_k = a·y_(k−1) + (1 − c)·x_k − (a − c)·x_(k−1); ``x0`` is the input before the first
+    sub-step, ``x_end`` the input at each sub-step end.
     """
     a, c = coefficients
-    u = (1.0 - c) * x_end
-    back = a - c
-    u[:, 1:] -= (back if back.shape[1] == 1 else back[:, 1:]) * x_end[:, :-1]
-    u[:, 0] -= back[:, 0] * x0
-    return series_recurrence(a, u, y0)
+    return series_recurrence(a, x_end, y0, b0=1.0 - c, b1=c - a, u0=x0)

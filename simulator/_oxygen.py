@@ -83,8 +83,8 @@ def metabolism(par: F, temp_c: F, p: RackParams) -> tuple[F, F]:
 class Metabolism:
     """Net O2 source of every chamber's community, arranged for many sub-steps at once.
 
-    Arrays are chamber-major: temperatures ``(N, n)`` (n sub-steps, in kelvin), factors
-    ``(N, 2, n)`` with production in row 0 and respiration in row 1.
+    Arrays are chamber-major: temperatures ``(N, n)`` (n sub-steps), terms ``(N, 2, n)`` with
+    production in row 0 and respiration in row 1.
 
     Parameters
     ----------
@@ -95,10 +95,10 @@ class Metabolism:
     -----
     The same model as :func:`rates_from_log_arrhenius`, arranged for speed. With the 1 eV
     Arrhenius line ln A₁ = slope/T + intercept of :class:`ArrheniusLine`, a rate at T is
-    rate_ref·exp(E·intercept)·exp(E·slope/T); the first two factors, the light limitation
-    tanh(I/Ik) and the area-to-volume ratio A/(3600·V) are folded into per-chamber weights
-    (:meth:`weights`), so the net source is w_gpp·exp(E_gpp·slope/T) −
-    w_resp·exp(E_resp·slope/T), one ``exp`` over a stacked array.
+    rate_ref·exp(E·intercept)·exp(E·slope/T); the first factor, the second and the
+    area-to-volume ratio A/(3600·V) are folded, as a logarithm, into the exponent
+    (:meth:`log_scale`), so the net source is tanh(I/Ik)·exp(E_gpp·slope/T + ln w_gpp) −
+    exp(E_resp·slope/T + ln w_resp), one ``exp`` over a stacked array.
     """
 
     def __init__(self, p: RackParams) -> None:
@@ -167,35 +167,8 @@ class Metabolism:
         x += 1.0
         return x
 
-    def weights(self, light: F, volume_l: F) -> F:
-        """Weights w of production and respiration for :meth:`factors`.
-
-        Parameters
-        ----------
-        light
-            Light limitation (see :meth:`light`), dimensionless, shape ``(N,)`` or ``(N, n)``.
-        volume_l
-            Chamber water volume, L, shape ``(N,)``.
-
-        Returns
-        -------
-        numpy.ndarray
-            µmol L⁻¹ s⁻¹; shape ``(N, 2, 1)`` for one light level per chamber, ``(N, 2, n)``
-            for a light level per sub-step.
-        """
-        scale = self.per_volume(volume_l)
-        if np.ndim(light) == 1:
-            out = np.empty((len(volume_l), 2, 1))
-            np.multiply(light, scale[:, 0], out=out[:, 0, 0])
-            out[:, 1, 0] = scale[:, 1]
-            return out
-        out = np.empty((len(volume_l), 2, light.shape[1]))
-        np.multiply(light, scale[:, 0:1], out=out[:, 0])
-        out[:, 1] = scale[:, 1:2]
-        return out
-
-    def per_volume(self, volume_l: F) -> F:
-        """Weights at full light (tanh = 1), µmol L⁻¹ s⁻¹, shape ``(N, 2)``.
+    def log_scale(self, volume_l: F) -> F:
+        """ln of the production and respiration weights at full light, for :meth:`factors`.
 
         Parameters
         ----------
@@ -205,26 +178,33 @@ class Metabolism:
         Returns
         -------
         numpy.ndarray
-            rate_ref·exp(E·intercept)·A/(3600·V) of production and respiration.
+            ln(rate_ref·exp(E·intercept)·A/(3600·V)), ln(µmol L⁻¹ s⁻¹), shape ``(N, 2, 1)``;
+            −inf for a rate of 0 (its term is then exactly 0).
         """
-        return np.asarray(self._scale / volume_l[:, None], dtype=float)
+        scale = self._scale / volume_l[:, None]
+        out = np.full(scale.shape, -np.inf)
+        np.log(scale, out=out, where=scale > 0.0)
+        return out[:, :, None]
 
-    def factors(self, inv_temp_k: F, weights: F, out: F) -> None:
+    def factors(self, inv_temp_k: F, log_scale: F, light: F, out: F) -> None:
         """Weighted production and respiration terms, in place.
 
         Parameters
         ----------
         inv_temp_k
             1/T of the water at each sub-step start, K⁻¹, shape ``(N, n)``.
-        weights
-            From :meth:`weights`, µmol L⁻¹ s⁻¹, shape ``(N, 2, 1)`` or ``(N, 2, n)``.
+        log_scale
+            From :meth:`log_scale`, shape ``(N, 2, 1)``.
+        light
+            Light limitation (see :meth:`light`), dimensionless, shape ``(N, 1)`` or ``(N, n)``.
         out
-            Receives w·exp(E·slope/T), µmol L⁻¹ s⁻¹, shape ``(N, 2, n)``; net source = row 0
-            − row 1 (before :meth:`stress`).
+            Receives exp(E·slope/T + ln w)·(light, 1), µmol L⁻¹ s⁻¹, shape ``(N, 2, n)``;
+            net source = row 0 − row 1 (before :meth:`stress`).
         """
         np.multiply(inv_temp_k[:, None, :], self._exponent3, out=out)
+        out += log_scale
         np.exp(out, out=out)
-        out *= weights
+        out[:, 0] *= light
 
     def stress(self, temp_c: F, terms: F, hottest_c: float) -> None:
         """Apply thermal stress to weighted terms, in place.

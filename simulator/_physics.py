@@ -126,8 +126,17 @@ def apply_floor(a: F, u: F, y0: F, out: F) -> None:
             out[k, col] = y
 
 
-def series_recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
-    """Solve y_k = a_k·y_(k−1) + u_k along the last axis, for many rows at once.
+def series_recurrence(
+    a: F,
+    u: F,
+    y0: F,
+    *,
+    floor: bool = False,
+    b0: F | None = None,
+    b1: F | None = None,
+    u0: F | None = None,
+) -> F:
+    """Solve y_k = a_k·y_(k−1) + b0_k·u_k + b1_k·u_(k−1) along the last axis, many rows at once.
 
     Parameters
     ----------
@@ -135,11 +144,16 @@ def series_recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
         Decay factor of each row and step, dimensionless, 0 ≤ a ≤ 1, shape ``(c, L)``, or
         ``(c, 1)`` for a factor constant along each row.
     u
-        Input of each step, in the unit of ``y``, shape ``(c, L)``.
+        Input of each step, shape ``(c, L)``.
     y0
         Value before the first step, shape ``(c,)``.
     floor
-        When True, y never goes below 0 (y_k = max(0, a_k·y_(k−1) + u_k)), exactly.
+        When True, y never goes below 0 (y_k = max(0, …)), exactly.
+    b0, b1
+        Weights of the present and the previous input, shape ``(c, 1)`` or ``(c, L)``; None
+        for b0 = 1 and b1 = 0 (then y_k = a_k·y_(k−1) + u_k).
+    u0
+        The input before the first step (for ``b1``), shape ``(c,)``.
 
     Returns
     -------
@@ -148,37 +162,65 @@ def series_recurrence(a: F, u: F, y0: F, *, floor: bool = False) -> F:
 
     Notes
     -----
-    Rows whose factor is constant are filtered with ``scipy.signal.lfilter`` (the recurrence
-    itself, y = u filtered by 1/(1 − a·z⁻¹), started from a·y_0). Other rows use
-    y_k = P_k·(y_0 + Σ_(j≤k) u_j/P_j) with P_k = Π_(j≤k) a_j, in chunks along which −ln P
-    stays below 500 (a step that alone exceeds it is taken directly). The floor is exact:
-    from the first step that goes negative, y stays 0 while u ≤ 0 and the recurrence
-    restarts from 0 at the next positive input.
+    Rows whose coefficients are constant are filtered with ``scipy.signal.lfilter`` (the
+    recurrence itself: u filtered by (b0 + b1·z⁻¹)/(1 − a·z⁻¹), its state started from
+    a·y_0 + b1·u_0), one row per call, which is lfilter's fastest path. Other rows use
+    y_k = P_k·(y_0 + Σ_(j≤k) v_j/P_j) with P_k = Π_(j≤k) a_j and v the weighted inputs, in
+    chunks along which −ln P stays below 500 (a step that alone exceeds it is taken
+    directly). The floor is exact: from the first step that goes negative, y stays 0 while
+    the input is ≤ 0 and the recurrence restarts from 0 at the next positive input.
     """
     rows, length = u.shape
     out = np.empty((rows, length))
     if length == 0:
         return out
     y0 = np.asarray(y0, dtype=float)
-    if a.shape[1] == 1:
-        constant = np.ones(rows, dtype=bool)
-        factor = a[:, 0]
-    else:
-        constant = (a == a[:, :1]).all(axis=1)
-        factor = a[:, 0]
+    weighted = b0 is not None or b1 is not None
+    if weighted:
+        b0 = np.ones((rows, 1)) if b0 is None else b0
+        b1 = np.zeros((rows, 1)) if b1 is None else b1
+        x0 = np.zeros(rows) if u0 is None else np.asarray(u0, dtype=float)
+    constant = _constant_rows(a)
+    if weighted:
+        constant &= _constant_rows(b0) & _constant_rows(b1)  # type: ignore[arg-type]
     for r in np.flatnonzero(constant):  # one row at a time: lfilter's 1-D path is fastest
-        value = float(factor[r])
-        out[r] = lfilter(_ONE, [1.0, -value], u[r], zi=[value * float(y0[r])])[0]
+        value = float(a[r, 0])
+        if weighted:
+            first, second = float(b0[r, 0]), float(b1[r, 0])  # type: ignore[index]
+            state = [value * float(y0[r]) + second * float(x0[r])]
+            out[r] = lfilter([first, second], [1.0, -value], u[r], zi=state)[0]
+        else:
+            out[r] = lfilter(_ONE, [1.0, -value], u[r], zi=[value * float(y0[r])])[0]
     varying = np.flatnonzero(~constant)
+    if len(varying) or floor:
+        inputs = _weighted(u, b0, b1, x0) if weighted else u
     if len(varying):
-        a_v = a[varying]
+        a_v = np.broadcast_to(a, u.shape)[varying]
         with np.errstate(divide="ignore"):
             rate = -np.log(a_v)
-        out[varying] = _chunked_series(a_v, rate, u[varying], y0[varying])
+        out[varying] = _chunked_series(a_v, rate, inputs[varying], y0[varying])
     if floor:
         for r in np.flatnonzero(out.min(axis=1) < 0.0):
-            _floor_row(np.broadcast_to(a[r], (length,)), u[r], out[r])
+            _floor_row(np.broadcast_to(a[r], (length,)), inputs[r], out[r])
     return out
+
+
+def _constant_rows(x: F) -> NDArray[np.bool_]:
+    """Rows of ``x`` (shape ``(c, 1)`` or ``(c, L)``) whose every value is the first."""
+    if x.shape[1] == 1:
+        return np.ones(x.shape[0], dtype=bool)
+    return np.asarray((x == x[:, :1]).all(axis=1))
+
+
+def _weighted(u: F, b0: F | None, b1: F | None, u0: F) -> F:
+    """b0_k·u_k + b1_k·u_(k−1), with u_(−1) = u0."""
+    out = u * b0
+    previous = np.empty_like(u)
+    previous[:, 0] = u0
+    previous[:, 1:] = u[:, :-1]
+    previous *= b1
+    out += previous
+    return np.asarray(out, dtype=float)
 
 
 def _chunked_series(a: F, rate: F, u: F, y0: F) -> F:

@@ -1,11 +1,17 @@
 """The simulated rack: state of every chamber, stepped by whoever owns time.
 
-Rule: the rack never reads a clock and never sleeps; ``advance(dt_s)`` is the only way time
-passes. ``advance`` cuts the interval at every fault boundary (and at a heater or chiller
-change that arrives between sub-step boundaries), so pumps, lamps and faults are constant
-within each segment, then steps the segment in sub-steps no longer than ``physics_step_s``
-with the pure update :func:`simulator._step.step_segment`. Readings draw noise from one
-seeded generator per rack.
+Rule: the rack never reads a clock and never sleeps; ``advance(dt_s)`` (or
+``run_open_loop``, a whole drive program at once, see :mod:`simulator._openloop`) is the
+only way time passes. ``advance`` cuts the interval at every fault boundary (and at a heater
+or chiller change that arrives between sub-step boundaries), so pumps, lamps and faults are
+constant within each segment, then steps the segment in sub-steps no longer than
+``physics_step_s`` with :class:`simulator._step.Stepper`. Readings draw noise from one seeded
+generator per rack.
+
+Speed: a call costs a few dozen array operations whatever its length; what does not change
+between calls (coefficient tables, light weights, effective drives, fault state) is cached,
+and state that only the truth needs (lamp hours, heater energy, flushing loss) is kept in a
+form that costs nothing per step.
 
 Shared baths: the heater and chiller of a bath node are driven by the bath's first chamber
 (in rig order); heater and chiller commands given to the other chambers of the bath are kept

@@ -159,7 +159,8 @@ class SaturationTable:
 
     Notes
     -----
-    One ``numpy.interp`` call serves every chamber: the table of the g-th distinct salinity
+    Looked up with chamber-major temperatures (:meth:`rows`). One ``numpy.interp`` call serves
+    every chamber: the table of the g-th distinct salinity
     is laid out on the temperature axis shifted by g·1000 °C, padded with its end values out
     to ±495 °C around its block, and each chamber's temperatures are shifted by its block's
     offset (after clamping to ±490 °C) before the lookup.
@@ -180,14 +181,6 @@ class SaturationTable:
         self._single = len(sal) == 1
         self._offset: F = np.asarray(sal_of, dtype=float).reshape(-1) * _BLOCK_C
 
-    def __call__(self, temp_c: F) -> F:
-        """Saturation at ``temp_c`` (°C, shape ``(..., N)``), µmol L⁻¹."""
-        if self._single:
-            return np.interp(temp_c, self._grid, self._values)
-        shifted = np.clip(temp_c, -_CLAMP_C, _CLAMP_C)
-        shifted += self._offset
-        return np.interp(shifted, self._grid, self._values)
-
     def rows(self, temp_c: F) -> F:
         """Saturation at chamber-major ``temp_c`` (°C, shape ``(N, n)``), µmol L⁻¹."""
         if self._single:
@@ -200,9 +193,10 @@ class SaturationTable:
 class ArrheniusLine:
     """ln A₁ = (1/k)(1/T_ref − 1/T), the 1 eV Arrhenius exponent, as a line in 1/T.
 
-    The integrator evaluates it as ln A₁ = slope·(1/T) + intercept per chamber, with the
-    slope and intercept taken from ``arrhenius_factor`` at two temperatures, which saves the
-    per-call validation of the science function on every sub-step.
+    The integrators evaluate it as ln A₁ = slope·(1/T) + intercept per chamber (scaled by each
+    activation energy, see :class:`simulator._oxygen.Metabolism`), with the slope and
+    intercept taken from ``arrhenius_factor`` at two temperatures, which saves the per-call
+    validation of the science function on every sub-step.
 
     Parameters
     ----------
@@ -219,7 +213,3 @@ class ArrheniusLine:
         """Slope of ln A₁ against 1/T, K eV⁻¹, shape ``(N,)``."""
         self.intercept: F = ln_cold - self.slope * inv_cold
         """ln A₁ extrapolated to 1/T = 0, eV⁻¹, shape ``(N,)``."""
-
-    def __call__(self, temp_c: F) -> F:
-        """ln A₁ at ``temp_c`` (°C, shape ``(..., N)``), eV⁻¹."""
-        return np.asarray(self.slope / (temp_c + ZERO_CELSIUS_K) + self.intercept, dtype=float)

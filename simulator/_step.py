@@ -169,10 +169,10 @@ class Stepper:
         self._warm_gain = 1.0 - p.cold_output_frac
         self._grids: dict[tuple[int, float], _Grid] = {}
         self._waters: dict[tuple[int, float, int], _Water] = {}
-        self._weights_key: tuple[object, ...] = (None, None, None)
-        self._weights: F = np.zeros((len(node_of), 2, 1))
-        self._light_glow: F = np.zeros(len(node_of))
-        self._full_light: F = np.zeros(len(node_of))
+        self._light_key: tuple[object, object] = (None, None)
+        self._light_now: F = np.zeros((len(node_of), 1))
+        self._scale_key: object = None
+        self._log_scale: F = np.zeros((len(node_of), 2, 1))
 
     # ------------------------------------------------------------------ segment
     def step(self, state: WaterState, drive: Drive, n: int, h: float) -> tuple[WaterState, F]:
@@ -217,10 +217,13 @@ class Stepper:
         starts = chambers[:, :-1]
         inv = np.add(starts, ZERO_CELSIUS_K)
         np.divide(1.0, inv, out=inv)
-        weights, warmth_end = self._light(state.warmth, drive, grid)
+        light, warmth_end = self._light(state.warmth, drive, grid)
         bio = self._bio
         terms = grid.terms
-        bio.factors(inv, weights, terms)
+        if self._scale_key is not drive.volume_l:
+            self._log_scale = bio.log_scale(drive.volume_l)
+            self._scale_key = drive.volume_l
+        bio.factors(inv, self._log_scale, light, terms)
         if bio.stressed:
             hottest = float(path.max())
             if hottest > bio.lowest_threshold_c:
@@ -269,7 +272,7 @@ class Stepper:
         ends[1] += np.vecdot(grid.optode_w[:, 1:], path)
 
     def _light(self, warmth: F, drive: Drive, grid: _Grid) -> tuple[F, F]:
-        """Production/respiration weights (``(N, 2, 1)`` or ``(N, 2, n)``) and end warmth.
+        """Light limitation tanh(I/Ik) (``(N, 1)``, or ``(N, n)`` while lamps warm) and end warmth.
 
         A settled lamp (warmth equal to ``lit``) hands ``lit`` itself on as its warmth, so
         that the next segment recognises it by identity.
@@ -277,21 +280,13 @@ class Stepper:
         lit = drive.lit
         if warmth is lit or (warmth == lit).all():
             # The rack replaces these arrays, never mutates them: identity says "unchanged".
-            par = drive.par_warm
-            seen_par, seen_lit, seen_volume = self._weights_key
-            same_water = seen_lit is lit and seen_volume is drive.volume_l
-            if same_water and seen_par is par:
-                return self._weights, lit
-            if not same_water:
-                self._light_glow = self._cold + self._warm_gain * lit
-                base = self._bio.per_volume(drive.volume_l)
-                self._weights = np.empty((len(lit), 2, 1))
-                self._weights[:, 1, 0] = base[:, 1]
-                self._full_light = base[:, 0]
-            light = self._bio.light(par * self._light_glow)
-            np.multiply(light, self._full_light, out=self._weights[:, 0, 0])
-            self._weights_key = (par, lit, drive.volume_l)
-            return self._weights, lit
+            seen_par, seen_lit = self._light_key
+            if seen_par is drive.par_warm and seen_lit is lit:
+                return self._light_now, lit
+            par = drive.par_warm * (self._cold + self._warm_gain * lit)
+            self._light_now = self._bio.light(par)[:, None]
+            self._light_key = (drive.par_warm, lit)
+            return self._light_now, lit
         path = (warmth - lit)[:, None] * grid.warm_decay
         path += lit[:, None]
         end = path[:, -1]
@@ -299,8 +294,8 @@ class Stepper:
         end = lit if settled.all() else np.where(settled, lit, end)
         glow = self._warm_gain[:, None] * path[:, :-1]
         glow += self._cold[:, None]
-        par = drive.par_warm[:, None] * glow
-        return self._bio.weights(self._bio.light(par), drive.volume_l), end
+        glow *= drive.par_warm[:, None]
+        return self._bio.light(glow), end
 
     # ------------------------------------------------------------------ caches
     def _grid(self, n: int, h: float) -> _Grid:
