@@ -12,6 +12,8 @@ Rules of this module
 
 from __future__ import annotations
 
+import math
+import time
 from typing import ClassVar
 
 import numpy as np
@@ -37,10 +39,14 @@ from ._plot import PlotData, PlotSeries, TracePlot, span_label
 from ._screens import ViewScreen
 from ._snapshot import ChamberState, RunMode, Snapshot, Trace
 
-__all__ = ["SPANS_S", "ChamberCard", "DetailScreen", "append_state", "plot_data"]
+__all__ = ["REPLAY_CHART_S", "SPANS_S", "ChamberCard", "DetailScreen", "append_state", "plot_data"]
 
 SPANS_S = (3600.0, 6 * 3600.0, 24 * 3600.0)
 """Chart spans the ``z`` key cycles through, s."""
+REPLAY_CHART_S = 0.25
+"""Least real time between chart redraws while a replay plays, s (frames come every 0.1 s;
+at 3600× a 6 h chart moves about a column per frame, so 4 redraws a second look smooth and
+cost less than half)."""
 
 
 def append_state(trace: Trace, state: ChamberState, keep_s: float) -> Trace:
@@ -196,6 +202,7 @@ class DetailScreen(ViewScreen):
         super().__init__()
         self._trace: Trace = Trace(chamber=chamber)
         self._loaded = False
+        self._drawn_at = -math.inf
         self.set_reactive(DetailScreen.chamber, chamber)
 
     @property
@@ -265,6 +272,10 @@ class DetailScreen(ViewScreen):
             return
         if snapshot.run.mode is RunMode.REPLAY:
             self._trace = self.squall.source.history(self.chamber, self.span_s)
+            now = time.monotonic()
+            if snapshot.run.playing and now - self._drawn_at < REPLAY_CHART_S:
+                return  # the card follows every frame; the charts a few times a second
+            self._drawn_at = now
         elif state is not None:
             self._trace = append_state(self._trace, state, self.span_s)
         self._redraw(snapshot.run.utc_s)
