@@ -1,10 +1,9 @@
 """The vectorised integrator of an open-loop block: many segments' sub-steps at once.
 
 Rule: a block is a stretch of time in which the faults do not change and nothing leaks, cut
-into pieces at the schedule's switch times. This module plans the sub-step grid exactly as
-:meth:`simulator.Rack.advance` would (pieces cut at 3600 sub-steps, and at dead-time arrivals
-that fall between sub-step boundaries), works out the heater and chiller power every
-sub-step feels (the delay lines), and integrates heat, light, O2 and the sensor lags over
+into pieces at the schedule's switch times. With the sub-step grid and the delay lines of
+:mod:`simulator._plan` (the cuts :meth:`simulator.Rack.advance` would make, the heater and
+chiller power every sub-step feels), this module integrates heat, light, O2 and the sensor lags over
 all sub-steps with :func:`simulator._physics.series_recurrence`, in chunks of at most
 ``CHUNK`` sub-steps to bound memory. The discretisation is the stepwise one (exact
 exponential steps, O2 source and saturation held at sub-step starts, first-order hold for
@@ -14,16 +13,16 @@ the sensors), so the results agree with stepping to rounding. Arrays are chamber
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
 
-from simulator._actuators import Effective, substeps
+from simulator._actuators import Effective
 from simulator._oxygen import Metabolism
 from simulator._params import RackParams
 from simulator._physics import lamp_curve, pump_fraction, series_recurrence
+from simulator._plan import Segments, arrival_series, chunks, plan, powers, runs
 from simulator._science import ZERO_CELSIUS_K, SaturationTable
 from simulator._step import WaterState
 
@@ -37,8 +36,6 @@ CHUNK = 16384
 """Most sub-steps integrated in one go, dimensionless."""
 
 _EPS_S = 1e-9
-_GRID_TOL = 1e-6
-_MAX_SUBSTEPS = 3600
 _SETTLED = 1e-9
 
 
@@ -107,16 +104,6 @@ class BlockEnd:
     lamp_s: F
 
 
-@dataclass(frozen=True, slots=True)
-class _Segments:
-    t0: F  # start, s
-    t1: F  # end, s
-    n: I  # sub-steps
-    h: F  # sub-step length, s
-    piece: I  # the piece each segment belongs to
-    last: NDArray[np.bool_]  # the segment ends its piece
-
-
 def integrate_block(
     p: RackParams,
     saturation: SaturationTable,
@@ -160,14 +147,14 @@ def integrate_block(
     BlockEnd
         The state at ``piece_t[-1]`` and what happened on the way.
     """
-    times, heater, chiller = _arrival_series(p, start, piece_t, eff, queued)
-    seg, arrival_at = _plan(p.physics_step_s, piece_t, times)
+    times, heater, chiller = arrival_series(p, start, piece_t, eff, queued)
+    seg, arrival_at = plan(p.physics_step_s, piece_t, times)
     per_piece = np.bincount(seg.piece, minlength=len(piece_t) - 1)
     lit_p = (eff.lamp_pct > 0.0).astype(float)
-    lamp_run = _runs(eff.lamp_pct)
+    lamp_run = runs(eff.lamp_pct)
     lamp_first = np.flatnonzero(np.diff(lamp_run, prepend=-1))
     par_new_p = lamp_curve(eff.lamp_pct[lamp_first], p.par_at_full, p.curve_shape)[lamp_run]
-    flow_run = _runs(eff.pump_pct)
+    flow_run = runs(eff.pump_pct)
     flow_first = np.flatnonzero(np.diff(flow_run, prepend=-1))
     flows = pump_fraction(eff.pump_pct[flow_first], p.dead_band_pct) * p.flush_at_full_l_s
     span = seg.n * seg.h
@@ -188,7 +175,7 @@ def integrate_block(
     excess = np.zeros(m_nodes)
     flush_loss = np.zeros(m_nodes)
     log_scale = bio.log_scale(start.volume_l)
-    for s0, s1 in _chunks(seg.n):
+    for s0, s1 in chunks(seg.n, CHUNK):
         sums = _chunk(
             p, saturation, bio, start, seg, s0, s1, times, heater, chiller, arrival_at,
             lit_rows, par_warm_s, par_end_s, flows, flow_s, sample_s, log_scale, out, state,
@@ -220,146 +207,6 @@ def integrate_block(
         span_s=float(span.sum()),
         lamp_s=start.lamp_s + span @ lit_s,
     )
-
-
-def _arrival_series(
-    p: RackParams, start: BlockStart, piece_t: F, eff: Effective, queued: NDArray[np.bool_]
-) -> tuple[list[F], list[F], list[F]]:
-    """Per node: times from which each heater/chiller power holds (first −inf), and powers."""
-    everywhere = bool(queued.all())
-    t0 = piece_t[:-1] if everywhere else piece_t[:-1][queued]
-    heat_w = eff.heater_pct.T * (p.heater_max_w / 100.0)[:, None]  # (M, P), rows contiguous
-    cold_w = eff.chiller_pct.T * (p.chiller_max_w / 100.0)[:, None]
-    if not everywhere:
-        heat_w, cold_w = heat_w[:, queued], cold_w[:, queued]
-    times: list[F] = []
-    heater: list[F] = []
-    chiller: list[F] = []
-    for j in range(len(p.node_names)):
-        h_new, c_new = heat_w[j], cold_w[j]
-        prev_h = np.concatenate(([start.sent_w[0, j]], h_new[:-1]))
-        prev_c = np.concatenate(([start.sent_w[1, j]], c_new[:-1]))
-        changed = (h_new != prev_h) | (c_new != prev_c)  # an unchanged power is not queued
-        arrive = t0[changed] + float(p.dead_time_s[j])
-        pending = start.lines[j]
-        if len(arrive):  # a change queued at the same moment replaces the pending one
-            pending = [entry for entry in pending if entry[0] != arrive[0]]
-        times.append(np.concatenate(([-math.inf], [e[0] for e in pending], arrive)))
-        heater.append(
-            np.concatenate(([start.water_w[0, j]], [e[1] for e in pending], h_new[changed]))
-        )
-        chiller.append(
-            np.concatenate(([start.water_w[1, j]], [e[2] for e in pending], c_new[changed]))
-        )
-    return times, heater, chiller
-
-
-def _plan(step_s: float, piece_t: F, times: list[F]) -> tuple[_Segments, list[I]]:
-    """Segments and sub-steps of every piece, as :meth:`simulator.Rack.advance` cuts them.
-
-    Also returns, per node, the index of the first sub-step that feels each arrival (from
-    ``times[j][1:]``): the first sub-step starting at or after it, within a millionth of a
-    sub-step.
-    """
-    longest = _MAX_SUBSTEPS * step_s
-    p0, p1 = piece_t[:-1], piece_t[1:]
-    count = np.maximum(1, np.ceil((p1 - p0 - _EPS_S) / longest)).astype(np.intp)
-    if (count == 1).all():
-        piece = np.arange(len(p0))
-        t0, t1 = p0, p1
-    else:
-        piece = np.repeat(np.arange(len(p0)), count)
-        first = np.cumsum(count) - count
-        t0 = p0[piece] + (np.arange(len(piece)) - first[piece]) * longest
-        t1 = np.minimum(t0 + longest, p1[piece])
-        t1[np.cumsum(count) - 1] = p1  # the last segment of a piece ends at the piece end
-    n = np.maximum(1, np.ceil((t1 - t0) / step_s - 1e-9)).astype(np.intp)
-    h = (t1 - t0) / n
-    arrive = np.concatenate([a[1:] for a in times])
-    s = np.searchsorted(t0, arrive, side="right") - 1
-    s_ok = np.maximum(s, 0)
-    inside = (s >= 0) & (arrive > t0[s_ok] + _EPS_S) & (arrive < t1[s_ok] - _EPS_S)
-    k = (arrive - t0[s_ok]) / h[s_ok]
-    off = inside & (np.abs(k - np.maximum(0.0, np.round(k))) > _GRID_TOL)
-    if off.any():  # rare: split those pieces as advance() would, one by one
-        seg = _replan(step_s, piece_t, np.unique(piece[s[off]]), np.sort(arrive))
-        return seg, _positions(seg, times)
-    last = np.zeros(len(piece), dtype=bool)
-    last[np.cumsum(count) - 1] = True
-    seg = _Segments(t0, t1, n, h, piece, last)
-    begin = np.cumsum(n) - n
-    at = np.where(s >= 0, begin[s_ok] + np.ceil(k - _GRID_TOL).astype(np.intp), 0)
-    split = np.cumsum([len(a) - 1 for a in times])[:-1]
-    return seg, np.split(at, split)
-
-
-def _positions(seg: _Segments, times: list[F]) -> list[I]:
-    """First sub-step feeling each arrival (see :func:`_plan`), per node."""
-    begin = np.cumsum(seg.n) - seg.n
-    out = []
-    for arrive in times:
-        s = np.maximum(np.searchsorted(seg.t0, arrive[1:], side="right") - 1, 0)
-        k = np.ceil((arrive[1:] - seg.t0[s]) / seg.h[s] - _GRID_TOL).astype(np.intp)
-        out.append(np.where(arrive[1:] >= seg.t0[0], begin[s] + k, 0))
-    return out
-
-
-def _replan(step_s: float, piece_t: F, odd: I, arrivals: F) -> _Segments:
-    """Plan all pieces, stepping those in ``odd`` with the stepwise rules in Python."""
-    rows: list[tuple[float, float, int, float, int, bool]] = []
-    longest = _MAX_SUBSTEPS * step_s
-    odd_set = set(odd.tolist())
-    for i in range(len(piece_t) - 1):
-        t, end = float(piece_t[i]), float(piece_t[i + 1])
-        cuts: list[tuple[float, float, int, float]] = []
-        while t < end - _EPS_S:
-            seg_end = min(end, t + longest)
-            n, h = substeps(seg_end - t, step_s)
-            if i in odd_set:
-                off = _first_off_grid(arrivals, t, seg_end, h)
-                while off is not None:
-                    seg_end = off
-                    n, h = substeps(seg_end - t, step_s)
-                    off = _first_off_grid(arrivals, t, seg_end, h)
-            cuts.append((t, seg_end, n, h))
-            t = seg_end
-        if not cuts:
-            n, h = substeps(end - float(piece_t[i]), step_s)
-            cuts.append((float(piece_t[i]), end, n, h))
-        cuts[-1] = (cuts[-1][0], end, cuts[-1][2], (end - cuts[-1][0]) / cuts[-1][2])
-        rows += [(a, b, n, h, i, q == len(cuts) - 1) for q, (a, b, n, h) in enumerate(cuts)]
-    return _Segments(
-        t0=np.array([r[0] for r in rows]),
-        t1=np.array([r[1] for r in rows]),
-        n=np.array([r[2] for r in rows], dtype=np.intp),
-        h=np.array([r[3] for r in rows]),
-        piece=np.array([r[4] for r in rows], dtype=np.intp),
-        last=np.array([r[5] for r in rows], dtype=bool),
-    )
-
-
-def _first_off_grid(arrivals: F, t0: float, t1: float, h: float) -> float | None:
-    """Earliest arrival in (t0, t1) that falls between the sub-step boundaries, s."""
-    lo = int(np.searchsorted(arrivals, t0 + _EPS_S, side="right"))
-    hi = int(np.searchsorted(arrivals, t1 - _EPS_S, side="left"))
-    for arrive in arrivals[lo:hi]:
-        k = (arrive - t0) / h
-        if abs(k - max(0, round(k))) > _GRID_TOL:
-            return float(arrive)
-    return None
-
-
-def _chunks(n: I) -> list[tuple[int, int]]:
-    """Runs of segments holding at most CHUNK sub-steps each (at least one segment)."""
-    total = np.cumsum(n)
-    out: list[tuple[int, int]] = []
-    s0 = 0
-    while s0 < len(n):
-        base = int(total[s0 - 1]) if s0 else 0
-        s1 = max(s0 + 1, int(np.searchsorted(total, base + CHUNK, side="right")))
-        out.append((s0, s1))
-        s0 = s1
-    return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -430,24 +277,12 @@ def _lag_coefficients(tau_s: F, h: F) -> tuple[F, F]:
     return np.exp(-ratio), -np.expm1(-ratio) / ratio
 
 
-def _powers(values: F, at: I, g0: int, g1: int) -> F:
-    """Power of one node in sub-steps g0..g1−1 of the block (its delay line), W.
-
-    ``values[0]`` holds before the first arrival; arrival i (``values[i + 1]``) is felt
-    from sub-step ``at[i]`` on.
-    """
-    lo = int(np.searchsorted(at, g0, side="right"))  # values[lo] holds at g0
-    hi = int(np.searchsorted(at, g1, side="left"))
-    counts = np.diff(np.concatenate(([g0], at[lo:hi], [g1])))
-    return np.repeat(values[lo : hi + 1], counts)
-
-
 def _chunk(
     p: RackParams,
     saturation: SaturationTable,
     bio: Metabolism,
     start: BlockStart,
-    seg: _Segments,
+    seg: Segments,
     s0: int,
     s1: int,
     times: list[F],
@@ -481,8 +316,8 @@ def _chunk(
     net = np.empty((m_nodes, length))
     heat = np.empty((2, m_nodes))
     for j in range(m_nodes):
-        hw = _powers(heater[j], arrival_at[j], g0, g0 + length)
-        cw = _powers(chiller[j], arrival_at[j], g0, g0 + length)
+        hw = powers(heater[j], arrival_at[j], g0, g0 + length)
+        cw = powers(chiller[j], arrival_at[j], g0, g0 + length)
         np.subtract(hw, cw, out=net[j])
         if co.h.shape[1] == 1:
             heat[:, j] = (float(hw.sum()) * float(co.h[0, 0]), float(cw.sum()) * float(co.h[0, 0]))
@@ -588,12 +423,6 @@ def _chunk(
         warmth,
     ]
     return heat, excess, flush_loss
-
-
-def _runs(rows: F) -> I:
-    """Index of the run of equal consecutive rows each row belongs to, shape ``(P,)``."""
-    changed = (rows[1:] != rows[:-1]).any(axis=1)
-    return np.concatenate(([0], np.cumsum(changed))).astype(np.intp)
 
 
 def _age_rate(p: RackParams) -> F:
