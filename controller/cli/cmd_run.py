@@ -77,7 +77,11 @@ def register(sub: Any) -> None:
             "Run a protocol on a rig: read sensors, check interlocks, follow the setpoints "
             "with PID loops, drive heaters, chillers, lamps and pumps, and log every tick "
             "to a run log (SQLite). With --sim the rig's chambers are simulated in this "
-            "process on a simulated clock."
+            "process on a simulated clock; without it the devices of the rig's [io] table "
+            "are driven in real time. --resume LOG continues an interrupted run where the "
+            "wall clock has got to, with the protocol and rig kept in the log. One "
+            "controller per log and per rig: a second one is refused (locks LOG.lock and, "
+            "on devices, RIG.lock next to the rig file)."
         ),
     )
     parser.add_argument(
