@@ -102,10 +102,17 @@ def command_channel(log: Path) -> CommandChannel:
     Returns
     -------
     CommandChannel
-        For now always read-only: the control socket (operator commands) is not part of
-        this squall yet, so hold, resume, abort, acknowledge and note are not offered.
+        A client of the run's control socket (``<log>.ctl/socket``) when a controller answers
+        there and lets this user command it; otherwise a read-only channel that says why, so
+        hold, resume, abort, acknowledge and note are offered only when they can work.
     """
-    return NoCommands(f"no control socket for {log.name}: this view is read only")
+    from controller.cli.cmd_ctl import ControlClient
+    from controller.runtime._ctl_wire import control_path
+
+    client = ControlClient(control_path(log))
+    if client.can_command:
+        return client
+    return NoCommands(f"{client.why_not}: this view is read only")
 
 
 def open_live(log: Path) -> LogSource:

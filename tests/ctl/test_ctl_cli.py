@@ -188,3 +188,24 @@ def test_the_client_without_a_controller_cannot_command_and_says_why(tmp_path: P
         ok=False,
         message=f"{client.path}: no controller running: no control socket here",
     )
+
+
+def test_watch_offers_commands_only_when_a_controller_answers(tmp_path: Path) -> None:
+    """The terminal view's channel: read-only without a controller, the socket client with one."""
+    import asyncio
+
+    from controller.cli.cmd_ctl import ControlClient
+    from controller.tui._launch import command_channel
+
+    log = tmp_path / "runs" / "x.sqlite"
+    log.parent.mkdir()
+    idle = command_channel(log)
+    assert not idle.can_command and "read only" in idle.why_not
+
+    target = FakeLoop()
+    with served(ControlServer(target, control_path(log))):
+        live = command_channel(log)
+        assert isinstance(live, ControlClient) and live.can_command
+        result = asyncio.run(live.hold())
+        assert result.ok
+    assert ("hold", ME) in target.calls
