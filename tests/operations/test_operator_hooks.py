@@ -213,19 +213,20 @@ def test_an_illegal_request_raises_is_audited_and_changes_nothing(
             k: v for k, v in after.items() if k != "utc"
         }
 
-    summary, _ = drive(run, at=[(605.0, attempt)])
-    assert summary.end_reason is RunEndReason.COMPLETED
-    assert summary.run_s == pytest.approx(2.5 * 3600.0)  # the protocol clock was untouched
+    summary, _ = drive(run, at=[(605.0, attempt), (900.0, lambda loop: loop.abort("dee"))])
+    assert summary.end_reason is RunEndReason.ABORTED  # (only to keep the run short)
     error = seen["error"]
     assert isinstance(error, SquallError) and error.command == command
     assert why in error.message and str(error).startswith(f"{command}: ")
     assert "\n" not in str(error)
     assert seen["same"]
     log = logged(run)
+    rows = log["samples"]
+    assert np.allclose(rows.elapsed_s, rows.t_s)  # the protocol clock was untouched
     audited = commands(log["audit"])
-    assert len(audited) == 1 and audited[0][1] == command
+    assert len(audited) == 2 and audited[0][1] == command and audited[1][1] == "abort"
     assert audited[0][0] == "dee" and audited[0][3].startswith("refused: ") and why in audited[0][3]
-    assert set(log["events"].kind.astype(str)) <= {"run_start", "phase_change", "run_stop"}
+    assert set(log["events"].kind.astype(str)) <= {"run_start", "phase_change", "abort"}
 
 
 def test_hold_twice_is_refused_and_the_first_hold_stands(tmp_path: Path) -> None:
@@ -244,10 +245,15 @@ def test_hold_twice_is_refused_and_the_first_hold_stands(tmp_path: Path) -> None
             (600.0, lambda loop: loop.hold("eve")),
             (700.0, hold_again),
             (800.0, lambda loop: loop.resume("eve")),
+            (900.0, lambda loop: loop.abort("eve")),  # (only to keep the run short)
         ],
     )
     assert [e.message for e in errors] == ["the run is held already"]
-    assert summary.run_s == pytest.approx(2.5 * 3600.0 + 200.0, abs=PERIOD_S)
+    assert summary.end_reason is RunEndReason.ABORTED
+    rows = logged(run)["samples"]
+    held = rows[(rows.t_s > 600.0) & (rows.t_s <= 800.0)]
+    assert len(held) == 20 and np.allclose(held.elapsed_s, 600.0)  # held from the first hold
+    assert rows.elapsed_s.iloc[-1] == pytest.approx(rows.t_s.iloc[-1] - 200.0)
 
 
 def test_ack_clears_a_latched_e_stop_and_notes_go_to_the_audit_trail(tmp_path: Path) -> None:
