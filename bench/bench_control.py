@@ -284,7 +284,7 @@ def main() -> None:
     )
     print(
         f"RESULT: 5 °C step IAE / SIMC PI reference | {ratio:.3f} | <= {GOAL_IAE_RATIO:g} | "
-        f"{iae:.0f} vs {iae_ref:.0f} °C·s over 3 h (Skogestad 2003 tuning, python-control)"
+        f"{iae:.0f} vs {iae_ref:.0f} °C·s over 3 h; SIMC PI of Skogestad 2003 in python-control"
     )
 
 
