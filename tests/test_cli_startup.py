@@ -10,7 +10,7 @@ from __future__ import annotations
 import subprocess
 import sys
 
-HEAVY = ("scipy", "pvlib", "matplotlib", "textual", "pymodbus")
+HEAVY = ("pandas", "scipy", "pvlib", "matplotlib", "textual", "pymodbus")
 
 
 def test_building_the_parser_leaves_heavy_libraries_unloaded() -> None:

@@ -3,72 +3,151 @@
 Read a protocol with :class:`Protocol` (``Protocol.model_validate(toml_mapping)``), compile it
 with :func:`compile_protocol`, evaluate it with :func:`setpoints_at` / :func:`sample`, and
 derive DLI, degree heating days and rig findings from the compiled form.
+
+Names are re-exported lazily (see :mod:`controller._lazy`): reading a protocol file does
+not load the compiler's numeric stack until it is used.
 """
 
-from controller.protocol._blocks import (
-    VARIABLE_KINDS,
-    VARIABLE_RANGES,
-    Block,
-    ClimatologyBlock,
-    DailyCycleBlock,
-    DaylightBlock,
-    HoldBlock,
-    RampBlock,
-    RepeatBlock,
-    ReplayBlock,
-    StepBlock,
-    Variable,
-)
-from controller.protocol._channel import Channel
-from controller.protocol._compile import CYCLE_TOL, LIGHT_TOL_FRACTION, compile_protocol
-from controller.protocol._compiled import (
-    VARIABLE_KEYS,
-    CompiledProtocol,
-    EventSpan,
-    Finding,
-    Mark,
-    PhaseSpan,
-    SamplingMark,
-    Severity,
-    Source,
-)
-from controller.protocol._derived import (
-    ChamberSummary,
-    check_against_rig,
-    daily_light_integral,
-    degree_heating_days,
-    peak_temperature,
-    summarize,
-)
-from controller.protocol._durations import (
-    ClockTime,
-    Duration,
-    Offset,
-    UtcOffset,
-    format_duration,
-    parse_clock_time,
-    parse_duration,
-    parse_utc_offset,
-)
-from controller.protocol._events import Category, ColdSpellEvent, Event, HeatwaveEvent, StormEvent
-from controller.protocol._models import (
-    FORMAT,
-    Group,
-    GroupRole,
-    Phase,
-    Programs,
-    Protocol,
-    Sampling,
-    Site,
-)
-from controller.protocol._series import load_replay_csv
-from controller.protocol._timeline import (
-    Setpoints,
-    phase_at,
-    phase_index_at,
-    sample,
-    setpoints_at,
-)
+from typing import TYPE_CHECKING
+
+from controller._lazy import lazy_exports
+
+if TYPE_CHECKING:
+    from controller.protocol._blocks import (
+        VARIABLE_KINDS,
+        VARIABLE_RANGES,
+        Block,
+        ClimatologyBlock,
+        DailyCycleBlock,
+        DaylightBlock,
+        HoldBlock,
+        RampBlock,
+        RepeatBlock,
+        ReplayBlock,
+        StepBlock,
+        Variable,
+    )
+    from controller.protocol._channel import Channel
+    from controller.protocol._compile import CYCLE_TOL, LIGHT_TOL_FRACTION, compile_protocol
+    from controller.protocol._compiled import (
+        VARIABLE_KEYS,
+        CompiledProtocol,
+        EventSpan,
+        Finding,
+        Mark,
+        PhaseSpan,
+        SamplingMark,
+        Severity,
+        Source,
+    )
+    from controller.protocol._derived import (
+        ChamberSummary,
+        check_against_rig,
+        daily_light_integral,
+        degree_heating_days,
+        peak_temperature,
+        summarize,
+    )
+    from controller.protocol._durations import (
+        ClockTime,
+        Duration,
+        Offset,
+        UtcOffset,
+        format_duration,
+        parse_clock_time,
+        parse_duration,
+        parse_utc_offset,
+    )
+    from controller.protocol._events import (
+        Category,
+        ColdSpellEvent,
+        Event,
+        HeatwaveEvent,
+        StormEvent,
+    )
+    from controller.protocol._models import (
+        FORMAT,
+        Group,
+        GroupRole,
+        Incubation,
+        Phase,
+        Programs,
+        Protocol,
+        Sampling,
+        Site,
+    )
+    from controller.protocol._series import load_replay_csv
+    from controller.protocol._timeline import (
+        Setpoints,
+        phase_at,
+        phase_index_at,
+        sample,
+        setpoints_at,
+    )
+
+_NAMES = {
+    "Block": "_blocks",
+    "CYCLE_TOL": "_compile",
+    "Category": "_events",
+    "ChamberSummary": "_derived",
+    "Channel": "_channel",
+    "ClimatologyBlock": "_blocks",
+    "ClockTime": "_durations",
+    "ColdSpellEvent": "_events",
+    "CompiledProtocol": "_compiled",
+    "DailyCycleBlock": "_blocks",
+    "DaylightBlock": "_blocks",
+    "Duration": "_durations",
+    "Event": "_events",
+    "EventSpan": "_compiled",
+    "FORMAT": "_models",
+    "Finding": "_compiled",
+    "Group": "_models",
+    "GroupRole": "_models",
+    "HeatwaveEvent": "_events",
+    "HoldBlock": "_blocks",
+    "Incubation": "_models",
+    "LIGHT_TOL_FRACTION": "_compile",
+    "Mark": "_compiled",
+    "Offset": "_durations",
+    "Phase": "_models",
+    "PhaseSpan": "_compiled",
+    "Programs": "_models",
+    "Protocol": "_models",
+    "RampBlock": "_blocks",
+    "RepeatBlock": "_blocks",
+    "ReplayBlock": "_blocks",
+    "Sampling": "_models",
+    "SamplingMark": "_compiled",
+    "Setpoints": "_timeline",
+    "Severity": "_compiled",
+    "Site": "_models",
+    "Source": "_compiled",
+    "StepBlock": "_blocks",
+    "StormEvent": "_events",
+    "UtcOffset": "_durations",
+    "VARIABLE_KEYS": "_compiled",
+    "VARIABLE_KINDS": "_blocks",
+    "VARIABLE_RANGES": "_blocks",
+    "Variable": "_blocks",
+    "check_against_rig": "_derived",
+    "compile_protocol": "_compile",
+    "daily_light_integral": "_derived",
+    "degree_heating_days": "_derived",
+    "format_duration": "_durations",
+    "load_replay_csv": "_series",
+    "parse_clock_time": "_durations",
+    "parse_duration": "_durations",
+    "parse_utc_offset": "_durations",
+    "peak_temperature": "_derived",
+    "phase_at": "_timeline",
+    "phase_index_at": "_timeline",
+    "sample": "_timeline",
+    "setpoints_at": "_timeline",
+    "summarize": "_derived",
+}
+
+__getattr__, __dir__ = lazy_exports(__name__, _NAMES)
 
 __all__ = [
     "CYCLE_TOL",
@@ -95,6 +174,7 @@ __all__ = [
     "GroupRole",
     "HeatwaveEvent",
     "HoldBlock",
+    "Incubation",
     "Mark",
     "Offset",
     "Phase",

@@ -12,7 +12,7 @@ from controller.rig._io import (
     io_from_ports,
     resolve_io,
 )
-from controller.rig._models import Chamber, ChamberLimits, Rig
+from controller.rig._models import Chamber, ChamberLimits, Rig, RigIncubation
 from controller.rig._sim import (
     COMM_DEVICES,
     SENSORS,
@@ -48,6 +48,7 @@ __all__ = [
     "PumpSim",
     "RackSim",
     "Rig",
+    "RigIncubation",
     "RigIo",
     "RtuConnection",
     "SensorSim",
