@@ -28,6 +28,7 @@ if TYPE_CHECKING:
         Schedule,
         Target,
     )
+    from controller.runtime._hardware_io import HardwareIO
     from controller.runtime._hardware_run import HardwareRun
     from controller.runtime._inputs import (
         RunInputs,
@@ -66,6 +67,7 @@ _NAMES = {
     "ControlPlan": "_settings",
     "Decider": "_decide",
     "Decision": "_decide",
+    "HardwareIO": "_hardware_io",
     "HardwareRun": "_hardware_run",
     "LaunchRecord": "_launch",
     "LogSink": "_logsink",
@@ -111,6 +113,7 @@ __all__ = [
     "ControlPlan",
     "Decider",
     "Decision",
+    "HardwareIO",
     "HardwareRun",
     "LaunchRecord",
     "LogSink",
