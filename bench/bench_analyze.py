@@ -19,15 +19,16 @@ each child (``resource.getrusage(...).ru_maxrss``).
 Runtime on the 2-core development machine: building the full log 17 min (41 k rows/s,
 under load), then each pass 5–6 min when the machine is quiet (read 287 s, analyze 354 s:
 ratio 1.23, peak 408 and 416 MB), so about half an hour with the default ``--repeat 1``;
-``--days 1`` finishes in about a minute. ``--log FILE`` reuses a log built earlier with
-``--keep FILE``.
+``--quick`` (one day, for ``bench/run --quick``) finishes in about 1.5 min. ``--log FILE``
+reuses a log built earlier with ``--keep FILE``. The ratio and the peak memory are also
+printed as ``RESULT:`` lines for ``bench/run``.
 
 Each kind of pass runs ``--repeat`` times, alternately, and the best time counts, which damps
 the noise of a shared machine (a single pass of each can be skewed by load that comes and
 goes during a 10-minute pass).
 
 Usage: ``python bench/bench_analyze.py [--days 30] [--chambers 16] [--tick-s 1]
-[--chunk-rows 200000] [--repeat 1] [--keep FILE | --log FILE]``
+[--chunk-rows 200000] [--repeat 1] [--quick] [--keep FILE | --log FILE]``
 """
 
 from __future__ import annotations
@@ -271,8 +272,13 @@ def main() -> None:
     parser.add_argument(
         "--repeat", type=int, default=1, help="passes of each kind, alternated; best counts"
     )
+    parser.add_argument(
+        "--quick", action="store_true", help="1 day instead of --days (about 1.5 min)"
+    )
     parser.add_argument("--measure", choices=("read", "analyze"), help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.quick:
+        args.days = 1.0
     if args.measure:
         _measure(args.measure, args.log, args.chunk_rows)
         return
@@ -311,6 +317,12 @@ def main() -> None:
         f"{rows / analyze['seconds']:12,.0f} rows/s  peak {analyze['peak_mb']:8.0f} MB"
     )
     print(f"  ratio analyze/read         {ratio:9.2f}    ({verdict} goal <= {GOAL_RATIO:g})")
+    print(
+        f"RESULT: analyze / read of the same columns | {ratio:.2f}x | <= {GOAL_RATIO:g}x | "
+        f"{rows:,} rows, {analyze['seconds']:.0f} s vs {read['seconds']:.0f} s"
+    )
+    peak = f"{analyze['peak_mb']:.0f} MB | | read: {read['peak_mb']:.0f} MB"
+    print(f"RESULT: analyze peak memory | {peak}")
     print(
         f"  windows {analyze['windows']:.0f} ({analyze['usable']:.0f} usable); heatwave group "
         f"Ea R {analyze['ea_r_ev']:.3f} eV (set 0.65), GPP {analyze['ea_gpp_ev']:.3f} eV "
