@@ -1,6 +1,15 @@
 """Rig files: what chambers exist, how they are wired, what they can physically do, and how the
 simulator should behave when it stands in for them."""
 
+from controller.rig._facility import (
+    ChamberCalibration,
+    ChamberLamp,
+    ChamberPump,
+    Maintenance,
+    Plant,
+    PlantKind,
+    Power,
+)
 from controller.rig._io import (
     InputCorrection,
     ModbusLink,
@@ -35,16 +44,23 @@ __all__ = [
     "Bath",
     "BiologySim",
     "Chamber",
+    "ChamberCalibration",
+    "ChamberLamp",
     "ChamberLimits",
+    "ChamberPump",
     "ChamberSim",
     "Fault",
     "FaultKind",
     "InputCorrection",
     "LampSim",
+    "Maintenance",
     "ModbusLink",
     "OptodePort",
     "OptodeSim",
     "Parity",
+    "Plant",
+    "PlantKind",
+    "Power",
     "PumpSim",
     "RackSim",
     "Rig",

@@ -17,8 +17,18 @@ from pydantic import Field, model_validator
 from controller._model import FileModel
 from controller.errors import SquallError
 from controller.rig._control import ChamberControl
+from controller.rig._facility import (
+    ChamberCalibration,
+    ChamberLamp,
+    ChamberPump,
+    Maintenance,
+    Plant,
+    PlantKind,
+    Power,
+)
 from controller.rig._io import RigIo
 from controller.rig._sim import Bath, ChamberSim, RackSim
+from controller.telemetry._config import TelemetryConfig
 
 __all__ = ["Chamber", "ChamberControl", "ChamberLimits", "Rig", "RigIncubation"]
 
@@ -84,6 +94,12 @@ class Chamber(FileModel):
         description="Temperature-loop gains of this chamber's thermal node (e.g. from 'squall "
         "tune'); absent = derived from the thermal description. Chambers of one bath that "
         "give them must give the same.",
+    )
+    lamp: ChamberLamp = Field(default_factory=ChamberLamp, description="The chamber's lamp.")
+    pump: ChamberPump = Field(default_factory=ChamberPump, description="The chamber's pump.")
+    calibration: ChamberCalibration = Field(
+        default_factory=ChamberCalibration,
+        description="Dates of the last calibrations and cleaning of this chamber.",
     )
 
     @model_validator(mode="after")
@@ -170,6 +186,18 @@ class Rig(FileModel):
     incubation: RigIncubation | None = Field(
         None, description="Default closed-incubation cycle for protocols run on this rig."
     )
+    plants: list[Plant] = Field(
+        default_factory=list,
+        description="Chillers and heaters shared by several thermal nodes, with their capacity.",
+    )
+    power: Power = Field(default_factory=Power, description="Electrical budgets of the rack.")
+    maintenance: Maintenance = Field(
+        default_factory=Maintenance,
+        description="Calibration age limits, cleaning interval and daily check of the rack.",
+    )
+    telemetry: TelemetryConfig | None = Field(
+        None, description="MQTT telemetry of this rig's controller; absent = none."
+    )
 
     @model_validator(mode="after")
     def _cross_references(self) -> Self:
@@ -208,7 +236,53 @@ class Rig(FileModel):
         if self.incubation is not None:
             self.incubation.check("incubation")
         self._bath_gains_agree()
+        self._plants_serve_nodes()
+        if self.power.lamp_budget_w is not None:
+            for i, chamber in enumerate(self.chambers):
+                if chamber.lamp.rated_w is None:
+                    raise SquallError(
+                        "[power] lamp_budget_w is set, so every chamber's lamp needs its rated_w",
+                        field=f"chambers.{i}.lamp.rated_w",
+                    )
         return self
+
+    def _plants_serve_nodes(self) -> None:
+        """A plant serves thermal nodes: baths, or chambers with their own water; a node
+        draws on at most one chiller and one heater."""
+        ids: set[str] = set()
+        nodes = set(self.thermal_nodes())
+        drawn: dict[tuple[str, PlantKind], str] = {}
+        for i, plant in enumerate(self.plants):
+            if plant.id in ids:
+                raise SquallError(f"plant id {plant.id!r} appears twice", field=f"plants.{i}.id")
+            ids.add(plant.id)
+            for j, node in enumerate(plant.serves):
+                if node not in nodes:
+                    raise SquallError(
+                        f"{node!r} is not a thermal node of this rig (baths and chambers with "
+                        f"their own water: {', '.join(sorted(nodes))})",
+                        field=f"plants.{i}.serves.{j}",
+                    )
+                other = drawn.setdefault((node, plant.kind), plant.id)
+                if other != plant.id:
+                    raise SquallError(
+                        f"{node!r} is already served by {plant.kind.value} {other!r}",
+                        field=f"plants.{i}.serves.{j}",
+                    )
+
+    def thermal_nodes(self) -> dict[str, tuple[str, ...]]:
+        """Every thermal node of the rig with its chambers, in rig order.
+
+        Returns
+        -------
+        dict of str to tuple of str
+            Node id (the bath id, or the chamber id of a chamber with its own water) to the
+            ids of the chambers in it (no unit).
+        """
+        nodes: dict[str, list[str]] = {}
+        for chamber in self.chambers:
+            nodes.setdefault(chamber.bath or chamber.id, []).append(chamber.id)
+        return {name: tuple(members) for name, members in nodes.items()}
 
     def _bath_gains_agree(self) -> None:
         """Chambers of one bath are one temperature loop: their [chambers.control] agree."""
