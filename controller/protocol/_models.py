@@ -187,14 +187,33 @@ class Phase(FileModel):
 
 
 class Sampling(FileModel):
-    """A reminder for operators: take samples at a time."""
+    """A reminder for operators: take samples at a time (an operator task in the schedule)."""
 
     at: str = Field(
         min_length=1,
         description="'phase+offset' (e.g. 'exposure+2d'), a phase name, or a duration from "
-        "the start.",
+        "the start (ISO 8601 'P3DT6H' or short '3d 6h').",
     )
     what: str = Field(min_length=1, description="What to sample.")
+    chambers: list[ChamberId] | None = Field(
+        None,
+        min_length=1,
+        description="Chambers to sample; default every chamber of the protocol.",
+    )
+    minutes: float = Field(
+        15.0, gt=0, le=24 * 60, description="Time set aside for the sampling, minutes."
+    )
+
+    @model_validator(mode="after")
+    def _unique(self) -> Self:
+        seen: set[str] = set()
+        errors: list[tuple[Loc, str]] = []
+        for index, chamber in enumerate(self.chambers or ()):
+            if chamber in seen:
+                errors.append((("chambers", index), f"chamber {chamber!r} is listed twice"))
+            seen.add(chamber)
+        raise_errors("Sampling", errors, self.chambers)
+        return self
 
 
 class Incubation(FileModel):
@@ -514,6 +533,17 @@ class Protocol(FileModel):
                         f"experiment ({self.duration_s / 86400:g} d)",
                     )
                 )
+        known = self.chambers()
+        for index, sample in enumerate(self.sampling):
+            errors.extend(
+                (
+                    ("sampling", index, "chambers", c_index),
+                    f"chamber {chamber!r} is in no group; the protocol's chambers are "
+                    f"{', '.join(known)}",
+                )
+                for c_index, chamber in enumerate(sample.chambers or ())
+                if chamber not in known
+            )
         return errors
 
     def _check_incubation(self) -> list[tuple[Loc, str]]:
