@@ -310,21 +310,22 @@ def check_log(path: Path, period_s: float) -> LogCheck:
     chambers = [c.chamber for c in info.meta.chambers]
     contiguous = True
     ticks = 0
-    per_chamber = {c: rows[rows.chamber == c] for c in chambers}
     if len(rows):
-        ticks = len(per_chamber[chambers[0]])
-        utc_grid = per_chamber[chambers[0]].utc_s.to_numpy()
-        for mine in per_chamber.values():
-            utc = mine.utc_s.to_numpy()
+        first = rows[rows.chamber == chambers[0]]
+        ticks = len(first)
+        for chamber in chambers[1:]:
             # every tick has a row for every chamber, at the same instants
-            contiguous &= len(utc) == ticks and bool((utc == utc_grid).all())
-        # written tick by tick: clock and wall time never go back along the table
-        for name in ("t_s", "utc_s"):
-            contiguous &= bool(rows[name].is_monotonic_increasing)
-        steps = pd.Series(utc_grid).diff().dropna()
-        # one period apart, except at most one jump forward per resumed session (its gap)
-        off_grid = steps[(steps - period_s).abs() > 1e-6 * period_s + 1e-6]
-        contiguous &= bool((off_grid > 0).all()) and len(off_grid) <= gaps
+            mine = rows[rows.chamber == chamber].utc_s.to_numpy()
+            contiguous &= len(mine) == ticks and bool((mine == first.utc_s.to_numpy()).all())
+        # wall time never goes back along the table; clock time restarts with each session
+        contiguous &= bool(rows.utc_s.is_monotonic_increasing)
+        for _, session in rows.groupby(pd.cut(rows.seq, _session_edges(path)), observed=True):
+            contiguous &= bool(session.t_s.is_monotonic_increasing)
+        # one tick apart (a real clock's ticks run a little late or early), except for at
+        # most one jump forward per resumed session: its gap
+        steps = first.utc_s.diff().dropna() / period_s
+        off_grid = steps[(steps.round() != 1) | (steps <= 0)]
+        contiguous &= bool((off_grid > 1).all()) and len(off_grid) <= gaps
     last = rows.iloc[-1] if len(rows) else None
     return LogCheck(
         integrity=integrity,
@@ -335,6 +336,16 @@ def check_log(path: Path, period_s: float) -> LogCheck:
         finished=info.end is not None,
         gaps=gaps,
     )
+
+
+def _session_edges(path: Path) -> list[float]:
+    """Bin edges of the sample ``seq`` numbers of each writer session."""
+    conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        firsts = [r[0] for r in conn.execute("SELECT first_sample_seq FROM sessions ORDER BY 1")]
+    finally:
+        conn.close()
+    return [f - 0.5 for f in firsts] + [math.inf]
 
 
 def raised_between(alarms: pd.DataFrame, start_s: float, end_s: float) -> str | None:

@@ -1,0 +1,318 @@
+"""The controller's own process dies: SIGKILL, and a power cut of the controller's host.
+
+``squall simulate`` serves the matrix's rig on loopback (Modbus TCP, optode on a pty) in
+real time; ``squall run`` drives it with a 1 s tick through the rig's ``[io]`` table. The
+one scenario, shared by both rows (:func:`scenario`), goes:
+
+1. run, then SIGKILL just after a tick fell due (its rows being made and written: the worst
+   moment for the log); measure how long the module's watchdog takes to hold the outputs
+   safe, and what the log kept;
+2. ``squall run --resume``, a few ticks, then a **power cut**: SIGKILL again, and the
+   write-ahead file torn in the middle of its last transaction, as if power dropped while
+   that commit was being written (what a commit that was fsynced cannot lose, a torn one
+   can); the stale shared-memory index is removed too, as a reboot leaves none;
+3. ``squall run --resume`` again, a few ticks, then an operator's interrupt.
+
+The log must pass ``PRAGMA integrity_check`` after each death, keep everything committed
+before it, in tick order, never log a time twice, and record each gap. Real time is
+unavoidable here (other processes, the real clock); every wait is bounded and polls.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import os
+import signal
+import struct
+import sys
+import time
+from collections.abc import AsyncIterator, Awaitable, Callable
+from contextlib import asynccontextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TypeVar
+
+import pytest
+from pymodbus.client import AsyncModbusTcpClient
+
+from controller.storage import RunEndReason, RunLogReader
+
+from ._harness import FaultRecord, LogCheck, RecordBook, check_log, protocol_text, rig_text
+
+pytestmark = pytest.mark.timeout(240)
+
+PERIOD_S = 1.0
+"""Control tick of the real-time runs, s."""
+COMMIT_S = 0.5
+"""The run log's commit interval on a real-time clock (RunSettings' default), s."""
+WATCHDOG_S = 3 * PERIOD_S
+"""The modules' watchdog: three control ticks (the [io] default), s."""
+WAIT_S = 60.0
+"""Longest wait for any one step (a cold start imports numpy, gsw and pymodbus), s."""
+POLL_S = 0.05
+"""Polling interval while waiting for another process, s."""
+KILL_AFTER_DUE_S = 0.002
+"""How long after a tick fell due the kill comes, s."""
+IO_TABLE = '\n[io]\nfrom_announcement = "ports.json"\noptode_period_s = 2.0\n'
+
+T = TypeVar("T")
+
+
+async def until(what: str, probe: Callable[[], Awaitable[T | None]]) -> T:
+    """Poll ``probe`` until it returns something other than None (bounded by WAIT_S)."""
+    try:
+        async with asyncio.timeout(WAIT_S):
+            while (found := await probe()) is None:
+                await asyncio.sleep(POLL_S)
+            return found
+    except TimeoutError:
+        raise AssertionError(f"timed out waiting until {what}") from None
+
+
+async def squall(*args: str) -> asyncio.subprocess.Process:
+    """Start ``python -m controller ARGS`` with its output piped."""
+    return await asyncio.create_subprocess_exec(
+        sys.executable,
+        "-m",
+        "controller",
+        *args,
+        stdout=asyncio.subprocess.PIPE,
+        stderr=asyncio.subprocess.PIPE,
+    )
+
+
+@asynccontextmanager
+async def simulator(folder: Path) -> AsyncIterator[tuple[str, int]]:
+    """``squall simulate`` on loopback in real time; yields its Modbus host and port."""
+    ports = folder / "ports.json"
+    proc = await squall(
+        "simulate", "--rig", str(folder / "rig.toml"), "--port", "0", "--ports-file", str(ports)
+    )
+    assert proc.stdout is not None
+    try:
+        async with asyncio.timeout(WAIT_S):
+            line = b""
+            while not line.startswith(b"serving"):
+                line = await proc.stdout.readline()
+                assert line, f"simulate exited: {(await proc.communicate())[1]!r}"
+        modbus = json.loads(ports.read_text(encoding="utf-8"))["modbus"]
+        yield str(modbus["host"]), int(modbus["port"])
+    finally:
+        if proc.returncode is None:
+            proc.send_signal(signal.SIGINT)
+            try:
+                async with asyncio.timeout(10.0):
+                    await proc.communicate()
+            except TimeoutError:
+                proc.kill()
+                await proc.wait()
+
+
+def logged_utc(log: Path) -> list[float] | None:
+    """UTC of every logged tick (POSIX s), or None while the log cannot be read yet."""
+    if not log.exists():
+        return None
+    try:
+        with RunLogReader(log) as reader:
+            frame = reader.samples(columns=["time"])
+    except Exception:  # created but not yet a complete log
+        return None
+    return [t.timestamp() for t in frame.time]
+
+
+async def watchdog_tripped(host: str, port: int) -> bool | None:
+    """True once chamber B's module (block 0, unit 1) reports its watchdog tripped."""
+    client = AsyncModbusTcpClient(host, port=port, timeout=1.0, retries=0)
+    try:
+        if not await client.connect():
+            return None
+        reply = await client.read_discrete_inputs(2, count=1, device_id=1)
+        return True if not reply.isError() and reply.bits[0] else None
+    finally:
+        client.close()
+
+
+async def run_then_kill(args: tuple[str, ...], log: Path, ticks: int) -> tuple[float, float]:
+    """Run ``squall ARGS`` until the log holds ``ticks`` more ticks, then SIGKILL it just
+    after a tick fell due; return (kill UTC, kill monotonic time), s."""
+    had = len(logged_utc(log) or [])
+    proc = await squall(*args)
+
+    async def running() -> list[float] | None:
+        if proc.returncode is not None:
+            raise AssertionError((await proc.communicate())[1].decode())
+        rows = logged_utc(log)
+        return rows if rows is not None and len(rows) >= had + ticks else None
+
+    seen = await until(f"{ticks} ticks are logged", running)
+    due_utc = seen[-1] + 2 * PERIOD_S + KILL_AFTER_DUE_S
+    await asyncio.sleep(max(0.0, due_utc - time.time()))
+    kill_utc, kill_mono = time.time(), time.monotonic()
+    os.kill(proc.pid, signal.SIGKILL)
+    assert await proc.wait() == -signal.SIGKILL
+    return kill_utc, kill_mono
+
+
+def tear_wal(log: Path) -> int:
+    """Cut the log's write-ahead file in the middle of its last transaction and drop the
+    shared-memory index; return the bytes cut.
+
+    The WAL format (SQLite documentation, "Database File Format", section "WAL File
+    Format"): a 32-byte header (page size at byte 8, salts at 16 and 20, big-endian), then
+    frames of a 24-byte header (database size after commit at byte 4, non-zero on a
+    transaction's last frame; the header's salts at 8 and 12) and one page.
+    """
+    wal = Path(f"{log}-wal")
+    data = wal.read_bytes()
+    page_size = struct.unpack(">I", data[8:12])[0]
+    salts = data[16:24]
+    frame = 24 + page_size
+    commits: list[int] = []  # index of every transaction's last frame
+    k = 0
+    while 32 + (k + 1) * frame <= len(data):
+        head = data[32 + k * frame : 32 + k * frame + 24]
+        if head[8:16] != salts:  # left over from before the last checkpoint
+            break
+        if struct.unpack(">I", head[4:8])[0]:
+            commits.append(k)
+        k += 1
+    assert commits, "the write-ahead file holds no transaction"
+    first = commits[-2] + 1 if len(commits) > 1 else 0
+    frames = commits[-1] - first + 1
+    cut = 32 + first * frame + (frames * frame) // 2  # mid-transaction, mid-frame
+    with wal.open("r+b") as handle:
+        handle.truncate(cut)
+    Path(f"{log}-shm").unlink(missing_ok=True)
+    return len(data) - cut
+
+
+@dataclass(frozen=True, kw_only=True)
+class Deaths:
+    """What the scenario measured (times in s)."""
+
+    killed: LogCheck
+    kill_lost_s: float
+    watchdog_after_s: float
+    cut: LogCheck
+    cut_lost_s: float
+    torn_bytes: int
+    final: LogCheck
+    sessions: int
+    end_reason: RunEndReason | None
+    prefix_kept: bool
+    wall_s: float
+
+
+@pytest.fixture(scope="module")
+def scenario(tmp_path_factory: pytest.TempPathFactory) -> Deaths:
+    """Run the kill, cut and resume sequence once for both rows."""
+    folder = tmp_path_factory.mktemp("deaths")
+    (folder / "rig.toml").write_text(rig_text(extra=IO_TABLE), encoding="utf-8")
+    protocol = folder / "protocol.toml"
+    protocol.write_text(protocol_text(hours=1.0, begins="on-launch"), encoding="utf-8")
+    log = folder / "run.sqlite"
+    launch = ("run", str(protocol), "--rig", str(folder / "rig.toml"), "--log", str(log),
+              "--period", str(PERIOD_S))  # fmt: skip
+    resume = ("run", "--resume", str(log))
+
+    async def body() -> Deaths:
+        started = time.perf_counter()
+        async with simulator(folder) as (host, port):
+            kill_utc, kill_mono = await run_then_kill(launch, log, ticks=4)
+            await until("the watchdog trips", lambda: watchdog_tripped(host, port))
+            watchdog_after_s = time.monotonic() - kill_mono
+            killed = check_log(log, PERIOD_S)
+            before = logged_utc(log) or []
+            cut_utc, _ = await run_then_kill(resume, log, ticks=3)
+            torn = tear_wal(log)
+            cut = check_log(log, PERIOD_S)
+            after_cut = logged_utc(log) or []
+            final_run = await squall(*resume)
+
+            async def more() -> bool | None:
+                if final_run.returncode is not None:
+                    raise AssertionError((await final_run.communicate())[1].decode())
+                rows = logged_utc(log)
+                return True if rows is not None and len(rows) >= len(after_cut) + 3 else None
+
+            await until("the second resume logs 3 ticks", more)
+            final_run.send_signal(signal.SIGINT)
+            _, err = await final_run.communicate()
+            assert final_run.returncode == 130, err.decode()
+        everything = logged_utc(log) or []
+        with RunLogReader(log) as reader:
+            info = reader.info()
+        return Deaths(
+            killed=killed,
+            kill_lost_s=kill_utc - (killed.last_utc_s or 0.0),
+            watchdog_after_s=watchdog_after_s,
+            cut=cut,
+            cut_lost_s=cut_utc - (cut.last_utc_s or 0.0),
+            torn_bytes=torn,
+            final=check_log(log, PERIOD_S),
+            sessions=info.sessions,
+            end_reason=None if info.end is None else info.end.end_reason,
+            prefix_kept=everything[: len(before)] == before
+            and everything[: len(after_cut)] == after_cut,
+            wall_s=time.perf_counter() - started,
+        )
+
+    return asyncio.run(body())
+
+
+def test_sigkill_leaves_the_outputs_to_the_watchdog_and_the_log_whole(
+    scenario: Deaths, records: RecordBook
+) -> None:
+    s = scenario
+    record = records.add(
+        FaultRecord(
+            fault="sigkill",
+            injected="squall run (real clock, 1 s tick, loopback endpoints) killed with SIGKILL "
+            "just after a tick fell due, then resumed with --resume",
+            expected="the modules' watchdogs hold the outputs safe within their timeout; the "
+            "log keeps every committed row, passes integrity_check and resumes with a gap "
+            "event, nothing logged twice",
+            alarm=None,
+            safe_after_s=round(s.watchdog_after_s, 2),
+            # the watchdog's timeout, plus the simulator's 0.1 s step and our polling
+            safe_bound_s=WATCHDOG_S + 0.1 + 2 * POLL_S + 0.5,
+            integrity=s.killed.integrity,
+            contiguous=s.killed.contiguous and s.final.contiguous and s.prefix_kept,
+            lost_s=round(s.kill_lost_s, 3),
+            # the tick in flight when the kill came, and what was not yet committed
+            lost_bound_s=PERIOD_S + COMMIT_S,
+            wall_s=round(s.wall_s, 1),
+        )
+    )
+    record.check(alarm=None)
+    assert not s.killed.finished and s.killed.ticks >= 4
+
+
+def test_a_power_cut_tearing_the_last_commit_loses_only_that_commit(
+    scenario: Deaths, records: RecordBook
+) -> None:
+    s = scenario
+    record = records.add(
+        FaultRecord(
+            fault="power-cut",
+            injected="the controller's host loses power: SIGKILL after a resume, the "
+            "write-ahead file torn mid-transaction and its index gone, then --resume",
+            expected="the torn transaction is ignored on recovery; integrity_check ok; the "
+            "log keeps everything before it (commits are fsynced on a real clock) and the "
+            "run resumes with a gap event; the actuators lose power with the host",
+            alarm=None,
+            safe_after_s=None,
+            safe_bound_s=None,
+            integrity=s.cut.integrity,
+            contiguous=s.cut.contiguous and s.final.contiguous and s.prefix_kept,
+            lost_s=round(s.cut_lost_s, 3),
+            # the tick in flight, what was not yet committed, and the torn commit's tick
+            lost_bound_s=2 * PERIOD_S + COMMIT_S,
+            wall_s=0.0,
+        )
+    )
+    record.check(alarm=None)
+    assert s.torn_bytes > 0
+    assert s.final.integrity == "ok" and s.final.gaps == 2 and s.sessions == 3
+    assert s.end_reason is RunEndReason.STOPPED
