@@ -13,6 +13,12 @@ Rules of this module
   for the next batch.
 - :meth:`LogSink.drain` writes whatever is still queued; the shutdown path calls it after
   the task has stopped, so nothing queued is lost on a clean stop.
+- Telemetry: a sink may carry a telemetry sink (:meth:`LogSink.attach_telemetry`; MQTT
+  publishing, :mod:`controller.telemetry`). :meth:`LogSink.put` then also offers every
+  tick's sample rows, alarms and events to it. ``offer`` is non-blocking by contract (it
+  only fills the publisher's bounded buffer); an ``offer`` that raises is logged once and
+  never reaches the loop, and the run log gets the item regardless. Windows and audit
+  records are the run log's alone.
 """
 
 from __future__ import annotations
@@ -20,6 +26,8 @@ from __future__ import annotations
 import asyncio
 import logging
 from collections import deque
+from collections.abc import Sequence
+from typing import Protocol
 
 from controller.control import EventKind as InterlockEventKind
 from controller.control import InterlockEvent
@@ -35,7 +43,7 @@ from controller.storage import (
     WindowRecord,
 )
 
-__all__ = ["LogSink", "alarm_record"]
+__all__ = ["LogSink", "TelemetryFeed", "alarm_record"]
 
 _log = logging.getLogger(__name__)
 
@@ -82,6 +90,14 @@ def alarm_record(chamber: str, event: InterlockEvent, utc_s: float) -> AlarmReco
     )
 
 
+class TelemetryFeed(Protocol):
+    """What a log sink hands telemetry to (``controller.telemetry.TelemetryPublisher`` fits)."""
+
+    def offer(self, item: Sequence[SampleRow] | AlarmRecord | EventRecord) -> None:
+        """Take one tick's sample rows, an alarm or an event; must return at once."""
+        ...
+
+
 class LogSink:
     """Queue between the control loop and the run-log writer.
 
@@ -101,6 +117,20 @@ class LogSink:
         """Sample rows a failed write dropped, dimensionless."""
         self.records_lost = 0
         """Alarm, event, window and audit records a failed write dropped, dimensionless."""
+        self.telemetry: TelemetryFeed | None = None
+        """Where sample rows, alarms and events are offered as well (None: nowhere)."""
+        self.telemetry_failures = 0
+        """Offers to the telemetry sink that raised, dimensionless."""
+
+    def attach_telemetry(self, telemetry: TelemetryFeed | None) -> None:
+        """Offer every tick's sample rows, alarms and events to ``telemetry`` too.
+
+        Parameters
+        ----------
+        telemetry
+            A non-blocking telemetry sink (the MQTT publisher); None detaches it.
+        """
+        self.telemetry = telemetry
 
     def put(self, item: Item) -> None:
         """Queue records for the log.
@@ -112,6 +142,14 @@ class LogSink:
         """
         self._queue.append(item)
         self._wake.set()
+        telemetry = self.telemetry
+        if telemetry is not None and isinstance(item, list | AlarmRecord | EventRecord):
+            try:
+                telemetry.offer(item)
+            except Exception:  # telemetry must never cost a tick, nor the log its record
+                self.telemetry_failures += 1
+                if self.telemetry_failures == 1:
+                    _log.exception("telemetry: offering a record failed (later failures quiet)")
 
     @property
     def pending(self) -> int:
