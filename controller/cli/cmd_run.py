@@ -20,6 +20,11 @@ Rules
   written. An existing log is never overwritten.
 - While it runs, the run takes operator commands (``squall ctl``) on its control socket
   ``<log>.ctl/socket`` (owner-only; see :mod:`controller.runtime._ctl_server`).
+- Telemetry: when the rig file has a ``[telemetry]`` table (``enabled``, the default), the
+  run publishes its samples, status, alarms and events to that MQTT broker while it runs
+  (``hardware-notes/mqtt-topics.md``), and takes remote commands if the table enables them.
+  The control loop never waits for the broker. A simulated run at ``--speed max`` does not
+  publish and says so (its clock would jump over the broker's answers).
 - On a terminal a progress bar shows phase, simulated time and alarms; otherwise the run is
   quiet. The log's path is printed at the end; exit 0 when the protocol ran to its end, 1 if
   the run failed (the outputs were made safe and the log closed first).
@@ -53,6 +58,7 @@ if TYPE_CHECKING:
         SimulatedRun,
         TickStatus,
     )
+    from controller.runtime._telemetry_link import TelemetryLink
 
 __all__ = ["DEFAULT_PERIOD_S", "parse_speed", "register"]
 
@@ -269,6 +275,38 @@ def _prepare(args: argparse.Namespace) -> SimulatedRun | HardwareRun:
     )
 
 
+def _telemetry(
+    run: SimulatedRun | HardwareRun, *, paced: bool, console: Console
+) -> TelemetryLink | None:
+    """The run's telemetry link when its rig has a ``[telemetry]`` table (else None)."""
+    config = run.inputs.rig.telemetry
+    if config is None:
+        return None
+    from controller.runtime._telemetry_link import telemetry_link
+
+    def notice(text: str) -> None:
+        console.print(f"note: {text}", highlight=False)
+
+    link = telemetry_link(
+        config,
+        clock=run.clock,
+        run_id=run.writer.meta.run_id,
+        protocol=run.inputs.compiled.title or run.inputs.protocol_path.name,
+        chambers=tuple(run.plan.chambers),
+        duration_s=run.inputs.compiled.duration_s,
+        period_s=run.plan.settings.period_s,
+        base_dir=run.inputs.rig_path.parent,
+        paced=paced,
+        notice=notice,
+    )
+    if link is not None:
+        console.print(
+            f"telemetry: publishing as {config.controller_id} to {config.address}",
+            highlight=False,
+        )
+    return link
+
+
 def _handle(args: argparse.Namespace) -> int:
     """Run (or resume) the protocol; print where the log is."""
     _check_combination(args)
@@ -280,9 +318,17 @@ def _handle(args: argparse.Namespace) -> int:
     interactive = sys.stdout.isatty()
     bar = _Bar(console) if interactive else None
     ctl = control_path(run.writer.path)
+    paced = not args.sim or parse_speed(args.speed or "max") is not None
+    try:
+        link = _telemetry(run, paced=paced, console=console)
+    except BaseException:
+        run.writer.close()
+        raise
 
-    def runner(loop: ControlLoop) -> Awaitable[RunSummary]:
+    def with_control(loop: ControlLoop) -> Awaitable[RunSummary]:
         return run_with_control(loop, ctl)  # operator commands for the whole run
+
+    runner = with_control if link is None else link.runner(with_control)
 
     if interactive:
         console.print(f"operator commands: squall ctl --log {run.writer.path} status|hold|...")
