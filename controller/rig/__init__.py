@@ -1,6 +1,7 @@
 """Rig files: what chambers exist, how they are wired, what they can physically do, and how the
 simulator should behave when it stands in for them."""
 
+from controller.rig._control import ChamberControl, DriveCurve, node_control
 from controller.rig._facility import (
     ChamberCalibration,
     ChamberLamp,
@@ -10,6 +11,7 @@ from controller.rig._facility import (
     PlantKind,
     Power,
 )
+from controller.rig._interlocks import ChamberInterlocks, ConditionSetting, InterlockConditions
 from controller.rig._io import (
     InputCorrection,
     ModbusLink,
@@ -45,13 +47,18 @@ __all__ = [
     "BiologySim",
     "Chamber",
     "ChamberCalibration",
+    "ChamberControl",
+    "ChamberInterlocks",
     "ChamberLamp",
     "ChamberLimits",
     "ChamberPump",
     "ChamberSim",
+    "ConditionSetting",
+    "DriveCurve",
     "Fault",
     "FaultKind",
     "InputCorrection",
+    "InterlockConditions",
     "LampSim",
     "Maintenance",
     "ModbusLink",
@@ -71,5 +78,6 @@ __all__ = [
     "TcpConnection",
     "ThermalSim",
     "io_from_ports",
+    "node_control",
     "resolve_io",
 ]

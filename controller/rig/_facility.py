@@ -14,11 +14,12 @@ from __future__ import annotations
 import datetime as dt
 import zoneinfo
 from enum import StrEnum
-from typing import Self
+from typing import Annotated, Self
 
 from pydantic import Field, field_validator, model_validator
 
 from controller._model import FileModel
+from controller.rig._control import DriveCurve, check_curve_rows
 
 __all__ = [
     "ChamberCalibration",
@@ -82,7 +83,13 @@ class Power(FileModel):
 
 
 class ChamberLamp(FileModel):
-    """A chamber's lamp as the facility sees it (the ``[chambers.lamp]`` table)."""
+    """A chamber's lamp as the facility sees it (the ``[chambers.lamp]`` table).
+
+    ``drive_pct_par`` is the lamp's measured curve (``hardware-notes/calibration.md``): PAR at
+    the community against drive. When it is given, the runtime drives the lamp by inverting
+    it (linear interpolation between rows); without it, by the straight line from 0 to the
+    chamber's ``limits.max_par`` at 100 %.
+    """
 
     rated_w: float | None = Field(
         None,
@@ -90,14 +97,85 @@ class ChamberLamp(FileModel):
         le=100_000,
         description="Electrical power at full drive, W; needed when [power] lamp_budget_w is set.",
     )
+    drive_pct_par: (
+        list[
+            tuple[
+                Annotated[float, Field(ge=0, le=100)],
+                Annotated[float, Field(ge=0, le=5000)],
+            ]
+        ]
+        | None
+    ) = Field(
+        None,
+        description="Measured lamp curve: rows [drive %, PAR at the community in µmol photons "
+        "m⁻² s⁻¹], from 0 % to 100 %, PAR rising with drive (a flat start is allowed); "
+        "absent = linear up to limits.max_par.",
+    )
+
+    @field_validator("drive_pct_par")
+    @classmethod
+    def _monotone(cls, value: list[tuple[float, float]] | None) -> list[tuple[float, float]] | None:
+        if value is not None:
+            check_curve_rows(value, "PAR")
+        return value
+
+    def curve(self) -> DriveCurve | None:
+        """The lamp's drive curve, or None when the table is not given.
+
+        Returns
+        -------
+        DriveCurve or None
+            Drive in % against PAR in µmol photons m⁻² s⁻¹.
+        """
+        return None if self.drive_pct_par is None else DriveCurve.from_rows(self.drive_pct_par)
 
 
 class ChamberPump(FileModel):
-    """A chamber's flow pump as the facility sees it (the ``[chambers.pump]`` table)."""
+    """A chamber's flow pump as the facility sees it (the ``[chambers.pump]`` table).
+
+    ``drive_pct_flow_cm_s`` is the pump's measured curve; a flat start is the pump's dead band
+    (it does not turn below some drive). Given, it replaces the straight line from 0 to the
+    chamber's ``limits.max_flow_cm_s`` at 100 % as the feed-forward of the flow.
+    """
 
     rated_w: float | None = Field(
         None, gt=0, le=100_000, description="Electrical power at full drive, W."
     )
+    drive_pct_flow_cm_s: (
+        list[
+            tuple[
+                Annotated[float, Field(ge=0, le=100)],
+                Annotated[float, Field(ge=0, le=200)],
+            ]
+        ]
+        | None
+    ) = Field(
+        None,
+        description="Measured pump curve: rows [drive %, flow over the community in cm s⁻¹], "
+        "from 0 % to 100 %, flow rising with drive after a flat start (the dead band); "
+        "absent = linear up to limits.max_flow_cm_s.",
+    )
+
+    @field_validator("drive_pct_flow_cm_s")
+    @classmethod
+    def _monotone(cls, value: list[tuple[float, float]] | None) -> list[tuple[float, float]] | None:
+        if value is not None:
+            check_curve_rows(value, "flow")
+        return value
+
+    def curve(self) -> DriveCurve | None:
+        """The pump's drive curve, or None when the table is not given.
+
+        Returns
+        -------
+        DriveCurve or None
+            Drive in % against flow in cm s⁻¹.
+        """
+        return (
+            None
+            if self.drive_pct_flow_cm_s is None
+            else DriveCurve.from_rows(self.drive_pct_flow_cm_s)
+        )
 
 
 class ChamberCalibration(FileModel):

@@ -10,9 +10,9 @@ field path, so the file loader can point at the line.
 
 from __future__ import annotations
 
-from typing import Self
+from typing import Annotated, Self
 
-from pydantic import Field, model_validator
+from pydantic import AfterValidator, Field, model_validator
 
 from controller._model import FileModel
 from controller.errors import SquallError
@@ -26,6 +26,7 @@ from controller.rig._facility import (
     PlantKind,
     Power,
 )
+from controller.rig._interlocks import ChamberInterlocks, check_interlocks_against_limits
 from controller.rig._io import RigIo
 from controller.rig._sim import Bath, ChamberSim, RackSim
 from controller.telemetry._config import TelemetryConfig
@@ -100,6 +101,13 @@ class Chamber(FileModel):
     calibration: ChamberCalibration = Field(
         default_factory=ChamberCalibration,
         description="Dates of the last calibrations and cleaning of this chamber.",
+    )
+    interlocks: Annotated[
+        ChamberInterlocks | None, AfterValidator(check_interlocks_against_limits)
+    ] = Field(
+        None,
+        description="Interlock settings of this chamber (trip limits, plausible probe range, "
+        "time limits, condition levels); absent keys are derived from limits and the run.",
     )
 
     @model_validator(mode="after")
