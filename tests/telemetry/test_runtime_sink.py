@@ -1,10 +1,7 @@
-"""The runtime's records fit the publisher: a simulated run feeds a TelemetryPublisher.
+"""The runtime's telemetry hook: a simulated run feeds a TelemetryPublisher through its
+LogSink (``attach_telemetry``) and progress reports, and a failing sink costs nothing.
 
-``controller.runtime`` has no telemetry hook yet. The one it needs is a single line in
-``LogSink.put`` (offer the item to the telemetry sink as well); :class:`TeeLogSink` below
-emulates exactly that, so this test shows that every item the control loop queues for the
-run log, and its progress reports, are what ``offer`` and ``on_tick`` take. No broker is
-involved: the publisher only fills its buffer and derives its status.
+No broker is involved: the publisher only fills its buffer and derives its status.
 """
 
 from __future__ import annotations
@@ -12,9 +9,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from controller.clock import Clock, run_with_clock
-from controller.runtime import LogSink, RunSummary, SimulatedRun
-from controller.storage import RunLogReader, RunLogWriter
-from controller.telemetry import ControllerState, TelemetryPublisher, TelemetrySink
+from controller.runtime import RunSummary, SimulatedRun
+from controller.storage import RunLogReader
+from controller.telemetry import ControllerState, TelemetryPublisher
 
 from ._helpers import quick_config
 
@@ -63,16 +60,15 @@ duration = "30min"
 """
 
 
-class TeeLogSink(LogSink):
-    """The run-log queue with the one line the runtime needs: offer every item to telemetry."""
+class Broken:
+    """A telemetry sink whose every offer fails."""
 
-    def __init__(self, writer: RunLogWriter, telemetry: TelemetrySink) -> None:
-        super().__init__(writer)
-        self.telemetry = telemetry
+    def __init__(self) -> None:
+        self.offers = 0
 
-    def put(self, item: object) -> None:  # type: ignore[override]
-        self.telemetry.offer(item)  # type: ignore[arg-type]
-        super().put(item)  # type: ignore[arg-type]
+    def offer(self, item: object) -> None:
+        self.offers += 1
+        raise RuntimeError("encoder bug")
 
 
 def test_a_simulated_run_feeds_every_row_event_and_tick_to_the_publisher(tmp_path: Path) -> None:
@@ -87,7 +83,7 @@ def test_a_simulated_run_feeds_every_row_event_and_tick_to_the_publisher(tmp_pat
         period_s=run.plan.settings.period_s,
     )  # fmt: skip
     loop = run.loop(progress=publisher.on_tick)
-    loop.sink = TeeLogSink(run.writer, publisher)
+    loop.sink.attach_telemetry(publisher)
 
     async def main(_clock: Clock) -> RunSummary:
         return await loop.run()
@@ -102,3 +98,23 @@ def test_a_simulated_run_feeds_every_row_event_and_tick_to_the_publisher(tmp_pat
     assert status.state is ControllerState.FINISHED  # from the run_stop event
     assert status.phase == "warming" and status.chambers == ("B",)
     assert status.elapsed_s is not None and status.elapsed_s > 3000.0
+
+
+def test_a_failing_telemetry_sink_never_reaches_the_loop_nor_the_log(tmp_path: Path) -> None:
+    (tmp_path / "rig.toml").write_text(RIG)
+    (tmp_path / "protocol.toml").write_text(PROTOCOL)
+    run = SimulatedRun.prepare(
+        tmp_path / "protocol.toml", tmp_path / "rig.toml", tmp_path / "run.sqlite"
+    )
+    loop = run.loop()
+    broken = Broken()
+    loop.sink.attach_telemetry(broken)
+
+    async def main(_clock: Clock) -> RunSummary:
+        return await loop.run()
+
+    summary = run_with_clock(run.clock, main)
+    assert summary.end_reason.value == "completed"
+    assert summary.rows_written == 360 and summary.rows_lost == 0
+    # every tick's rows plus the start, phase-change and stop events were offered
+    assert broken.offers == loop.sink.telemetry_failures >= 360 + 3
