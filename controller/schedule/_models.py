@@ -293,6 +293,8 @@ class ScheduleConflict(SquallError):
         The protocol file the refusal is about, if any.
     line
         1-based line of the first conflict's field in ``file``, if known.
+    lead
+        Words before the first conflict's message.
     """
 
     def __init__(
@@ -301,13 +303,14 @@ class ScheduleConflict(SquallError):
         *,
         file: str | Path | None = None,
         line: int | None = None,
+        lead: str = "refused",
     ) -> None:
         conflicts = tuple(conflicts)
         if not conflicts:
             raise ValueError("a ScheduleConflict needs at least one conflict")
         first = conflicts[0]
         more = len(conflicts) - 1
-        message = f"refused: {first.message}"
+        message = f"{lead}: {first.message}"
         if more:
             message += f" (and {more} more; 'squall schedule check' lists them all)"
         super().__init__(message, file=file, line=line, field=first.field)

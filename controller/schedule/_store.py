@@ -26,6 +26,7 @@ import getpass
 import hashlib
 import json
 import os
+import re
 import sqlite3
 from collections.abc import Callable, Iterable, Iterator
 from datetime import UTC, datetime, timedelta
@@ -59,9 +60,11 @@ __all__ = [
     "SCHEMA_VERSION",
     "ScheduleStore",
     "booking_of",
+    "check_start",
     "check_text_field",
     "compile_experiment",
     "loaded_from_text",
+    "normalize_id",
 ]
 
 DEFAULT_SCHEDULE = Path("runs") / "schedule.sqlite"
@@ -153,7 +156,21 @@ def check_text_field(value: str, field: str, *, max_len: int, allow_empty: bool 
     return text
 
 
-def _check_start(start_utc: datetime, field: str) -> datetime:
+def check_start(start_utc: datetime, field: str) -> datetime:
+    """A start the store accepts: aware, within the accepted years; returned in UTC.
+
+    Parameters
+    ----------
+    start_utc
+        The start (any zone).
+    field
+        Its name for messages (``--start``).
+
+    Returns
+    -------
+    datetime
+        The same instant in UTC.
+    """
     if start_utc.tzinfo is None or start_utc.utcoffset() is None:
         raise SquallError("a start time needs a zone (e.g. +02:00 or Z)", field=field)
     start = start_utc.astimezone(UTC)
@@ -235,6 +252,23 @@ def booking_of(experiment: Experiment, compiled: CompiledProtocol | None = None)
         end_utc=experiment.end_utc,
         compiled=compiled,
     )
+
+
+def normalize_id(text: str) -> str:
+    """``E0007`` from ``E0007``, ``e7`` or ``7``; other text is returned trimmed, as typed.
+
+    Parameters
+    ----------
+    text
+        An experiment id as typed (no unit).
+
+    Returns
+    -------
+    str
+        The id as stored, when the text can be one.
+    """
+    match = re.fullmatch(r"[Ee]?0*(\d{1,12})", text.strip())
+    return f"E{int(match.group(1)):04d}" if match else text.strip()
 
 
 def _default_by() -> str:
@@ -397,7 +431,7 @@ class ScheduleStore:
         SquallError
             No experiment has this id.
         """
-        key = exp_id.strip().upper()
+        key = normalize_id(exp_id)
         row = self._conn.execute(
             f"SELECT {_COLUMNS} FROM experiments WHERE id = ?", (key,)
         ).fetchone()
@@ -609,7 +643,7 @@ class ScheduleStore:
         """
         from controller.cli.cmd_check import compile_loaded, load_protocol, load_rig
 
-        start = _check_start(start_utc, "start")
+        start = check_start(start_utc, "start")
         owner = check_text_field(owner, "owner", max_len=80)
         note = check_text_field(note, "note", max_len=500, allow_empty=True)
         by = check_text_field(by, "by", max_len=80) if by is not None else owner
@@ -679,7 +713,7 @@ class ScheduleStore:
         Experiment
             The experiment as stored now (a refused one is planned again).
         """
-        start = _check_start(start_utc, "start")
+        start = check_start(start_utc, "start")
         by = check_text_field(by, "by", max_len=80) if by is not None else _default_by()
         movable = (ExperimentState.PLANNED, ExperimentState.REFUSED)
         before = self.get(exp_id)
