@@ -1,7 +1,13 @@
 """Rig files: what chambers exist, how they are wired, what they can physically do, and how the
 simulator should behave when it stands in for them."""
 
-from controller.rig._control import ChamberControl, DriveCurve, node_control
+from controller.rig._control import (
+    ChamberControl,
+    DriveCurve,
+    chiller_ratio,
+    node_control,
+    node_model,
+)
 from controller.rig._facility import (
     ChamberCalibration,
     ChamberLamp,
@@ -77,7 +83,9 @@ __all__ = [
     "SensorSim",
     "TcpConnection",
     "ThermalSim",
+    "chiller_ratio",
     "io_from_ports",
     "node_control",
+    "node_model",
     "resolve_io",
 ]

@@ -33,11 +33,24 @@ from pydantic import Field
 from pydantic_core import InitErrorDetails, PydanticCustomError, ValidationError
 
 from controller._model import FileModel
+from controller.control import Fopdt, PidParams
+from controller.rig._sim import ThermalSim
 
 if TYPE_CHECKING:
     from controller.rig._models import Rig
 
-__all__ = ["ChamberControl", "DriveCurve", "check_curve_rows", "node_control", "raise_at"]
+#: Water temperature at which heat capacities for tuning are evaluated, °C.
+_TUNING_TEMPERATURE_C = 20.0
+
+__all__ = [
+    "ChamberControl",
+    "DriveCurve",
+    "check_curve_rows",
+    "chiller_ratio",
+    "node_control",
+    "node_model",
+    "raise_at",
+]
 
 
 class ChamberControl(FileModel):
@@ -72,6 +85,32 @@ class ChamberControl(FileModel):
         max_length=200,
         description="Where the gains come from, in words (e.g. the tuning run that found them).",
     )
+
+    def params(self, *, out_min: float, out_max: float) -> PidParams:
+        """The gains as PID parameters.
+
+        Parameters
+        ----------
+        out_min, out_max
+            Output limits, heater-equivalent %.
+
+        Returns
+        -------
+        PidParams
+            kc (% per °C), ti_s, td_s (s); tracking time ``tracking_time_s`` or, absent, a
+            quarter of ti_s (none without integral action).
+        """
+        tracking = self.tracking_time_s
+        if tracking is None and math.isfinite(self.ti_s):
+            tracking = self.ti_s / 4.0
+        return PidParams(
+            kc=self.kc,
+            ti_s=self.ti_s,
+            td_s=self.td_s,
+            out_min=out_min,
+            out_max=out_max,
+            tracking_time_s=tracking,
+        )
 
     def same_gains(self, other: ChamberControl) -> bool:
         """Whether two tables give the same gains and tick (``source`` may differ).
@@ -321,3 +360,85 @@ class DriveCurve:
         k = min(max(bisect_right(xs, drive_pct), 1), len(xs) - 1)
         x0, x1, y0, y1 = xs[k - 1], xs[k], ys[k - 1], ys[k]
         return y0 + (drive_pct - x0) * (y1 - y0) / (x1 - x0)
+
+
+def _rho_cp_j_l_k(salinity: float) -> float:
+    """Volumetric heat capacity of water at the tuning temperature, J L⁻¹ K⁻¹ (TEOS-10)."""
+    import gsw  # only a run or a tuning needs it, not reading a rig file
+
+    sr = gsw.SR_from_SP(salinity)
+    t = _TUNING_TEMPERATURE_C
+    return float(gsw.rho_t_exact(sr, t, 0.0) * gsw.cp_t_exact(sr, t, 0.0) / 1000.0)
+
+
+def _node_thermal(rig: Rig, members: Sequence[str]) -> ThermalSim:
+    """Thermal description of the node holding these chambers (bath's or chamber's own)."""
+    first = rig.chamber(members[0])
+    if first.bath is not None:
+        bath = rig.bath(first.bath)
+        return bath.thermal if bath is not None else ThermalSim()
+    return first.sim.thermal or ThermalSim()
+
+
+def node_model(rig: Rig, members: Sequence[str], period_s: float) -> Fopdt:
+    """First-order-plus-dead-time model of one thermal node from the rig's description.
+
+    Parameters
+    ----------
+    rig
+        The rig.
+    members
+        Chamber ids in the node (one chamber, or every chamber of one bath).
+    period_s
+        Control tick period, s (half of it is added to the dead time).
+
+    Returns
+    -------
+    Fopdt
+        Gain (°C per % heater drive) = heater_max_w / 100 / UA; time constant (s) = heat
+        capacity of the node's water / UA; dead time (s) = actuator dead time + the slowest
+        probe's lag + half a tick.
+
+    Notes
+    -----
+    The heat balance C·dT/dt = P − UA·(T − T_room) is first order with gain 1/UA and time
+    constant C/UA. A first-order probe lag much shorter than C/UA is folded into the dead
+    time (Skogestad 2003, half rule with the lag as the neglected small time constant).
+    """
+    chambers = [rig.chamber(c) for c in members]
+    first = chambers[0]
+    thermal = _node_thermal(rig, members)
+    if first.bath is not None:
+        bath = rig.bath(first.bath)
+        every = [c for c in rig.chambers if c.bath == first.bath]
+        capacity = sum(c.water_volume_l * _rho_cp_j_l_k(c.salinity) for c in every)
+        if bath is not None:
+            capacity += bath.water_volume_l * _rho_cp_j_l_k(bath.salinity)
+    else:
+        capacity = first.water_volume_l * _rho_cp_j_l_k(first.salinity)
+    probe_lag_s = max(c.sim.sensors.temperature_tau_s for c in chambers)
+    return Fopdt(
+        gain=thermal.heater_max_w / 100.0 / thermal.ua_w_k,
+        tau_s=capacity / thermal.ua_w_k,
+        theta_s=thermal.dead_time_s + probe_lag_s + period_s / 2.0,
+    )
+
+
+def chiller_ratio(rig: Rig, members: Sequence[str]) -> float:
+    """How strong the node's chiller is against its heater.
+
+    Parameters
+    ----------
+    rig
+        The rig (no unit).
+    members
+        Chamber ids of one thermal node (no unit).
+
+    Returns
+    -------
+    float
+        chiller_max_w / heater_max_w of the node's thermal description, dimensionless (1
+        for a node without heater power, where the ratio means nothing).
+    """
+    thermal = _node_thermal(rig, members)
+    return thermal.chiller_max_w / thermal.heater_max_w if thermal.heater_max_w > 0 else 1.0

@@ -47,6 +47,7 @@ __all__ = [
     "ConditionSetting",
     "InterlockConditions",
     "check_interlocks_against_limits",
+    "derived_limits",
     "merged_policies",
 ]
 
@@ -395,3 +396,47 @@ def merged_policies(
     out = {} if table is None else table.policies()
     out.update(run)
     return out
+
+
+def derived_limits(
+    limits: ChamberLimits,
+    *,
+    trip_margin_c: float,
+    period_s: float,
+    policies: Mapping[Condition, ConditionPolicy],
+) -> InterlockLimits:
+    """The interlock limits a chamber gets without ``[chambers.interlocks]``.
+
+    Parameters
+    ----------
+    limits
+        The chamber's operating limits (°C, °C h⁻¹).
+    trip_margin_c
+        Distance of the temperature trips outside the operating limits, °C.
+    period_s
+        Control tick period, s.
+    policies
+        Policy overrides (no unit).
+
+    Returns
+    -------
+    InterlockLimits
+        Trips ``trip_margin_c`` outside the limits; plausible range at least −5 … 60 °C and
+        5 °C outside the trips; rate limit max(3 × max_ramp_c_per_h, 6 °C h⁻¹) over
+        max(300 s, 3 ticks); stale after max(30 s, 3 ticks); frozen after max(900 s, 10
+        ticks); communication lost after max(10 s, 2 ticks).
+    """
+    low = limits.min_temperature_c - trip_margin_c
+    high = limits.max_temperature_c + trip_margin_c
+    return InterlockLimits(
+        min_temperature_c=low,
+        max_temperature_c=high,
+        max_rate_c_per_h=max(3.0 * limits.max_ramp_c_per_h, 6.0),
+        sensor_min_c=min(-5.0, low - 5.0),
+        sensor_max_c=max(60.0, high + 5.0),
+        rate_window_s=max(300.0, 3.0 * period_s),
+        stale_after_s=max(30.0, 3.0 * period_s),
+        frozen_after_s=max(900.0, 10.0 * period_s),
+        comm_loss_after_s=max(10.0, 2.0 * period_s),
+        policies=policies,
+    )

@@ -58,7 +58,6 @@ from controller.control import (
     pid_step,
     pid_track,
     rate_limit,
-    split_range,
     time_proportion_step,
 )
 from controller.runtime._io import ChamberReadings, Quantity
@@ -412,18 +411,23 @@ class Decider:
                 lamp, pump = action.force.lamp_pct, action.force.pump_pct
             else:
                 target, reading = targets[chamber], readings[chamber]
-                state.lamp, lamp = _feed(
-                    state.lamp, cs.lamp_trim, cs.par_full, target.par, reading.par, dt_s
+                state.lamp, lamp = _feed(  # in % of drive, through the lamp's curve
+                    state.lamp,
+                    cs.lamp_trim,
+                    100.0,
+                    cs.lamp_drive_pct(target.par),
+                    cs.lamp_drive_pct(reading.par, reading=True),
+                    dt_s,
                 )
                 if closed:  # flushing pump off; the flow trim waits for the window's end
                     pump = 0.0
                 else:
-                    state.pump, pump = _feed(
+                    state.pump, pump = _feed(  # in % of drive, through the pump's curve
                         state.pump,
                         cs.flow_trim,
-                        cs.flow_full_cm_s,
-                        target.flow_cm_s,
-                        reading.flow_cm_s,
+                        100.0,
+                        cs.pump_drive_pct(target.flow_cm_s),
+                        cs.pump_drive_pct(reading.flow_cm_s, reading=True),
                         dt_s,
                     )
             shown = Outputs(heater_pct=heater, chiller_pct=chiller, lamp_pct=lamp, pump_pct=pump)
@@ -528,7 +532,7 @@ class Decider:
             state.setpoint_c = rate_limit(previous, target, node.max_ramp_c_per_h / 3600.0, dt_s)
             result = pid_step(state.pid, params, measured, state.setpoint_c, dt_s)
             state.pid, state.output_pct = result.state, result.output
-        heater, chiller = split_range(state.output_pct, self.plan.settings.split_deadband_pct)
+        heater, chiller = node.split(state.output_pct, self.plan.settings.split_deadband_pct)
         if node.heater_on_off:
             state.cycle, on = time_proportion_step(
                 state.cycle,

@@ -7,20 +7,32 @@ Rules of this module
   and those settings into a :class:`ControlPlan`: one :class:`NodeSettings` per thermal node
   (a chamber with its own water, or a shared bath with every protocol chamber in it) and one
   :class:`ChamberSettings` per protocol chamber. Everything here is pure and frozen.
-- Temperature gains, until the rig file carries its own, come from the rig's description of
-  each node (heater power, heat-loss coefficient, water volumes, dead time, probe lag): a
-  first-order-plus-dead-time model, tuned by the SIMC rules (Skogestad 2003). The sampling
-  delay of a zero-order hold adds half a period to the dead time (Skogestad's half rule).
+- Temperature gains come from the rig file's ``[chambers.control]`` when it gives them (e.g.
+  from ``squall tune``; tracking time a quarter of Ti unless given), else from the rig's
+  description of each node (heater power, heat-loss coefficient, water volumes, dead time,
+  probe lag): a first-order-plus-dead-time model (:func:`~controller.rig.node_model`), tuned
+  by the SIMC rules (Skogestad 2003). The sampling delay of a zero-order hold adds half a
+  period to the dead time (Skogestad's half rule).
   The anti-windup tracking time is the closed loop's own time scale, τc + θ: a heater that
   saturates for many minutes (a large setpoint step) must not leave an integral behind that
   overshoots; the default of the PID step (Tt = Ti) is four times slower and lets a 5 °C step
   overshoot by almost 0.4 °C on the example rig (bench/bench_control.py).
+- The PID output is heater-equivalent drive: +100 % is the full heater, cooling is counted
+  in the heater's watts, so full cooling is −100 · chiller_max_w / heater_max_w and the
+  chiller's drive is the cooling demand scaled by heater_max_w / chiller_max_w
+  (:meth:`NodeSettings.split`). The loop gain is then the same on both sides of the split;
+  with the chiller's own % as output a chiller four times the heater would see four times
+  the loop gain the gains were tuned for. ``squall tune`` drives the relay the same way.
 - Interlock limits come from the chamber's limits with a margin: a protocol may hold a
   chamber at its limit, and probe noise there must not trip it. Time-based limits never go
-  below a few ticks, so one missed reply does not trip a chamber.
-- Lamps and pumps are driven by feed-forward through a linear calibration (0 % → 0,
-  100 % → the chamber's ``max_par`` / ``max_flow_cm_s``), corrected by a slow PI trim on the
-  PAR or flow sensor, which absorbs a curved lamp or a pump dead band.
+  below a few ticks, so one missed reply does not trip a chamber. The rig file's
+  ``[chambers.interlocks]`` replaces any of them (:mod:`controller.rig._interlocks`).
+- Lamps and pumps are driven by feed-forward through their drive curve: the rig file's
+  measured table when given (``[chambers.lamp] drive_pct_par``, ``[chambers.pump]
+  drive_pct_flow_cm_s``), else a straight line (0 % → 0, 100 % → the chamber's ``max_par`` /
+  ``max_flow_cm_s``). A slow PI trim on the PAR or flow sensor corrects it; the trim works
+  in % of drive, on the sensor reading passed back through the curve, so its loop gain is
+  the same all along a curved lamp (and equals the old PAR-unit trim on a straight line).
 - The closed-incubation cycle of a chamber (:func:`incubation_settings`) takes each setting
   from the protocol's ``[incubation]`` table, else the rig's, else the built-in default of
   :class:`~controller.control.IncubationSettings`. One pump both flushes a chamber and makes
@@ -30,13 +42,13 @@ Rules of this module
 
 from __future__ import annotations
 
+import logging
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from enum import Enum
 from types import MappingProxyType
 from typing import TYPE_CHECKING
-
-import gsw
 
 from controller.control import (
     Condition,
@@ -46,9 +58,12 @@ from controller.control import (
     InterlockLimits,
     PidParams,
     simc,
+    split_range,
 )
 from controller.errors import SquallError
-from controller.rig import Rig, ThermalSim
+from controller.rig import ChamberInterlocks, DriveCurve, Rig, node_control
+from controller.rig._control import chiller_ratio, node_model
+from controller.rig._interlocks import derived_limits, merged_policies
 
 if TYPE_CHECKING:
     from controller.protocol import Protocol
@@ -56,6 +71,7 @@ if TYPE_CHECKING:
 __all__ = [
     "ChamberSettings",
     "ControlPlan",
+    "GainSource",
     "NodeSettings",
     "RunSettings",
     "incubation_settings",
@@ -63,8 +79,7 @@ __all__ = [
     "plan_control",
 ]
 
-#: Water temperature at which heat capacities for tuning are evaluated, °C.
-_TUNING_TEMPERATURE_C = 20.0
+_log = logging.getLogger(__name__)
 
 
 def _positive(value: float, name: str) -> None:
@@ -195,6 +210,13 @@ class RunSettings:
         return self.period_s / 10.0 if self.late_after_s is None else self.late_after_s
 
 
+class GainSource(Enum):
+    """Where a thermal node's temperature gains come from."""
+
+    RIG = "rig"  # the rig file's [chambers.control]
+    SIMC = "simc"  # derived from the thermal description by the SIMC rules
+
+
 @dataclass(frozen=True, kw_only=True)
 class NodeSettings:
     """One temperature loop: a chamber's own water, or a bath shared by several chambers.
@@ -209,13 +231,19 @@ class NodeSettings:
         Chamber whose I/O module carries the node's heater and chiller (the first of the
         bath's chambers in rig order, whether or not the protocol uses it).
     model
-        The plant model the gains were tuned on (°C per % heater drive, s, s).
+        The plant model of the thermal description (°C per % heater drive, s, s).
     pid
-        Gains and output limits (−100 % full cooling … 100 % full heating).
+        Gains and output limits in heater-equivalent % (100 % full heating, −100 ·
+        chiller_max_w / heater_max_w full cooling).
     max_ramp_c_per_h
         Fastest setpoint change, °C h⁻¹ (the slowest member's limit).
     heater_on_off
         Whether the heater is an on/off device (time-proportioned).
+    gains
+        Where ``pid``'s gains come from.
+    chiller_ratio
+        chiller_max_w / heater_max_w of the node, dimensionless (1 when the chiller is as
+        strong as the heater; 0 for a node without cooling).
     """
 
     name: str
@@ -225,6 +253,29 @@ class NodeSettings:
     pid: PidParams
     max_ramp_c_per_h: float
     heater_on_off: bool
+    gains: GainSource = GainSource.SIMC
+    chiller_ratio: float = 1.0
+
+    def split(self, output_pct: float, deadband_pct: float) -> tuple[float, float]:
+        """Heater and chiller drives for a PID output.
+
+        Parameters
+        ----------
+        output_pct
+            PID output, heater-equivalent %.
+        deadband_pct
+            Half-width of the band around zero demand where both stay off, % of each
+            actuator's drive.
+
+        Returns
+        -------
+        tuple of float
+            ``(heater_pct, chiller_pct)``, each 0–100 %: the chiller's drive is the cooling
+            demand divided by ``chiller_ratio``, so a watt of demand is a watt either side.
+        """
+        if output_pct >= 0.0 or self.chiller_ratio <= 0.0:
+            return split_range(max(0.0, output_pct), deadband_pct)
+        return split_range(output_pct / self.chiller_ratio, deadband_pct)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -239,23 +290,73 @@ class ChamberSettings:
         Name of the chamber's thermal node.
     interlocks
         Interlock limits and policies.
-    par_full
-        PAR at 100 % lamp drive in the linear calibration, µmol photons m⁻² s⁻¹.
-    flow_full_cm_s
-        Flow at 100 % pump drive in the linear calibration, cm s⁻¹.
+    lamp_curve
+        Lamp drive (%) against PAR (µmol photons m⁻² s⁻¹): the rig's table or a straight line.
+    pump_curve
+        Pump drive (%) against flow (cm s⁻¹): the rig's table or a straight line.
     lamp_trim
-        PI trim of the lamp on the PAR sensor (output in PAR units), or None for open loop.
+        PI trim of the lamp on the PAR sensor (output in % of drive), or None for open loop.
     flow_trim
-        PI trim of the pump on the flow sensor (output in cm s⁻¹), or None for open loop.
+        PI trim of the pump on the flow sensor (output in % of drive), or None for open loop.
     """
 
     chamber: str
     node: str
     interlocks: InterlockLimits
-    par_full: float
-    flow_full_cm_s: float
+    lamp_curve: DriveCurve
+    pump_curve: DriveCurve
     lamp_trim: PidParams | None
     flow_trim: PidParams | None
+
+    @property
+    def par_full(self) -> float:
+        """PAR at 100 % lamp drive, µmol photons m⁻² s⁻¹."""
+        return self.lamp_curve.full
+
+    @property
+    def flow_full_cm_s(self) -> float:
+        """Flow at 100 % pump drive, cm s⁻¹."""
+        return self.pump_curve.full
+
+    def lamp_drive_pct(self, par: float | None, *, reading: bool = False) -> float | None:
+        """Feed-forward lamp drive for a PAR setpoint, or the drive a PAR reading stands for.
+
+        Parameters
+        ----------
+        par
+            PAR setpoint (or, with ``reading``, measured PAR), µmol photons m⁻² s⁻¹, or None.
+        reading
+            True for a measurement: the drive that would give it, straight on beyond the
+            curve's ends (what the trim compares with the feed-forward).
+
+        Returns
+        -------
+        float or None
+            Drive, % (a setpoint of 0 or less gives 0), or None when ``par`` is None.
+        """
+        if par is None:
+            return None
+        return self.lamp_curve.equivalent_drive(par) if reading else self.lamp_curve.drive_for(par)
+
+    def pump_drive_pct(self, flow_cm_s: float | None, *, reading: bool = False) -> float | None:
+        """Feed-forward pump drive for a flow setpoint, or the drive a flow reading stands for.
+
+        Parameters
+        ----------
+        flow_cm_s
+            Flow setpoint (or, with ``reading``, measured flow), cm s⁻¹, or None.
+        reading
+            True for a measurement, as for :meth:`lamp_drive_pct`.
+
+        Returns
+        -------
+        float or None
+            Drive, % (0 for no flow, else at least the dead band's edge), or None.
+        """
+        if flow_cm_s is None:
+            return None
+        curve = self.pump_curve
+        return curve.equivalent_drive(flow_cm_s) if reading else curve.drive_for(flow_cm_s)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -290,75 +391,39 @@ class ControlPlan:
         return {node.driver: node for node in self.nodes}
 
 
-def _rho_cp_j_l_k(salinity: float) -> float:
-    """Volumetric heat capacity of water at the tuning temperature, J L⁻¹ K⁻¹ (TEOS-10)."""
-    sr = gsw.SR_from_SP(salinity)
-    t = _TUNING_TEMPERATURE_C
-    return float(gsw.rho_t_exact(sr, t, 0.0) * gsw.cp_t_exact(sr, t, 0.0) / 1000.0)
-
-
-def node_model(rig: Rig, members: Sequence[str], period_s: float) -> Fopdt:
-    """First-order-plus-dead-time model of one thermal node from the rig's description.
-
-    Parameters
-    ----------
-    rig
-        The rig.
-    members
-        Chamber ids in the node (one chamber, or every chamber of one bath).
-    period_s
-        Control tick period, s (half of it is added to the dead time).
-
-    Returns
-    -------
-    Fopdt
-        Gain (°C per % heater drive) = heater_max_w / 100 / UA; time constant (s) = heat
-        capacity of the node's water / UA; dead time (s) = actuator dead time + the slowest
-        probe's lag + half a tick.
-
-    Notes
-    -----
-    The heat balance C·dT/dt = P − UA·(T − T_room) is first order with gain 1/UA and time
-    constant C/UA. A first-order probe lag much shorter than C/UA is folded into the dead
-    time (Skogestad 2003, half rule with the lag as the neglected small time constant).
-    """
-    chambers = [rig.chamber(c) for c in members]
-    first = chambers[0]
-    if first.bath is not None:
-        bath = rig.bath(first.bath)
-        thermal = bath.thermal if bath is not None else ThermalSim()
-        every = [c for c in rig.chambers if c.bath == first.bath]
-        capacity = sum(c.water_volume_l * _rho_cp_j_l_k(c.salinity) for c in every)
-        if bath is not None:
-            capacity += bath.water_volume_l * _rho_cp_j_l_k(bath.salinity)
-    else:
-        thermal = first.sim.thermal or ThermalSim()
-        capacity = first.water_volume_l * _rho_cp_j_l_k(first.salinity)
-    probe_lag_s = max(c.sim.sensors.temperature_tau_s for c in chambers)
-    return Fopdt(
-        gain=thermal.heater_max_w / 100.0 / thermal.ua_w_k,
-        tau_s=capacity / thermal.ua_w_k,
-        theta_s=thermal.dead_time_s + probe_lag_s + period_s / 2.0,
-    )
-
-
 def _interlocks(
-    limits_min: float, limits_max: float, ramp: float, s: RunSettings
+    rig: Rig, index: int, s: RunSettings, table: ChamberInterlocks | None
 ) -> InterlockLimits:
-    low = limits_min - s.trip_margin_c
-    high = limits_max + s.trip_margin_c
-    return InterlockLimits(
-        min_temperature_c=low,
-        max_temperature_c=high,
-        max_rate_c_per_h=max(3.0 * ramp, 6.0),
-        sensor_min_c=min(-5.0, low - 5.0),
-        sensor_max_c=max(60.0, high + 5.0),
-        rate_window_s=max(300.0, 3.0 * s.period_s),
-        stale_after_s=max(30.0, 3.0 * s.period_s),
-        frozen_after_s=max(900.0, 10.0 * s.period_s),
-        comm_loss_after_s=max(10.0, 2.0 * s.period_s),
-        policies=s.policies,
+    """The chamber's interlock limits: derived from its limits, then the rig file's values."""
+    derived = derived_limits(
+        rig.chambers[index].limits,
+        trip_margin_c=s.trip_margin_c,
+        period_s=s.period_s,
+        policies=merged_policies(table, s.policies),
     )
+    if table is None:
+        return derived
+    return table.apply(derived, period_s=s.period_s, where=f"chambers.{index}.interlocks")
+
+
+def _node_pid(
+    rig: Rig, members: Sequence[str], model: Fopdt, s: RunSettings, out_min: float
+) -> tuple[PidParams, GainSource]:
+    """The node's PID: the rig file's gains when it gives them, else SIMC on the model."""
+    given = node_control(rig, members)
+    if given is None:
+        tau_c = s.tau_c_factor * model.theta_s
+        gains = simc(model, tau_c)
+        pid = gains.params(out_min=out_min, out_max=100.0, tracking_time_s=tau_c + model.theta_s)
+        return pid, GainSource.SIMC
+    if given.period_s is not None and not 0.5 <= given.period_s / s.period_s <= 2.0:
+        _log.warning(
+            "node %s: the rig's gains were tuned for a %g s tick, this run ticks every %g s",
+            members[0],
+            given.period_s,
+            s.period_s,
+        )
+    return given.params(out_min=out_min, out_max=100.0), GainSource.RIG
 
 
 def plan_control(
@@ -400,49 +465,46 @@ def plan_control(
     nodes: list[NodeSettings] = []
     for name, members in groups.items():
         model = node_model(rig, members, settings.period_s)
-        tau_c = settings.tau_c_factor * model.theta_s
-        gains = simc(model, tau_c)
+        ratio = chiller_ratio(rig, members)
+        pid, source = _node_pid(rig, members, model, settings, -100.0 * ratio)
+        _log.info(
+            "node %s: kc %.4g %%/°C, Ti %.4g s, Td %.4g s (%s)",
+            name,
+            pid.kc,
+            pid.ti_s,
+            pid.td_s,
+            "rig file [chambers.control]"
+            if source is GainSource.RIG
+            else "SIMC on the rig's thermal description",
+        )
         nodes.append(
             NodeSettings(
                 name=name,
                 chambers=tuple(members),
                 driver=driver[name],
                 model=model,
-                pid=gains.params(
-                    out_min=-100.0, out_max=100.0, tracking_time_s=tau_c + model.theta_s
-                ),
+                pid=pid,
                 max_ramp_c_per_h=min(rig.chamber(c).limits.max_ramp_c_per_h for c in members),
                 heater_on_off=name in settings.on_off_heaters,
+                gains=source,
+                chiller_ratio=ratio,
             )
         )
     node_of = {c: node.name for node in nodes for c in node.chambers}
     per_chamber: dict[str, ChamberSettings] = {}
-    for chamber in rig.chambers:
+    trim = settings.trim_integral_s
+    for index, chamber in enumerate(rig.chambers):
         if chamber.id not in wanted:
             continue
         lim = chamber.limits
-        par_full = lim.max_par if lim.max_par > 0 else 1.0
-        flow_full = lim.max_flow_cm_s if lim.max_flow_cm_s > 0 else 1.0
         per_chamber[chamber.id] = ChamberSettings(
             chamber=chamber.id,
             node=node_of[chamber.id],
-            interlocks=_interlocks(
-                lim.min_temperature_c, lim.max_temperature_c, lim.max_ramp_c_per_h, settings
-            ),
-            par_full=par_full,
-            flow_full_cm_s=flow_full,
-            lamp_trim=PidParams(
-                kc=settings.lamp_trim_kc,
-                ti_s=settings.trim_integral_s,
-                out_min=-0.5 * par_full,
-                out_max=0.5 * par_full,
-            ),
-            flow_trim=PidParams(
-                kc=settings.flow_trim_kc,
-                ti_s=settings.trim_integral_s,
-                out_min=-0.5 * flow_full,
-                out_max=0.5 * flow_full,
-            ),
+            interlocks=_interlocks(rig, index, settings, chamber.interlocks),
+            lamp_curve=chamber.lamp.curve() or DriveCurve.linear(lim.max_par or 1.0),
+            pump_curve=chamber.pump.curve() or DriveCurve.linear(lim.max_flow_cm_s or 1.0),
+            lamp_trim=PidParams(kc=settings.lamp_trim_kc, ti_s=trim, out_min=-50.0, out_max=50.0),
+            flow_trim=PidParams(kc=settings.flow_trim_kc, ti_s=trim, out_min=-50.0, out_max=50.0),
         )
     idle = tuple(c.id for c in rig.chambers if c.id not in wanted)
     cycling = dict(incubation or {})
