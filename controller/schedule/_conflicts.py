@@ -266,7 +266,7 @@ def bath_conflicts(bookings: Sequence[Booking], rig: Rig) -> list[Conflict]:
             ]
             when = format_when(_utc(first), zone)
             if shown != first:
-                when = f"from {when} (at {format_when(_utc(shown), zone)}"
+                when = f"from {when} (at {format_when(_utc(shown), zone)}: "
             else:
                 when = f"at {when} ("
             message = (
@@ -312,17 +312,63 @@ def _peak(left: FloatArray, right: FloatArray) -> tuple[int, str, float]:
 
 
 def _parts_text(parts: dict[str, float], unit: str = "W") -> str:
-    shown = sorted(((v, k) for k, v in parts.items() if v >= 0.5), reverse=True)
-    return ", ".join(f"{k} {v:.0f} {unit}" for v, k in shown)
+    shown = sorted(((-v, k) for k, v in parts.items() if v >= 0.5))
+    return ", ".join(f"{k} {-v:.0f} {unit}" for v, k in shown)
 
 
 class _Evaluated:
-    """Loads evaluated once on the grid, both sides (W)."""
+    """Loads with their values on the grid, seen from both sides (W)."""
 
-    def __init__(self, loads: Sequence[NodeLoad | LampLoad], grid: FloatArray) -> None:
+    def __init__(
+        self,
+        loads: Sequence[NodeLoad | LampLoad],
+        grid: FloatArray,
+        values: tuple[list[FloatArray], list[FloatArray]] | None = None,
+    ) -> None:
+        self.loads = list(loads)
         self.grid = grid
-        self.left = [load.watts(grid, "left") for load in loads]
-        self.right = [load.watts(grid, "right") for load in loads]
+        if values is None:
+            values = (
+                [load.watts(grid, "left") for load in loads],
+                [load.watts(grid, "right") for load in loads],
+            )
+        self.left, self.right = values
+
+    def subset(self, indices: Sequence[int]) -> _Evaluated:
+        """The same grid with only some of the loads."""
+        return _Evaluated(
+            [self.loads[i] for i in indices],
+            self.grid,
+            ([self.left[i] for i in indices], [self.right[i] for i in indices]),
+        )
+
+
+def _crossing(
+    evaluated: _Evaluated,
+    shares: Callable[[FloatArray], FloatArray],
+    capacity_w: float,
+    lo_s: float,
+    hi_s: float,
+) -> float:
+    """First instant in (lo_s, hi_s] (epoch s) where the load passes capacity, by bisection.
+
+    On one piece of the grid every load is linear (or a parabola within tol_w of its chord),
+    and Σ max(±P, 0) is convex, so it passes the capacity once on its way up.
+    """
+
+    def total(t_s: float) -> float:
+        x = np.array([t_s])
+        return float(sum(shares(load.watts(x, "right"))[0] for load in evaluated.loads))
+
+    for _ in range(60):
+        if hi_s - lo_s < 0.5:
+            break
+        mid = (lo_s + hi_s) / 2.0
+        if total(mid) > capacity_w:
+            hi_s = mid
+        else:
+            lo_s = mid
+    return hi_s
 
 
 def _resource(
@@ -355,13 +401,23 @@ def _resource(
     for label, part in zip(labels, parts_at, strict=True):
         breakdown[label] = breakdown.get(label, 0.0) + float(part[k])
     at = _utc(float(grid[k]))
-    message = (
-        f"{name} would need {total:.0f} W {what}at {format_when(at, zone)} (capacity "
-        f"{capacity_w:.0f} W): {_parts_text(breakdown)}"
-    )
+    first = at
+    if side == "left" and right[k - 1] <= capacity_w:
+        first = _utc(_crossing(evaluated, shares, capacity_w, grid[k - 1], grid[k]))
+    if first < at:
+        message = (
+            f"{name} would need more than its {capacity_w:.0f} W {what}from "
+            f"{format_when(first, zone)}, {total:.0f} W at {format_when(at, zone)}: "
+            f"{_parts_text(breakdown)}"
+        )
+    else:
+        message = (
+            f"{name} would need {total:.0f} W {what}at {format_when(at, zone)} (capacity "
+            f"{capacity_w:.0f} W): {_parts_text(breakdown)}"
+        )
     if k_peak != k or side_peak != side:
         message += f"; peak {peak_w:.0f} W at {format_when(peak.at_utc, zone)}"
-    return Conflict(kind, message, at, experiments=ids), peak
+    return Conflict(kind, message, first, experiments=ids), peak
 
 
 def _load_label(load: NodeLoad | LampLoad, several: bool) -> str:
@@ -414,9 +470,7 @@ def power_conflicts(
         mine = [i for i, load in enumerate(thermal) if load.node == node]
         first = thermal[mine[0]]
         noun = f"bath {node!r}" if first.is_bath else f"chamber {node}"
-        sub = _Evaluated([], evaluated.grid)
-        sub.left = [evaluated.left[i] for i in mine]
-        sub.right = [evaluated.right[i] for i in mine]
+        sub = evaluated.subset(mine)
         labels = [_load_label(thermal[i], several) for i in mine]
         for shares, capacity, what, unit in (
             (_heating, first.heater_max_w, "of heating ", "heater"),
@@ -430,9 +484,7 @@ def power_conflicts(
                 conflicts.append(conflict)
     for plant in rig.plants:
         served = [i for i, load in enumerate(thermal) if load.node in plant.serves]
-        sub = _Evaluated([], evaluated.grid)
-        sub.left = [evaluated.left[i] for i in served]
-        sub.right = [evaluated.right[i] for i in served]
+        sub = evaluated.subset(served)
         shares = _heating if plant.kind.value == "heater" else _cooling
         conflict, peak = _resource(
             f"{plant.kind.value} {plant.id!r}", plant.capacity_w,
