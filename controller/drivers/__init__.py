@@ -6,17 +6,21 @@ tests share one definition of every register and every line (see ``hardware-note
 """
 
 from controller.drivers._codec_modbus import (
+    CYCLIC_INPUT_WORDS,
     POINTS,
+    ContactStatus,
     InputBits,
     InputStatus,
     InputValues,
     OutputValues,
     RelayBits,
+    decode_contact_status,
     decode_input_bits,
     decode_inputs,
     decode_outputs,
     decode_relays,
     decode_safe_outputs,
+    encode_contact_status,
     encode_input_bits,
     encode_inputs,
     encode_outputs,
@@ -59,6 +63,7 @@ from controller.drivers._optode_records import (
     OptodeStatus,
 )
 from controller.drivers._register_map import (
+    MAX_RUN_BLOCKS,
     ChamberBlock,
     ChamberBlockConfig,
     RegisterMap,
@@ -67,12 +72,15 @@ from controller.drivers._register_map import (
 
 __all__ = [
     "BLOCK_SPAN",
+    "CYCLIC_INPUT_WORDS",
     "MAX_LINE_BYTES",
+    "MAX_RUN_BLOCKS",
     "POINTS",
     "TERMINATOR",
     "CalibrationRecord",
     "ChamberBlock",
     "ChamberBlockConfig",
+    "ContactStatus",
     "DeviceInfo",
     "Encoding",
     "ErrorReply",
@@ -95,6 +103,7 @@ __all__ = [
     "Table",
     "WordOrder",
     "crc16_xmodem",
+    "decode_contact_status",
     "decode_float32",
     "decode_input_bits",
     "decode_inputs",
@@ -104,6 +113,7 @@ __all__ = [
     "decode_reply",
     "decode_request",
     "decode_safe_outputs",
+    "encode_contact_status",
     "encode_float32",
     "encode_input_bits",
     "encode_inputs",

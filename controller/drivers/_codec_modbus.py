@@ -28,17 +28,21 @@ from controller.drivers._modbus_scalar import (
 from controller.errors import SquallError
 
 __all__ = [
+    "CYCLIC_INPUT_WORDS",
     "POINTS",
+    "ContactStatus",
     "InputBits",
     "InputStatus",
     "InputValues",
     "OutputValues",
     "RelayBits",
+    "decode_contact_status",
     "decode_input_bits",
     "decode_inputs",
     "decode_outputs",
     "decode_relays",
     "decode_safe_outputs",
+    "encode_contact_status",
     "encode_input_bits",
     "encode_inputs",
     "encode_outputs",
@@ -87,6 +91,7 @@ POINTS: tuple[Point, ...] = (
     _p("flow_cm_s", _IR, 3, _U16, "cm s⁻¹", 0.0, 600.0, 0.01, "flow over the community"),
     _p("level_pct", _IR, 4, _U16, "% of nominal", 0.0, 150.0, 0.1, "water level transmitter"),
     _p("input_status", _IR, 5, _U16, "bit field", 0, 0x000F, 1.0, "per-input fault bits"),
+    _p("contact_status", _IR, 6, _U16, "bit field", 0, 0x0007, 1.0, "the contacts, as bits"),
     _p("heater_pct", _HR, 0, _U16, "%", 0.0, 100.0, 0.01, "heater drive"),
     _p("chiller_pct", _HR, 1, _U16, "%", 0.0, 100.0, 0.01, "chiller drive"),
     _p("lamp_pct", _HR, 2, _U16, "%", 0.0, 100.0, 0.01, "lamp drive"),
@@ -147,6 +152,8 @@ _INPUT_FIELDS: tuple[tuple[str, str, InputStatus], ...] = (
     ("level_pct", "level_pct", InputStatus.LEVEL_FAULT),
 )
 _INPUT_WORDS = 6  # input registers 0..5
+CYCLIC_INPUT_WORDS = 7
+"""Input registers 0..6 of a block: every reading and every contact in one request (count)."""
 
 
 def _fault_words(p: Point, word_order: WordOrder) -> tuple[int, ...]:
@@ -484,3 +491,55 @@ def decode_input_bits(bits: Sequence[object], *, where: str = "contacts") -> Inp
         Contact states (no unit).
     """
     return InputBits(**_decode_bits(bits, _INPUT_BIT_NAMES, where))
+
+
+class ContactStatus(enum.IntFlag):
+    """Bits of the ``contact_status`` input register: the discrete inputs, mirrored."""
+
+    LEVEL_OK = 0x0001
+    ESTOP_OK = 0x0002
+    WATCHDOG_TRIPPED = 0x0004
+
+
+_CONTACT_FLAGS = (
+    ("level_ok", ContactStatus.LEVEL_OK),
+    ("estop_ok", ContactStatus.ESTOP_OK),
+    ("watchdog_tripped", ContactStatus.WATCHDOG_TRIPPED),
+)
+
+
+def encode_contact_status(inputs: InputBits) -> int:
+    """The ``contact_status`` word (input register 6) for a block's contacts.
+
+    Parameters
+    ----------
+    inputs
+        Contact states (no unit).
+
+    Returns
+    -------
+    int
+        The word, 0..7 (no unit).
+    """
+    return int(sum((flag for name, flag in _CONTACT_FLAGS if getattr(inputs, name)), start=0))
+
+
+def decode_contact_status(word: int, *, where: str = "contact_status") -> InputBits:
+    """Decode the ``contact_status`` word (input register 6) into contact states.
+
+    Parameters
+    ----------
+    word
+        The word as read, 0..65535 (no unit).
+    where
+        Field-path prefix named in errors (no unit).
+
+    Returns
+    -------
+    InputBits
+        Contact states (no unit); a reserved bit set is a malformed reply (SquallError).
+    """
+    value = check_word(word, where)
+    if value & ~int(sum(ContactStatus)) & 0xFFFF:
+        raise SquallError(f"reserved contact bits set (0x{value:04X})", field=where)
+    return InputBits(**{name: bool(value & flag) for name, flag in _CONTACT_FLAGS})

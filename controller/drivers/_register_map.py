@@ -3,6 +3,10 @@
 Rule: chamber k (0-based, rig order) sits at ``first_block_address + k * block_stride`` on
 ``unit_id`` unless the config overrides it. Blocks start on multiples of 16 so that a block's
 coils and discrete inputs fill whole 16-bit words, and no two blocks on one unit share a word.
+
+Blocks that follow each other with no gap (``block_stride = 16``) on one unit form a *run*
+(:meth:`RegisterMap.runs`): reserved offsets read 0 and take writes of 0, so one request reads
+the cyclic inputs of up to :data:`MAX_RUN_BLOCKS` chambers, and one writes their drives.
 """
 
 from __future__ import annotations
@@ -18,7 +22,18 @@ from controller.drivers._codec_modbus import POINTS, point
 from controller.drivers._modbus_scalar import BLOCK_SPAN, Point, Table, WordOrder
 from controller.errors import SquallError
 
-__all__ = ["ChamberBlock", "ChamberBlockConfig", "RegisterMap", "RegisterMapConfig"]
+__all__ = [
+    "MAX_RUN_BLOCKS",
+    "ChamberBlock",
+    "ChamberBlockConfig",
+    "RegisterMap",
+    "RegisterMapConfig",
+]
+
+MAX_RUN_BLOCKS = 8
+"""Most blocks one request spans: input registers 0..6 of eight neighbouring blocks are
+7 × 16 + 7 = 119 words, within the 125 of one read (Modbus application protocol v1.1b3, 6.4),
+and holding registers 0..5 are 118 words, within the 123 of one write (6.12); count."""
 
 
 class ChamberBlockConfig(FileModel):
@@ -216,6 +231,39 @@ class RegisterMap:
             for b in self.blocks_on(unit_id)
             if b.base <= last and first <= b.base + BLOCK_SPAN - 1
         )
+
+    def runs(self, max_blocks: int = MAX_RUN_BLOCKS) -> tuple[tuple[ChamberBlock, ...], ...]:
+        """Blocks grouped into runs: neighbours on one unit with no gap between them.
+
+        Parameters
+        ----------
+        max_blocks
+            Longest run, >= 1 (count); a longer row of neighbours is cut into several runs.
+
+        Returns
+        -------
+        tuple of tuple of ChamberBlock
+            Every block in exactly one run, by unit and ascending address (no unit).
+        """
+        if max_blocks < 1:
+            raise ValueError(f"max_blocks must be 1 or more, got {max_blocks}")
+        runs: list[list[ChamberBlock]] = []
+        for unit in self.unit_ids:
+            current: list[ChamberBlock] = []
+            for b in self.blocks_on(unit):
+                if (
+                    current
+                    and b.base == current[-1].base + BLOCK_SPAN
+                    and len(current) < max_blocks
+                ):
+                    current.append(b)
+                    continue
+                if current:
+                    runs.append(current)
+                current = [b]
+            if current:
+                runs.append(current)
+        return tuple(tuple(run) for run in runs)
 
     def locate(self, table: Table, unit_id: int, address: int) -> tuple[ChamberBlock, Point] | None:
         """Which block and point an address belongs to.

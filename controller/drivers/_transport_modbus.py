@@ -53,6 +53,13 @@ _MAX_READ_REGISTERS = 125  # Modbus application protocol v1.1b3, 6.3/6.4
 _MAX_READ_BITS = 2000  # 6.1/6.2
 _MAX_WRITE_REGISTERS = 123  # 6.12
 _MAX_WRITE_BITS = 1968  # 6.11
+#: Per read function code: pymodbus client method, what is read, most items per request.
+_READS = {
+    0x01: ("read_coils", "coils", _MAX_READ_BITS),
+    0x02: ("read_discrete_inputs", "discrete inputs", _MAX_READ_BITS),
+    0x03: ("read_holding_registers", "holding registers", _MAX_READ_REGISTERS),
+    0x04: ("read_input_registers", "input registers", _MAX_READ_REGISTERS),
+}
 
 Client = AsyncModbusTcpClient | AsyncModbusSerialClient
 
@@ -308,6 +315,19 @@ class ModbusTransport:
         raise error(f"{what}: {detail} (after {self.policy.attempts} attempts)", link=self.name)
 
     # --------------------------------------------------------------- data calls
+    async def _read(self, function_code: int, unit_id: int, address: int, count: int) -> Any:
+        """One read request of any table (the four reads differ only in these constants)."""
+        method, what, limit = _READS[function_code]
+        _check_unit(unit_id)
+        _check_span(address, count, limit, f"read {what}")
+        return await self._call(
+            f"read {what} {address}+{count} of unit {unit_id}",
+            lambda c: getattr(c, method)(address, count=count, device_id=unit_id),
+            unit_id=unit_id,
+            function_code=function_code,
+            address=address,
+        )
+
     async def read_input_registers(self, unit_id: int, address: int, count: int) -> tuple[int, ...]:
         """Read input registers (function 04).
 
@@ -325,15 +345,7 @@ class ModbusTransport:
         tuple of int
             The words, 0..65535 each (no unit).
         """
-        _check_unit(unit_id)
-        _check_span(address, count, _MAX_READ_REGISTERS, "read input registers")
-        reply = await self._call(
-            f"read input registers {address}+{count} of unit {unit_id}",
-            lambda c: c.read_input_registers(address, count=count, device_id=unit_id),
-            unit_id=unit_id,
-            function_code=0x04,
-            address=address,
-        )
+        reply = await self._read(0x04, unit_id, address, count)
         return self._words(reply, count, "input registers")
 
     async def read_holding_registers(
@@ -355,15 +367,7 @@ class ModbusTransport:
         tuple of int
             The words, 0..65535 each (no unit).
         """
-        _check_unit(unit_id)
-        _check_span(address, count, _MAX_READ_REGISTERS, "read holding registers")
-        reply = await self._call(
-            f"read holding registers {address}+{count} of unit {unit_id}",
-            lambda c: c.read_holding_registers(address, count=count, device_id=unit_id),
-            unit_id=unit_id,
-            function_code=0x03,
-            address=address,
-        )
+        reply = await self._read(0x03, unit_id, address, count)
         return self._words(reply, count, "holding registers")
 
     async def read_discrete_inputs(
@@ -385,16 +389,7 @@ class ModbusTransport:
         tuple of bool
             ``count`` contact states (no unit).
         """
-        _check_unit(unit_id)
-        _check_span(address, count, _MAX_READ_BITS, "read discrete inputs")
-        reply = await self._call(
-            f"read discrete inputs {address}+{count} of unit {unit_id}",
-            lambda c: c.read_discrete_inputs(address, count=count, device_id=unit_id),
-            unit_id=unit_id,
-            function_code=0x02,
-            address=address,
-        )
-        return self._bits(reply, count, "discrete inputs")
+        return self._bits(await self._read(0x02, unit_id, address, count), count, "discrete inputs")
 
     async def read_coils(self, unit_id: int, address: int, count: int) -> tuple[bool, ...]:
         """Read coils (function 01).
@@ -413,16 +408,7 @@ class ModbusTransport:
         tuple of bool
             ``count`` coil states (no unit).
         """
-        _check_unit(unit_id)
-        _check_span(address, count, _MAX_READ_BITS, "read coils")
-        reply = await self._call(
-            f"read coils {address}+{count} of unit {unit_id}",
-            lambda c: c.read_coils(address, count=count, device_id=unit_id),
-            unit_id=unit_id,
-            function_code=0x01,
-            address=address,
-        )
-        return self._bits(reply, count, "coils")
+        return self._bits(await self._read(0x01, unit_id, address, count), count, "coils")
 
     async def write_registers(self, unit_id: int, address: int, words: Sequence[int]) -> None:
         """Write holding registers (function 16, one request however many words).

@@ -3,13 +3,15 @@
 Rules of this module
 --------------------
 - One ``SimDevice`` per unit id of the register map, with the four tables kept apart (coils
-  and discrete inputs addressed by bit). Each chamber block defines exactly its points, so a
-  request that reaches a gap gets exception 02 from pymodbus before we are asked.
+  and discrete inputs addressed by bit). Each chamber block defines its 16 offsets in every
+  table (reserved ones read 0), so a request may span neighbouring blocks, and one that
+  reaches a gap between blocks gets exception 02 from pymodbus before we are asked.
 - Every request goes through :meth:`ModbusEndpoint._action`: it finds the blocks the request
   touches, stays **silent** (the client times out) when any of their modules is unreachable
-  (``rack.comm_ok(chamber, "modbus")`` is False), refreshes the modules, and then either hands
-  a write to the module (which may refuse it with an exception code) or fills the datastore's
-  registers from the module before pymodbus answers a read.
+  (``rack.comm_ok(chamber, "modbus")`` is False), refreshes those modules, and then either
+  hands a write to the modules (checked by every one before any applies it, so a request that
+  spans several is taken by all or by none) or fills the datastore's registers from them
+  before pymodbus answers a read.
 - Silence for an unreachable module uses pymodbus' own path for missing devices
   (``NoSuchIdException`` with ``ignore_missing_devices``). Requests for unit ids that no block
   uses are dropped on arrival by the server's ``trace_pdu`` hook (pymodbus 3.16 handles no
@@ -31,7 +33,6 @@ from pymodbus.simulator import DataType, SimData, SimDevice
 
 from controller.drivers import (
     BLOCK_SPAN,
-    POINTS,
     ChamberBlock,
     RegisterMap,
     Table,
@@ -52,16 +53,15 @@ def _pack(bits: Sequence[bool]) -> int:
 
 
 def _table_data(blocks: Sequence[ChamberBlock], table: Table) -> list[SimData]:
-    """The SimData entries that define one table's valid addresses for a unit."""
-    entries: list[SimData] = []
+    """The SimData entries that define one table's valid addresses for a unit: every offset
+    of every block (reserved ones read 0), nothing between blocks."""
     if table.is_bit:
-        for block in blocks:
-            entries.append(SimData(block.base, values=[False] * BLOCK_SPAN, datatype=DataType.BITS))
-        return entries
-    span = max(p.offset + p.word_count for p in POINTS if p.table is table)
-    for block in blocks:
-        entries.append(SimData(block.base, count=span, values=0, datatype=DataType.REGISTERS))
-    return entries
+        return [
+            SimData(b.base, values=[False] * BLOCK_SPAN, datatype=DataType.BITS) for b in blocks
+        ]
+    return [
+        SimData(b.base, count=BLOCK_SPAN, values=0, datatype=DataType.REGISTERS) for b in blocks
+    ]
 
 
 class ModbusEndpoint:
@@ -231,26 +231,36 @@ class ModbusEndpoint:
         for m in modules:
             m.refresh()
         if writing:
-            return self._write(table, unit, address, list(set_values or []))
+            return self._write(table, blocks, address, [int(v) for v in set_values or []])
         self._fill(table, blocks, start_address, address, count, registers)
         return None
 
     def _write(
-        self, table: Table, unit: int, address: int, values: Sequence[int | bool]
+        self, table: Table, blocks: Sequence[ChamberBlock], address: int, values: Sequence[int]
     ) -> ExcCodes | None:
-        located = self.register_map.locate(table, unit, address)
-        if located is None:
-            return ExcCodes.ILLEGAL_ADDRESS
-        block = located[0]
-        module = self.modules[block.chamber_id]
-        offset = address - block.base
-        if offset + len(values) > BLOCK_SPAN:
-            return ExcCodes.ILLEGAL_ADDRESS
-        if table is Table.HOLDING_REGISTER:
-            refusal = module.write_holding(offset, [int(v) for v in values])
-        else:
-            refusal = module.write_coils(offset, [bool(v) for v in values])
-        return None if refusal is None else ExcCodes(int(refusal))
+        """Hand a write to every module it reaches; all check it before any applies it."""
+        parts: list[tuple[IoModule, int, list[int]]] = []
+        for block in blocks:
+            first = max(address, block.base)
+            last = min(address + len(values), block.base + BLOCK_SPAN)
+            part = [int(v) for v in values[first - address : last - address]]
+            parts.append((self.modules[block.chamber_id], first - block.base, part))
+        if sum(len(part) for _, _, part in parts) != len(values):
+            return ExcCodes.ILLEGAL_ADDRESS  # part of the request lies outside every block
+        holding = table is Table.HOLDING_REGISTER
+        for module, offset, part in parts:
+            if holding:
+                refusal = module.check_holding(offset, part)
+            else:
+                refusal = module.check_coils(offset, [bool(v) for v in part])
+            if refusal is not None:
+                return ExcCodes(int(refusal))
+        for module, offset, part in parts:
+            if holding:
+                module.write_holding(offset, part)
+            else:
+                module.write_coils(offset, [bool(v) for v in part])
+        return None
 
     def _fill(
         self,
@@ -270,6 +280,7 @@ class ModbusEndpoint:
             words = (
                 module.input_words() if table is Table.INPUT_REGISTER else module.holding_words()
             )
+            words = (*words, *(0,) * (BLOCK_SPAN - len(words)))  # reserved offsets read 0
             first = max(address, block.base)
             last = min(address + count, block.base + BLOCK_SPAN)
             for addr in range(first, last):

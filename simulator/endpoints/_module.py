@@ -12,6 +12,9 @@ Rules of this module
   0; everything is 0 while the E-stop loop is open. The result goes to ``rack.set_outputs``
   after every change, so the rack always runs what the module would switch.
 - A refused write changes nothing and answers a Modbus exception code (:class:`Refusal`).
+  Writes are checked first (:meth:`IoModule.check_holding`, :meth:`IoModule.check_coils`)
+  and applied after, so a request that spans several modules is taken by all or by none.
+  Reserved offsets read 0 and take writes of 0, which change nothing.
 """
 
 from __future__ import annotations
@@ -22,10 +25,12 @@ import math
 from controller.drivers import (
     BLOCK_SPAN,
     POINTS,
+    InputBits,
     InputValues,
     Table,
     WordOrder,
     decode_point,
+    encode_contact_status,
     encode_inputs,
     point,
 )
@@ -180,12 +185,12 @@ class IoModule:
         return value
 
     def input_words(self) -> tuple[int, ...]:
-        """Input registers 0..5: sample every input now and encode it.
+        """Input registers 0..6: sample every input and the contacts now, and encode them.
 
         Returns
         -------
         tuple of int
-            Six register words (no unit).
+            Seven register words (no unit).
         """
         level = 100.0 * self.rack.truth(self.chamber_id).water_volume_l / self._nominal_volume_l
         level_point = point("level_pct")
@@ -195,7 +200,8 @@ class IoModule:
             flow_cm_s=self._read("read_flow", "flow_cm_s"),
             level_pct=min(max(level, level_point.minimum), level_point.maximum),
         )
-        return encode_inputs(values, self.word_order, where=f"{self.chamber_id}.inputs")
+        words = encode_inputs(values, self.word_order, where=f"{self.chamber_id}.inputs")
+        return (*words, encode_contact_status(self._contacts()))
 
     def holding_words(self) -> tuple[int, ...]:
         """All holding registers of the block (unmapped offsets read 0).
@@ -217,6 +223,13 @@ class IoModule:
         """
         return tuple(self._coils)
 
+    def _contacts(self) -> InputBits:
+        return InputBits(
+            level_ok=self.rack.read_level_ok(self.chamber_id),
+            estop_ok=not self._estop_pressed,
+            watchdog_tripped=self._tripped,
+        )
+
     def input_bits(self) -> tuple[bool, ...]:
         """All discrete inputs of the block (unmapped offsets read open).
 
@@ -225,13 +238,45 @@ class IoModule:
         tuple of bool
             ``BLOCK_SPAN`` bits (no unit).
         """
+        contacts = self._contacts()
         bits = [False] * BLOCK_SPAN
-        bits[point("level_ok").offset] = self.rack.read_level_ok(self.chamber_id)
-        bits[point("estop_ok").offset] = not self._estop_pressed
-        bits[point("watchdog_tripped").offset] = self._tripped
+        bits[point("level_ok").offset] = contacts.level_ok
+        bits[point("estop_ok").offset] = contacts.estop_ok
+        bits[point("watchdog_tripped").offset] = contacts.watchdog_tripped
         return tuple(bits)
 
     # ----------------------------------------------------------------- writes
+
+    def check_holding(self, offset: int, words: list[int]) -> Refusal | None:
+        """Whether a holding-register write would be refused, changing nothing.
+
+        Parameters
+        ----------
+        offset
+            Block offset of the first register (no unit).
+        words
+            Register words to write (no unit).
+
+        Returns
+        -------
+        Refusal or None
+            Why the write would be refused, or None when it would be applied (no unit).
+        """
+        if offset < 0 or offset + len(words) > BLOCK_SPAN:
+            return Refusal.ILLEGAL_ADDRESS
+        for o, word in enumerate(words, start=offset):
+            p = _HR_POINTS.get(o)
+            if p is None:
+                if word != 0:
+                    return Refusal.ILLEGAL_ADDRESS
+                continue
+            try:
+                decode_point(p, [word])
+            except SquallError:
+                return Refusal.ILLEGAL_VALUE
+        if self._tripped and _DRIVE_OFFSETS.intersection(range(offset, offset + len(words))):
+            return Refusal.BUSY
+        return None
 
     def write_holding(self, offset: int, words: list[int]) -> Refusal | None:
         """Write holding registers starting at a block offset.
@@ -248,18 +293,13 @@ class IoModule:
         Refusal or None
             Why the whole write was refused, or None when it was applied (no unit).
         """
-        offsets = range(offset, offset + len(words))
-        if any(o not in _HR_POINTS for o in offsets):
-            return Refusal.ILLEGAL_ADDRESS
-        for o, word in zip(offsets, words, strict=True):
-            try:
-                decode_point(_HR_POINTS[o], [word])
-            except SquallError:
-                return Refusal.ILLEGAL_VALUE
-        if self._tripped and _DRIVE_OFFSETS.intersection(offsets):
-            return Refusal.BUSY
+        refusal = self.check_holding(offset, words)
+        if refusal is not None:
+            return refusal
         now = self.rack.t_s
-        for o, word in zip(offsets, words, strict=True):
+        for o, word in enumerate(words, start=offset):
+            if o not in _HR_POINTS:
+                continue  # a reserved offset: the 0 written changes nothing
             if o == _COUNTER.offset and word != self._hr[o]:
                 self._last_feed_s = now
                 self._tripped = False
@@ -267,6 +307,29 @@ class IoModule:
                 self._last_feed_s = now
             self._hr[o] = word
         self._apply()
+        return None
+
+    def check_coils(self, offset: int, bits: list[bool]) -> Refusal | None:
+        """Whether a relay-coil write would be refused, changing nothing.
+
+        Parameters
+        ----------
+        offset
+            Block offset of the first coil (no unit).
+        bits
+            Coil values, True = closed (no unit).
+
+        Returns
+        -------
+        Refusal or None
+            Why the write would be refused, or None when it would be applied (no unit).
+        """
+        if offset < 0 or offset + len(bits) > BLOCK_SPAN:
+            return Refusal.ILLEGAL_ADDRESS
+        if any(bit and o not in _COIL_OFFSETS for o, bit in enumerate(bits, start=offset)):
+            return Refusal.ILLEGAL_ADDRESS
+        if self._tripped and _COIL_OFFSETS.intersection(range(offset, offset + len(bits))):
+            return Refusal.BUSY
         return None
 
     def write_coils(self, offset: int, bits: list[bool]) -> Refusal | None:
@@ -284,12 +347,11 @@ class IoModule:
         Refusal or None
             Why the whole write was refused, or None when it was applied (no unit).
         """
-        offsets = range(offset, offset + len(bits))
-        if any(o not in _COIL_OFFSETS for o in offsets):
-            return Refusal.ILLEGAL_ADDRESS
-        if self._tripped:
-            return Refusal.BUSY
-        for o, bit in zip(offsets, bits, strict=True):
-            self._coils[o] = bool(bit)
+        refusal = self.check_coils(offset, bits)
+        if refusal is not None:
+            return refusal
+        for o, bit in enumerate(bits, start=offset):
+            if o in _COIL_OFFSETS:
+                self._coils[o] = bool(bit)
         self._apply()
         return None

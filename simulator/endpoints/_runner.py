@@ -3,9 +3,14 @@
 Rules of this module
 --------------------
 - :class:`RackServer` owns the endpoints. With a clock, the rack's simulated time follows the
-  clock: ``sync()`` advances the rack to the clock's present, and every endpoint calls it before
-  answering, so a reply is never staler than the request. :meth:`RackServer.run` also syncs
-  on a fixed cadence, which keeps the physics and the device watchdogs moving when nobody asks.
+  clock in whole physics steps (``[sim] physics_step_s``): ``sync()`` advances the rack by
+  every step that has fully passed, and every endpoint calls it before answering, so a reply
+  is at most one step older than its request, and the physics is integrated once per step
+  however many requests arrive. :meth:`RackServer.run` also syncs on a fixed cadence, which
+  keeps the physics and the device watchdogs moving when nobody asks.
+- The rack is served as modules of eight chambers (:func:`module_layout`): chamber k (rig
+  order) on unit ``1 + k // 8`` at base ``16 * (k % 8)``, so every unit is one run of
+  neighbouring blocks that a controller reads and writes in one request each.
 - Without a clock (tests), the caller steps the rack with ``rack.advance`` and ``tick()``.
 - Where to connect is announced as an :class:`Announcement`: printed by the CLI and written as
   JSON to a ports file (atomically, removed again on shutdown) so a controller can find the
@@ -15,6 +20,7 @@ Rules of this module
 from __future__ import annotations
 
 import json
+import math
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,12 +28,41 @@ from types import TracebackType
 from typing import Any, Self
 
 from controller.clock import Clock
-from controller.drivers import RegisterMap
+from controller.drivers import (
+    BLOCK_SPAN,
+    MAX_RUN_BLOCKS,
+    ChamberBlockConfig,
+    RegisterMap,
+    RegisterMapConfig,
+)
 from simulator import Rack
 from simulator.endpoints._modbus import ModbusEndpoint
 from simulator.endpoints._optode import OptodeEmulator
 
-__all__ = ["Announcement", "RackServer"]
+__all__ = ["Announcement", "RackServer", "module_layout"]
+
+
+def module_layout(chamber_ids: tuple[str, ...]) -> RegisterMap:
+    """The simulator's layout: modules of eight chambers, one unit id each.
+
+    Parameters
+    ----------
+    chamber_ids
+        Chamber ids in rig order (no unit).
+
+    Returns
+    -------
+    RegisterMap
+        Chamber k on unit ``1 + k // 8`` at base ``16 * (k % 8)`` (no unit).
+    """
+    per = MAX_RUN_BLOCKS
+    overrides = {
+        cid: ChamberBlockConfig(unit_id=1 + k // per, block_address=BLOCK_SPAN * (k % per))
+        for k, cid in enumerate(chamber_ids)
+    }
+    return RegisterMap.build(
+        chamber_ids, RegisterMapConfig(chambers=overrides), where="simulator.layout"
+    )
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -106,7 +141,7 @@ class RackServer:
     rack
         The simulated rack (with ``start_utc`` set: it dates the optodes' calibration).
     register_map
-        Where each chamber's block lives; None = the default map.
+        Where each chamber's block lives; None = :func:`module_layout`.
     clock
         The clock the rack follows; None when the caller steps the rack itself.
     """
@@ -121,8 +156,11 @@ class RackServer:
         self.rack = rack
         self.clock = clock
         self._offset_s = 0.0 if clock is None else clock.now_s() - rack.t_s
+        self._step_s = rack.rig.sim.physics_step_s
         sync = None if clock is None else self.sync
-        self.modbus = ModbusEndpoint(rack, register_map, sync=sync)
+        self.modbus = ModbusEndpoint(
+            rack, register_map or module_layout(rack.chamber_ids), sync=sync
+        )
         self.optodes: dict[str, OptodeEmulator] = {
             cid: OptodeEmulator(rack, cid, serial=f"SIM{i + 1:04d}", sync=sync)
             for i, cid in enumerate(rack.chamber_ids)
@@ -211,12 +249,16 @@ class RackServer:
     # ------------------------------------------------------------------- time
 
     def sync(self) -> None:
-        """Advance the rack to the clock's present and refresh the I/O modules."""
-        if self.clock is not None:
-            lag_s = self.clock.now_s() - self._offset_s - self.rack.t_s
-            if lag_s > 0:
-                self.rack.advance(lag_s)
-        self.modbus.tick()
+        """Advance the rack by the whole physics steps the clock has passed; refresh every
+        I/O module when it moved (the endpoints refresh the modules they answer for anyway)."""
+        if self.clock is None:
+            self.modbus.tick()
+            return
+        lag_s = self.clock.now_s() - self._offset_s - self.rack.t_s
+        steps = math.floor(lag_s / self._step_s + 1e-9)
+        if steps >= 1:
+            self.rack.advance(steps * self._step_s)
+            self.modbus.tick()
 
     async def run(self, *, step_s: float = 0.1) -> None:
         """Keep the rack following the clock until cancelled.

@@ -12,6 +12,8 @@ from pymodbus.client import ModbusTcpClient
 
 from controller.drivers import (
     BLOCK_SPAN,
+    CYCLIC_INPUT_WORDS,
+    MAX_RUN_BLOCKS,
     POINTS,
     ChamberBlockConfig,
     Encoding,
@@ -25,6 +27,7 @@ from controller.drivers import (
     RelayBits,
     Table,
     WordOrder,
+    decode_contact_status,
     decode_float32,
     decode_input_bits,
     decode_inputs,
@@ -32,6 +35,7 @@ from controller.drivers import (
     decode_point,
     decode_relays,
     decode_safe_outputs,
+    encode_contact_status,
     encode_float32,
     encode_input_bits,
     encode_inputs,
@@ -441,3 +445,48 @@ def test_locate_and_blocks_touched() -> None:
     assert [b.chamber_id for b in rmap.blocks_touched(1, 10, 30)] == ["c1", "c2"]
     assert rmap.blocks_touched(1, 16, 16) == ()
     assert BLOCK_SPAN == 16
+
+
+@pytest.mark.parametrize("level_ok", [False, True])
+@pytest.mark.parametrize("estop_ok", [False, True])
+@pytest.mark.parametrize("tripped", [False, True])
+def test_contact_status_mirrors_the_discrete_inputs(
+    level_ok: bool, estop_ok: bool, tripped: bool
+) -> None:
+    contacts = InputBits(level_ok=level_ok, estop_ok=estop_ok, watchdog_tripped=tripped)
+    word = encode_contact_status(contacts)
+    bits = encode_input_bits(contacts)
+    assert word == sum(1 << i for i, bit in enumerate(bits) if bit)  # bit i = discrete input i
+    assert decode_contact_status(word) == contacts
+
+
+def test_contact_status_rejects_reserved_bits() -> None:
+    with pytest.raises(SquallError, match="reserved contact bits") as info:
+        decode_contact_status(0x0009, where="c1.contacts")
+    assert info.value.field == "c1.contacts"
+    with pytest.raises(SquallError):
+        decode_contact_status(0x10000)
+
+
+def test_one_cyclic_read_of_a_full_run_fits_one_request() -> None:
+    # Modbus application protocol v1.1b3, 6.4 (125 registers a read) and 6.12 (123 a write)
+    assert CYCLIC_INPUT_WORDS == 1 + max(
+        p.offset for p in POINTS if p.table is Table.INPUT_REGISTER
+    )
+    assert (MAX_RUN_BLOCKS - 1) * BLOCK_SPAN + CYCLIC_INPUT_WORDS <= 125
+    assert MAX_RUN_BLOCKS * BLOCK_SPAN + CYCLIC_INPUT_WORDS > 125  # one more would not
+    assert (MAX_RUN_BLOCKS - 1) * BLOCK_SPAN + 6 <= 123
+
+
+def test_runs_group_neighbours_on_one_unit() -> None:
+    ids = [f"c{i}" for i in range(1, 12)]
+    packed = RegisterMap.build(
+        ids, RegisterMapConfig(block_stride=16, chambers={"c11": ChamberBlockConfig(unit_id=2)})
+    )
+    runs = [[b.chamber_id for b in run] for run in packed.runs()]
+    assert runs == [ids[:8], ["c9", "c10"], ["c11"]]  # at most eight; c11 is on unit 2
+    assert [len(r) for r in packed.runs(3)] == [3, 3, 3, 1, 1]
+    spread = RegisterMap.build(["a", "b"])  # the default stride leaves a gap: no run
+    assert [[b.chamber_id for b in run] for run in spread.runs()] == [["a"], ["b"]]
+    with pytest.raises(ValueError, match="max_blocks"):
+        spread.runs(0)

@@ -133,7 +133,9 @@ async def test_serves_until_ctrl_c(rig_file: Path, tmp_path: Path) -> None:
                 data["modbus"]["host"], port=data["modbus"]["port"], timeout=2.0, retries=0
             )
             assert await client.connect()
-            reply = await client.read_input_registers(32, count=6, device_id=1)
+            c2 = data["modbus"]["blocks"]["c2"]
+            assert (c2["unit_id"], c2["base"]) == (1, 16)  # modules of eight, no gap
+            reply = await client.read_input_registers(c2["base"], count=6, device_id=1)
             client.close()
             assert decode_inputs(reply.registers).level_pct == pytest.approx(100.0)
             with serial.Serial(data["optodes"]["c2"], 9600, timeout=2.0) as port:

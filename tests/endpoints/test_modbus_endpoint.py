@@ -9,6 +9,7 @@ from pymodbus.client import AsyncModbusTcpClient
 from pymodbus.exceptions import ModbusIOException
 
 from controller.drivers import (
+    BLOCK_SPAN,
     ChamberBlock,
     InputBits,
     InputValues,
@@ -17,6 +18,7 @@ from controller.drivers import (
     RegisterMapConfig,
     RelayBits,
     WordOrder,
+    decode_contact_status,
     decode_input_bits,
     decode_inputs,
     decode_outputs,
@@ -137,11 +139,59 @@ async def test_refused_writes_change_nothing(
         assert gap.isError() and gap.exception_code == 0x02
         unmapped_coil = await client.write_coil(b.base + 9, True, device_id=b.unit_id)
         assert unmapped_coil.isError() and unmapped_coil.exception_code == 0x02
-        read_only = await client.read_input_registers(b.base + 6, count=1, device_id=b.unit_id)
-        assert read_only.isError() and read_only.exception_code == 0x02
+        # one refused part refuses the whole request, in every block it spans
+        spanning = [3000, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 0, 7, 1000]
+        across = await client.write_registers(b.base, spanning, device_id=b.unit_id)
+        assert across.isError() and across.exception_code == 0x02
+        past_the_last = await client.read_input_registers(32, count=1, device_id=b.unit_id)
+        assert past_the_last.isError() and past_the_last.exception_code == 0x02
         reply = await client.read_holding_registers(b.base, count=2, device_id=b.unit_id)
         assert reply.registers == [3000, 0]
         assert rack.outputs("c1").heater_pct == 30.0
+        assert rack.outputs("c2").heater_pct == 0.0
+
+
+async def test_reserved_offsets_read_0_and_take_0_so_one_request_spans_a_run(
+    rack: Rack, server: RackServer, client: AsyncModbusTcpClient
+) -> None:
+    async with asyncio.timeout(BOUND_S):
+        c1, c2 = block(server, "c1"), block(server, "c2")
+        assert c2.base == c1.base + BLOCK_SPAN  # the simulator's modules of eight: no gap
+        server.modbus.module("c2").set_estop(True)
+        reply = await client.read_input_registers(c1.base, count=23, device_id=c1.unit_id)
+        assert not reply.isError(), reply
+        words = reply.registers
+        assert words[7:16] == [0] * 9  # c1's reserved offsets
+        for b, first in ((c1, 0), (c2, 16)):
+            inputs = decode_inputs(words[first : first + 6])
+            assert inputs.temperature_c == pytest.approx(
+                rack.truth(b.chamber_id).temperature_c, abs=0.1
+            )
+            assert decode_contact_status(words[first + 6]) == await read_contacts(client, b)
+        assert decode_contact_status(words[22]) == InputBits(
+            level_ok=True, estop_ok=False, watchdog_tripped=False
+        )
+        # one write: c1's drives, feed and safe drives, zeros in its reserved offsets, c2's drives
+        out1 = OutputValues(heater_pct=30, chiller_pct=0, lamp_pct=5, pump_pct=40)
+        out2 = OutputValues(heater_pct=0, chiller_pct=20, lamp_pct=0, pump_pct=35)
+        safe = OutputValues(heater_pct=0, chiller_pct=0, lamp_pct=0, pump_pct=25)
+        spanning = [
+            *encode_outputs(out1),
+            *encode_point(point("watchdog_timeout_s"), 30.0),
+            1,
+            *encode_safe_outputs(safe),
+            *[0] * 6,
+            *encode_outputs(out2),
+        ]
+        assert not (await client.write_registers(c1.base, spanning, device_id=1)).isError()
+        bits = [*encode_relays(ALL_ON), *[False] * 12, *encode_relays(ALL_ON)]
+        assert not (await client.write_coils(c1.base, bits, device_id=1)).isError()
+        server.modbus.module("c2").set_estop(False)
+        assert rack.outputs("c1").heater_pct == 30.0 and rack.outputs("c1").pump_pct == 40.0
+        assert rack.outputs("c2").chiller_pct == 20.0 and rack.outputs("c2").pump_pct == 35.0
+        reply = await client.read_holding_registers(c1.base, count=16, device_id=1)
+        assert decode_safe_outputs(reply.registers[6:10]) == safe
+        assert reply.registers[10:] == [0] * 6
 
 
 async def test_low_first_word_order_is_served(rack: Rack) -> None:
@@ -179,7 +229,7 @@ async def test_comm_timeout_makes_the_client_time_out(
         # the other module and the connection are unaffected
         assert (await read_inputs(client, c1)).temperature_c is not None
         # a request spanning both blocks reaches a silent module: no answer at all
-        await expect_silence(client.read_coils(0, count=40, device_id=1))
+        await expect_silence(client.read_coils(0, count=20, device_id=1))
         rack.clear_faults(FaultKind.COMM_TIMEOUT)
         assert (await read_inputs(client, c2)).temperature_c is not None
         assert server.modbus.silenced == 3

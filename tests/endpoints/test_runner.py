@@ -95,7 +95,7 @@ async def test_announcement_is_written_and_removed(rack: Rack, tmp_path: Path) -
             assert data["modbus"]["word_order"] == "high-first"
             assert data["modbus"]["blocks"] == {
                 "c1": {"unit_id": 1, "base": 0},
-                "c2": {"unit_id": 1, "base": 32},
+                "c2": {"unit_id": 1, "base": 16},
             }
             assert set(data["optodes"]) == {"c1", "c2"}
             assert all(Path(p).exists() for p in data["optodes"].values())
