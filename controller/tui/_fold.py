@@ -2,8 +2,9 @@
 
 Rules of this module
 --------------------
-- Pure functions over rows already read: no file, no clock, no textual. Both the live source
-  and the replay source use them; replay passes only the rows up to its position.
+- Pure functions over rows already read (:class:`~._logfile.LogFile` reads them; the broker
+  source makes them from telemetry): no file, no clock, no textual. The live, replay and
+  broker sources all use them; replay passes only the rows up to its position.
 - An alarm is keyed by (code, chamber). A raise starts it (again), a clear ends it, an
   acknowledgement after the latest raise marks it acknowledged. An acknowledgement or clear
   with no raise before it is ignored (the log may start mid-way after a resume).
@@ -14,9 +15,6 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, replace
 
-import numpy as np
-import pandas as pd
-
 from controller.storage import AlarmAction, AlarmLevel, EventKind
 
 from ._snapshot import AlarmEntry, ChamberState
@@ -24,12 +22,9 @@ from ._snapshot import AlarmEntry, ChamberState
 __all__ = [
     "AlarmRow",
     "EventRow",
-    "alarm_rows",
     "apply_alarms",
-    "event_rows",
     "fold_alarms",
     "held_at",
-    "utc_seconds",
 ]
 
 _SEVERITY = {AlarmLevel.WARNING: 1, AlarmLevel.ALARM: 2, AlarmLevel.TRIP: 3}
@@ -86,83 +81,6 @@ class EventRow:
     kind: EventKind
     phase: str | None
     detail: str
-
-
-def utc_seconds(times: object) -> np.ndarray:
-    """POSIX seconds of a tz-aware UTC datetime column (any resolution), s.
-
-    Parameters
-    ----------
-    times
-        A datetime column or index.
-    """
-    stamps = pd.DatetimeIndex(times)  # type: ignore[arg-type]
-    if not len(stamps):
-        return np.empty(0)
-    return stamps.as_unit("ns").asi8.astype("float64") / 1e9
-
-
-def _text(value: object) -> str | None:
-    return None if value is None or value is pd.NA or (value != value) else str(value)
-
-
-def alarm_rows(frame: pd.DataFrame) -> list[AlarmRow]:
-    """Rows of an ``alarms`` frame (:meth:`RunLogReader.alarms`), in write order.
-
-    Parameters
-    ----------
-    frame
-        The frame as the reader returns it (``time`` is tz-aware UTC).
-
-    Returns
-    -------
-    list of AlarmRow
-        One per record, times in POSIX s.
-    """
-    utc = utc_seconds(frame["time"]) if len(frame) else np.empty(0)
-    return [
-        AlarmRow(
-            utc_s=float(t),
-            action=AlarmAction(str(action)),
-            level=AlarmLevel(str(level)),
-            code=str(code),
-            reason=str(reason),
-            chamber=_text(chamber),
-            user=_text(user),
-        )
-        for t, action, level, code, reason, chamber, user in zip(
-            utc,
-            frame["action"],
-            frame["level"],
-            frame["code"],
-            frame["reason"],
-            frame["chamber"],
-            frame["user"],
-            strict=True,
-        )
-    ]
-
-
-def event_rows(frame: pd.DataFrame) -> list[EventRow]:
-    """Rows of an ``events`` frame (:meth:`RunLogReader.events`), in write order.
-
-    Parameters
-    ----------
-    frame
-        The frame as the reader returns it.
-
-    Returns
-    -------
-    list of EventRow
-        One per record, times in POSIX s.
-    """
-    utc = utc_seconds(frame["time"]) if len(frame) else np.empty(0)
-    return [
-        EventRow(utc_s=float(t), kind=EventKind(str(kind)), phase=_text(phase), detail=str(detail))
-        for t, kind, phase, detail in zip(
-            utc, frame["kind"], frame["phase"], frame["detail"], strict=True
-        )
-    ]
 
 
 def fold_alarms(rows: Iterable[AlarmRow]) -> tuple[AlarmEntry, ...]:

@@ -8,42 +8,46 @@ Rules of this module
   before the position.
 - Playback advances by ``speed`` × the real time between two polls, measured with an injected
   monotonic clock, so tests step it without sleeping.
-- Samples are loaded in chunks of at most ``max_rows_per_poll`` rows per poll (the first chunk
-  on ``open``), so the first frame paints at once even for a week-long log and no frame
-  carries more than a small read; loading (2000 rows a frame, 20 000 a second) outruns
-  playback at 3600× (32 chambers at 1-min ticks are 1920 rows a second). A log that is
-  still being written keeps growing under the replay. Columns are held per chamber as numpy
-  arrays; a frame is one binary search per chamber.
+- Loading: ``open`` reads the first chunk (``max_rows_per_poll`` rows), so the first frame
+  paints at once even for a week-long log. The rest is read either by
+  :meth:`ReplaySource.background_loader` in a worker thread (what the app does: frames never carry a
+  read, and the run bar shows how much is in) or, without a worker, one chunk per ``poll``.
+  A log that is still being written keeps growing under the replay (``poll`` looks for new
+  rows at most every :data:`RECHECK_S` once caught up).
+- The loader thread has its own connection and only ever *replaces* a chamber's
+  :class:`_Columns` (never mutates arrays), so a frame built meanwhile sees whole chunks.
+  Columns are held per chamber as numpy arrays; a frame is one binary search per chamber.
 - Only what the views show is kept; a 7-day log of 32 chambers at one-minute ticks is about
   300 000 rows, a few tens of MB.
 """
 
 from __future__ import annotations
 
+import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
-import pandas as pd
 
-from controller.storage import IncubationState, RunLogReader, RunMeta
+from controller.storage import IncubationState
 
-from ._fold import (
-    AlarmRow,
-    EventRow,
-    alarm_rows,
-    apply_alarms,
-    event_rows,
-    fold_alarms,
-    held_at,
-    utc_seconds,
+from ._fold import AlarmRow, EventRow, apply_alarms, fold_alarms, held_at
+from ._logfile import LogFile, sample_columns
+from ._snapshot import (
+    ChamberState,
+    RunMode,
+    RunState,
+    RunStatus,
+    Snapshot,
+    Trace,
+    chamber_state,
 )
-from ._snapshot import ChamberState, RunMode, RunState, RunStatus, Snapshot, Trace
-from ._timeline import Timeline, full_timeline, title_only
+from ._sources import LogBacked
 
-__all__ = ["ReplaySource"]
+__all__ = ["LOAD_CHUNK_ROWS", "ReplaySource"]
 
 _FLOATS = (
     "elapsed_s",
@@ -56,7 +60,7 @@ _FLOATS = (
     "o2_umol_l",
     "o2_sat_pct",
 )
-_COLUMNS = ("time", "chamber", "phase", "incubation", "alarm", *_FLOATS)
+_FIELDS = ("utc_s", "chamber", "phase", "incubation", "alarm", *_FLOATS)
 
 MIN_SPEED = 1.0
 """Slowest replay, log seconds per real second."""
@@ -64,10 +68,8 @@ MAX_SPEED = 604800.0
 """Fastest replay (a week per second), log seconds per real second."""
 RECHECK_S = 1.0
 """Real seconds between looks for new rows once a growing log is caught up, s."""
-
-
-def _f(value: float) -> float | None:
-    return None if value != value else float(value)
+LOAD_CHUNK_ROWS = 20_000
+"""Sample rows the background loader reads at a time, dimensionless."""
 
 
 @dataclass
@@ -105,25 +107,27 @@ class _Columns:
         if i < 0:
             return ChamberState(chamber=chamber)
         f = self.floats
-        alarm = self.alarm[i]
-        return ChamberState(
-            chamber=chamber,
-            utc_s=float(self.utc_s[i]),
-            phase=str(self.phase[i]),
-            temperature_c=_f(f["temperature_c"][i]),
-            temperature_setpoint_c=_f(f["temperature_setpoint_c"][i]),
-            par=_f(f["par"][i]),
-            par_setpoint=_f(f["par_setpoint"][i]),
-            flow_cm_s=_f(f["flow_cm_s"][i]),
-            flow_setpoint_cm_s=_f(f["flow_setpoint_cm_s"][i]),
-            o2_umol_l=_f(f["o2_umol_l"][i]),
-            o2_sat_pct=_f(f["o2_sat_pct"][i]),
-            incubation=IncubationState.CLOSED if self.closed[i] else IncubationState.OPEN,
-            alarm_code=None if alarm is None or alarm is pd.NA or alarm == "" else str(alarm),
+        incubation = IncubationState.CLOSED if self.closed[i] else IncubationState.OPEN
+        return chamber_state(
+            chamber,
+            (
+                self.utc_s[i],
+                self.phase[i],
+                f["temperature_c"][i],
+                f["temperature_setpoint_c"][i],
+                f["par"][i],
+                f["par_setpoint"][i],
+                f["flow_cm_s"][i],
+                f["flow_setpoint_cm_s"][i],
+                f["o2_umol_l"][i],
+                f["o2_sat_pct"][i],
+                incubation,
+                self.alarm[i],
+            ),
         )
 
 
-class ReplaySource:
+class ReplaySource(LogBacked):
     """Play a run log back at ``speed`` times real time.
 
     Parameters
@@ -154,33 +158,24 @@ class ReplaySource:
         real_clock: Callable[[], float] = time.monotonic,
         protocol_dir: Path | None = None,
     ) -> None:
-        self._path = Path(path)
-        self._reader = RunLogReader(self._path)
-        try:
-            self._meta: RunMeta = self._reader.meta()
-        except BaseException:
-            self._reader.close()
-            raise
-        self._chambers = tuple(c.chamber for c in self._meta.chambers)
+        super().__init__(path, protocol_dir=protocol_dir)
         self._cols = {c: _Columns.empty() for c in self._chambers}
         self._max_rows = int(max_rows_per_poll)
         self._real_clock = real_clock
-        self._protocol_dir = protocol_dir
-        self._timeline = title_only(self._meta.protocol_text)
         self._speed = self._clamp_speed(speed)
         self._playing = True
         self._since = 0
         self._position: float | None = None
         self._last_real: float | None = None
-        self._alarm_rows: list[AlarmRow] = []
-        self._event_rows: list[EventRow] = []
-        self._alarm_utc = np.empty(0)
-        self._event_utc = np.empty(0)
+        self._rare: _Rare = _Rare.empty()
         self._end_reason = ""
         self._end_utc_s: float | None = None
         self._version = 0
         self._dirty = True
         self._caught_up: float | None = None
+        self._loader: Callable[[], None] | None = None
+        self._total_rows = 0
+        self._stop = threading.Event()
 
     # -- properties -----------------------------------------------------------------------
 
@@ -188,26 +183,6 @@ class ReplaySource:
     def mode(self) -> RunMode:
         """Always replay."""
         return RunMode.REPLAY
-
-    @property
-    def path(self) -> Path:
-        """The run log."""
-        return self._path
-
-    @property
-    def meta(self) -> RunMeta:
-        """The run's metadata."""
-        return self._meta
-
-    @property
-    def chambers(self) -> tuple[str, ...]:
-        """The run's chambers, in rig order."""
-        return self._chambers
-
-    @property
-    def timeline(self) -> Timeline:
-        """The protocol's timeline as known so far."""
-        return self._timeline
 
     @property
     def speed(self) -> float:
@@ -228,6 +203,18 @@ class ReplaySource:
     def loaded_rows(self) -> int:
         """Sample rows loaded so far (row id of the newest), dimensionless."""
         return self._since
+
+    @property
+    def loading(self) -> bool:
+        """Whether the background loader (:meth:`background_loader`) is still reading."""
+        return self._loader is not None
+
+    def load_fraction(self) -> float | None:
+        """Share of the log's rows loaded while the background loader reads, 0..1; None
+        when it is not reading."""
+        if self._loader is None:
+            return None
+        return min(1.0, self._since / max(1, self._total_rows))
 
     def span_utc_s(self) -> tuple[float, float] | None:
         """UTC span of the loaded samples (first, last), POSIX s; None without samples."""
@@ -378,48 +365,76 @@ class ReplaySource:
         return moved
 
     def _load(self) -> bool:
-        """Load at most one chunk of new samples (and the rare tables with them).
+        """Load at most one chunk of new samples (and the rare tables with them) in a poll.
 
-        Once caught up, a finished log is not read again, and a growing one at most once
-        per :data:`RECHECK_S` of real time (even an empty read costs a frame-building call).
+        Nothing while the background loader reads. Once caught up, a finished log is not
+        read again, and a growing one at most once per :data:`RECHECK_S` of real time.
         """
+        if self._loader is not None:
+            return False
         if self._caught_up is not None:
             if self._end_reason or self._real_clock() - self._caught_up < RECHECK_S:
                 return False
-        reader = self._reader
+        return self._chunk(self._file, self._max_rows)
+
+    def _read_chunk(self, log: LogFile, since: int, limit: int) -> list[tuple[Any, ...]]:
+        """One chunk of sample rows after row ``since`` (the loader's only I/O)."""
+        return log.tail(since, limit=limit, fields=_FIELDS)
+
+    def _chunk(self, log: LogFile, limit: int) -> bool:
+        """Read and take one chunk through ``log``; False when nothing new was there."""
         first = self._since == 0
-        frame = reader.tail(self._since, limit=self._max_rows)
-        self._caught_up = self._real_clock() if len(frame) < self._max_rows else None
-        if frame.empty:
+        rows = self._read_chunk(log, self._since, limit)
+        self._caught_up = self._real_clock() if len(rows) < limit else None
+        if not rows:
             if not self._end_reason:
-                end = reader.info().end
+                end = log.end()
                 if end is not None:
+                    self._rare = _Rare.read(log)  # the last records before the end
                     self._end_reason = end.end_reason.value
                     self._end_utc_s = end.end_utc_s
                     self._dirty = True
                     return True
             return False
-        self._since = int(frame.index[-1])
-        # each column to numpy once; per chamber only numpy masks (pandas per chamber was
-        # most of the load time)
-        chunk = {k: frame[k].to_numpy(dtype="float64") for k in _FLOATS}
-        chunk["utc_s"] = utc_seconds(frame["time"])
-        chunk["phase"] = frame["phase"].to_numpy(dtype=object)
-        chunk["alarm"] = frame["alarm"].to_numpy(dtype=object)
-        incubation = frame["incubation"].to_numpy(dtype=object)
-        chunk["closed"] = incubation == IncubationState.CLOSED.value
-        chambers = frame["chamber"].to_numpy(dtype=object)
+        cols = sample_columns(rows, _FIELDS)
+        chunk = {k: cols[k] for k in ("utc_s", *_FLOATS, "phase", "alarm")}
+        chunk["closed"] = cols["incubation"] == IncubationState.CLOSED.value
+        chambers = cols["chamber"]
         for chamber in self._chambers:
             mask = chambers == chamber
             if mask.any():
                 self._cols[chamber] = self._cols[chamber].extended(chunk, mask)
+        self._since = int(cols["seq"][-1])
         if first or self._caught_up is not None:  # rare tables: at the start and the end
-            self._alarm_rows = alarm_rows(reader.alarms())
-            self._event_rows = event_rows(reader.events())
-            self._alarm_utc = np.array([r.utc_s for r in self._alarm_rows], dtype="float64")
-            self._event_utc = np.array([r.utc_s for r in self._event_rows], dtype="float64")
+            self._rare = _Rare.read(log)
         self._dirty = True
         return True
+
+    def background_loader(self) -> Callable[[], None]:
+        """Hand the loading over to a worker thread: from now on ``poll`` reads nothing.
+
+        Returns
+        -------
+        callable
+            Blocks until the rest of the log is in (run it in a worker thread): it reads
+            chunks of :data:`LOAD_CHUNK_ROWS` through a connection of its own, stops early
+            when the source is closed, and leaves a log that keeps growing to ``poll``.
+        """
+        self._loader = self._load_rest
+        return self._load_rest
+
+    def _load_rest(self) -> None:
+        try:
+            with LogFile(self._path) as log:
+                while not self._stop.is_set():
+                    self._total_rows = log.last_rowid()
+                    if not self._chunk(log, LOAD_CHUNK_ROWS) or self._caught_up is not None:
+                        break
+                if not self._end_reason and not self._stop.is_set():
+                    self._chunk(log, LOAD_CHUNK_ROWS)  # finished meanwhile: note its end
+        finally:
+            self._loader = None
+            self._dirty = True
 
     def _snapshot(self) -> Snapshot:
         self._dirty = False
@@ -431,10 +446,11 @@ class ReplaySource:
             alarms: tuple = ()
             run = self._run_state(None, span, held=False)
         else:
-            n_alarms = int(np.searchsorted(self._alarm_utc, pos, side="right"))
-            alarms = fold_alarms(self._alarm_rows[:n_alarms])
-            n_events = int(np.searchsorted(self._event_utc, pos, side="right"))
-            held = held_at(self._event_rows[:n_events])
+            rare = self._rare
+            n_alarms = int(np.searchsorted(rare.alarm_utc, pos, side="right"))
+            alarms = fold_alarms(rare.alarms[:n_alarms])
+            n_events = int(np.searchsorted(rare.event_utc, pos, side="right"))
+            held = held_at(rare.events[:n_events])
             states = tuple(
                 apply_alarms(self._cols[c].state_at(c, pos), alarms) for c in self._chambers
             )
@@ -480,6 +496,7 @@ class ReplaySource:
             playing=self._playing,
             first_utc_s=span[0] if span else None,
             last_utc_s=span[1] if span else None,
+            loading=self.load_fraction(),
         )
 
     def history(self, chamber: str, span_s: float) -> Trace:
@@ -512,20 +529,34 @@ class ReplaySource:
         )
         return full.window(self._position, span_s)
 
-    def refine_timeline(self) -> Timeline:
-        """Compile the stored protocol to place events and sampling reminders (may block).
-
-        Returns
-        -------
-        Timeline
-            The complete timeline, or the quick one with a note if it does not compile.
-        """
-        self._timeline = full_timeline(
-            self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
-        )
+    def _timeline_refined(self) -> None:
         self._dirty = True
-        return self._timeline
 
     def close(self) -> None:
-        """Close the reader."""
-        self._reader.close()
+        """Stop the background loader (after its current chunk) and close the log."""
+        self._stop.set()
+        super().close()
+
+
+@dataclass(frozen=True)
+class _Rare:
+    """The alarm and event rows of the log, with their UTC times (POSIX s) for searching."""
+
+    alarms: list[AlarmRow]
+    alarm_utc: np.ndarray
+    events: list[EventRow]
+    event_utc: np.ndarray
+
+    @classmethod
+    def empty(cls) -> _Rare:
+        return cls([], np.empty(0), [], np.empty(0))
+
+    @classmethod
+    def read(cls, log: LogFile) -> _Rare:
+        alarms, events = log.alarm_rows(), log.event_rows()
+        return cls(
+            alarms,
+            np.array([r.utc_s for r in alarms], dtype="float64"),
+            events,
+            np.array([r.utc_s for r in events], dtype="float64"),
+        )

@@ -9,19 +9,25 @@ Rules of this module
   protocol's start (``elapsed_s``, frozen while the run is held). Units live in the names.
 - A missing value (a stale sensor, a channel the protocol does not drive) is ``None``, never
   NaN, so views can print a dash for it.
+- numpy is imported only where a :class:`Trace` is built or cut, so the first paint of the
+  board does not wait for it.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from enum import StrEnum
-
-import numpy as np
+from typing import TYPE_CHECKING
 
 from controller.storage import AlarmLevel, IncubationState
 
+if TYPE_CHECKING:
+    import numpy as np
+
 __all__ = [
+    "STATE_FIELDS",
     "AlarmEntry",
     "ChamberState",
     "RunMode",
@@ -29,8 +35,26 @@ __all__ = [
     "RunStatus",
     "Snapshot",
     "Trace",
+    "chamber_state",
     "finite_or_none",
 ]
+
+STATE_FIELDS = (
+    "utc_s",
+    "phase",
+    "temperature_c",
+    "temperature_setpoint_c",
+    "par",
+    "par_setpoint",
+    "flow_cm_s",
+    "flow_setpoint_cm_s",
+    "o2_umol_l",
+    "o2_sat_pct",
+    "incubation",
+    "alarm",
+)
+"""Sample-row fields a :class:`ChamberState` is made of, in the order of
+:func:`chamber_state`'s values."""
 
 
 def finite_or_none(value: object) -> float | None:
@@ -220,6 +244,9 @@ class RunState:
         Replay: whether playback is running; live: always True.
     first_utc_s, last_utc_s
         Replay: UTC span of the log's samples, POSIX s; None in live mode or without samples.
+    loading
+        Replay: share of the log read so far while it loads in the background, 0..1; None
+        once everything is in (and in live mode).
     """
 
     run_id: str
@@ -237,6 +264,7 @@ class RunState:
     playing: bool = True
     first_utc_s: float | None = None
     last_utc_s: float | None = None
+    loading: float | None = None
 
     @property
     def remaining_s(self) -> float | None:
@@ -294,8 +322,59 @@ class Snapshot:
         return tuple(a for a in self.alarms if a.needs_attention)
 
 
+def chamber_state(chamber: str, values: Sequence[object]) -> ChamberState:
+    """A chamber's state from one sample's raw values (no alarm levels yet).
+
+    Parameters
+    ----------
+    chamber
+        Chamber identifier (shown as given).
+    values
+        The sample's :data:`STATE_FIELDS` in order, as stored: UTC time (POSIX s), phase,
+        measurements and setpoints in their units (None or NaN when missing), incubation
+        text (``open``/``closed``, or missing) and the alarm code (missing or empty: none).
+
+    Returns
+    -------
+    ChamberState
+        The state, missing numbers as None.
+    """
+    (utc, phase, t, tsp, par, parsp, flow, flowsp, o2, sat, incubation, alarm) = values
+    return ChamberState(
+        chamber=chamber,
+        utc_s=finite_or_none(utc),
+        phase=str(phase or ""),
+        temperature_c=finite_or_none(t),
+        temperature_setpoint_c=finite_or_none(tsp),
+        par=finite_or_none(par),
+        par_setpoint=finite_or_none(parsp),
+        flow_cm_s=finite_or_none(flow),
+        flow_setpoint_cm_s=finite_or_none(flowsp),
+        o2_umol_l=finite_or_none(o2),
+        o2_sat_pct=finite_or_none(sat),
+        incubation=_incubation(incubation),
+        alarm_code=alarm if isinstance(alarm, str) and alarm else None,
+    )
+
+
+def _incubation(value: object) -> IncubationState | None:
+    if isinstance(value, IncubationState):
+        return value
+    if isinstance(value, str) and value:
+        return IncubationState(value)
+    return None
+
+
 def _empty() -> np.ndarray:
+    import numpy as np
+
     return np.empty(0, dtype="float64")
+
+
+def _no_flags() -> np.ndarray:
+    import numpy as np
+
+    return np.empty(0, dtype=bool)
 
 
 @dataclass(frozen=True, kw_only=True, eq=False)
@@ -324,7 +403,7 @@ class Trace:
     temperature_setpoint_c: np.ndarray = field(default_factory=_empty)
     o2_umol_l: np.ndarray = field(default_factory=_empty)
     o2_sat_pct: np.ndarray = field(default_factory=_empty)
-    closed: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=bool))
+    closed: np.ndarray = field(default_factory=_no_flags)
 
     def __len__(self) -> int:
         return int(self.utc_s.size)
@@ -344,6 +423,8 @@ class Trace:
         Trace
             A view on the same arrays (no copy).
         """
+        import numpy as np
+
         lo = int(np.searchsorted(self.utc_s, end_utc_s - span_s, side="right"))
         hi = int(np.searchsorted(self.utc_s, end_utc_s, side="right"))
         return Trace(
@@ -363,6 +444,8 @@ class Trace:
         """
         if not self.closed.any():
             return ()
+        import numpy as np
+
         flags = self.closed.astype(np.int8)
         edges = np.diff(np.concatenate(([0], flags, [0])))
         starts = np.flatnonzero(edges == 1)

@@ -1,4 +1,4 @@
-"""Data sources: turn a run log (or, later, a broker) into snapshots for the views.
+"""Data sources: turn a run log (or a broker) into snapshots for the views.
 
 Rules of this module
 --------------------
@@ -9,8 +9,11 @@ Rules of this module
   last few ticks only (so ``squall watch`` paints at once however long the run is), and one
   ``poll`` reads at most ``max_rows_per_poll`` sample rows. A source that falls further
   behind (a suspended laptop) skips ahead to the newest tick rather than replaying a backlog.
+  Rows are read as plain tuples (:class:`~._logfile.LogFile`): no pandas, no frames.
 - ``history`` may be slow (it reads hours of one chamber) and is meant for a worker thread:
-  it opens its own reader, so it never shares a connection with ``poll``.
+  it opens its own file, so it never shares a connection with ``poll``.
+- :class:`LogBacked` is what the live and the replay source share: the log, its metadata,
+  the chambers and the protocol timeline.
 - Sources never write to the log and never stop a run. Closing the UI closes the reader only.
 """
 
@@ -19,15 +22,14 @@ from __future__ import annotations
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Protocol, runtime_checkable
+from typing import Any, Protocol, runtime_checkable
 
-import numpy as np
-import pandas as pd
+from controller.storage import ClockKind, IncubationState, RunMeta
 
-from controller.storage import ClockKind, IncubationState, RunLogReader, RunMeta
-
-from ._fold import alarm_rows, apply_alarms, event_rows, fold_alarms, held_at, utc_seconds
+from ._fold import apply_alarms, fold_alarms, held_at
+from ._logfile import LogFile, sample_columns
 from ._snapshot import (
+    STATE_FIELDS,
     AlarmEntry,
     ChamberState,
     RunMode,
@@ -35,21 +37,21 @@ from ._snapshot import (
     RunStatus,
     Snapshot,
     Trace,
-    finite_or_none,
+    chamber_state,
 )
 from ._timeline import Timeline, full_timeline, title_only
 
 __all__ = [
-    "TRACE_COLUMNS",
+    "TRACE_FIELDS",
     "DataSource",
+    "LogBacked",
     "LogSource",
-    "chamber_states",
-    "trace_from_frame",
+    "trace_from_rows",
 ]
 
-#: Sample columns the detail charts need.
-TRACE_COLUMNS = (
-    "time",
+#: Sample fields the detail charts need.
+TRACE_FIELDS = (
+    "utc_s",
     "temperature_c",
     "temperature_setpoint_c",
     "o2_umol_l",
@@ -57,21 +59,7 @@ TRACE_COLUMNS = (
     "incubation",
 )
 
-_STATE_COLUMNS = (
-    "chamber",
-    "time",
-    "phase",
-    "temperature_c",
-    "temperature_setpoint_c",
-    "par",
-    "par_setpoint",
-    "flow_cm_s",
-    "flow_setpoint_cm_s",
-    "o2_umol_l",
-    "o2_sat_pct",
-    "incubation",
-    "alarm",
-)
+_READ_FIELDS = ("chamber", "elapsed_s", *STATE_FIELDS)
 
 
 @runtime_checkable
@@ -114,89 +102,108 @@ class DataSource(Protocol):
         ...
 
 
-def _incubation(value: object) -> IncubationState | None:
-    if value is None or value is pd.NA or value != value:
-        return None
-    return IncubationState(str(value))
-
-
-def _alarm_code(value: object) -> str | None:
-    if value is None or value is pd.NA or value != value:
-        return None
-    text = str(value)
-    return text or None
-
-
-def chamber_states(frame: pd.DataFrame) -> dict[str, ChamberState]:
-    """The newest state of each chamber present in a samples frame (no alarm levels yet).
-
-    Parameters
-    ----------
-    frame
-        Sample rows in write order (columns as :meth:`RunLogReader.samples` gives them).
-
-    Returns
-    -------
-    dict
-        Chamber id → its state at its last row in ``frame``.
-    """
-    if frame.empty:
-        return {}
-    last = frame.drop_duplicates("chamber", keep="last")
-    utc = utc_seconds(last["time"])
-    out: dict[str, ChamberState] = {}
-    columns = [last[c].to_numpy(dtype=object) for c in _STATE_COLUMNS]
-    for i, values in enumerate(zip(*columns, strict=True)):
-        (chamber, _, phase, t, tsp, par, parsp, flow, flowsp, o2, sat, inc, alarm) = values
-        out[str(chamber)] = ChamberState(
-            chamber=str(chamber),
-            utc_s=float(utc[i]),
-            phase=str(phase),
-            temperature_c=finite_or_none(t),
-            temperature_setpoint_c=finite_or_none(tsp),
-            par=finite_or_none(par),
-            par_setpoint=finite_or_none(parsp),
-            flow_cm_s=finite_or_none(flow),
-            flow_setpoint_cm_s=finite_or_none(flowsp),
-            o2_umol_l=finite_or_none(o2),
-            o2_sat_pct=finite_or_none(sat),
-            incubation=_incubation(inc),
-            alarm_code=_alarm_code(alarm),
-        )
-    return out
-
-
-def trace_from_frame(chamber: str, frame: pd.DataFrame) -> Trace:
-    """A chart trace from a samples frame of one chamber with :data:`TRACE_COLUMNS`.
+def trace_from_rows(chamber: str, rows: list[tuple[Any, ...]]) -> Trace:
+    """A chart trace from one chamber's sample rows with :data:`TRACE_FIELDS`.
 
     Parameters
     ----------
     chamber
         Chamber identifier.
-    frame
-        Its sample rows in write order.
+    rows
+        ``(seq, *TRACE_FIELDS)`` tuples in write order (:meth:`LogFile.chamber_since`).
 
     Returns
     -------
     Trace
         Arrays sorted by UTC time (a resumed run's rows stay in order).
     """
-    utc = utc_seconds(frame["time"])
-    order = np.argsort(utc, kind="stable")
+    import numpy as np
+
+    cols = sample_columns(rows, TRACE_FIELDS)
+    order = np.argsort(cols["utc_s"], kind="stable")
     return Trace(
         chamber=chamber,
-        utc_s=utc[order],
-        temperature_c=frame["temperature_c"].to_numpy(dtype="float64")[order],
-        temperature_setpoint_c=frame["temperature_setpoint_c"].to_numpy(dtype="float64")[order],
-        o2_umol_l=frame["o2_umol_l"].to_numpy(dtype="float64")[order],
-        o2_sat_pct=frame["o2_sat_pct"].to_numpy(dtype="float64")[order],
-        closed=(frame["incubation"].astype(object) == IncubationState.CLOSED.value).to_numpy(
-            dtype=bool
-        )[order],
+        utc_s=cols["utc_s"][order],
+        temperature_c=cols["temperature_c"][order],
+        temperature_setpoint_c=cols["temperature_setpoint_c"][order],
+        o2_umol_l=cols["o2_umol_l"][order],
+        o2_sat_pct=cols["o2_sat_pct"][order],
+        closed=(cols["incubation"] == IncubationState.CLOSED.value)[order].astype(bool),
     )
 
 
-class LogSource:
+class LogBacked:
+    """What a source reading one run log has: the file, its metadata, chambers, timeline.
+
+    Parameters
+    ----------
+    path
+        The run log.
+    protocol_dir
+        Folder the protocol's CSV series are relative to, for placing events; default the
+        working folder.
+
+    Raises
+    ------
+    SquallError
+        The file is missing or not a readable run log.
+    """
+
+    def __init__(self, path: str | Path, *, protocol_dir: Path | None = None) -> None:
+        self._path = Path(path)
+        self._file = LogFile(self._path)
+        try:
+            self._meta: RunMeta = self._file.meta()
+        except BaseException:
+            self._file.close()
+            raise
+        self._chambers = tuple(c.chamber for c in self._meta.chambers)
+        self._protocol_dir = protocol_dir
+        self._timeline = title_only(self._meta.protocol_text)
+
+    @property
+    def path(self) -> Path:
+        """The run log."""
+        return self._path
+
+    @property
+    def meta(self) -> RunMeta:
+        """The run's metadata."""
+        return self._meta
+
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """The run's chambers, in rig order."""
+        return self._chambers
+
+    @property
+    def timeline(self) -> Timeline:
+        """The protocol's timeline as known so far."""
+        return self._timeline
+
+    def refine_timeline(self) -> Timeline:
+        """Compile the stored protocol to place events and sampling reminders (may block).
+
+        Returns
+        -------
+        Timeline
+            The complete timeline, or the quick one with a note if it does not compile.
+        """
+        self._timeline = full_timeline(
+            self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
+        )
+        self._timeline_refined()
+        return self._timeline
+
+    def _timeline_refined(self) -> None:
+        """Called once the timeline is complete (a subclass marks its next snapshot due)."""
+
+    def close(self) -> None:
+        """Close the log (the run goes on)."""
+        self._file.close()
+
+
+class LogSource(LogBacked):
     """Follow a run log as its run writes it (or read a finished one as it ended).
 
     Parameters
@@ -231,21 +238,12 @@ class LogSource:
         real_clock: Callable[[], float] = time.monotonic,
         protocol_dir: Path | None = None,
     ) -> None:
-        self._path = Path(path)
-        self._reader = RunLogReader(self._path)
-        try:
-            self._meta: RunMeta = self._reader.meta()
-        except BaseException:
-            self._reader.close()
-            raise
-        self._chambers = tuple(c.chamber for c in self._meta.chambers)
+        super().__init__(path, protocol_dir=protocol_dir)
         n = max(1, len(self._chambers))
         self._max_rows = int(max_rows_per_poll or 8 * n)
         self._silent_after_s = float(silent_after_s)
         self._wall_clock = wall_clock
         self._real_clock = real_clock
-        self._protocol_dir = protocol_dir
-        self._timeline = title_only(self._meta.protocol_text)
         self._latest: dict[str, ChamberState] = {c: ChamberState(chamber=c) for c in self._chambers}
         self._since = 0
         self._version = 0
@@ -257,32 +255,10 @@ class LogSource:
         self._last: Snapshot | None = None
         self._timeline_changed = False
 
-    # -- properties -----------------------------------------------------------------------
-
     @property
     def mode(self) -> RunMode:
         """Always live."""
         return RunMode.LIVE
-
-    @property
-    def path(self) -> Path:
-        """The run log."""
-        return self._path
-
-    @property
-    def meta(self) -> RunMeta:
-        """The run's metadata."""
-        return self._meta
-
-    @property
-    def chambers(self) -> tuple[str, ...]:
-        """The run's chambers, in rig order."""
-        return self._chambers
-
-    @property
-    def timeline(self) -> Timeline:
-        """The protocol's timeline as known so far."""
-        return self._timeline
 
     # -- reading --------------------------------------------------------------------------
 
@@ -294,7 +270,7 @@ class LogSource:
         Snapshot
             The newest state of every chamber (chambers without samples are empty).
         """
-        last = self._reader.last_rowid()
+        last = self._file.last_rowid()
         self._since = max(0, last - 2 * len(self._chambers))
         snapshot = self._read(force=True)
         assert snapshot is not None
@@ -312,38 +288,35 @@ class LogSource:
         return self._read(force=False)
 
     def _read(self, *, force: bool) -> Snapshot | None:
-        reader = self._reader
-        frame = reader.tail(self._since, limit=self._max_rows)
-        if len(frame) == self._max_rows:
-            newest = reader.last_rowid()
-            if newest - int(frame.index[-1]) > self._max_rows:  # far behind: skip ahead
+        log = self._file
+        rows = log.tail(self._since, limit=self._max_rows, fields=_READ_FIELDS)
+        if len(rows) == self._max_rows:
+            newest = log.last_rowid()
+            if newest - int(rows[-1][0]) > self._max_rows:  # far behind: skip ahead
                 self._since = max(0, newest - 2 * len(self._chambers))
-                frame = reader.tail(self._since, limit=self._max_rows)
+                rows = log.tail(self._since, limit=self._max_rows, fields=_READ_FIELDS)
         changed = force
-        if len(frame):
-            self._since = int(frame.index[-1])
-            for chamber, state in chamber_states(frame).items():
-                self._latest[chamber] = state
-            last = frame.iloc[-1]
-            self._newest_row = (
-                float(utc_seconds(frame["time"].iloc[-1:])[0]),
-                float(last["elapsed_s"]),
-                str(last["phase"]),
-            )
+        if rows:
+            self._since = int(rows[-1][0])
+            for row in rows:  # later rows of a chamber replace earlier ones
+                chamber = str(row[1])
+                self._latest[chamber] = chamber_state(chamber, row[3:])
+            _, _, elapsed_s, utc_s, phase, *_ = rows[-1]
+            self._newest_row = (float(utc_s), float(elapsed_s), str(phase))
             arrival = self._real_clock()
             if force and self._meta.clock_kind is ClockKind.REAL:
                 # on opening, the newest row may be old: age it by the wall clock
                 arrival -= max(0.0, self._wall_clock() - self._newest_row[0])
             self._arrival_s = arrival
             changed = True
-        alarms = fold_alarms(alarm_rows(reader.alarms()))
+        alarms = fold_alarms(log.alarm_rows())
         if alarms != self._alarms:
             self._alarms, changed = alarms, True
-        held = held_at(event_rows(reader.events()))
+        held = held_at(log.event_rows())
         if held != self._held:
             self._held, changed = held, True
-        if (force or not len(frame)) and not self._end_reason:
-            end = reader.info().end
+        if (force or not rows) and not self._end_reason:
+            end = log.end()
             if end is not None:
                 self._end_reason, changed = end.end_reason.value, True
         if self._timeline_changed:  # the duration became known: show it
@@ -394,7 +367,7 @@ class LogSource:
     def history(self, chamber: str, span_s: float) -> Trace:
         """One chamber's samples over the ``span_s`` seconds before its newest sample.
 
-        Opens its own reader, so it may run in a worker thread while ``poll`` runs.
+        Opens its own file, so it may run in a worker thread while ``poll`` runs.
 
         Parameters
         ----------
@@ -408,33 +381,15 @@ class LogSource:
         Trace
             The samples, oldest first.
         """
-        with RunLogReader(self._path) as reader:
-            tail = reader.tail(max(0, reader.last_rowid() - 4 * len(self._chambers)))
-            mine = tail[tail["chamber"] == chamber]
-            if mine.empty:
-                frame = reader.samples(chamber, columns=TRACE_COLUMNS)
-            else:
-                t_last = float(mine["t_s"].iloc[-1])
-                frame = reader.samples(chamber, columns=TRACE_COLUMNS, t_from=t_last - span_s)
-        trace = trace_from_frame(chamber, frame)
+        with LogFile(self._path) as log:
+            newest = log.newest_utc_s(chamber)
+            if newest is None:
+                return Trace(chamber=chamber)
+            rows = log.chamber_since(chamber, newest - span_s, TRACE_FIELDS)
+        trace = trace_from_rows(chamber, rows)
         if len(trace):
             trace = trace.window(float(trace.utc_s[-1]), span_s)
         return trace
 
-    def refine_timeline(self) -> Timeline:
-        """Compile the stored protocol to place events and sampling reminders (may block).
-
-        Returns
-        -------
-        Timeline
-            The complete timeline, or the quick one with a note if it does not compile.
-        """
-        self._timeline = full_timeline(
-            self._meta.protocol_text, self._meta.start_utc_s, base_dir=self._protocol_dir
-        )
+    def _timeline_refined(self) -> None:
         self._timeline_changed = True
-        return self._timeline
-
-    def close(self) -> None:
-        """Close the reader (the run goes on)."""
-        self._reader.close()
