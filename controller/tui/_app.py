@@ -12,32 +12,43 @@ Rules of this module
   notification; the change itself shows up through the data, as everything else does.
 - Commands are offered only when the channel says this user may command (``can_command``);
   otherwise their keys are hidden. Replay keys show only in replay.
+- A source that can load in the background (a replay: ``background_loader``) gets a worker
+  thread for it after the first paint, so keys are answered while a long log loads.
 - Quitting closes the view and the source's reader, nothing else: the run goes on.
+- Start-up: only what the board needs is imported before the first paint (the detail
+  screen, its charts and numpy come when a chamber is opened).
 """
 
 from __future__ import annotations
 
+import contextlib
+import logging
+import threading
 from collections.abc import Awaitable, Callable
 from pathlib import Path
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar
 
 from textual import work
 from textual.app import App
 from textual.binding import Binding, BindingType
 from textual.message import Message
 from textual.theme import Theme
+from textual.worker import Worker, WorkerState
 
 from ._commands import CommandChannel, CommandResult, NoCommands
-from ._detail import DetailScreen
 from ._dialogs import ConfirmDialog, HelpDialog, NoteDialog
 from ._look import PALETTE
-from ._replay import ReplaySource
 from ._screens import AlarmScreen, OverviewScreen, TimelineScreen, ViewScreen
 from ._snapshot import RunMode, RunStatus, Snapshot
 from ._sources import DataSource
 from ._timeline import Timeline
 
+if TYPE_CHECKING:
+    from ._replay import ReplaySource
+
 __all__ = ["LIVE_POLL_S", "REPLAY_FRAME_S", "THEME", "SquallApp"]
+
+_log = logging.getLogger(__name__)
 
 LIVE_POLL_S = 1.0
 """How often a live view asks its source for news, s."""
@@ -81,9 +92,10 @@ class SquallApp(App[None]):
         :data:`REPLAY_FRAME_S` in replay. Tests pass a long period and call
         :meth:`poll_now` instead, so nothing waits on real time.
     refine_timeline
-        Read the protocol (phases, duration, events) in a worker thread after the first
-        paint (True, the default: the first paint does not wait for the protocol models),
-        or before the first snapshot (False: deterministic, for tests and screenshots).
+        Read the protocol (phases, duration, events) in a background thread after the first
+        paint (True, the default: the first paint does not wait for the protocol models, and
+        quitting does not wait for them either), or before the first snapshot (False:
+        deterministic, for tests and screenshots).
     """
 
     CSS_PATH = str(Path(__file__).with_name("squall.tcss"))  # absolute: subclasses live elsewhere
@@ -164,17 +176,39 @@ class SquallApp(App[None]):
         bridge = getattr(self.source, "bridge", None)
         if bridge is not None:  # a pushed source (telemetry): its task feeds it
             self.run_worker(bridge(), name="bridge", group="bridge", exclusive=True)
+        loader = getattr(self.source, "background_loader", None)
+        if loader is not None:  # a long log: read the rest while the view answers keys
+            self.run_worker(loader(), name="load", group="load", thread=True, exit_on_error=False)
         if self._refine:
-            self._refine_timeline()
+            self.call_after_refresh(self._refine_timeline)
+
+    def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
+        """When the background load ends, show it (or why it failed)."""
+        worker = event.worker
+        if worker.group != "load" or not self.is_running:
+            return
+        if event.state is WorkerState.ERROR:
+            self.notify(f"loading the log stopped: {worker.error}", severity="error")
+        if event.state in (WorkerState.SUCCESS, WorkerState.ERROR):
+            self.poll_now()
 
     def on_unmount(self) -> None:
         """Close the source (the run goes on)."""
         self.source.close()
 
-    @work(thread=True, exclusive=True, group="timeline")
     def _refine_timeline(self) -> None:
-        timeline = self.source.refine_timeline()
-        self.call_from_thread(self._timeline_arrived, timeline)
+        """Compile the protocol in a daemon thread: pure work, abandoned if the view quits
+        first (a worker thread of the app would hold up the exit until it ended)."""
+        threading.Thread(target=self._refine_in_thread, name="squall-timeline", daemon=True).start()
+
+    def _refine_in_thread(self) -> None:
+        try:
+            timeline = self.source.refine_timeline()
+        except Exception:  # the quick timeline stays; the view goes on
+            _log.exception("placing the protocol's events failed")
+            return
+        with contextlib.suppress(RuntimeError):  # the app has gone meanwhile
+            self.call_from_thread(self._timeline_arrived, timeline)
 
     def _timeline_arrived(self, timeline: Timeline) -> None:
         self.timeline = timeline
@@ -228,6 +262,8 @@ class SquallApp(App[None]):
         chamber
             Chamber identifier.
         """
+        from ._detail import DetailScreen
+
         self._chamber = chamber
         self.push_screen(DetailScreen(chamber))
 
@@ -351,6 +387,10 @@ class SquallApp(App[None]):
     # -- replay controls ------------------------------------------------------------------
 
     def _replay(self) -> ReplaySource | None:
+        if self.source.mode is not RunMode.REPLAY:
+            return None
+        from ._replay import ReplaySource
+
         source = self.source
         return source if isinstance(source, ReplaySource) else None
 

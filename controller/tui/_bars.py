@@ -90,6 +90,8 @@ class RunBar(Widget):
         top.append(status, style=style)
         if run.end_reason:
             top.append(f" ({run.end_reason})", style=mist)
+        if run.loading is not None:
+            top.append(f"  loading {run.loading * 100:.0f}%", style=f"bold {sand}")
         top.append("  phase ", style=mist)
         top.append(run.phase or "-", style=f"bold {foam}")
         if run.mode is RunMode.LIVE and run.age_s is not None and not run.end_reason:

@@ -14,12 +14,15 @@ from __future__ import annotations
 
 import math
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from controller.errors import SquallError
 
 from ._commands import CommandChannel, NoCommands
-from ._replay import ReplaySource
-from ._sources import DataSource, LogSource
+
+if TYPE_CHECKING:
+    from ._replay import ReplaySource
+    from ._sources import DataSource, LogSource
 
 __all__ = [
     "RUNS_DIR",
@@ -128,6 +131,8 @@ def open_live(log: Path) -> LogSource:
     SquallError
         Missing, not a run log, or unreadable (one line, naming the file).
     """
+    from ._sources import LogSource
+
     return LogSource(log, protocol_dir=log.parent)
 
 
@@ -164,6 +169,8 @@ def open_replay(log: Path, speed: float) -> ReplaySource:
     SquallError
         Missing, not a run log, or unreadable (one line, naming the file).
     """
+    from ._replay import ReplaySource
+
     return ReplaySource(log, speed=speed, protocol_dir=log.parent)
 
 
