@@ -58,7 +58,7 @@ def _time(text: str | None, option: str) -> datetime | None:
 def _console() -> Console:
     from rich.console import Console
 
-    console = Console(highlight=False, soft_wrap=True)
+    console = Console(highlight=False, soft_wrap=True, markup=False)
     if not console.is_terminal:  # a pipe or file: tables need not fit an 80-column guess
         console.width = max(console.width, 160)
     return console
