@@ -132,6 +132,10 @@ class Topics:
         return f"Topics({self.prefix!r})"
 
     # ------------------------------------------------------------------ building
+    def _of(self, controller: str, kind: TopicKind) -> str:
+        """``<prefix>/<controller>/<kind>`` for the per-controller topics."""
+        return f"{self.prefix}/{check_id(controller, 'controller id')}/{kind.value}"
+
     def status(self, controller: str) -> str:
         """Retained status topic of a controller.
 
@@ -145,7 +149,7 @@ class Topics:
         str
             The topic.
         """
-        return f"{self.prefix}/{check_id(controller, 'controller id')}/status"
+        return self._of(controller, TopicKind.STATUS)
 
     def sample(self, controller: str, chamber: str) -> str:
         """Sample topic of one chamber of a controller.
@@ -180,7 +184,7 @@ class Topics:
         str
             The topic.
         """
-        return f"{self.prefix}/{check_id(controller, 'controller id')}/alarm"
+        return self._of(controller, TopicKind.ALARM)
 
     def event(self, controller: str) -> str:
         """Event topic of a controller.
@@ -195,7 +199,7 @@ class Topics:
         str
             The topic.
         """
-        return f"{self.prefix}/{check_id(controller, 'controller id')}/event"
+        return self._of(controller, TopicKind.EVENT)
 
     def command(self, controller: str) -> str:
         """Topic a controller takes remote commands from.
@@ -210,7 +214,7 @@ class Topics:
         str
             The topic.
         """
-        return f"{self.prefix}/{check_id(controller, 'controller id')}/cmd"
+        return self._of(controller, TopicKind.COMMAND)
 
     def command_result(self, controller: str) -> str:
         """Topic a controller answers remote commands on.
@@ -225,7 +229,7 @@ class Topics:
         str
             The topic.
         """
-        return f"{self.prefix}/{check_id(controller, 'controller id')}/cmd/result"
+        return self._of(controller, TopicKind.COMMAND_RESULT)
 
     def watch_all(self) -> str:
         """Subscription that receives every controller's telemetry: ``<prefix>/+/#``.
