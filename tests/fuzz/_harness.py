@@ -31,15 +31,27 @@ def examples(default: int) -> int:
     return max(1, int(_OVERRIDE)) if _OVERRIDE else default
 
 
-def budget(default: int) -> settings:
+def budget(default: int, *, deadline_ms: float | None = 2000.0) -> settings:
     """Hypothesis settings for one fuzz test running :func:`examples` (``default``) cases.
 
-    A per-case deadline of 5 s catches a case that hangs or crawls; CI draws are
-    derandomised so a failure reproduces, hand runs (``FUZZ_EXAMPLES``) explore afresh.
+    Parameters
+    ----------
+    default
+        Cases in CI, count.
+    deadline_ms
+        Longest time one case may take, ms: a pure decoder that crawls on some input fails.
+        ``None`` for tests that run whole commands, whose first case imports pandas or
+        matplotlib and takes seconds on a busy machine (pytest-timeout still ends a hang).
+
+    Returns
+    -------
+    hypothesis.settings
+        CI draws are derandomised so a failure reproduces; hand runs (``FUZZ_EXAMPLES``)
+        explore afresh.
     """
     return settings(
         max_examples=examples(default),
-        deadline=5000,
+        deadline=deadline_ms,
         suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
         derandomize=not _OVERRIDE,
         database=None,

@@ -216,13 +216,13 @@ def test_the_unmutated_rig_passes(folder: Path) -> None:
     assert "against rig" in out
 
 
-@budget(150)
+@budget(150, deadline_ms=None)
 @given(text=_mutated_rig())
 def test_mutated_rig_files(folder: Path, text: str) -> None:
     check_rig(folder, text.encode("utf-8"))
 
 
-@budget(60)
+@budget(60, deadline_ms=None)
 @given(cut=st.floats(0.0, 1.0), noise=st.binary(max_size=12))
 def test_truncated_and_overwritten_rig_bytes(folder: Path, cut: float, noise: bytes) -> None:
     data = RIG_TEXT.encode("utf-8")
@@ -274,7 +274,7 @@ _DOCUMENT = st.dictionaries(
 )
 
 
-@budget(60)
+@budget(60, deadline_ms=None)
 @given(document=_DOCUMENT)
 def test_random_documents_of_rig_keys(folder: Path, document: dict[str, object]) -> None:
     text = "".join(f'"{k}" = {_toml_value(v)}\n' for k, v in document.items())
