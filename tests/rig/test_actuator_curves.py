@@ -11,6 +11,8 @@ procedure of ``hardware-notes/calibration.md`` does.
 from __future__ import annotations
 
 import asyncio
+import contextlib
+import io
 import math
 import re
 import tomllib
@@ -340,3 +342,22 @@ def test_the_example_rig_tables_load_and_reach_their_top(repo_root: Path) -> Non
         if curve is not None:  # the lamp must reach the PAR the chamber promises
             assert curve.full >= chamber.limits.max_par
     assert any(c.pump.curve() is not None for c in rig.chambers)
+
+
+def test_the_calibration_notes_tables_are_valid_and_the_snippet_prints_the_lamp_table(
+    repo_root: Path,
+) -> None:
+    text = (repo_root / "hardware-notes" / "calibration.md").read_text(encoding="utf-8")
+    (code,) = re.findall(r"```python lamp-table\n(.*?)```", text, flags=re.DOTALL)
+    lamp_toml, pump_toml = re.findall(r"```toml (?:lamp|pump)-table\n(.*?)```", text, re.DOTALL)
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        exec(compile(code, "<calibration.md>", "exec"), {})
+    printed = tomllib.loads(out.getvalue())["drive_pct_par"]
+    lamp = ChamberLamp.model_validate(tomllib.loads(lamp_toml)["chambers"]["lamp"])
+    pump = ChamberPump.model_validate(tomllib.loads(pump_toml)["chambers"]["pump"])
+    assert [list(r) for r in lamp.drive_pct_par or []] == printed
+    curve = pump.curve()
+    assert curve is not None and curve.drive_pct[0] == 8.0  # the dead band's edge
+    # the notes' figure for the straight line on that pump: 4 of 20 cm/s is 20 % drive
+    assert curve.value_at(100.0 * 4.0 / curve.full) == pytest.approx(2.6, abs=0.05)
