@@ -5,23 +5,26 @@ Rules of this module
 - :class:`HardwareIO` implements :class:`~controller.runtime.ChamberIO` from a rig's I/O map
   (:class:`~controller.rig.RigIo`) through the async transports and the pure codecs of
   :mod:`controller.drivers`; the loop cannot tell it from the simulated rack.
-- Reads: a chamber's input registers and contacts are read concurrently, each under the
-  read budget, and the rig's calibration corrections (``[io.corrections]``) are applied to
-  temperature, PAR and flow. The optode is **not** asked during a read: every optode has its
-  own poller in :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and
-  a read reports the latest measurement. So a slow or silent optode never stalls a tick.
-- Writes, every tick (``hardware-notes/register-map.md``): one request for holding registers
-  0..5 (the four drives, the watchdog timeout, a new watchdog count: drives and feed arrive
-  together), then one for relay coils 0..3 (closed where the drive is above 0) when they
-  change, when their state in the module is in doubt (after a set-up, a failed exchange or a
-  watchdog trip) and at least every tenth write; relays change rarely, and skipping their
-  unchanged write saves a quarter of the requests. A module that answers "busy" is held safe
-  by its watchdog: it is fed alone, then written again.
+- Modbus: the blocks of every link are grouped into runs of neighbours
+  (:class:`~controller.drivers._transport_runs.BlockRun`), and the reads (and writes) the loop makes for
+  all chambers at once are joined into one request per run: input registers 0..6 (readings,
+  fault bits, contacts) in one read; holding registers 0..5 (drives, watchdog timeout, a new
+  watchdog count: drives and feed arrive together) in one write; relay coils only when they
+  change, when they are in doubt (after a set-up, a failed exchange or a watchdog trip) and
+  at least every tenth write. A run that fails jointly is exchanged with block by block until
+  every block answers again. Links are exchanged with concurrently. The rig's calibration
+  corrections (``[io.corrections]``) are applied to temperature, PAR and flow.
+- The optode is **not** asked during a read: every optode has its own poller in
+  :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and a read
+  reports the latest measurement. So a slow or silent optode never stalls a tick.
 - Start-up, per module, before ``ready`` is set (register-map's sequence): read
   ``watchdog_tripped``; write the rig's safe drives to ``safe_*_pct``; write the watchdog
-  timeout and a first feed. The same set-up runs again before the next write whenever an
-  exchange with the module failed, since a module that lost power boots with the watchdog
-  off and every safe drive 0.
+  timeout and a first feed. Each request is bounded by its link's timeouts, which start when
+  it is sent, not while it waits behind the other modules' requests; a module that fails is
+  tried again after a back-off with jitter, so modules that failed together do not retry in
+  lock-step. The same set-up runs again before the next write whenever an exchange with the
+  module failed, since a module that lost power boots with the watchdog off and every safe
+  drive 0.
 - Failures never reach the loop as exceptions: a transport error, a timeout or a malformed
   reply (:class:`~controller.errors.SquallError` from a codec) makes the quantities it carried
   stale (``None``, listed in ``failed``) and ``comm_ok`` False, or the write False.
@@ -35,11 +38,12 @@ import asyncio
 import dataclasses
 import logging
 import math
-from collections.abc import Awaitable, Callable, Mapping, Sequence
+import random
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import TracebackType
-from typing import Self, TypeVar
+from typing import Self
 
 from controller.clock import Clock
 from controller.control import Outputs
@@ -54,25 +58,15 @@ from controller.drivers import (
     OptodeStatus,
     OutputValues,
     RegisterMap,
-    RelayBits,
-    WordOrder,
-    decode_input_bits,
-    decode_inputs,
     decode_reply,
     encode_outputs,
     encode_point,
-    encode_relays,
     encode_request,
     encode_safe_outputs,
-    next_watchdog_count,
     point,
 )
-from controller.drivers._transport_common import (
-    DeviceRefused,
-    ModbusExceptionCode,
-    RetryPolicy,
-    TransportError,
-)
+from controller.drivers._transport_runs import BlockRun
+from controller.drivers._transport_common import RetryPolicy, TransportError
 from controller.drivers._transport_modbus import ModbusTransport
 from controller.drivers._transport_serial import SerialLineTransport
 from controller.errors import SquallError
@@ -83,19 +77,11 @@ from controller.runtime._settings import ControlPlan, RunSettings
 
 __all__ = ["HardwareIO"]
 
-T = TypeVar("T")
-
 _log = logging.getLogger(__name__)
 
 _OFF = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
-_INPUT_WORDS = 6  # input registers 0..5 of a block
-_CONTACTS = 3  # discrete inputs 0..2 of a block
 _TIMEOUT_POINT = point("watchdog_timeout_s")
-_SAFE_OFFSET = point("safe_heater_pct").offset
-_COUNTER_OFFSET = point("watchdog_counter").offset
 _SETUP_PAUSE_MAX_S = 5.0
-#: Relays are rewritten at least every this many writes even when unchanged, count.
-_RELAY_REFRESH = 10
 #: Optode statuses whose values must not be used (clamped or unreliable), dimensionless.
 _UNUSABLE = OptodeStatus.LOW_SIGNAL | OptodeStatus.O2_RANGE
 _STOP_FAILURES = (TransportError, SquallError, TimeoutError)
@@ -104,24 +90,6 @@ _ANALOG = (
     ("par", Quantity.PAR),
     ("flow_cm_s", Quantity.FLOW),
 )
-
-
-@dataclass(kw_only=True)
-class _Block:
-    """One chamber's I/O module as the controller keeps track of it."""
-
-    chamber: str
-    link: ModbusTransport
-    unit_id: int
-    base: int
-    word_order: WordOrder
-    safe: Outputs
-    count: int = 0
-    needs_setup: bool = True
-    relays: tuple[bool, ...] | None = None
-    """Relay coils as last written, or None when the module's coils are not known."""
-    relay_age: int = 0
-    """Writes since the relays were last written, count."""
 
 
 @dataclass(kw_only=True)
@@ -204,7 +172,9 @@ class HardwareIO:
         self._optode_max_age_s = 2.0 * io.optode_period_s  # one missed poll is tolerated
         self.links: dict[str, ModbusTransport] = {}
         """Modbus transport per link name."""
-        self._blocks: dict[str, _Block] = {}
+        self._runs: dict[str, BlockRun] = {}
+        """The run of neighbouring blocks each chamber's module belongs to."""
+        self._rng = random.Random(0)  # jitter of set-up retries; seeded: runs repeat
         for link, ids in zip(io.modbus, io.link_chambers(chambers), strict=True):
             transport = _transport(link)
             self.links[link.name] = transport
@@ -217,15 +187,23 @@ class HardwareIO:
                     budget_s,
                 )
             rmap = RegisterMap.build(ids, link.register_map, where=f"io.{link.name}")
-            for b in rmap.blocks:
-                self._blocks[b.chamber_id] = _Block(
-                    chamber=b.chamber_id,
-                    link=transport,
-                    unit_id=b.unit_id,
-                    base=b.base,
+            for blocks in rmap.runs():
+                run = BlockRun(
+                    transport,
+                    blocks[0].unit_id,
+                    blocks,
                     word_order=rmap.word_order,
-                    safe=(safe or {}).get(b.chamber_id, _OFF),
+                    timeout_word=self._timeout_word,
+                    safe_words={
+                        b.chamber_id: encode_safe_outputs(
+                            _values((safe or {}).get(b.chamber_id, _OFF)),
+                            where=f"{b.chamber_id}.safe",
+                        )
+                        for b in blocks
+                    },
+                    budget_s=self._budget_s,
                 )
+                self._runs.update(dict.fromkeys(run.chambers, run))
         self._optodes: dict[str, _Optode] = {
             cid: _Optode(
                 chamber=cid,
@@ -323,6 +301,8 @@ class HardwareIO:
         tb: TracebackType | None,
     ) -> None:
         """Close every connection and port; the modules' watchdogs stay armed."""
+        for run in set(self._runs.values()):
+            await run.aclose()
         for link in self.links.values():
             await link.close()
         for opt in self._optodes.values():
@@ -342,14 +322,12 @@ class HardwareIO:
             for opt in self._optodes.values():
                 group.create_task(self._poll(opt), name=f"optode-{opt.chamber}")
             async with asyncio.TaskGroup() as setup:
-                for block in self._blocks.values():
-                    setup.create_task(self._start(block), name=f"setup-{block.chamber}")
+                for chamber in self._runs:
+                    setup.create_task(self._start(chamber), name=f"setup-{chamber}")
             for opt in self._optodes.values():
                 await opt.first.wait()  # each poll is bounded by the optode timeout
             ready.set()
-            _log.info(
-                "devices ready: %d modules, %d optodes", len(self._blocks), len(self._optodes)
-            )
+            _log.info("devices ready: %d modules, %d optodes", len(self._runs), len(self._optodes))
             if not self._optodes:
                 await asyncio.Event().wait()  # nothing else to do until cancelled
 
@@ -363,32 +341,22 @@ class HardwareIO:
         self._healthy[key] = ok
 
     # ------------------------------------------------------------------ Modbus set-up
-    async def _start(self, block: _Block) -> None:
+    async def _start(self, chamber: str) -> None:
+        """Set up one module, trying again after a growing, jittered pause until it answers.
+
+        Each request is bounded by the link's policy from the moment it is sent; the wait
+        behind the other modules' requests on the same link is not held against it.
+        """
         pause = 0.1
         while True:
             try:
-                async with asyncio.timeout(self._budget_s * 2):
-                    await self._setup(block)
-                self._note(block.chamber, "modbus", True)
+                await self._runs[chamber].setup(chamber)
+                self._note(chamber, "modbus", True)
                 return
             except _STOP_FAILURES as exc:
-                self._note(block.chamber, "modbus", False, exc)
-            await asyncio.sleep(pause)
+                self._note(chamber, "modbus", False, exc)
+            await asyncio.sleep(pause * self._rng.uniform(0.5, 1.0))
             pause = min(2 * pause, _SETUP_PAUSE_MAX_S)
-
-    async def _setup(self, block: _Block) -> None:
-        """The register map's start-up sequence for one module."""
-        bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
-        if decode_input_bits(bits, where=f"{block.chamber}.contacts").watchdog_tripped:
-            _log.warning("%s: module found tripped by its watchdog; re-arming", block.chamber)
-        safe_words = encode_safe_outputs(_values(block.safe), where=f"{block.chamber}.safe")
-        await block.link.write_registers(block.unit_id, block.base + _SAFE_OFFSET, safe_words)
-        block.count = next_watchdog_count(block.count)
-        await block.link.write_registers(
-            block.unit_id, block.base + _TIMEOUT_POINT.offset, [self._timeout_word, block.count]
-        )
-        block.needs_setup = False
-        block.relays = None  # a module set up afresh gets its relays written again
 
     # ------------------------------------------------------------------ reads
     async def read(self, chamber: str) -> ChamberReadings:
@@ -407,25 +375,29 @@ class HardwareIO:
             measurement; stale parts ``None`` and listed in ``failed``.
         """
         now = self._clock.now_s()
-        block = self._blocks[chamber]
-        inputs, contacts = await asyncio.gather(
-            self._fetch(block, self._inputs), self._fetch(block, self._contacts)
-        )
+        run = self._runs[chamber]
+        inputs: InputValues | None = None
+        contacts: InputBits | None = None
+        try:
+            async with asyncio.timeout(self._budget_s):
+                inputs, contacts = await run.read(chamber)
+        except _STOP_FAILURES as exc:
+            self._note(chamber, "modbus", False, exc)
+        else:
+            self._note(chamber, "modbus", True)
         failed: set[Quantity] = set()
         values: dict[str, float | bool | None] = {}
-        if inputs is None:
+        if inputs is None or contacts is None:
             failed |= {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW}
+            failed |= {Quantity.LEVEL, Quantity.E_STOP}
         else:
             values |= _corrected(inputs, self._corrections.get(chamber))
             failed |= {quantity for key, quantity in _ANALOG if values[key] is None}
-        if contacts is None:
-            failed |= {Quantity.LEVEL, Quantity.E_STOP}
-        else:
             values |= {"level_ok": contacts.level_ok, "e_stop": not contacts.estop_ok}
             if contacts.watchdog_tripped:
-                block.relays = None  # the trip set the relays from the safe drives
+                run.forget_relays(chamber)  # the trip set the relays from the safe drives
                 _log.warning("%s: the module's watchdog holds its outputs safe", chamber)
-        comm_ok = inputs is not None and contacts is not None
+        comm_ok = inputs is not None
         opt = self._optodes.get(chamber)
         if opt is not None:
             if opt.unreported_miss:
@@ -444,26 +416,6 @@ class HardwareIO:
             **values,  # type: ignore[arg-type]
         )
 
-    async def _fetch(self, block: _Block, what: Callable[[_Block], Awaitable[T]]) -> T | None:
-        """One read of a block under the budget; a failure is logged and becomes None."""
-        try:
-            async with asyncio.timeout(self._budget_s):
-                value = await what(block)
-        except _STOP_FAILURES as exc:
-            block.needs_setup = True
-            self._note(block.chamber, "modbus", False, exc)
-            return None
-        self._note(block.chamber, "modbus", True)
-        return value
-
-    async def _inputs(self, block: _Block) -> InputValues:
-        words = await block.link.read_input_registers(block.unit_id, block.base, _INPUT_WORDS)
-        return decode_inputs(words, block.word_order, where=f"{block.chamber}.inputs")
-
-    async def _contacts(self, block: _Block) -> InputBits:
-        bits = await block.link.read_discrete_inputs(block.unit_id, block.base, _CONTACTS)
-        return decode_input_bits(bits, where=f"{block.chamber}.contacts")
-
     # ------------------------------------------------------------------ writes
     async def write(self, chamber: str, outputs: Outputs) -> bool:
         """Drive one chamber's actuators and feed its module's watchdog.
@@ -480,54 +432,16 @@ class HardwareIO:
         bool
             True when the module took drives, feed and relays; False otherwise.
         """
-        block = self._blocks[chamber]
+        run = self._runs[chamber]
         try:
+            drive_words = encode_outputs(_values(outputs), where=f"{chamber}.outputs")
             async with asyncio.timeout(self._budget_s):
-                if block.needs_setup:
-                    await self._setup(block)
-                drive_words = encode_outputs(_values(outputs), where=f"{chamber}.outputs")
-                await self._drive(block, drive_words)
-                relays = encode_relays(
-                    RelayBits(
-                        heater_on=drive_words[0] > 0,
-                        chiller_on=drive_words[1] > 0,
-                        lamp_on=drive_words[2] > 0,
-                        pump_on=drive_words[3] > 0,
-                    )
-                )
-                block.relay_age += 1
-                if relays != block.relays or block.relay_age >= _RELAY_REFRESH:
-                    block.relays = None
-                    await block.link.write_coils(block.unit_id, block.base, relays)
-                    block.relays, block.relay_age = relays, 0
+                await run.write(chamber, drive_words)
         except _STOP_FAILURES as exc:
-            block.needs_setup = True
-            block.relays = None
             self._note(chamber, "modbus", False, exc)
             return False
         self._note(chamber, "modbus", True)
         return True
-
-    async def _drive(self, block: _Block, drive_words: tuple[int, ...]) -> None:
-        """Holding registers 0..5 in one request: drives, watchdog timeout, a new count."""
-        block.count = next_watchdog_count(block.count)
-        try:
-            await block.link.write_registers(
-                block.unit_id, block.base, [*drive_words, self._timeout_word, block.count]
-            )
-        except DeviceRefused as exc:
-            if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
-                raise
-            _log.warning("%s: watchdog tripped; feeding, then driving again", block.chamber)
-            block.relays = None
-            block.count = next_watchdog_count(block.count)
-            await block.link.write_registers(
-                block.unit_id, block.base + _COUNTER_OFFSET, [block.count]
-            )
-            block.count = next_watchdog_count(block.count)
-            await block.link.write_registers(
-                block.unit_id, block.base, [*drive_words, self._timeout_word, block.count]
-            )
 
     # ------------------------------------------------------------------ optodes
     async def _poll(self, opt: _Optode) -> None:

@@ -158,7 +158,7 @@ def test_a_silent_module_costs_every_attempt_then_no_reply() -> None:
             assert clock.now_s() - t0 == pytest.approx(POLICY.worst_case_s, abs=1e-6)
             assert POLICY.worst_case_s == pytest.approx(3 * 0.5 + 0.05 + 0.1)
             # the other chamber's block on the same link still answers, on the same connection
-            await link.read_input_registers(1, 32, 6)
+            await link.read_input_registers(1, 16, 6)  # c2's block follows c1's (modules of 8)
             rack.clear_faults(FaultKind.COMM_TIMEOUT)
             await link.read_input_registers(1, 0, 6)
             assert link.connects == 1 and link.failures == 1
@@ -179,7 +179,7 @@ def test_a_reply_timeout_measures_the_device_not_the_queue_behind_a_silent_one()
             t0 = clock.now_s()
             silent = asyncio.ensure_future(link.read_input_registers(1, 0, 6))
             await asyncio.sleep(0)  # c1's request goes on the wire first
-            words = await link.read_input_registers(1, 32, 6)  # c2 waits its turn, then answers
+            words = await link.read_input_registers(1, 16, 6)  # c2 waits its turn, then answers
             assert clock.now_s() - t0 == pytest.approx(0.5, abs=1e-6)
             assert decode_inputs(words).level_pct == pytest.approx(100.0)
             with pytest.raises(NoReply):
@@ -231,9 +231,9 @@ def test_exception_responses_are_typed_and_not_retried() -> None:
         async with served(rack) as server:
             link = ModbusTransport.tcp("127.0.0.1", server.announcement.port, policy=POLICY)
             with pytest.raises(DeviceRefused) as reserved:
-                await link.read_input_registers(1, 6, 4)  # offsets 6..9: reserved
+                await link.read_input_registers(1, 30, 4)  # 32 and on: past the last block
             assert reserved.value.code is ModbusExceptionCode.ILLEGAL_ADDRESS
-            assert (reserved.value.unit_id, reserved.value.address) == (1, 6)
+            assert (reserved.value.unit_id, reserved.value.address) == (1, 30)
             assert reserved.value.function_code == 0x04
             with pytest.raises(DeviceRefused) as too_big:
                 await link.write_registers(1, 0, [20000])  # heater 200 %

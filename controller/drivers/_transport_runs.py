@@ -1,0 +1,460 @@
+"""The cyclic exchange with a run of neighbouring chamber blocks: one request each way.
+
+Rules of this module
+--------------------
+- A :class:`BlockRun` is the blocks of one Modbus link and unit that follow each other with
+  no gap (:meth:`~controller.drivers.RegisterMap.runs`); a block with no neighbour is a run
+  of one. Reads and writes asked for several of its chambers before the exchange starts (the
+  control loop reads every chamber concurrently, then writes every chamber concurrently) are
+  joined into one exchange: one read of input registers 0..6 across the run (readings, fault
+  bits and contacts), one write of holding registers 0..5 of every block across the run (the
+  blocks' safe drives and reserved zeros in between), and one coil write when relays need it
+  (``hardware-notes/register-map.md``, "The controller's cyclic exchange").
+- When a joined exchange fails (a silent module, a module busy with a tripped watchdog), the
+  run is exchanged with **block by block**, concurrently (the link queues the requests), so a
+  silent module costs its neighbours nothing but the wait; the run is joined again once every
+  block has answered. The failed blocks are retried singly in the same exchange while its
+  budget lasts. A device that refuses the joined read itself is read block by block for good.
+- Every exchange runs under ``budget_s`` and reports, per chamber, a value or the exception
+  that stopped it; callers re-raise their own. A failure leaves the block needing the
+  register map's start-up sequence (:meth:`BlockRun.setup`) before its next write, since a
+  module that lost power boots with its watchdog off and every safe drive 0.
+- ``CancelledError`` is never caught; the exchange itself is shielded from a caller that
+  gives up, so its neighbours still get their answer.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+from collections.abc import Awaitable, Callable, Mapping, Sequence
+from dataclasses import dataclass
+
+from controller.drivers._codec_modbus import (
+    CYCLIC_INPUT_WORDS,
+    InputBits,
+    InputValues,
+    RelayBits,
+    decode_contact_status,
+    decode_input_bits,
+    decode_inputs,
+    encode_relays,
+    next_watchdog_count,
+    point,
+)
+from controller.drivers._modbus_scalar import BLOCK_SPAN, WordOrder
+from controller.drivers._register_map import MAX_RUN_BLOCKS, ChamberBlock
+from controller.drivers._transport_common import (
+    DeviceRefused,
+    ModbusExceptionCode,
+    TransportError,
+)
+from controller.drivers._transport_modbus import ModbusTransport
+from controller.errors import SquallError
+
+__all__ = ["RELAY_REFRESH", "BlockRun", "Readings"]
+
+_log = logging.getLogger(__name__)
+
+RELAY_REFRESH = 10
+"""Relays are rewritten at least every this many writes even when unchanged, count."""
+
+Readings = tuple[InputValues, InputBits]
+"""What one read of a block gives: its analog inputs and its contacts."""
+
+_FAILURES = (TransportError, SquallError, TimeoutError)
+_CONTACTS = 3  # discrete inputs 0..2
+_SAFE_OFFSET = point("safe_heater_pct").offset
+_TIMEOUT_OFFSET = point("watchdog_timeout_s").offset
+_COUNTER_OFFSET = point("watchdog_counter").offset
+_GAP_WORDS = BLOCK_SPAN - _SAFE_OFFSET - 4  # reserved holding registers after the safe drives
+_Outcome = dict[str, object]  # per chamber: a value (True for a write) or an exception
+
+
+@dataclass(kw_only=True)
+class _Block:
+    """One chamber block as the controller keeps track of it."""
+
+    chamber: str
+    base: int
+    safe_words: tuple[int, ...]
+    count: int = 0
+    needs_setup: bool = True
+    relays: tuple[bool, ...] | None = None
+    """Relay coils as last written, or None when the module's coils are not known."""
+    relay_age: int = 0
+    """Writes since the relays were last written, count."""
+
+
+class _Batch:
+    """Calls joined into one exchange: those made before the exchange starts."""
+
+    def __init__(self) -> None:
+        self.started = False
+        self.wanted: dict[str, tuple[int, ...]] = {}
+        self.task: asyncio.Future[_Outcome] | None = None
+
+
+def _neighbours(blocks: Sequence[_Block]) -> list[list[_Block]]:
+    """Split blocks (ascending base) where a gap opens between two of them."""
+    groups: list[list[_Block]] = []
+    for b in blocks:
+        if groups and b.base == groups[-1][-1].base + BLOCK_SPAN:
+            groups[-1].append(b)
+        else:
+            groups.append([b])
+    return groups
+
+
+def _failed(outcome: object) -> bool:
+    return isinstance(outcome, BaseException)
+
+
+class BlockRun:
+    """Neighbouring chamber blocks on one link and unit, exchanged with jointly.
+
+    Parameters
+    ----------
+    link
+        The Modbus link the blocks are reached through (no unit).
+    unit_id
+        Their unit id, 0..247 (no unit).
+    blocks
+        The blocks, ascending and without gaps, 1..8 of them (no unit).
+    word_order
+        Register order of 32-bit values (no unit).
+    timeout_word
+        The encoded ``watchdog_timeout_s`` written with every feed (no unit).
+    safe_words
+        Per chamber, the encoded safe drives (holding registers 6..9) (no unit).
+    budget_s
+        Longest one joined exchange may take, s.
+    """
+
+    def __init__(
+        self,
+        link: ModbusTransport,
+        unit_id: int,
+        blocks: Sequence[ChamberBlock],
+        *,
+        word_order: WordOrder,
+        timeout_word: int,
+        safe_words: Mapping[str, Sequence[int]],
+        budget_s: float,
+    ) -> None:
+        if not 1 <= len(blocks) <= MAX_RUN_BLOCKS:
+            raise ValueError(f"a run holds 1..{MAX_RUN_BLOCKS} blocks, got {len(blocks)}")
+        first = blocks[0].base
+        if any(b.base != first + i * BLOCK_SPAN for i, b in enumerate(blocks)):
+            raise ValueError("the blocks of a run must follow each other with no gap")
+        self.link = link
+        self.unit_id = unit_id
+        self.word_order = word_order
+        self._timeout_word = timeout_word
+        self._budget_s = budget_s
+        self._order = tuple(
+            _Block(chamber=b.chamber_id, base=b.base, safe_words=tuple(safe_words[b.chamber_id]))
+            for b in blocks
+        )
+        self._blocks = {b.chamber: b for b in self._order}
+        self.split = False
+        """True while the run is exchanged with block by block (after a failure)."""
+        self._read_refused = False
+        self._batches: dict[str, _Batch] = {}
+        self._tasks: set[asyncio.Future[_Outcome]] = set()
+
+    @property
+    def chambers(self) -> tuple[str, ...]:
+        """The run's chambers, by ascending address (no unit)."""
+        return tuple(b.chamber for b in self._order)
+
+    def needs_setup(self, chamber: str) -> bool:
+        """Whether a chamber's module gets the start-up sequence before its next write.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+
+        Returns
+        -------
+        bool
+            True after a failure or before the first set-up (no unit).
+        """
+        return self._blocks[chamber].needs_setup
+
+    def forget_relays(self, chamber: str) -> None:
+        """Mark a module's relays as unknown (its watchdog set them), so they are rewritten.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+        """
+        self._blocks[chamber].relays = None
+
+    async def aclose(self) -> None:
+        """Cancel any exchange still running (at shutdown)."""
+        for task in list(self._tasks):
+            task.cancel()
+        await asyncio.gather(*self._tasks, return_exceptions=True)
+
+    # ------------------------------------------------------------------ set-up
+    async def setup(self, chamber: str) -> None:
+        """The register map's start-up sequence for one module: read ``watchdog_tripped``,
+        write the safe drives, write the watchdog timeout and a first feed.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+
+        Raises
+        ------
+        TransportError
+            The module did not take the sequence (each request bounded by the link's policy).
+        """
+        b = self._blocks[chamber]
+        bits = await self.link.read_discrete_inputs(self.unit_id, b.base, _CONTACTS)
+        if decode_input_bits(bits, where=f"{chamber}.contacts").watchdog_tripped:
+            _log.warning("%s: module found tripped by its watchdog; re-arming", chamber)
+        await self.link.write_registers(self.unit_id, b.base + _SAFE_OFFSET, b.safe_words)
+        b.count = next_watchdog_count(b.count)
+        await self.link.write_registers(
+            self.unit_id, b.base + _TIMEOUT_OFFSET, [self._timeout_word, b.count]
+        )
+        b.needs_setup = False
+        b.relays = None  # a module set up afresh gets its relays written again
+
+    # ------------------------------------------------------------------ joined calls
+    async def read(self, chamber: str) -> Readings:
+        """One chamber's inputs and contacts, from the run's next joined read.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+
+        Returns
+        -------
+        tuple of (InputValues, InputBits)
+            Readings (°C, µmol photons m⁻² s⁻¹, cm s⁻¹, %) and contacts (no unit).
+
+        Raises
+        ------
+        TransportError, SquallError, TimeoutError
+            The module did not answer, or answered malformed, within the budget.
+        """
+        outcome = await self._joined("read", chamber, ())
+        if isinstance(outcome, BaseException):
+            self._blocks[chamber].needs_setup = True
+            raise outcome
+        return outcome  # type: ignore[return-value]
+
+    async def write(self, chamber: str, drive_words: Sequence[int]) -> None:
+        """Drive one module and feed its watchdog in the run's next joined write.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+        drive_words
+            Encoded heater, chiller, lamp and pump drives, holding registers 0..3 (no unit).
+
+        Raises
+        ------
+        TransportError, SquallError, TimeoutError
+            The module did not take drives, feed and relays within the budget.
+        """
+        outcome = await self._joined("write", chamber, tuple(drive_words))
+        if isinstance(outcome, BaseException):
+            b = self._blocks[chamber]
+            b.needs_setup, b.relays = True, None
+            raise outcome
+
+    async def _joined(self, kind: str, chamber: str, words: tuple[int, ...]) -> object:
+        batch = self._batches.get(kind)
+        if batch is None or batch.started:
+            batch = self._batches[kind] = _Batch()
+            exchange = self._read_all if kind == "read" else self._write_all
+            task = asyncio.ensure_future(exchange(batch))
+            self._tasks.add(task)
+            task.add_done_callback(self._tasks.discard)
+            batch.task = task
+        batch.wanted[chamber] = words
+        assert batch.task is not None
+        outcome = await asyncio.shield(batch.task)
+        return outcome[chamber]
+
+    async def _each(
+        self,
+        groups: Sequence[Sequence[_Block]],
+        fn: Callable[[Sequence[_Block]], Awaitable[_Outcome]],
+        out: _Outcome,
+    ) -> None:
+        """Exchange with every group concurrently; note each chamber's value or exception."""
+
+        async def one(group: Sequence[_Block]) -> None:
+            try:
+                out.update(await fn(group))
+            except _FAILURES as exc:
+                out.update({b.chamber: exc for b in group})
+
+        async with asyncio.TaskGroup() as tasks:
+            for group in groups:
+                tasks.create_task(one(group))
+
+    def _settle(self, out: _Outcome, asked: Sequence[_Block]) -> _Outcome:
+        """Name a timeout for what never answered; join the run again once all answered."""
+        for b in asked:
+            out.setdefault(b.chamber, TimeoutError(f"no answer within {self._budget_s:g} s"))
+        if self.split and all(
+            b.chamber in out and not _failed(out[b.chamber]) for b in self._order
+        ):
+            self.split = False
+            _log.info("%s unit %d: every block answers; joined again", self.link.name, self.unit_id)
+        return out
+
+    def _split(self, why: object) -> None:
+        if not self.split:
+            self.split = True
+            _log.info(
+                "%s unit %d: joined exchange failed (%s); block by block until all answer",
+                self.link.name,
+                self.unit_id,
+                why,
+            )
+
+    # ------------------------------------------------------------------ reads
+    async def _read_all(self, batch: _Batch) -> _Outcome:
+        batch.started = True
+        out: _Outcome = {}
+        joined = len(self._order) > 1 and not (self.split or self._read_refused)
+        singles = [[b] for b in self._order]
+        try:
+            async with asyncio.timeout(self._budget_s):
+                await self._each([self._order] if joined else singles, self._read_group, out)
+                first = out[self._order[0].chamber]
+                if joined and isinstance(first, TransportError):  # not one block's bad reply
+                    if isinstance(first, DeviceRefused):
+                        self._read_refused = True
+                        _log.info("%s unit %d refuses a joined read (%s); block by block",
+                                  self.link.name, self.unit_id, first)  # fmt: skip
+                    else:
+                        self._split(first)
+                    out.clear()
+                    await self._each(singles, self._read_group, out)
+        except TimeoutError:
+            if joined and not out:
+                self._split("no answer within the budget")
+        return self._settle(out, self._order)
+
+    async def _read_group(self, group: Sequence[_Block]) -> _Outcome:
+        count = (len(group) - 1) * BLOCK_SPAN + CYCLIC_INPUT_WORDS
+        words = await self.link.read_input_registers(self.unit_id, group[0].base, count)
+        out: _Outcome = {}
+        for i, b in enumerate(group):
+            own = words[i * BLOCK_SPAN : i * BLOCK_SPAN + CYCLIC_INPUT_WORDS]
+            try:
+                out[b.chamber] = (
+                    decode_inputs(own[:6], self.word_order, where=f"{b.chamber}.inputs"),
+                    decode_contact_status(own[6], where=f"{b.chamber}.contact_status"),
+                )
+            except SquallError as exc:  # one module's malformed reply spoils only its own
+                out[b.chamber] = exc
+        return out
+
+    # ------------------------------------------------------------------ writes
+    async def _write_all(self, batch: _Batch) -> _Outcome:
+        batch.started = True
+        wanted = batch.wanted
+        asked = [b for b in self._order if b.chamber in wanted]
+        out: _Outcome = {}
+
+        async def write(group: Sequence[_Block]) -> _Outcome:
+            return await self._write_group(group, wanted)
+
+        try:
+            async with asyncio.timeout(self._budget_s):
+                setups: _Outcome = {}
+                await self._each([[b] for b in asked if b.needs_setup], self._setup_group, setups)
+                out.update({c: v for c, v in setups.items() if _failed(v)})
+                ready = [b for b in asked if b.chamber not in out]
+                groups = [[b] for b in ready] if self.split else _neighbours(ready)
+                await self._each(groups, write, out)
+                failed = [b for g in groups if len(g) > 1 for b in g if _failed(out[b.chamber])]
+                if failed:
+                    self._split(out[failed[0].chamber])
+                    for b in failed:
+                        del out[b.chamber]
+                    await self._each([[b] for b in failed], write, out)
+        except TimeoutError:
+            pass
+        return self._settle(out, asked)
+
+    async def _setup_group(self, group: Sequence[_Block]) -> _Outcome:
+        for b in group:
+            await self.setup(b.chamber)
+        return {b.chamber: True for b in group}
+
+    async def _write_group(
+        self, group: Sequence[_Block], wanted: Mapping[str, tuple[int, ...]]
+    ) -> _Outcome:
+        """Drives and feed, then relays where needed, of neighbouring blocks."""
+        if len(group) == 1:
+            await self._drive(group[0], wanted[group[0].chamber])
+        else:
+            words: list[int] = []
+            for i, b in enumerate(group):
+                b.count = next_watchdog_count(b.count)
+                words += [*wanted[b.chamber], self._timeout_word, b.count]
+                if i < len(group) - 1:
+                    words += [*b.safe_words, *[0] * _GAP_WORDS]
+            try:
+                await self.link.write_registers(self.unit_id, group[0].base, words)
+            except DeviceRefused as exc:
+                if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
+                    raise
+                for b in group:  # one of them is tripped: each is fed and driven alone
+                    await self._drive(b, wanted[b.chamber])
+        await self._relays(group, wanted)
+        return {b.chamber: True for b in group}
+
+    async def _drive(self, b: _Block, drive_words: tuple[int, ...]) -> None:
+        """Holding registers 0..5 of one block; a busy module is fed alone, then driven."""
+        b.count = next_watchdog_count(b.count)
+        words = [*drive_words, self._timeout_word, b.count]
+        try:
+            await self.link.write_registers(self.unit_id, b.base, words)
+        except DeviceRefused as exc:
+            if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
+                raise
+            _log.warning("%s: watchdog tripped; feeding, then driving again", b.chamber)
+            b.relays = None
+            b.count = next_watchdog_count(b.count)
+            await self.link.write_registers(self.unit_id, b.base + _COUNTER_OFFSET, [b.count])
+            b.count = next_watchdog_count(b.count)
+            words[-1] = b.count
+            await self.link.write_registers(self.unit_id, b.base, words)
+
+    async def _relays(self, group: Sequence[_Block], wanted: Mapping[str, tuple[int, ...]]) -> None:
+        """Relay coils 0..3 (closed where the drive is above 0) of the group, in one request,
+        when one of them changes, is in doubt, or is due for its refresh."""
+        bits = {}
+        for b in group:
+            heater, chiller, lamp, pump = wanted[b.chamber][:4]
+            relays = RelayBits(heater_on=heater > 0, chiller_on=chiller > 0, lamp_on=lamp > 0,
+                               pump_on=pump > 0)  # fmt: skip
+            bits[b.chamber] = encode_relays(relays)
+            b.relay_age += 1
+        if all(b.relays == bits[b.chamber] and b.relay_age < RELAY_REFRESH for b in group):
+            return
+        coils: list[bool] = []
+        for i, b in enumerate(group):
+            b.relays = None
+            coils += bits[b.chamber]
+            if i < len(group) - 1:
+                coils += [False] * (BLOCK_SPAN - len(bits[b.chamber]))
+        await self.link.write_coils(self.unit_id, group[0].base, coils)
+        for b in group:
+            b.relays, b.relay_age = bits[b.chamber], 0
