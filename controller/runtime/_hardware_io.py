@@ -6,14 +6,15 @@ Rules of this module
   (:class:`~controller.rig.RigIo`) through the async transports and the pure codecs of
   :mod:`controller.drivers`; the loop cannot tell it from the simulated rack.
 - Modbus: the blocks of every link are grouped into runs of neighbours
-  (:class:`~controller.drivers._transport_runs.BlockRun`), and the reads (and writes) the loop makes for
-  all chambers at once are joined into one request per run: input registers 0..6 (readings,
-  fault bits, contacts) in one read; holding registers 0..5 (drives, watchdog timeout, a new
-  watchdog count: drives and feed arrive together) in one write; relay coils only when they
-  change, when they are in doubt (after a set-up, a failed exchange or a watchdog trip) and
-  at least every tenth write. A run that fails jointly is exchanged with block by block until
-  every block answers again. Links are exchanged with concurrently. The rig's calibration
-  corrections (``[io.corrections]``) are applied to temperature, PAR and flow.
+  (:class:`~controller.drivers._transport_runs.BlockRun`), and the reads (and writes) the
+  loop makes for all chambers at once are joined into one request per run: input registers
+  0..6 (readings, fault bits, contacts) in one read; holding registers 0..5 (drives,
+  watchdog timeout, a new watchdog count: drives and feed arrive together) in one write;
+  relay coils only when they change, when they are in doubt (after a set-up, a failed
+  exchange or a watchdog trip) and at least every tenth write. A run that fails jointly is
+  exchanged with block by block until every block answers again. Links are exchanged with
+  concurrently. The rig's calibration corrections (``[io.corrections]``) are applied to
+  temperature, PAR and flow.
 - The optode is **not** asked during a read: every optode has its own poller in
   :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and a read
   reports the latest measurement. So a slow or silent optode never stalls a tick.
@@ -65,9 +66,9 @@ from controller.drivers import (
     encode_safe_outputs,
     point,
 )
-from controller.drivers._transport_runs import BlockRun
 from controller.drivers._transport_common import RetryPolicy, TransportError
 from controller.drivers._transport_modbus import ModbusTransport
+from controller.drivers._transport_runs import BlockRun
 from controller.drivers._transport_serial import SerialLineTransport
 from controller.errors import SquallError
 from controller.rig import Rig
