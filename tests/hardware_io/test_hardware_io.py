@@ -384,3 +384,75 @@ def test_from_rig_uses_the_rig_files_io_table(tmp_path: Path) -> None:
     with pytest.raises(SquallError, match=r"no \[io\] table") as caught:
         HardwareIO.from_rig(rig(IDS), VirtualClock(START), base_dir=tmp_path)
     assert caught.value.field == "io"
+
+
+# --------------------------------------------------------------------------- joined exchanges
+
+
+def test_the_loops_concurrent_reads_and_writes_of_a_run_take_one_request_each() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            (link,) = b.io.links.values()
+            before = link.requests
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            assert link.requests - before == 1  # c1 and c2 are neighbours: one read
+            assert all(r.comm_ok and r.temperature_c is not None for r in reads)
+            before = link.requests
+            assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
+            assert link.requests - before == 2  # drives and feed, then the relays
+            assert b.actual("c1") == DRIVE and b.actual("c2") == DRIVE
+            counters = [b.module(cid).holding_words()[5] for cid in IDS]
+            before = link.requests
+            assert all(await asyncio.gather(b.io.write("c1", OFF), b.io.write("c2", DRIVE)))
+            assert link.requests - before == 2  # c1's relays open: one coil write for both
+            assert b.actual("c1") == OFF and b.actual("c2") == DRIVE
+            assert [b.module(cid).holding_words()[5] for cid in IDS] != counters  # both fed
+            # the safe drives carried between the blocks are the ones set up
+            assert (
+                decode_safe_outputs(b.module("c1").holding_words()[6:10]).pump_pct == SAFE.pump_pct
+            )
+            before = link.requests
+            assert await b.io.write("c2", DRIVE)  # alone: a request of its own
+            assert link.requests - before == 1
+
+    virtual(body)
+
+
+def test_a_tripped_neighbour_makes_the_joined_write_busy_yet_both_are_driven() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock) as b:
+            assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
+            module = b.module("c1")
+            assert module.write_holding(4, [5]) is None  # 0.5 s watchdog, then left unfed
+            b.rack.advance(1.0)
+            module.refresh()
+            assert module.tripped and b.actual("c1") == SAFE
+            assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
+            assert not module.tripped
+            assert b.actual("c1") == DRIVE and b.actual("c2") == DRIVE
+            assert module.trips == 1
+
+    virtual(body)
+
+
+def test_a_silent_module_splits_its_run_until_it_answers_again() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock, budget_s=1.5) as b:
+            (link,) = b.io.links.values()
+            fault = Fault(kind=FaultKind.COMM_TIMEOUT, chamber="c1", sensor="modbus")
+            b.rack.inject(fault.model_copy(update={"at_s": b.rack.t_s}))
+            for _ in range(2):  # the first read finds out, the second goes block by block
+                silent, other = await asyncio.gather(b.io.read("c1"), b.io.read("c2"))
+                assert not silent.comm_ok and other.comm_ok
+            written = await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS))
+            assert written == [False, True]  # the neighbour is still fed
+            b.rack.clear_faults(FaultKind.COMM_TIMEOUT)
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            assert all(r.comm_ok for r in reads)  # every block answered: joined again
+            before = link.requests
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            assert all(r.comm_ok for r in reads) and link.requests - before == 1
+            assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
+            assert b.actual("c1") == DRIVE  # set up again after the silence, then driven
+
+    virtual(body)
