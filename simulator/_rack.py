@@ -23,6 +23,7 @@ heater or chiller; so does a power loss of the driving chamber.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from datetime import datetime, timedelta
 
 import numpy as np
@@ -36,6 +37,7 @@ from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
 from simulator._physics import ageing_factor
+from simulator._readout import Sweep, sweep
 from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
 from simulator._step import Drive, Stepper, WaterState
@@ -261,6 +263,16 @@ class Rack:
         i = self._chamber(chamber_id)
         frozen = self._reachable(i, "flow")
         return float(frozen) if isinstance(frozen, float) else self._measure_flow(i)
+
+    def sweep(self, chamber_ids: Sequence[str], optode: Sequence[bool]) -> Sweep:
+        """Read several chambers at once, as the one-by-one reads in that order would.
+
+        Per chamber: temperature, PAR, flow and level, then the optode where ``optode`` says
+        (same values, same noise draws; see :mod:`simulator._readout`); a silent sensor
+        gives None, any other error is returned in :attr:`Sweep.errors`.
+        """
+        self._sync()
+        return sweep(self, chamber_ids, optode)
 
     def read_level_ok(self, chamber_id: str) -> bool:
         """Level switch: False once a leak has lost more than the rig's alarm share."""
