@@ -36,8 +36,8 @@ from __future__ import annotations
 import asyncio
 import logging
 import math
-from collections.abc import Callable, Coroutine, Mapping
-from typing import Any
+from collections.abc import Callable, Coroutine, Mapping, Sequence
+from typing import Any, Protocol, TypeVar, runtime_checkable
 
 from controller.clock import Clock
 from controller.control import Outputs, WindowEnd
@@ -61,9 +61,26 @@ from controller.storage import (
     SampleRow,
 )
 
-__all__ = ["ControlLoop", "RunSummary", "TickStats", "TickStatus"]
+__all__ = ["ControlLoop", "ImmediateIO", "RunSummary", "TickStats", "TickStatus"]
 
 _log = logging.getLogger(__name__)
+_T = TypeVar("_T")
+
+
+@runtime_checkable
+class ImmediateIO(Protocol):
+    """Chamber I/O that can serve a whole tick's reads or writes at once (in-process
+    simulation): same results as its per-chamber calls in that order, no task per chamber.
+    Either method returns None, having done nothing, when some device would make the caller
+    wait; the loop then goes chamber by chamber."""
+
+    def read_now(self, chambers: Sequence[str]) -> Mapping[str, ChamberReadings | Exception] | None:
+        """Readings (or the read's exception) per chamber, or None."""
+        ...
+
+    def write_now(self, outputs: Mapping[str, Outputs]) -> Mapping[str, bool | Exception] | None:
+        """Whether each command was taken (or the write's exception), or None."""
+        ...
 
 
 async def _shielded(coro: Coroutine[Any, Any, None]) -> None:
@@ -159,6 +176,7 @@ class ControlLoop(OperatorHooks):
         self._windows = 0
         self._sleeping = False
         self._control_task: asyncio.Task[None] | None = None
+        self._now_io: ImmediateIO | None = io if isinstance(io, ImmediateIO) else None
         self.done = asyncio.Event()
         """Set once the run has ended: outputs safe, log finished (or closed)."""
 
@@ -372,23 +390,32 @@ class ControlLoop(OperatorHooks):
 
     async def _read_all(self, now: float) -> dict[str, ChamberReadings]:
         """Read every chamber concurrently; whatever has not answered by the read timeout,
-        or failed, is stale. One deadline bounds every read of the tick."""
+        or failed, is stale. One deadline bounds every read of the tick. I/O that can answer
+        every read at once (:class:`ImmediateIO`) is asked so first."""
         io = self.io
         found: dict[str, ChamberReadings] = {}
+        got = await self._at_once(lambda now_io: now_io.read_now(self._chambers))
+        if got is not None:
+            for chamber, value in got.items():
+                if isinstance(value, ChamberReadings):
+                    found[chamber] = value
+                else:
+                    self._failure(chamber, "read", value)
+        else:
 
-        async def one(chamber: str) -> None:
+            async def one(chamber: str) -> None:
+                try:
+                    found[chamber] = await io.read(chamber)
+                except Exception as error:  # a driver bug or transport error: stale, never fatal
+                    self._failure(chamber, "read", error)
+
             try:
-                found[chamber] = await io.read(chamber)
-            except Exception as error:  # a driver bug or transport error: stale, never fatal
-                self._failure(chamber, "read", error)
-
-        try:
-            async with asyncio.timeout(self.plan.settings.read_timeout_s):
-                async with asyncio.TaskGroup() as group:
-                    for chamber in self._chambers:
-                        group.create_task(one(chamber))
-        except TimeoutError:
-            pass
+                async with asyncio.timeout(self.plan.settings.read_timeout_s):
+                    async with asyncio.TaskGroup() as group:
+                        for chamber in self._chambers:
+                            group.create_task(one(chamber))
+            except TimeoutError:
+                pass
         for chamber in self._chambers:
             if chamber not in found:
                 self._failure(chamber, "read", None)
@@ -399,27 +426,57 @@ class ControlLoop(OperatorHooks):
 
     async def _write_all(self, outputs: Mapping[str, Outputs]) -> dict[str, bool]:
         """Write every chamber concurrently under one deadline; a timeout or error is a
-        failed write."""
+        failed write. I/O that can take every write at once (:class:`ImmediateIO`) is
+        given them so first."""
         io = self.io
         done: dict[str, bool] = {}
+        got = await self._at_once(lambda now_io: now_io.write_now(outputs))
+        if got is not None:
+            for chamber, value in got.items():
+                if isinstance(value, bool):
+                    done[chamber] = value
+                else:
+                    self._failure(chamber, "write", value)
+        else:
 
-        async def one(chamber: str, value: Outputs) -> None:
+            async def one(chamber: str, value: Outputs) -> None:
+                try:
+                    done[chamber] = bool(await io.write(chamber, value))
+                except Exception as error:
+                    self._failure(chamber, "write", error)
+
             try:
-                done[chamber] = bool(await io.write(chamber, value))
-            except Exception as error:
-                self._failure(chamber, "write", error)
-
-        try:
-            async with asyncio.timeout(self.plan.settings.write_timeout_s):
-                async with asyncio.TaskGroup() as group:
-                    for chamber, value in outputs.items():
-                        group.create_task(one(chamber, value))
-        except TimeoutError:
-            pass
+                async with asyncio.timeout(self.plan.settings.write_timeout_s):
+                    async with asyncio.TaskGroup() as group:
+                        for chamber, value in outputs.items():
+                            group.create_task(one(chamber, value))
+            except TimeoutError:
+                pass
         for chamber in outputs:
             ok = done.setdefault(chamber, False)
             self._failure(chamber, "write", None if not ok else False)
         return done
+
+    async def _at_once(
+        self, ask: Callable[[ImmediateIO], Mapping[str, _T] | None]
+    ) -> dict[str, _T] | None:
+        """What the I/O answers for every chamber at once, or None to go chamber by chamber
+        (it cannot, it is not :class:`ImmediateIO`, or it failed: then nothing was done).
+
+        It lets the event loop turn once first, as starting a task per chamber did, so that
+        what else falls due at this very instant (an operator's E-stop, a fault a test
+        injects) still happens before the reads or writes."""
+        now_io = self._now_io
+        if now_io is None:
+            return None
+        await asyncio.sleep(0)
+        try:
+            got = ask(now_io)
+        except Exception:  # a bug in the fast path: the chamber-by-chamber path still works
+            _log.exception("reading or writing every chamber at once failed")
+            self._now_io = None
+            return None
+        return None if got is None else dict(got)
 
     def _failure(self, chamber: str, what: str, error: BaseException | bool | None) -> None:
         """Log the first failure of a streak (and its end) once, not every tick.

@@ -13,6 +13,12 @@ Rules of this module
 - The optode is polled every ``optode_period_s`` (optodes measure every few tens of
   seconds); between polls its latest measurement is reported. The E-stop contact belongs to
   the I/O module, so it lives here (:meth:`SimulatedIO.press_e_stop`), not in the rack.
+- :meth:`SimulatedIO.read_now` and :meth:`SimulatedIO.write_now` serve a whole tick's reads
+  or writes at once when every device addressed answers (nothing to wait for): the same
+  readings, noise draws and commands as :meth:`~SimulatedIO.read` and
+  :meth:`~SimulatedIO.write` chamber by chamber in that order, without a task per chamber.
+  When a device is silent they do nothing and say so (None), and the caller goes chamber by
+  chamber, each silent device costing its reply timeout.
 - Each chamber's I/O module has a device-side watchdog: when no command has reached it for
   ``watchdog_s``, it drives its safe outputs by itself (exactly at that moment of simulated
   time) until the next command arrives. So a controller that dies or loses the bus leaves the
@@ -23,7 +29,7 @@ from __future__ import annotations
 
 import asyncio
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from types import TracebackType
 from typing import Self
 
@@ -282,6 +288,68 @@ class SimulatedIO:
             **values,  # type: ignore[arg-type]
         )
 
+    def read_now(self, chambers: Sequence[str]) -> dict[str, ChamberReadings | Exception] | None:
+        """Read several chambers at once, when every device to be asked answers now.
+
+        Parameters
+        ----------
+        chambers
+            Chamber identifiers, in the order :meth:`read` would be called on them.
+
+        Returns
+        -------
+        dict or None
+            Per chamber what :meth:`read` would return (°C, µmol L⁻¹, % air saturation,
+            µmol photons m⁻² s⁻¹, cm s⁻¹, contacts), or the exception it would raise; None,
+            having read nothing, when a device is silent, a chamber is unknown or a subclass
+            reads its own way (then read chamber by chamber).
+        """
+        if type(self).read is not SimulatedIO.read:
+            return None
+        self.sync()
+        now = self._clock.now_s()
+        safe = self._safe
+        polls = [c in safe and self._optode_due(c, now) for c in chambers]
+        for chamber, poll in zip(chambers, polls, strict=True):
+            if chamber not in safe or not self._answers(chamber, _MODBUS):
+                return None
+            if poll and not self._answers(chamber, _OPTODE):
+                return None
+        sweep = self._rack.sweep(chambers, polls)
+        found: dict[str, ChamberReadings | Exception] = {}
+        for k, chamber in enumerate(chambers):
+            error = sweep.errors[k]
+            if error is not None:
+                found[chamber] = error
+                continue
+            if polls[k]:
+                self._optode[chamber] = (now, sweep.o2_umol_l[k], sweep.o2_sat_pct[k])
+            _, o2_umol_l, o2_sat_pct = self._optode[chamber]
+            temperature, par, flow = sweep.temperature_c[k], sweep.par[k], sweep.flow_cm_s[k]
+            failed: set[Quantity] = set()
+            if temperature is None:
+                failed.add(Quantity.TEMPERATURE)
+            if par is None:
+                failed.add(Quantity.PAR)
+            if flow is None:
+                failed.add(Quantity.FLOW)
+            if o2_umol_l is None:
+                failed.add(Quantity.OXYGEN)
+            found[chamber] = ChamberReadings(
+                chamber=chamber,
+                t_s=now,
+                temperature_c=temperature,
+                par=par,
+                flow_cm_s=flow,
+                level_ok=sweep.level_ok[k],
+                e_stop=chamber in self._e_stop,
+                o2_umol_l=o2_umol_l,
+                o2_sat_pct=o2_sat_pct,
+                comm_ok=True,
+                failed=frozenset(failed),
+            )
+        return found
+
     def _optode_due(self, chamber: str, now: float) -> bool:
         last = self._optode.get(chamber)
         return last is None or now - last[0] >= self._optode_period_s - 1e-9
@@ -292,6 +360,47 @@ class SimulatedIO:
             return float(reader(chamber))  # type: ignore[operator]
         except SensorNoReply:
             return None
+
+    def write_now(self, outputs: Mapping[str, Outputs]) -> dict[str, bool | Exception] | None:
+        """Command several chambers at once, when every module addressed answers now.
+
+        Parameters
+        ----------
+        outputs
+            Heater, chiller, lamp and pump drives (% each) by chamber, in the order
+            :meth:`write` would be called.
+
+        Returns
+        -------
+        dict or None
+            Per chamber True (taken) or the exception :meth:`write` would raise; None,
+            having sent nothing, when a module is silent, a chamber is unknown or a subclass
+            writes its own way (then write chamber by chamber).
+        """
+        if type(self).write is not SimulatedIO.write:
+            return None
+        self.sync()
+        for chamber in outputs:
+            if chamber not in self._safe or not self._answers(chamber, _MODBUS):
+                return None
+        rack = self._rack
+        done: dict[str, bool | Exception] = {}
+        for chamber, value in outputs.items():
+            try:
+                rack.set_outputs(
+                    chamber,
+                    heater_pct=value.heater_pct,
+                    chiller_pct=value.chiller_pct,
+                    lamp_pct=value.lamp_pct,
+                    pump_pct=value.pump_pct,
+                )
+            except Exception as error:
+                done[chamber] = error
+                continue
+            self.last_written[chamber] = value
+            self._fed_at[chamber] = rack.t_s
+            done[chamber] = True
+        return done
 
     async def write(self, chamber: str, outputs: Outputs) -> bool:
         """Command one chamber's actuators.
