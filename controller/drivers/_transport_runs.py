@@ -183,6 +183,18 @@ class BlockRun:
         """
         return self._blocks[chamber].needs_setup
 
+    def fail(self, chamber: str) -> None:
+        """Note that an exchange with a module failed (or was given up by its caller): it is
+        set up again before its next write, and its relays are rewritten.
+
+        Parameters
+        ----------
+        chamber
+            Chamber id (no unit).
+        """
+        b = self._blocks[chamber]
+        b.needs_setup, b.relays = True, None
+
     def forget_relays(self, chamber: str) -> None:
         """Mark a module's relays as unknown (its watchdog set them), so they are rewritten.
 
@@ -247,7 +259,7 @@ class BlockRun:
         """
         outcome = await self._joined("read", chamber, ())
         if isinstance(outcome, BaseException):
-            self._blocks[chamber].needs_setup = True
+            self.fail(chamber)
             raise outcome
         return outcome  # type: ignore[return-value]
 
@@ -268,8 +280,7 @@ class BlockRun:
         """
         outcome = await self._joined("write", chamber, tuple(drive_words))
         if isinstance(outcome, BaseException):
-            b = self._blocks[chamber]
-            b.needs_setup, b.relays = True, None
+            self.fail(chamber)
             raise outcome
 
     async def _joined(self, kind: str, chamber: str, words: tuple[int, ...]) -> object:

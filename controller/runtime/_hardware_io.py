@@ -383,6 +383,7 @@ class HardwareIO:
             async with asyncio.timeout(self._budget_s):
                 inputs, contacts = await run.read(chamber)
         except _STOP_FAILURES as exc:
+            run.fail(chamber)
             self._note(chamber, "modbus", False, exc)
         else:
             self._note(chamber, "modbus", True)
@@ -439,6 +440,7 @@ class HardwareIO:
             async with asyncio.timeout(self._budget_s):
                 await run.write(chamber, drive_words)
         except _STOP_FAILURES as exc:
+            run.fail(chamber)
             self._note(chamber, "modbus", False, exc)
             return False
         self._note(chamber, "modbus", True)

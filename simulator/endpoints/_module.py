@@ -79,6 +79,8 @@ class IoModule:
         self.chamber_id = chamber_id
         self.word_order = word_order
         self._nominal_volume_l = rack.rig.chamber(chamber_id).water_volume_l
+        self._level: tuple[float, float] | None = None
+        """(rack time, level) of the last level computed, (s, %)."""
         self._hr = [0] * BLOCK_SPAN
         self._coils = [False] * BLOCK_SPAN
         self._tripped = False
@@ -184,6 +186,15 @@ class IoModule:
             return p.minimum if p.minimum == 0.0 else None
         return value
 
+    def _level_pct(self) -> float:
+        """The level transmitter: water volume over the nominal volume, %; the rack's whole
+        truth is costly, so it is looked up once per rack time, not once per request."""
+        now = self.rack.t_s
+        if self._level is None or self._level[0] != now:
+            volume_l = self.rack.truth(self.chamber_id).water_volume_l
+            self._level = (now, 100.0 * volume_l / self._nominal_volume_l)
+        return self._level[1]
+
     def input_words(self) -> tuple[int, ...]:
         """Input registers 0..6: sample every input and the contacts now, and encode them.
 
@@ -192,7 +203,7 @@ class IoModule:
         tuple of int
             Seven register words (no unit).
         """
-        level = 100.0 * self.rack.truth(self.chamber_id).water_volume_l / self._nominal_volume_l
+        level = self._level_pct()
         level_point = point("level_pct")
         values = InputValues(
             temperature_c=self._read("read_temperature", "temperature_c"),
