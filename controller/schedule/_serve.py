@@ -341,6 +341,8 @@ class _Server:
                 f"completed: {format_duration(summary.run_s)}, {summary.rows_written} rows{alarms}"
             )
             self._finish(exp, _S.DONE, text)
+        elif summary.end_reason is RunEndReason.ABORTED:
+            self._finish(exp, _S.ABORTED, f"{summary.detail or 'aborted'}{alarms}")
         else:
             detail = f" ({summary.detail})" if summary.detail else ""
             self._finish(exp, _S.ABORTED, f"{summary.end_reason.value}{detail}{alarms}")

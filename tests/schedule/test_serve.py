@@ -4,6 +4,9 @@ experiments a stopped serve left behind, and bad input."""
 
 from __future__ import annotations
 
+import asyncio
+import os
+import pwd
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -238,3 +241,69 @@ def test_unknown_rig_and_missing_schedule_are_refused(
         capsys.readouterr().err
     )
     assert not missing.exists()
+
+
+async def _command(socket_path: Path, cmd: str) -> tuple[bool, object]:
+    """Send one operator command over a run's control socket, as 'squall ctl' does."""
+    from controller.runtime._ctl_wire import connect_path, decode_reply, encode_request
+
+    with connect_path(socket_path) as path:
+        reader, writer = await asyncio.open_unix_connection(path)
+        writer.write(encode_request(cmd, user="ana"))
+        await writer.drain()
+        reply = decode_reply(await reader.readline())
+        writer.close()
+        await writer.wait_closed()
+    return reply.ok, reply.result if reply.ok else reply.error
+
+
+def test_operator_hold_resume_and_abort_show_in_the_store(tmp_path: Path) -> None:
+    from controller.runtime._ctl_wire import control_path
+
+    rig = _rig(tmp_path)
+    schedule = tmp_path / "runs" / "schedule.sqlite"
+    exp = _add(schedule, rig, _protocol(tmp_path, "bath", ["C1", "C2"]), START + timedelta(hours=1))
+    log = schedule.parent / f"{exp}-bath.sqlite"
+    replies: list[tuple[str, bool]] = []
+    operator: list[asyncio.Task[None]] = []
+
+    async def ana() -> None:  # an operator at the control socket, on the simulated clock
+        try:
+            for wait_s, cmd in ((3600.0, "hold"), (7200.0, "resume"), (3600.0, "abort")):
+                await asyncio.sleep(wait_s)
+                ok, _ = await _command(control_path(log), cmd)
+                replies.append((cmd, ok))
+        except BaseException:
+            asyncio.get_running_loop().stop()  # fail the test at once instead of holding
+            raise
+
+    def notify(line: str) -> None:
+        if f"{exp} running" in line:
+            operator.append(asyncio.get_running_loop().create_task(ana()))
+
+    result = serve(
+        ServeConfig(
+            rig_path=rig,
+            schedule_path=schedule,
+            sim=True,
+            start_utc=START,
+            settings=RunSettings(period_s=300.0),
+        ),
+        notify=notify,
+    )
+    assert operator and operator[0].done()
+    assert replies == [("hold", True), ("resume", True), ("abort", True)]
+    assert result.outcomes == ((exp, S.ABORTED),)
+    with ScheduleStore(schedule) as store:
+        history = store.history(exp)
+    assert [h.to_state for h in history] == [
+        S.PLANNED, S.PREFLIGHT, S.RUNNING, S.HELD, S.RUNNING, S.ABORTED,
+    ]  # fmt: skip
+    started = START + timedelta(hours=1)
+    # seen at the first tick after each command (ticks every 300 s)
+    assert history[3].time_utc == started + timedelta(hours=1, minutes=5)
+    assert history[3].reason == "held by an operator (squall ctl)"
+    assert history[4].time_utc == started + timedelta(hours=3, minutes=5)
+    assert history[5].time_utc == started + timedelta(hours=4)
+    # the control socket names the peer's own user, whatever name the client claims
+    assert history[5].reason == f"aborted by {pwd.getpwuid(os.getuid()).pw_name}"
