@@ -26,6 +26,7 @@ if TYPE_CHECKING:
         power_conflicts,
         protocol_conflicts,
     )
+    from controller.schedule._database import DEFAULT_SCHEDULE, SCHEMA_VERSION
     from controller.schedule._loads import (
         LampLoad,
         NodeLoad,
@@ -46,28 +47,28 @@ if TYPE_CHECKING:
         HistoryEntry,
         ResourcePeak,
         ScheduleConflict,
-        chamber_span,
-        format_span,
-        format_when,
-    )
-    from controller.schedule._store import (
-        DEFAULT_SCHEDULE,
-        SCHEMA_VERSION,
-        ScheduleStore,
         booking_of,
+        chamber_span,
         check_start,
         check_text_field,
+        format_span,
+        format_when,
+        normalize_id,
+    )
+    from controller.schedule._store import ScheduleStore
+    from controller.schedule._suggest import (
+        Suggestion,
         compile_experiment,
         loaded_from_text,
+        suggest_start,
     )
-    from controller.schedule._suggest import Suggestion, suggest_start
 
 _NAMES: dict[str, str] = {
     # sched-core: models, store, conflicts, loads, suggest
     "Booking": "_models",
     "Conflict": "_models",
     "ConflictKind": "_models",
-    "DEFAULT_SCHEDULE": "_store",
+    "DEFAULT_SCHEDULE": "_database",
     "Experiment": "_models",
     "ExperimentState": "_models",
     "HistoryEntry": "_models",
@@ -75,24 +76,25 @@ _NAMES: dict[str, str] = {
     "LampLoad": "_loads",
     "NodeLoad": "_loads",
     "ResourcePeak": "_models",
-    "SCHEMA_VERSION": "_store",
+    "SCHEMA_VERSION": "_database",
     "ScheduleConflict": "_models",
     "ScheduleStore": "_store",
     "Suggestion": "_suggest",
     "TRANSITIONS": "_models",
     "bath_conflicts": "_conflicts",
     "booking_conflicts": "_conflicts",
-    "booking_of": "_store",
+    "booking_of": "_models",
     "chamber_span": "_models",
-    "check_start": "_store",
-    "check_text_field": "_store",
-    "compile_experiment": "_store",
+    "check_start": "_models",
+    "check_text_field": "_models",
+    "compile_experiment": "_suggest",
     "find_conflicts": "_conflicts",
     "format_span": "_models",
     "format_when": "_models",
     "lamp_loads": "_loads",
     "load_grid": "_loads",
-    "loaded_from_text": "_store",
+    "loaded_from_text": "_suggest",
+    "normalize_id": "_models",
     "node_demand_w": "_loads",
     "node_loads": "_loads",
     "power_conflicts": "_conflicts",
@@ -136,6 +138,7 @@ __all__ = [
     "loaded_from_text",
     "node_demand_w",
     "node_loads",
+    "normalize_id",
     "power_conflicts",
     "protocol_conflicts",
     "suggest_start",

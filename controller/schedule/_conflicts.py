@@ -456,6 +456,8 @@ def power_conflicts(
         Conflicts (nodes, then plants, then lamps), and the peak load on each plant and on
         the lamp circuit.
     """
+    from controller.rig import PlantKind
+
     zone = rig.maintenance.timezone
     bookings = [candidate, *(o for o in others if o.overlaps(candidate))]
     several = len(bookings) > 1
@@ -485,7 +487,7 @@ def power_conflicts(
     for plant in rig.plants:
         served = [i for i, load in enumerate(thermal) if load.node in plant.serves]
         sub = evaluated.subset(served)
-        shares = _heating if plant.kind.value == "heater" else _cooling
+        shares = _heating if plant.kind is PlantKind.HEATER else _cooling
         conflict, peak = _resource(
             f"{plant.kind.value} {plant.id!r}", plant.capacity_w,
             [_load_label(thermal[i], several) for i in served], shares, sub, zone,

@@ -35,9 +35,10 @@ Rules
   term where flow and temperature change together: a product of two lines, a parabola. Such
   intervals are split until each node's chord is within ``tol_w`` of the parabola (a
   parabola's largest distance from its chord is at the middle, and n equal pieces divide it
-  by n²). What a plant must give, Σ max(±P, 0) over its nodes, is then convex on each piece,
-  so its largest value on a piece lies at one of the piece's ends; both one-sided values are
-  taken at every instant of the grid, so steps are seen from both sides.
+  by n²). On each piece every node's demand is then a line (to within ``tol_w``), and what a
+  plant must give, Σ max(±P, 0) over its nodes, a convex function of time, so its largest
+  value on the piece lies at one of the piece's ends. Both one-sided values are taken at
+  every instant of the grid, so steps are seen from both sides.
 """
 
 from __future__ import annotations

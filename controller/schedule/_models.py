@@ -30,6 +30,8 @@ if TYPE_CHECKING:
     from controller.protocol import CompiledProtocol
 
 __all__ = [
+    "EARLIEST_START",
+    "LATEST_START",
     "LIVE_STATES",
     "TRANSITIONS",
     "Booking",
@@ -40,9 +42,13 @@ __all__ = [
     "HistoryEntry",
     "ResourcePeak",
     "ScheduleConflict",
+    "booking_of",
     "chamber_span",
+    "check_start",
+    "check_text_field",
     "format_span",
     "format_when",
+    "normalize_id",
 ]
 
 
@@ -389,3 +395,111 @@ def chamber_span(ids: Sequence[str]) -> str:
         if len(prefixes) == 1 and numbers == list(range(numbers[0], numbers[0] + len(ids))):
             return f"{ids[0]}–{ids[-1]}"
     return ", ".join(ids)
+
+
+EARLIEST_START = datetime(2000, 1, 1, tzinfo=UTC)
+"""Earliest start the schedule accepts (catches slips in the year)."""
+LATEST_START = datetime(2200, 1, 1, tzinfo=UTC)
+"""Starts must lie before this instant."""
+
+
+def check_text_field(value: str, field: str, *, max_len: int, allow_empty: bool = False) -> str:
+    """A one-line free-text field (owner, note, reason), trimmed; refuse control characters.
+
+    Parameters
+    ----------
+    value
+        As given.
+    field
+        Its name for messages (``--owner``).
+    max_len
+        Longest accepted length, characters.
+    allow_empty
+        Whether an empty value is fine.
+
+    Returns
+    -------
+    str
+        The trimmed value.
+    """
+    text = value.strip()
+    if not text and not allow_empty:
+        raise SquallError("must not be empty", field=field)
+    if len(text) > max_len:
+        raise SquallError(f"is {len(text)} characters long; at most {max_len}", field=field)
+    bad = next((c for c in text if not c.isprintable()), None)
+    if bad is not None:
+        raise SquallError(
+            f"contains the control or unprintable character {bad!r}; write one plain line",
+            field=field,
+        )
+    return text
+
+
+def check_start(start_utc: datetime, field: str) -> datetime:
+    """A start the store accepts: aware, within the accepted years; returned in UTC.
+
+    Parameters
+    ----------
+    start_utc
+        The start (any zone).
+    field
+        Its name for messages (``--start``).
+
+    Returns
+    -------
+    datetime
+        The same instant in UTC.
+    """
+    if start_utc.tzinfo is None or start_utc.utcoffset() is None:
+        raise SquallError("a start time needs a zone (e.g. +02:00 or Z)", field=field)
+    start = start_utc.astimezone(UTC)
+    if not EARLIEST_START <= start < LATEST_START:
+        raise SquallError(
+            f"{start.isoformat()} is outside the years the schedule accepts "
+            f"({EARLIEST_START.year}–{LATEST_START.year - 1})",
+            field=field,
+        )
+    return start
+
+
+def normalize_id(text: str) -> str:
+    """``E0007`` from ``E0007``, ``e7`` or ``7``; other text is returned trimmed, as typed.
+
+    Parameters
+    ----------
+    text
+        An experiment id as typed (no unit).
+
+    Returns
+    -------
+    str
+        The id as stored, when the text can be one.
+    """
+    match = re.fullmatch(r"[Ee]?0*(\d{1,12})", text.strip())
+    return f"E{int(match.group(1)):04d}" if match else text.strip()
+
+
+def booking_of(experiment: Experiment, compiled: CompiledProtocol | None = None) -> Booking:
+    """The conflict checks' view of a stored experiment.
+
+    Parameters
+    ----------
+    experiment
+        A stored experiment.
+    compiled
+        Its compiled protocol when resource checks need it.
+
+    Returns
+    -------
+    Booking
+        Labelled ``E0002 'title' (owner)``.
+    """
+    return Booking(
+        label=f"{experiment.id} {experiment.title!r} ({experiment.owner})",
+        experiment_id=experiment.id,
+        chambers=experiment.chambers,
+        start_utc=experiment.start_utc,
+        end_utc=experiment.end_utc,
+        compiled=compiled,
+    )

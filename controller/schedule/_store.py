@@ -2,9 +2,8 @@
 
 Rules of this module
 --------------------
-- The file is created readable and writable by its owner only (0600; SQLite gives its -wal
-  and -shm files the same mode). Its schema carries a version (``PRAGMA user_version``) and
-  an application id, so another SQLite file is refused instead of being written into.
+- The file, its tables and transactions are :mod:`controller.schedule._database`'s: 0600,
+  WAL, a schema version, ``BEGIN IMMEDIATE`` transactions rolled back on any exception.
 - Every change is one ``BEGIN IMMEDIATE`` transaction: read what is live, validate, check
   conflicts, write the row and its history entry, commit. A refusal raises
   :class:`ScheduleConflict` (a :class:`SquallError`, exit 2) after a rollback, so the store's
@@ -15,26 +14,29 @@ Rules of this module
   to commit, then sees its rows before checking its own conflicts.
 - Ids are ``E`` plus at least four digits from an AUTOINCREMENT key, so an id is never
   reused, not even after a refusal (a rolled-back insert uses no number).
-- Times are stored as ISO 8601 UTC text of fixed width (sorts as it reads); the store reads
-  the clock only to stamp history entries (``now`` may be given, e.g. a simulated clock).
+- The store reads the clock only to stamp history entries (``now`` may be given, e.g. a
+  simulated clock).
 """
 
 from __future__ import annotations
 
-import contextlib
 import getpass
 import hashlib
 import json
-import os
-import re
-import sqlite3
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterable
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from types import TracebackType
 from typing import TYPE_CHECKING, Any
 
-from controller.errors import RuntimeFailure, SquallError
+from controller.errors import SquallError
+from controller.schedule._database import (
+    COLUMNS,
+    open_database,
+    stamp,
+    transaction,
+    unstamp,
+)
 from controller.schedule._models import (
     LIVE_STATES,
     TRANSITIONS,
@@ -45,230 +47,19 @@ from controller.schedule._models import (
     ExperimentState,
     HistoryEntry,
     ScheduleConflict,
+    booking_of,
+    check_start,
+    check_text_field,
     format_when,
+    normalize_id,
 )
+from controller.schedule._suggest import loaded_from_text
 
 if TYPE_CHECKING:
     from controller.cli.cmd_check import LoadedProtocol
-    from controller.protocol import CompiledProtocol
     from controller.rig import Rig
 
-__all__ = [
-    "DEFAULT_SCHEDULE",
-    "EARLIEST_START",
-    "LATEST_START",
-    "SCHEMA_VERSION",
-    "ScheduleStore",
-    "booking_of",
-    "check_start",
-    "check_text_field",
-    "compile_experiment",
-    "loaded_from_text",
-    "normalize_id",
-]
-
-DEFAULT_SCHEDULE = Path("runs") / "schedule.sqlite"
-"""Store file used when ``--schedule`` is not given (beside the default run logs)."""
-SCHEMA_VERSION = 1
-"""Version of the store's tables (``PRAGMA user_version``)."""
-_APPLICATION_ID = 0x5351_5343  # "SQSC": marks a squall schedule file
-EARLIEST_START = datetime(2000, 1, 1, tzinfo=UTC)
-"""Earliest start the store accepts (catches typing slips in the year)."""
-LATEST_START = datetime(2200, 1, 1, tzinfo=UTC)
-"""Starts must lie before this instant."""
-
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS experiments (
-    seq INTEGER PRIMARY KEY AUTOINCREMENT,
-    id TEXT NOT NULL UNIQUE,
-    rig_path TEXT NOT NULL,
-    rig_name TEXT NOT NULL,
-    protocol_path TEXT NOT NULL,
-    protocol_text TEXT NOT NULL,
-    protocol_sha256 TEXT NOT NULL,
-    title TEXT NOT NULL,
-    chambers TEXT NOT NULL,
-    start_utc TEXT NOT NULL,
-    end_utc TEXT NOT NULL,
-    owner TEXT NOT NULL,
-    state TEXT NOT NULL,
-    log_path TEXT,
-    note TEXT NOT NULL
-);
-CREATE INDEX IF NOT EXISTS experiments_rig_start ON experiments (rig_path, start_utc);
-CREATE TABLE IF NOT EXISTS history (
-    seq INTEGER PRIMARY KEY AUTOINCREMENT,
-    experiment TEXT NOT NULL REFERENCES experiments (id),
-    time_utc TEXT NOT NULL,
-    from_state TEXT,
-    to_state TEXT NOT NULL,
-    by TEXT NOT NULL,
-    reason TEXT NOT NULL
-);
-CREATE INDEX IF NOT EXISTS history_experiment ON history (experiment, seq);
-"""
-
-_COLUMNS = (
-    "id, rig_path, rig_name, protocol_path, protocol_text, protocol_sha256, title, chambers, "
-    "start_utc, end_utc, owner, state, log_path, note"
-)
-
-
-def _stamp(moment: datetime) -> str:
-    """Fixed-width UTC text of an instant (sorts like the instants)."""
-    return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-
-
-def _unstamp(text: str) -> datetime:
-    return datetime.strptime(text, "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
-
-
-def check_text_field(value: str, field: str, *, max_len: int, allow_empty: bool = False) -> str:
-    """A one-line free-text field (owner, note, reason), trimmed; refuse control characters.
-
-    Parameters
-    ----------
-    value
-        As given.
-    field
-        Its name for messages (``--owner``).
-    max_len
-        Longest accepted length, characters.
-    allow_empty
-        Whether an empty value is fine.
-
-    Returns
-    -------
-    str
-        The trimmed value.
-    """
-    text = value.strip()
-    if not text and not allow_empty:
-        raise SquallError("must not be empty", field=field)
-    if len(text) > max_len:
-        raise SquallError(f"is {len(text)} characters long; at most {max_len}", field=field)
-    bad = next((c for c in text if not c.isprintable()), None)
-    if bad is not None:
-        raise SquallError(
-            f"contains the control or unprintable character {bad!r}; write one plain line",
-            field=field,
-        )
-    return text
-
-
-def check_start(start_utc: datetime, field: str) -> datetime:
-    """A start the store accepts: aware, within the accepted years; returned in UTC.
-
-    Parameters
-    ----------
-    start_utc
-        The start (any zone).
-    field
-        Its name for messages (``--start``).
-
-    Returns
-    -------
-    datetime
-        The same instant in UTC.
-    """
-    if start_utc.tzinfo is None or start_utc.utcoffset() is None:
-        raise SquallError("a start time needs a zone (e.g. +02:00 or Z)", field=field)
-    start = start_utc.astimezone(UTC)
-    if not EARLIEST_START <= start < LATEST_START:
-        raise SquallError(
-            f"{start.isoformat()} is outside the years the schedule accepts "
-            f"({EARLIEST_START.year}–{LATEST_START.year - 1})",
-            field=field,
-        )
-    return start
-
-
-def loaded_from_text(path: Path, text: str) -> LoadedProtocol:
-    """Validate a protocol snapshot as if read from ``path`` (problems located there).
-
-    Parameters
-    ----------
-    path
-        The file the snapshot was taken from (CSV files it names are relative to it).
-    text
-        The snapshot.
-
-    Returns
-    -------
-    LoadedProtocol
-        The validated protocol.
-    """
-    from controller.cli.cmd_check import LoadedProtocol
-    from controller.files import parse_toml, validate_data
-    from controller.protocol import Protocol
-
-    data = parse_toml(text, file=path)
-    return LoadedProtocol(path, text, validate_data(data, Protocol, text=text, file=path), data)
-
-
-def compile_experiment(
-    experiment: Experiment, start_utc: datetime | None = None
-) -> CompiledProtocol:
-    """Compile an experiment's protocol snapshot (elapsed 0 = its start, or ``start_utc``).
-
-    Parameters
-    ----------
-    experiment
-        A stored experiment.
-    start_utc
-        Another start to compile for (aware), e.g. for a move; default its own.
-
-    Returns
-    -------
-    CompiledProtocol
-        The compiled setpoint channels.
-    """
-    from controller.cli.cmd_check import compile_loaded
-
-    loaded = loaded_from_text(experiment.protocol_path, experiment.protocol_text)
-    return compile_loaded(loaded, start_utc or experiment.start_utc)
-
-
-def booking_of(experiment: Experiment, compiled: CompiledProtocol | None = None) -> Booking:
-    """The conflict checks' view of a stored experiment.
-
-    Parameters
-    ----------
-    experiment
-        A stored experiment.
-    compiled
-        Its compiled protocol when resource checks need it.
-
-    Returns
-    -------
-    Booking
-        Labelled ``E0002 'title' (owner)``.
-    """
-    return Booking(
-        label=f"{experiment.id} {experiment.title!r} ({experiment.owner})",
-        experiment_id=experiment.id,
-        chambers=experiment.chambers,
-        start_utc=experiment.start_utc,
-        end_utc=experiment.end_utc,
-        compiled=compiled,
-    )
-
-
-def normalize_id(text: str) -> str:
-    """``E0007`` from ``E0007``, ``e7`` or ``7``; other text is returned trimmed, as typed.
-
-    Parameters
-    ----------
-    text
-        An experiment id as typed (no unit).
-
-    Returns
-    -------
-    str
-        The id as stored, when the text can be one.
-    """
-    match = re.fullmatch(r"[Ee]?0*(\d{1,12})", text.strip())
-    return f"E{int(match.group(1)):04d}" if match else text.strip()
+__all__ = ["ScheduleStore"]
 
 
 def _default_by() -> str:
@@ -300,81 +91,7 @@ class ScheduleStore:
     ) -> None:
         self.path = Path(path)
         self._now = now or (lambda: datetime.now(UTC))
-        self._conn = self._open(busy_timeout_s)
-
-    # -- opening -------------------------------------------------------------------------
-
-    def _open(self, busy_timeout_s: float) -> sqlite3.Connection:
-        path = self.path
-        if path.is_dir():
-            raise SquallError("is a folder, not a schedule file", file=path)
-        try:
-            path.parent.mkdir(parents=True, exist_ok=True)
-            if not path.exists():
-                with contextlib.suppress(FileExistsError):
-                    os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600))
-            conn = sqlite3.connect(path, isolation_level=None, timeout=busy_timeout_s)
-        except (OSError, sqlite3.Error) as exc:
-            raise SquallError(f"cannot open the schedule: {exc}", file=path) from exc
-        try:
-            conn.execute(f"PRAGMA busy_timeout = {int(busy_timeout_s * 1000)}")
-            mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
-            if mode != "wal":
-                raise RuntimeFailure(
-                    f"schedule {path}: the file system does not support SQLite's WAL mode "
-                    f"(got journal mode {mode!r}); keep the schedule on a local disk"
-                )
-            # Changes are rare and precious: fsync every commit (SQLite, "PRAGMA synchronous").
-            conn.execute("PRAGMA synchronous = FULL")
-            conn.execute("PRAGMA foreign_keys = ON")
-            with self._transaction(conn):
-                self._ensure_schema(conn)
-        except sqlite3.DatabaseError as exc:
-            conn.close()
-            raise SquallError(f"is not a squall schedule (SQLite says: {exc})", file=path) from None
-        except BaseException:
-            conn.close()
-            raise
-        return conn
-
-    def _ensure_schema(self, conn: sqlite3.Connection) -> None:
-        app = conn.execute("PRAGMA application_id").fetchone()[0]
-        version = conn.execute("PRAGMA user_version").fetchone()[0]
-        tables = conn.execute("SELECT count(*) FROM sqlite_master").fetchone()[0]
-        if app == 0 and version == 0 and tables == 0:
-            for statement in _SCHEMA.split(";"):  # not executescript: it would COMMIT
-                if statement.strip():
-                    conn.execute(statement)
-            conn.execute(f"PRAGMA application_id = {_APPLICATION_ID}")
-            conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
-            return
-        if app != _APPLICATION_ID:
-            raise SquallError(
-                "is an SQLite file but not a squall schedule; name another --schedule file",
-                file=self.path,
-            )
-        if version != SCHEMA_VERSION:
-            raise SquallError(
-                f"schedule format {version} is not the one this squall reads "
-                f"({SCHEMA_VERSION}); use the squall version that wrote it",
-                file=self.path,
-            )
-
-    @staticmethod
-    @contextlib.contextmanager
-    def _transaction(conn: sqlite3.Connection) -> Iterator[None]:
-        try:
-            conn.execute("BEGIN IMMEDIATE")
-        except sqlite3.OperationalError as exc:
-            raise RuntimeFailure(
-                f"the schedule stayed locked by another process ({exc}); try again"
-            ) from exc
-        try:
-            yield
-        except BaseException:
-            conn.execute("ROLLBACK")
-            raise
-        conn.execute("COMMIT")
+        self._conn = open_database(self.path, busy_timeout_s)
 
     def close(self) -> None:
         """Close the store's connection (safe to call twice)."""
@@ -405,8 +122,8 @@ class ScheduleStore:
             protocol_sha256=row[5],
             title=row[6],
             chambers=tuple(json.loads(row[7])),
-            start_utc=_unstamp(row[8]),
-            end_utc=_unstamp(row[9]),
+            start_utc=unstamp(row[8]),
+            end_utc=unstamp(row[9]),
             owner=row[10],
             state=ExperimentState(row[11]),
             log_path=Path(row[12]) if row[12] is not None else None,
@@ -433,7 +150,7 @@ class ScheduleStore:
         """
         key = normalize_id(exp_id)
         row = self._conn.execute(
-            f"SELECT {_COLUMNS} FROM experiments WHERE id = ?", (key,)
+            f"SELECT {COLUMNS} FROM experiments WHERE id = ?", (key,)
         ).fetchone()
         if row is None:
             raise SquallError(
@@ -463,7 +180,7 @@ class ScheduleStore:
         list of Experiment
             Matching experiments.
         """
-        sql = f"SELECT {_COLUMNS} FROM experiments"
+        sql = f"SELECT {COLUMNS} FROM experiments"
         where: list[str] = []
         args: list[str] = []
         if rig_path is not None:
@@ -499,7 +216,7 @@ class ScheduleStore:
         ).fetchall()
         return [
             HistoryEntry(
-                time_utc=_unstamp(r[0]),
+                time_utc=unstamp(r[0]),
                 from_state=ExperimentState(r[1]) if r[1] is not None else None,
                 to_state=ExperimentState(r[2]),
                 by=r[3],
@@ -570,7 +287,7 @@ class ScheduleStore:
             "VALUES (?, ?, ?, ?, ?, ?)",
             (
                 exp_id,
-                _stamp(self._now()),
+                stamp(self._now()),
                 from_state.value if from_state else None,
                 to_state.value,
                 by,
@@ -653,7 +370,7 @@ class ScheduleStore:
         compiled = compile_loaded(loaded, start)
         end = start + timedelta(seconds=compiled.duration_s)
         candidate = Booking("this experiment", None, compiled.chambers, start, end, compiled)
-        with self._transaction(self._conn):
+        with transaction(self._conn):
             self._refuse_conflicts(candidate, rig, rig_path, loaded, None)
             cursor = self._conn.execute(
                 "INSERT INTO experiments (id, rig_path, rig_name, protocol_path, protocol_text, "
@@ -667,8 +384,8 @@ class ScheduleStore:
                     hashlib.sha256(loaded.text.encode("utf-8")).hexdigest(),
                     loaded.protocol.title,
                     json.dumps(list(compiled.chambers)),
-                    _stamp(start),
-                    _stamp(end),
+                    stamp(start),
+                    stamp(end),
                     owner,
                     ExperimentState.PLANNED.value,
                     note,
@@ -719,24 +436,24 @@ class ScheduleStore:
         before = self.get(exp_id)
         if before.state not in movable:
             self._refuse_state(before, "moved", movable)
-        from controller.cli.cmd_check import load_rig
+        from controller.cli.cmd_check import compile_loaded, load_rig
 
         rig = load_rig(before.rig_path)
         loaded = loaded_from_text(before.protocol_path, before.protocol_text)
-        compiled = compile_experiment(before, start)
+        compiled = compile_loaded(loaded, start)
         end = start + timedelta(seconds=compiled.duration_s)
         candidate = Booking(
             f"{before.id} {before.title!r} ({before.owner})", None, before.chambers, start, end,
             compiled,
         )  # fmt: skip
-        with self._transaction(self._conn):
+        with transaction(self._conn):
             current = self.get(exp_id)
             if current.state not in movable:
                 self._refuse_state(current, "moved", movable)
             self._refuse_conflicts(candidate, rig, current.rig_path, loaded, current.id)
             self._conn.execute(
                 "UPDATE experiments SET start_utc = ?, end_utc = ?, state = ? WHERE id = ?",
-                (_stamp(start), _stamp(end), ExperimentState.PLANNED.value, current.id),
+                (stamp(start), stamp(end), ExperimentState.PLANNED.value, current.id),
             )
             zone = rig.maintenance.timezone
             reason = (
@@ -765,7 +482,7 @@ class ScheduleStore:
         reason = check_text_field(reason, "reason", max_len=500)
         by = check_text_field(by, "by", max_len=80) if by is not None else _default_by()
         cancellable = (ExperimentState.PLANNED, ExperimentState.PREFLIGHT)
-        with self._transaction(self._conn):
+        with transaction(self._conn):
             current = self.get(exp_id)
             if current.state in (ExperimentState.RUNNING, ExperimentState.HELD):
                 raise ScheduleConflict(
@@ -835,7 +552,7 @@ class ScheduleStore:
         to = ExperimentState(to)
         reason = check_text_field(reason, "reason", max_len=500)
         by = check_text_field(by, "by", max_len=80)
-        with self._transaction(self._conn):
+        with transaction(self._conn):
             current = self.get(exp_id)
             allowed = TRANSITIONS[current.state]
             if current.state is ExperimentState.REFUSED:

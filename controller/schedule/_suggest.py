@@ -15,6 +15,9 @@ Rules
   search at once: the answer says so instead of proposing a time.
 - Pure apart from ``compile_at`` (which may read CSV files the protocol names): no clock, no
   store; the caller passes the live bookings.
+- :func:`loaded_from_text` and :func:`compile_experiment` turn a stored experiment's protocol
+  snapshot back into a compiled protocol (for a move, or for checks that need it); problems
+  are located in the file the snapshot was taken from.
 """
 
 from __future__ import annotations
@@ -22,16 +25,18 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 from controller.schedule._conflicts import find_conflicts
-from controller.schedule._models import Booking, Conflict, ConflictKind, ResourcePeak
+from controller.schedule._models import Booking, Conflict, ConflictKind, Experiment, ResourcePeak
 
 if TYPE_CHECKING:
+    from controller.cli.cmd_check import LoadedProtocol
     from controller.protocol import CompiledProtocol
     from controller.rig import Rig
 
-__all__ = ["Suggestion", "suggest_start"]
+__all__ = ["Suggestion", "compile_experiment", "loaded_from_text", "suggest_start"]
 
 _BOOKING_KINDS = frozenset({ConflictKind.CHAMBER_BOOKED, ConflictKind.RIG_BUSY})
 
@@ -123,3 +128,49 @@ def suggest_start(
         if own and all(c.time_independent for c in own):
             return Suggestion(None, None, tuple(own), True, (), tried)
     return Suggestion(None, None, tuple(conflicts), False, (), tried)
+
+
+def loaded_from_text(path: Path, text: str) -> LoadedProtocol:
+    """Validate a protocol snapshot as if read from ``path`` (problems located there).
+
+    Parameters
+    ----------
+    path
+        The file the snapshot was taken from (CSV files it names are relative to it).
+    text
+        The snapshot.
+
+    Returns
+    -------
+    LoadedProtocol
+        The validated protocol.
+    """
+    from controller.cli.cmd_check import LoadedProtocol
+    from controller.files import parse_toml, validate_data
+    from controller.protocol import Protocol
+
+    data = parse_toml(text, file=path)
+    return LoadedProtocol(path, text, validate_data(data, Protocol, text=text, file=path), data)
+
+
+def compile_experiment(
+    experiment: Experiment, start_utc: datetime | None = None
+) -> CompiledProtocol:
+    """Compile an experiment's protocol snapshot (elapsed 0 = its start, or ``start_utc``).
+
+    Parameters
+    ----------
+    experiment
+        A stored experiment.
+    start_utc
+        Another start to compile for (aware), e.g. for a move; default its own.
+
+    Returns
+    -------
+    CompiledProtocol
+        The compiled setpoint channels.
+    """
+    from controller.cli.cmd_check import compile_loaded
+
+    loaded = loaded_from_text(experiment.protocol_path, experiment.protocol_text)
+    return compile_loaded(loaded, start_utc or experiment.start_utc)
