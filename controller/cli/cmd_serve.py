@@ -104,7 +104,7 @@ def register(sub: Any) -> None:
 
 def _time(text: str | None, option: str) -> datetime | None:
     from controller.cli.cmd_check import parse_start
-    from controller.schedule._store import check_start
+    from controller.schedule import check_start
 
     try:
         value = parse_start(text)

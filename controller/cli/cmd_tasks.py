@@ -107,8 +107,7 @@ def _rigs(args: argparse.Namespace, rig_paths: list[Path]) -> dict[Path, Rig]:
 
 
 def _collect(args: argparse.Namespace) -> tuple[list[tuple[OperatorTask, Rig]], datetime, datetime]:
-    from controller.schedule._models import LIVE_STATES
-    from controller.schedule._store import ScheduleStore
+    from controller.schedule import LIVE_STATES, ScheduleStore
     from controller.schedule._tasks import schedule_tasks
 
     start, end = _window(args)

@@ -48,7 +48,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from controller.errors import SquallError
-from controller.schedule._models import ExperimentState, format_when
+from controller.schedule import ExperimentState, format_when
 
 if TYPE_CHECKING:
     from controller.clock import Clock
@@ -63,8 +63,7 @@ if TYPE_CHECKING:
         RunSummary,
         TickStatus,
     )
-    from controller.schedule._models import Experiment
-    from controller.schedule._store import ScheduleStore
+    from controller.schedule import Experiment, ScheduleStore
     from controller.storage import RunLogWriter
 
 __all__ = ["ServeConfig", "ServeResult", "serve"]
@@ -511,7 +510,7 @@ def serve(config: ServeConfig, *, notify: Callable[[str], None] | None = None) -
     from controller.clock import RealClock, VirtualClock, run_with_clock
     from controller.files import load_model
     from controller.rig import Rig
-    from controller.schedule._store import ScheduleStore
+    from controller.schedule import ScheduleStore
 
     rig_path = Path(config.rig_path).resolve()
     rig = load_model(rig_path, Rig)

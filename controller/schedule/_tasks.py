@@ -42,8 +42,7 @@ from controller.errors import SquallError
 if TYPE_CHECKING:
     from controller.protocol import Protocol
     from controller.rig import Rig
-    from controller.schedule._models import Experiment
-    from controller.schedule._store import ScheduleStore
+    from controller.schedule import Experiment, ScheduleStore
 
 __all__ = [
     "CALIBRATION_LEAD",
@@ -515,7 +514,7 @@ def schedule_tasks(
     list of OperatorTask
         Sorted by start time.
     """
-    from controller.schedule._models import LIVE_STATES
+    from controller.schedule import LIVE_STATES
 
     start = _aware_utc(start_utc, "--from")
     end = _aware_utc(end_utc, "end_utc")
