@@ -190,6 +190,27 @@ class _Server:
             exp.id, to, reason=_clip(reason), by=self.config.by, log_path=log_path
         )
 
+    def _try_move(
+        self, exp: Experiment, to: ExperimentState, reason: str, log_path: Path | None = None
+    ) -> Experiment | None:
+        """Move an experiment serve is about to take up; None when someone changed it
+        meanwhile (e.g. cancelled it in another process), which serve then leaves alone."""
+        from controller.schedule import ScheduleConflict
+
+        try:
+            return self._move(exp, to, reason, log_path)
+        except ScheduleConflict:
+            now = self.store.get(exp.id).state
+            self._say(f"{exp.id} was changed meanwhile (now {now.value}); not taken up")
+            return None
+
+    def _refuse(self, exp: Experiment, reason: str) -> None:
+        """Refuse an experiment in preflight with an alarm (unless it was changed meanwhile)."""
+        if self._try_move(exp, _S.REFUSED, reason) is None:
+            return
+        self._alarm(f"{exp.id} '{exp.title}' refused: {_clip(reason)}")
+        self.outcomes.append((exp.id, _S.REFUSED))
+
     def _finish(self, exp: Experiment, to: ExperimentState, reason: str) -> None:
         self._move(exp, to, reason)
         self.outcomes.append((exp.id, to))
@@ -266,13 +287,15 @@ class _Server:
         why = f"start due {format_when(exp.start_utc, self.zone)}"
         if late_s >= 60.0:
             why += f", {late_s / 60.0:.0f} min late"
-        exp = self._move(exp, _S.PREFLIGHT, why)
+        moved = self._try_move(exp, _S.PREFLIGHT, why)
+        if moved is None:
+            return
+        exp = moved
         self._say(f"{exp.id} preflight ({why})")
         try:
             job = self._prepare(exp)
         except SquallError as exc:
-            self._alarm(f"{exp.id} refused: cannot start: {exc.one_line()}")
-            self._finish(exp, _S.REFUSED, f"cannot start: {exc.one_line()}")
+            self._refuse(exp, f"cannot start: {exc.one_line()}")
             return
         ranges = {
             c: (cs.interlocks.sensor_min_c, cs.interlocks.sensor_max_c)
@@ -288,10 +311,13 @@ class _Server:
             ready_timeout_s=self.settings.ready_timeout_s,
         )
         if not report.passed:
-            self._alarm(f"{exp.id} '{exp.title}' refused: {report.summary()}")
-            self._finish(exp, _S.REFUSED, report.summary())
+            self._refuse(exp, report.summary())
             return
         log_path = self._log_path(exp)
+        moved = self._try_move(exp, _S.RUNNING, report.summary(), log_path=log_path)
+        if moved is None:
+            return
+        exp = moved
         speed = self.config.speed if self.config.sim else 1.0
         try:
             writer = create_run_log(
@@ -302,10 +328,9 @@ class _Server:
                 commit_interval_s=self.settings.commit_interval_for(speed),
             )
         except SquallError as exc:
-            self._alarm(f"{exp.id} refused: {exc.one_line()}")
-            self._finish(exp, _S.REFUSED, f"cannot create the run log: {exc.one_line()}")
+            self._alarm(f"{exp.id} cannot start: {exc.one_line()}")
+            self._finish(exp, _S.ABORTED, f"cannot create the run log: {exc.one_line()}")
             return
-        exp = self._move(exp, _S.RUNNING, report.summary(), log_path=log_path)
         self._say(f"{exp.id} running '{exp.title}' on {', '.join(exp.chambers)}; log {log_path}")
         loop = self._loop(job, writer, exp)
         try:

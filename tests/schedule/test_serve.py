@@ -307,3 +307,27 @@ def test_operator_hold_resume_and_abort_show_in_the_store(tmp_path: Path) -> Non
     assert history[5].time_utc == started + timedelta(hours=4)
     # the control socket names the peer's own user, whatever name the client claims
     assert history[5].reason == f"aborted by {pwd.getpwuid(os.getuid()).pw_name}"
+
+
+def test_an_experiment_cancelled_during_its_preflight_is_left_alone(tmp_path: Path) -> None:
+    rig = _rig(tmp_path)
+    schedule = tmp_path / "runs" / "schedule.sqlite"
+    exp = _add(schedule, rig, _protocol(tmp_path, "bath", ["C1", "C2"]), START + timedelta(hours=1))
+    lines: list[str] = []
+
+    def notify(line: str) -> None:
+        lines.append(line)
+        if f"{exp} preflight" in line:  # an operator cancels it from another process
+            with ScheduleStore(schedule) as other:
+                other.cancel(exp, reason="sediment cores not ready", by="ana")
+
+    result = serve(
+        ServeConfig(rig_path=rig, schedule_path=schedule, sim=True, start_utc=START),
+        notify=notify,
+    )
+    assert result.outcomes == ()
+    assert any(f"{exp} was changed meanwhile (now cancelled); not taken up" in x for x in lines)
+    with ScheduleStore(schedule) as store:
+        assert store.get(exp).state is S.CANCELLED
+        assert store.get(exp).log_path is None
+    assert not list(schedule.parent.glob(f"{exp}-*"))
