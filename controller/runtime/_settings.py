@@ -122,8 +122,9 @@ class RunSettings:
     trip_margin_c
         Distance of the temperature trip limits outside the chamber's limits, °C.
     lamp_trim_kc, flow_trim_kc
-        Proportional gain of the PAR and flow trims, dimensionless (PAR per PAR, flow per
-        flow).
+        Proportional gain of the PAR and flow trims, dimensionless (% of drive per % of
+        drive, the reading passed back through the actuator's curve; on a straight line the
+        same as PAR per PAR or flow per flow).
     trim_ti_s
         Integral time of the PAR and flow trims, s; default the larger of 60 s and four
         tick periods (slower than the lamp's warm-up, stable at any period).
