@@ -304,11 +304,12 @@ def _over(
     return None
 
 
-def _peak(left: FloatArray, right: FloatArray) -> tuple[int, str, float]:
+def _peak(left: FloatArray, right: FloatArray) -> tuple[int, float]:
+    """Grid index and value of the largest one-sided value (W)."""
     k_left, k_right = int(np.argmax(left)), int(np.argmax(right))
     if left[k_left] > right[k_right]:
-        return k_left, "left", float(left[k_left])
-    return k_right, "right", float(right[k_right])
+        return k_left, float(left[k_left])
+    return k_right, float(right[k_right])
 
 
 def _parts_text(parts: dict[str, float], unit: str = "W") -> str:
@@ -389,7 +390,7 @@ def _resource(
     left_parts = [shares(w) for w in evaluated.left]
     right_parts = [shares(w) for w in evaluated.right]
     left, right = np.sum(left_parts, axis=0), np.sum(right_parts, axis=0)
-    k_peak, side_peak, peak_w = _peak(left, right)
+    k_peak, peak_w = _peak(left, right)
     peak = ResourcePeak(name, peak_w, capacity_w, _utc(float(grid[k_peak])))
     over = _over(grid, left, right, capacity_w)
     if over is None:
@@ -415,7 +416,7 @@ def _resource(
             f"{name} would need {total:.0f} W {what}at {format_when(at, zone)} (capacity "
             f"{capacity_w:.0f} W): {_parts_text(breakdown)}"
         )
-    if k_peak != k or side_peak != side:
+    if peak.at_utc != at or peak_w > total + 0.5:
         message += f"; peak {peak_w:.0f} W at {format_when(peak.at_utc, zone)}"
     return Conflict(kind, message, first, experiments=ids), peak
 

@@ -26,10 +26,14 @@ Rules
   part is taken at the programmed temperature, which the water reaches at the stretch's end).
 - A node whose temperature is uncontrolled in the protocol draws nothing (its heater and
   chiller stay off); so do nodes the experiment does not use.
-- Lamp power: rated_w × PAR/max_par per chamber. The lamp's electrical power is taken to be
-  proportional to its drive and the drive to the PAR asked of it (the rig has no lamp
-  calibration table); for the saturating lamps of the simulator this overestimates the drive,
-  so the check errs on the safe side.
+- Lamp power: rated_w × drive/100 per chamber, with the drive the runtime gives for the PAR
+  asked: from the lamp's measured curve (``[chambers.lamp] drive_pct_par``, interpolated and
+  held between the dead band's edge and 100 %) when the rig has one, else PAR/max_par (the
+  straight line the runtime uses then). The electrical power is taken to be proportional to
+  the drive (dimmed LED drivers come close; common practice); for a lamp whose light
+  saturates with drive but has no measured curve, the straight line overestimates the drive,
+  so the check errs on the safe side. Where PAR crosses a point of the curve is a breakpoint
+  of the grid, so each lamp's power is linear between grid instants.
 - Grid that cannot miss a peak (:func:`load_grid`): every load is linear between the union of
   all breakpoints (programs, ramp-follow stretches, starts and ends), except the flushing
   term where flow and temperature change together: a product of two lines, a parabola. Such
@@ -222,8 +226,11 @@ class LampLoad:
         The booking's span, epoch s.
     par
         PAR program, s from the booking's start to µmol photons m⁻² s⁻¹.
-    w_per_par
-        rated_w / max_par, W per µmol photons m⁻² s⁻¹.
+    rated_w
+        Electrical power at 100 % drive, W.
+    curve_par, curve_drive_pct
+        The lamp's drive curve: PAR (µmol photons m⁻² s⁻¹) and drive (%) of each point,
+        rising (the measured table, or the straight line to ``limits.max_par``).
     """
 
     chamber: str
@@ -231,17 +238,48 @@ class LampLoad:
     t0_s: float
     t1_s: float
     par: Channel
-    w_per_par: float
+    rated_w: float
+    curve_par: tuple[float, ...]
+    curve_drive_pct: tuple[float, ...]
+
+    def drive_pct(self, par: FloatArray) -> FloatArray:
+        """Drive the runtime gives for PAR setpoints, % (as ``DriveCurve.drive_for``).
+
+        Parameters
+        ----------
+        par
+            PAR setpoints, µmol photons m⁻² s⁻¹.
+
+        Returns
+        -------
+        numpy.ndarray
+            0 for PAR of 0 or less, else interpolated on the curve (straight beyond its
+            ends) and held between the curve's first drive and 100 %, %.
+        """
+        xs, ys = np.array(self.curve_par), np.array(self.curve_drive_pct)
+        k = np.clip(np.searchsorted(xs, par, side="right"), 1, xs.size - 1)
+        drive = ys[k - 1] + (par - xs[k - 1]) * (ys[k] - ys[k - 1]) / (xs[k] - xs[k - 1])
+        return np.where(par <= 0.0, 0.0, np.clip(drive, ys[0], 100.0))
 
     def breakpoints(self) -> FloatArray:
-        """Instants where the power changes course, epoch s."""
-        rel = self.par.t_s[(self.par.t_s > 0.0) & (self.par.t_s < self.t1_s - self.t0_s)]
+        """Instants where the power changes course, epoch s: the program's breakpoints and
+        where PAR crosses a point of the drive curve."""
+        t, v = self.par.t_s, self.par.v
+        crossings = []
+        for level in self.curve_par:
+            d0, d1 = v[:-1] - level, v[1:] - level
+            cross = (d0 * d1 < 0) & (t[1:] > t[:-1])
+            crossings.append(
+                t[:-1][cross] + d0[cross] / (d0[cross] - d1[cross]) * (t[1:][cross] - t[:-1][cross])
+            )
+        rel = np.concatenate([t, *crossings])
+        rel = rel[(rel > 0.0) & (rel < self.t1_s - self.t0_s)]
         return np.concatenate(([self.t0_s, self.t1_s], self.t0_s + rel))
 
     def watts(self, x: FloatArray, side: Side) -> FloatArray:
         """Power at epoch times ``x`` (s) seen from one side, W."""
         left, right, _, _ = sides(self.par, x - self.t0_s)
-        power = self.w_per_par * np.maximum(left if side == "left" else right, 0.0)
+        power = self.rated_w / 100.0 * self.drive_pct(left if side == "left" else right)
         return np.where(_active(x, self.t0_s, self.t1_s, side), power, 0.0)
 
 
@@ -348,13 +386,16 @@ def lamp_loads(bookings: Sequence[Booking], rig: Rig) -> list[LampLoad]:
     bookings
         Bookings (those without a compiled protocol are skipped).
     rig
-        The rig; chambers without ``lamp.rated_w`` or with ``max_par`` 0 are skipped.
+        The rig; chambers without ``lamp.rated_w``, or with neither a lamp curve nor a
+        ``max_par`` above 0, are skipped.
 
     Returns
     -------
     list of LampLoad
         In booking order, then protocol order.
     """
+    from controller.rig import DriveCurve
+
     known = {c.id: c for c in rig.chambers}
     loads: list[LampLoad] = []
     for booking in bookings:
@@ -366,8 +407,11 @@ def lamp_loads(bookings: Sequence[Booking], rig: Rig) -> list[LampLoad]:
             par = compiled.channels[chamber_id].get("par")
             if chamber is None or par is None or chamber.lamp.rated_w is None:
                 continue
-            if chamber.limits.max_par <= 0.0:
-                continue
+            curve = chamber.lamp.curve()
+            if curve is None:
+                if chamber.limits.max_par <= 0.0:
+                    continue
+                curve = DriveCurve.linear(chamber.limits.max_par)
             loads.append(
                 LampLoad(
                     chamber=chamber_id,
@@ -375,7 +419,9 @@ def lamp_loads(bookings: Sequence[Booking], rig: Rig) -> list[LampLoad]:
                     t0_s=booking.start_utc.timestamp(),
                     t1_s=booking.end_utc.timestamp(),
                     par=par,
-                    w_per_par=chamber.lamp.rated_w / chamber.limits.max_par,
+                    rated_w=chamber.lamp.rated_w,
+                    curve_par=curve.value,
+                    curve_drive_pct=curve.drive_pct,
                 )
             )
     return loads

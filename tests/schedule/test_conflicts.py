@@ -22,7 +22,7 @@ from controller.schedule import (
     water_rho_cp_j_l_k,
 )
 
-from ._helpers import START, Group, booking, rig, write_protocol, write_rig
+from ._helpers import START, Group, booking, rig, rig_text, write_protocol, write_rig
 
 HOLD = '{{ kind = "hold", value = {} }}'
 H1 = '{ kind = "hold", value = 20.0, duration = "1h" }'
@@ -450,3 +450,42 @@ def test_nothing_is_found_for_a_modest_protocol(tmp_path: Path) -> None:
     conflicts, peaks = find_conflicts(booking(write_protocol(tmp_path)), [], the_rig)
     assert conflicts == []
     assert {p.name for p in peaks} == {"chiller 'cold-loop'", "the lamp circuit"}
+
+
+def test_a_measured_lamp_curve_sets_the_drive_and_its_corners_are_on_the_grid(
+    tmp_path: Path,
+) -> None:
+    # B1's lamp gives 200 µmol m⁻² s⁻¹ at 50 % and 1000 at 100 %: the drive climbs fast at
+    # first. B1 ramps 0 → 1000 while B2 (straight line, no table) ramps 1000 → 0, both over
+    # 4 h from 07:00Z: together 100 + 37.5 W/h for 48 min (B1 reaches 200 at 50 %), then
+    # falling by 9.4 W/h. The peak (130 W at 07:48Z) sits where B1's PAR crosses the curve's
+    # corner, between the program's breakpoints.
+    text = rig_text(lamp_budget=120.0).replace(
+        "[chambers.lamp]\nrated_w = 100.0",
+        "[chambers.lamp]\nrated_w = 100.0\n"
+        "drive_pct_par = [[0.0, 0.0], [50.0, 200.0], [100.0, 1000.0]]",
+        1,
+    )
+    (tmp_path / "curve.toml").write_text(text)
+    the_rig = rig(tmp_path / "curve.toml")
+    assert the_rig.chamber("B1").lamp.drive_pct_par is not None
+    ramp = (
+        '{{ kind = "hold", value = {}, duration = "1h" }}, '
+        '{{ kind = "ramp", to = {}, duration = "4h" }}'
+    )
+    up, down = ramp.format(0.0, 1000.0), ramp.format(1000.0, 0.0)
+    candidate = booking(
+        write_protocol(
+            tmp_path, groups={"a": Group(["B1"], light=up), "b": Group(["B2"], light=down)}
+        )
+    )
+    conflicts, peaks = find_conflicts(candidate, [], the_rig)
+    [lamp] = [c for c in conflicts if c.kind is ConflictKind.LAMP_BUDGET]
+    assert lamp.message == (
+        "the lamp circuit would need more than its 120 W from 2027-07-10T07:32Z (local "
+        "2027-07-10T08:32+01:00), 130 W at 2027-07-10T07:48Z (local 2027-07-10T08:48+01:00): "
+        "B2 80 W, B1 50 W"
+    )
+    [peak] = [p for p in peaks if p.name == "the lamp circuit"]
+    assert peak.peak_w == pytest.approx(130.0)
+    assert peak.at_utc == START + timedelta(minutes=108)
