@@ -9,6 +9,10 @@ start.
   :class:`Conflict` out (chamber booked twice or rig busy, bath programs, node and shared
   plant heat demand, lamp power budget, chamber limits).
 - :func:`suggest_start` proposes the earliest start at which every check passes.
+- :func:`tasks_for_run` and :func:`schedule_tasks` derive the operator tasks (sampling,
+  calibrations, cleaning, daily checks, run start and end) and :func:`to_icalendar` writes
+  them as RFC 5545; :func:`preflight` checks sensors, calibrations and latched trips before an
+  unattended start, and :func:`serve` runs a rig's schedule (``squall serve``).
 
 Names are re-exported lazily (see :mod:`controller._lazy`), so the command line can name this
 package without loading numpy or the protocol compiler until a schedule command runs.
@@ -27,6 +31,7 @@ if TYPE_CHECKING:
         protocol_conflicts,
     )
     from controller.schedule._database import DEFAULT_SCHEDULE, SCHEMA_VERSION
+    from controller.schedule._ical import to_icalendar
     from controller.schedule._loads import (
         LampLoad,
         NodeLoad,
@@ -55,12 +60,31 @@ if TYPE_CHECKING:
         format_when,
         normalize_id,
     )
+    from controller.schedule._preflight import (
+        LatchedAlarm,
+        PreflightCheck,
+        PreflightFinding,
+        PreflightReport,
+        latched_alarms,
+        preflight,
+    )
+    from controller.schedule._serve import ServeConfig, ServeResult, serve
     from controller.schedule._store import ScheduleStore
     from controller.schedule._suggest import (
         Suggestion,
         compile_experiment,
         loaded_from_text,
         suggest_start,
+    )
+    from controller.schedule._tasks import (
+        CalibrationKind,
+        CalibrationState,
+        OperatorTask,
+        TaskKind,
+        calibration_states,
+        experiment_protocol,
+        schedule_tasks,
+        tasks_for_run,
     )
 
 _NAMES: dict[str, str] = {
@@ -102,6 +126,24 @@ _NAMES: dict[str, str] = {
     "suggest_start": "_suggest",
     "water_rho_cp_j_l_k": "_loads",
     # sched-serve: tasks, iCalendar, preflight, serve (added below this line)
+    "CalibrationKind": "_tasks",
+    "CalibrationState": "_tasks",
+    "OperatorTask": "_tasks",
+    "TaskKind": "_tasks",
+    "calibration_states": "_tasks",
+    "experiment_protocol": "_tasks",
+    "schedule_tasks": "_tasks",
+    "tasks_for_run": "_tasks",
+    "to_icalendar": "_ical",
+    "LatchedAlarm": "_preflight",
+    "PreflightCheck": "_preflight",
+    "PreflightFinding": "_preflight",
+    "PreflightReport": "_preflight",
+    "latched_alarms": "_preflight",
+    "preflight": "_preflight",
+    "ServeConfig": "_serve",
+    "ServeResult": "_serve",
+    "serve": "_serve",
 }
 
 __getattr__, __dir__ = lazy_exports(__name__, _NAMES)
@@ -112,35 +154,53 @@ __all__ = [
     "SCHEMA_VERSION",
     "TRANSITIONS",
     "Booking",
+    "CalibrationKind",
+    "CalibrationState",
     "Conflict",
     "ConflictKind",
     "Experiment",
     "ExperimentState",
     "HistoryEntry",
     "LampLoad",
+    "LatchedAlarm",
     "NodeLoad",
+    "OperatorTask",
+    "PreflightCheck",
+    "PreflightFinding",
+    "PreflightReport",
     "ResourcePeak",
     "ScheduleConflict",
     "ScheduleStore",
+    "ServeConfig",
+    "ServeResult",
     "Suggestion",
+    "TaskKind",
     "bath_conflicts",
     "booking_conflicts",
     "booking_of",
+    "calibration_states",
     "chamber_span",
     "check_start",
     "check_text_field",
     "compile_experiment",
+    "experiment_protocol",
     "find_conflicts",
     "format_span",
     "format_when",
     "lamp_loads",
+    "latched_alarms",
     "load_grid",
     "loaded_from_text",
     "node_demand_w",
     "node_loads",
     "normalize_id",
     "power_conflicts",
+    "preflight",
     "protocol_conflicts",
+    "schedule_tasks",
+    "serve",
     "suggest_start",
+    "tasks_for_run",
+    "to_icalendar",
     "water_rho_cp_j_l_k",
 ]
