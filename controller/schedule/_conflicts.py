@@ -81,16 +81,16 @@ def booking_conflicts(candidate: Booking, others: Sequence[Booking], rig: Rig) -
     Parameters
     ----------
     candidate
-        The experiment being placed.
+        The experiment being placed (no unit).
     others
-        Live experiments of the same rig (the candidate itself excluded).
+        Live experiments of the same rig (the candidate itself excluded) (no unit).
     rig
-        The rig (its name and local zone for messages).
+        The rig (its name and local zone for messages) (no unit).
 
     Returns
     -------
     list of Conflict
-        One per other experiment that overlaps the candidate in time, in time order.
+        One per other experiment that overlaps the candidate in time, in time order (no unit).
     """
     zone = rig.maintenance.timezone
     found: list[Conflict] = []
@@ -129,14 +129,14 @@ def protocol_conflicts(candidate: Booking, rig: Rig) -> list[Conflict]:
     Parameters
     ----------
     candidate
-        The experiment, compiled.
+        The experiment, compiled (no unit).
     rig
-        The rig.
+        The rig (no unit).
 
     Returns
     -------
     list of Conflict
-        Unknown chambers first, then limit errors, each with the protocol field to blame.
+        Unknown chambers first, then limit errors, each with the protocol field to blame (no unit).
     """
     from controller.protocol import Severity, check_against_rig
 
@@ -231,9 +231,9 @@ def bath_conflicts(bookings: Sequence[Booking], rig: Rig) -> list[Conflict]:
     ----------
     bookings
         Compiled bookings live together, the experiment being placed first; a single
-        booking is checked against itself.
+        booking is checked against itself (no unit).
     rig
-        The rig.
+        The rig (no unit).
 
     Returns
     -------
@@ -445,17 +445,17 @@ def power_conflicts(
     Parameters
     ----------
     candidate
-        The experiment being placed, compiled.
+        The experiment being placed, compiled (no unit).
     others
         Compiled bookings live at some moment of the candidate's span (v1: none).
     rig
-        The rig: thermal nodes, ``plants``, ``power.lamp_budget_w``.
+        The rig: thermal nodes, ``plants``, ``power.lamp_budget_w`` (no unit).
 
     Returns
     -------
     tuple of (list of Conflict, list of ResourcePeak)
         Conflicts (nodes, then plants, then lamps), and the peak load on each plant and on
-        the lamp circuit.
+        the lamp circuit (no unit).
     """
     from controller.rig import PlantKind
 
@@ -516,16 +516,16 @@ def find_conflicts(
     Parameters
     ----------
     candidate
-        The experiment being placed, compiled.
+        The experiment being placed, compiled (no unit).
     others
         The rig's other live experiments (compiled where resource checks need them).
     rig
-        The rig.
+        The rig (no unit).
 
     Returns
     -------
     tuple of (list of Conflict, list of ResourcePeak)
-        Conflicts (empty = accepted) and the peak loads on shared resources.
+        Conflicts (empty = accepted) and the peak loads on shared resources (no unit).
     """
     conflicts = booking_conflicts(candidate, others, rig)
     conflicts += protocol_conflicts(candidate, rig)

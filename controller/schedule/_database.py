@@ -97,7 +97,7 @@ def transaction(conn: sqlite3.Connection) -> Iterator[None]:
     Parameters
     ----------
     conn
-        A connection in autocommit mode (``isolation_level=None``).
+        A connection in autocommit mode (``isolation_level=None``) (no unit).
     """
     try:
         conn.execute("BEGIN IMMEDIATE")
@@ -143,14 +143,14 @@ def open_database(path: Path, busy_timeout_s: float) -> sqlite3.Connection:
     Parameters
     ----------
     path
-        The store file.
+        The store file (no unit).
     busy_timeout_s
         How long a writer waits for another process's transaction to finish, s.
 
     Returns
     -------
     sqlite3.Connection
-        In autocommit mode; transactions through :func:`transaction`.
+        In autocommit mode; transactions through :func:`transaction` (no unit).
 
     Raises
     ------

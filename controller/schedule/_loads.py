@@ -147,9 +147,9 @@ class NodeLoad:
     Attributes
     ----------
     node
-        Node id (bath id, or chamber id).
+        Node id (bath id, or chamber id) (no unit).
     booking
-        The booking that runs it.
+        The booking that runs it (no unit).
     chambers
         The booking's chambers in the node.
     t0_s, t1_s
@@ -219,9 +219,9 @@ class LampLoad:
     Attributes
     ----------
     chamber
-        Chamber id.
+        Chamber id (no unit).
     booking
-        The booking that runs it.
+        The booking that runs it (no unit).
     t0_s, t1_s
         The booking's span, epoch s.
     par
@@ -289,14 +289,14 @@ def node_loads(bookings: Sequence[Booking], rig: Rig) -> list[NodeLoad]:
     Parameters
     ----------
     bookings
-        Bookings (those without a compiled protocol are skipped).
+        Bookings (those without a compiled protocol are skipped) (no unit).
     rig
-        The rig.
+        The rig (no unit).
 
     Returns
     -------
     list of NodeLoad
-        In booking order, then rig order.
+        In booking order, then rig order (no unit).
     """
     from controller.rig import ThermalSim
 
@@ -384,15 +384,15 @@ def lamp_loads(bookings: Sequence[Booking], rig: Rig) -> list[LampLoad]:
     Parameters
     ----------
     bookings
-        Bookings (those without a compiled protocol are skipped).
+        Bookings (those without a compiled protocol are skipped) (no unit).
     rig
         The rig; chambers without ``lamp.rated_w``, or with neither a lamp curve nor a
-        ``max_par`` above 0, are skipped.
+        ``max_par`` above 0, are skipped (no unit).
 
     Returns
     -------
     list of LampLoad
-        In booking order, then protocol order.
+        In booking order, then protocol order (no unit).
     """
     from controller.rig import DriveCurve
 
@@ -435,7 +435,7 @@ def load_grid(
     Parameters
     ----------
     loads
-        Node and lamp loads.
+        Node and lamp loads (no unit).
     lo_s, hi_s
         Span to cover, epoch s.
     tol_w
@@ -474,9 +474,9 @@ def node_demand_w(
     Parameters
     ----------
     booking
-        A booking with its compiled protocol.
+        A booking with its compiled protocol (no unit).
     rig
-        The rig.
+        The rig (no unit).
     times_utc
         Aware instants.
 

@@ -107,31 +107,31 @@ class Experiment:
     id
         ``E0001``…, assigned by the store and never reused (no unit).
     rig_path
-        Rig file, absolute and resolved.
+        Rig file, absolute and resolved (no unit).
     rig_name
         The rig's ``name`` when the experiment was added.
     protocol_path
-        Protocol file as added, absolute and resolved.
+        Protocol file as added, absolute and resolved (no unit).
     protocol_text
-        Snapshot of the protocol file taken at add; serve runs this text, not the file.
+        Snapshot of the protocol file taken at add; serve runs this text, not the file (no unit).
     protocol_sha256
-        SHA-256 of ``protocol_text`` (UTF-8), hex.
+        SHA-256 of ``protocol_text`` (UTF-8), hex (no unit).
     title
         The protocol's title.
     chambers
-        Chamber ids the protocol uses, in file order.
+        Chamber ids the protocol uses, in file order (no unit).
     start_utc
         Planned start, aware UTC.
     end_utc
         ``start_utc`` plus the protocol's duration, aware UTC.
     owner
-        Who is responsible for it.
+        Who is responsible for it (no unit).
     state
-        Where it is in its life.
+        Where it is in its life (no unit).
     log_path
-        Its run log once started, else ``None``.
+        Its run log once started, else ``None`` (no unit).
     note
-        Free text given at add.
+        Free text given at add (no unit).
     """
 
     id: str
@@ -164,13 +164,13 @@ class HistoryEntry:
     time_utc
         When it happened, aware UTC.
     from_state
-        State before, or ``None`` for the add.
+        State before, or ``None`` for the add (no unit).
     to_state
-        State after.
+        State after (no unit).
     by
-        Who or what made the change (a user name, ``serve``).
+        Who or what made the change (a user name, ``serve``) (no unit).
     reason
-        Why, in words.
+        Why, in words (no unit).
     """
 
     time_utc: datetime
@@ -210,13 +210,14 @@ class Conflict:
     Attributes
     ----------
     kind
-        What collides.
+        What collides (no unit).
     message
-        What collides and when, for the person planning (one line).
+        What collides and when, for the person planning (one line) (no unit).
     at_utc
         First instant of the collision, aware UTC, or ``None`` when it does not depend on time.
     field
-        Dotted path in the protocol file to blame (``groups.warm.chambers.1``), or ``None``.
+        Dotted path in the protocol file to blame (``groups.warm.chambers.1``), or ``None``
+        (no unit).
     experiments
         Ids of the stored experiments involved (no unit).
     """
@@ -243,15 +244,15 @@ class Booking:
     Attributes
     ----------
     label
-        How messages name it: ``E0002 'title' (owner)``, or ``this experiment``.
+        How messages name it: ``E0002 'title' (owner)``, or ``this experiment`` (no unit).
     experiment_id
-        Stored id, or ``None`` for the experiment being placed.
+        Stored id, or ``None`` for the experiment being placed (no unit).
     chambers
-        Chamber ids it uses.
+        Chamber ids it uses (no unit).
     start_utc, end_utc
         Its span [start, end), aware UTC.
     compiled
-        Its compiled protocol (elapsed 0 = ``start_utc``); ``None`` when not needed.
+        Its compiled protocol (elapsed 0 = ``start_utc``); ``None`` when not needed (no unit).
     """
 
     label: str
@@ -273,7 +274,7 @@ class ResourcePeak:
     Attributes
     ----------
     name
-        ``chiller 'glycol-chiller'``, ``lamp circuit``.
+        ``chiller 'glycol-chiller'``, ``lamp circuit`` (no unit).
     peak_w
         Largest load, W.
     capacity_w
@@ -294,9 +295,9 @@ class ScheduleConflict(SquallError):
     Parameters
     ----------
     conflicts
-        Every reason found, most important first (at least one).
+        Every reason found, most important first (at least one) (no unit).
     file
-        The protocol file the refusal is about, if any.
+        The protocol file the refusal is about, if any (no unit).
     line
         1-based line of the first conflict's field in ``file``, if known.
     lead
@@ -349,7 +350,7 @@ def format_when(moment: datetime, timezone: str) -> str:
     Returns
     -------
     str
-        The instant to the minute (to the second when its seconds are not zero).
+        The instant to the minute (to the second when its seconds are not zero) (no unit).
     """
     utc = moment.astimezone(UTC)
     local = moment.astimezone(_zone(timezone))
@@ -365,12 +366,12 @@ def format_span(start: datetime, end: datetime, timezone: str) -> str:
     start, end
         Aware instants bounding the span.
     timezone
-        IANA zone of the local clock.
+        IANA zone of the local clock (no unit).
 
     Returns
     -------
     str
-        The span in words.
+        The span in words (no unit).
     """
     return f"from {format_when(start, timezone)} to {format_when(end, timezone)}"
 
@@ -386,7 +387,7 @@ def chamber_span(ids: Sequence[str]) -> str:
     Returns
     -------
     str
-        The ids in words.
+        The ids in words (no unit).
     """
     parts = [re.fullmatch(r"(.*?)(\d+)", chamber) for chamber in ids]
     if len(ids) > 2 and all(parts):
@@ -409,18 +410,18 @@ def check_text_field(value: str, field: str, *, max_len: int, allow_empty: bool 
     Parameters
     ----------
     value
-        As given.
+        As given (no unit).
     field
-        Its name for messages (``--owner``).
+        Its name for messages (``--owner``) (no unit).
     max_len
         Longest accepted length, characters.
     allow_empty
-        Whether an empty value is fine.
+        Whether an empty value is fine (no unit).
 
     Returns
     -------
     str
-        The trimmed value.
+        The trimmed value (no unit).
     """
     text = value.strip()
     if not text and not allow_empty:
@@ -442,9 +443,9 @@ def check_start(start_utc: datetime, field: str) -> datetime:
     Parameters
     ----------
     start_utc
-        The start (any zone).
+        The start (any zone) (no unit).
     field
-        Its name for messages (``--start``).
+        Its name for messages (``--start``) (no unit).
 
     Returns
     -------
@@ -474,7 +475,7 @@ def normalize_id(text: str) -> str:
     Returns
     -------
     str
-        The id as stored, when the text can be one.
+        The id as stored, when the text can be one (no unit).
     """
     match = re.fullmatch(r"[Ee]?0*(\d{1,12})", text.strip())
     return f"E{int(match.group(1)):04d}" if match else text.strip()
@@ -486,14 +487,14 @@ def booking_of(experiment: Experiment, compiled: CompiledProtocol | None = None)
     Parameters
     ----------
     experiment
-        A stored experiment.
+        A stored experiment (no unit).
     compiled
-        Its compiled protocol when resource checks need it.
+        Its compiled protocol when resource checks need it (no unit).
 
     Returns
     -------
     Booking
-        Labelled ``E0002 'title' (owner)``.
+        Labelled ``E0002 'title' (owner)`` (no unit).
     """
     return Booking(
         label=f"{experiment.id} {experiment.title!r} ({experiment.owner})",

@@ -75,7 +75,7 @@ class ScheduleStore:
     Parameters
     ----------
     path
-        Store file; created (mode 0600, with its folder) with the schema when missing.
+        Store file; created (mode 0600, with its folder) with the schema when missing (no unit).
     now
         Clock for history stamps, returning aware UTC; default the system clock.
     busy_timeout_s
@@ -136,12 +136,12 @@ class ScheduleStore:
         Parameters
         ----------
         exp_id
-            ``E0001``.
+            ``E0001`` (no unit).
 
         Returns
         -------
         Experiment
-            As stored.
+            As stored (no unit).
 
         Raises
         ------
@@ -173,12 +173,12 @@ class ScheduleStore:
         rig_path
             Only this rig's (resolved before comparing); ``None`` = every rig.
         states
-            Only these states; ``None`` = all.
+            Only these states; ``None`` = all (no unit).
 
         Returns
         -------
         list of Experiment
-            Matching experiments.
+            Matching experiments (no unit).
         """
         sql = f"SELECT {COLUMNS} FROM experiments"
         where: list[str] = []
@@ -201,12 +201,12 @@ class ScheduleStore:
         Parameters
         ----------
         exp_id
-            ``E0001``.
+            ``E0001`` (no unit).
 
         Returns
         -------
         list of HistoryEntry
-            From the add onwards.
+            From the add onwards (no unit).
         """
         experiment = self.get(exp_id)
         rows = self._conn.execute(
@@ -231,14 +231,14 @@ class ScheduleStore:
         Parameters
         ----------
         rig_path
-            Rig file.
+            Rig file (no unit).
         now_utc
             The present, aware.
 
         Returns
         -------
         Experiment or None
-            Earliest PLANNED experiment with ``start_utc <= now_utc``.
+            Earliest PLANNED experiment with ``start_utc <= now_utc`` (no unit).
         """
         for experiment in self.experiments(rig_path=rig_path, states=[ExperimentState.PLANNED]):
             if experiment.start_utc <= now_utc:
@@ -257,14 +257,14 @@ class ScheduleStore:
         Parameters
         ----------
         rig_path
-            Rig file.
+            Rig file (no unit).
         exclude
-            Id to leave out (the experiment being moved).
+            Id to leave out (the experiment being moved) (no unit).
 
         Returns
         -------
         list of Booking
-            In start order.
+            In start order (no unit).
         """
         return [
             booking_of(e)
@@ -334,22 +334,22 @@ class ScheduleStore:
         Parameters
         ----------
         rig_path
-            Rig file.
+            Rig file (no unit).
         protocol_path
             Protocol file; its text is kept as the experiment's snapshot.
         start_utc
             Planned start, aware (any zone; stored as UTC).
         owner
-            Who is responsible, one line.
+            Who is responsible, one line (no unit).
         note
-            Free text, one line.
+            Free text, one line (no unit).
         by
-            Who adds it, for the history; default ``owner``.
+            Who adds it, for the history; default ``owner`` (no unit).
 
         Returns
         -------
         Experiment
-            The stored experiment (state planned).
+            The stored experiment (state planned) (no unit).
 
         Raises
         ------
@@ -419,16 +419,16 @@ class ScheduleStore:
         Parameters
         ----------
         exp_id
-            ``E0001``.
+            ``E0001`` (no unit).
         start_utc
             New start, aware.
         by
-            Who moves it, for the history; default the user name.
+            Who moves it, for the history; default the user name (no unit).
 
         Returns
         -------
         Experiment
-            The experiment as stored now (a refused one is planned again).
+            The experiment as stored now (a refused one is planned again) (no unit).
         """
         start = check_start(start_utc, "start")
         by = check_text_field(by, "by", max_len=80) if by is not None else _default_by()
@@ -468,16 +468,16 @@ class ScheduleStore:
         Parameters
         ----------
         exp_id
-            ``E0001``.
+            ``E0001`` (no unit).
         reason
-            Why, one line (kept in the history).
+            Why, one line (kept in the history) (no unit).
         by
-            Who cancels it; default the user name.
+            Who cancels it; default the user name (no unit).
 
         Returns
         -------
         Experiment
-            The experiment, now cancelled.
+            The experiment, now cancelled (no unit).
         """
         reason = check_text_field(reason, "reason", max_len=500)
         by = check_text_field(by, "by", max_len=80) if by is not None else _default_by()
@@ -533,21 +533,21 @@ class ScheduleStore:
         Parameters
         ----------
         exp_id
-            ``E0001``.
+            ``E0001`` (no unit).
         to
             New state; must be allowed from the current one by :data:`TRANSITIONS`
-            (refused → planned goes through :meth:`move`, which checks conflicts again).
+            (refused → planned goes through :meth:`move`, which checks conflicts again) (no unit).
         reason
-            Why, one line.
+            Why, one line (no unit).
         by
-            Who or what changes it (``serve``).
+            Who or what changes it (``serve``) (no unit).
         log_path
-            The run log, when the run starts (kept).
+            The run log, when the run starts (kept) (no unit).
 
         Returns
         -------
         Experiment
-            The experiment as stored now.
+            The experiment as stored now (no unit).
         """
         to = ExperimentState(to)
         reason = check_text_field(reason, "reason", max_len=500)

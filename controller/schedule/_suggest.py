@@ -52,11 +52,11 @@ class Suggestion:
     end_utc
         End of the experiment from that start, aware UTC, or ``None``.
     conflicts
-        When there is no feasible start: the conflicts at the last start tried.
+        When there is no feasible start: the conflicts at the last start tried (no unit).
     regardless_of_time
-        Whether those conflicts hold at any start (the protocol itself is at fault).
+        Whether those conflicts hold at any start (the protocol itself is at fault) (no unit).
     peaks
-        Peak loads on shared resources from the proposed start.
+        Peak loads on shared resources from the proposed start (no unit).
     tried
         How many candidate starts were judged (no unit).
     """
@@ -85,26 +85,26 @@ def suggest_start(
     Parameters
     ----------
     rig
-        The rig.
+        The rig (no unit).
     chambers
-        Chamber ids the protocol uses.
+        Chamber ids the protocol uses (no unit).
     duration_s
         The protocol's length, s.
     live
-        Live experiments of the rig (not compiled: in v1 none may overlap anyway).
+        Live experiments of the rig (not compiled: in v1 none may overlap anyway) (no unit).
     after_utc
         Earliest acceptable start, aware.
     compile_at
         Compiles the protocol for a start (aware UTC) → its compiled form.
     label
-        How messages name the experiment.
+        How messages name the experiment (no unit).
     latest_utc
-        Starts at or after this instant are not proposed; ``None`` = no bound.
+        Starts at or after this instant are not proposed; ``None`` = no bound (no unit).
 
     Returns
     -------
     Suggestion
-        The start, or the reason there is none.
+        The start, or the reason there is none (no unit).
     """
     after = after_utc.astimezone(UTC)
     length = timedelta(seconds=duration_s)
@@ -136,14 +136,14 @@ def loaded_from_text(path: Path, text: str) -> LoadedProtocol:
     Parameters
     ----------
     path
-        The file the snapshot was taken from (CSV files it names are relative to it).
+        The file the snapshot was taken from (CSV files it names are relative to it) (no unit).
     text
-        The snapshot.
+        The snapshot (no unit).
 
     Returns
     -------
     LoadedProtocol
-        The validated protocol.
+        The validated protocol (no unit).
     """
     from controller.cli.cmd_check import LoadedProtocol
     from controller.files import parse_toml, validate_data
@@ -161,14 +161,14 @@ def compile_experiment(
     Parameters
     ----------
     experiment
-        A stored experiment.
+        A stored experiment (no unit).
     start_utc
         Another start to compile for (aware), e.g. for a move; default its own.
 
     Returns
     -------
     CompiledProtocol
-        The compiled setpoint channels.
+        The compiled setpoint channels (no unit).
     """
     from controller.cli.cmd_check import compile_loaded
 
