@@ -128,7 +128,6 @@ def _print_peaks(
 
 
 def _add(args: argparse.Namespace) -> int:
-    from controller.cli.cmd_check import load_rig
     from controller.schedule import check_text_field
 
     start = _time(args.start, "--start")
@@ -141,8 +140,7 @@ def _add(args: argparse.Namespace) -> int:
         experiment = store.add(
             rig_path=args.rig, protocol_path=args.protocol, start_utc=start, owner=owner, note=note
         )
-    zone = load_rig(experiment.rig_path).maintenance.timezone
-    _console().print(f"Added {_summary(experiment, zone)}.")
+    _console().print(f"Added {_summary(experiment, _zone_of(experiment.rig_path, {}))}.")
     return 0
 
 
