@@ -19,10 +19,11 @@ Rules
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Sequence
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from types import SimpleNamespace
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
@@ -154,22 +155,86 @@ def protocol_conflicts(candidate: Booking, rig: Rig) -> list[Conflict]:
         for chamber in compiled.group_of
         if chamber not in known
     ]
-    # Baths are judged by bath_conflicts over every live booking, so the rig is shown to
-    # check_against_rig without them: what it returns as errors are then the limits alone.
-    view = SimpleNamespace(
-        name=rig.name,
-        chambers=[SimpleNamespace(id=c.id, bath=None, limits=c.limits) for c in rig.chambers],
-    )
-    for finding in check_against_rig(compiled, view):
-        if finding.severity is Severity.ERROR and finding.chamber in known:
-            found.append(
-                Conflict(
-                    ConflictKind.CHAMBER_LIMITS,
-                    f"chamber {finding.chamber}: {' '.join(finding.message.split())}",
-                    field=finding.field,
-                )
-            )
+    # The rig is shown to check_against_rig once per limit, with the other limits lifted and
+    # without baths (judged by bath_conflicts over every live booking): each error it returns
+    # is then known to concern that limit, whose first violation can be dated.
+    zone = rig.maintenance.timezone
+    for limit in _LIMITS:
+        view = SimpleNamespace(
+            name=rig.name,
+            chambers=[
+                SimpleNamespace(id=c.id, bath=None, limits=_only(c.limits, limit))
+                for c in rig.chambers
+            ],
+        )
+        for finding in check_against_rig(compiled, view):
+            if finding.severity is not Severity.ERROR or finding.chamber not in known:
+                continue
+            message = f"chamber {finding.chamber}: {' '.join(finding.message.split())}"
+            t_s = _first_violation(compiled, finding.chamber, known[finding.chamber].limits, limit)
+            at = None
+            if t_s is not None:
+                at = compiled.start_utc + timedelta(seconds=round(t_s))
+                message += f"; first at {format_when(at, zone)}"
+            found.append(Conflict(ConflictKind.CHAMBER_LIMITS, message, at, finding.field))
     return found
+
+
+_LIFTED = {
+    "min_temperature_c": -math.inf,
+    "max_temperature_c": math.inf,
+    "max_ramp_c_per_h": math.inf,
+    "max_par": math.inf,
+    "max_flow_cm_s": math.inf,
+}
+_LIMITS = ("temperature", "max_ramp_c_per_h", "max_par", "max_flow_cm_s")
+"""The limits judged one at a time ("temperature" is the range, both ends)."""
+
+
+def _only(limits: Any, limit: str) -> SimpleNamespace:
+    """The chamber's limits with all but one lifted."""
+    keep = ("min_temperature_c", "max_temperature_c") if limit == "temperature" else (limit,)
+    return SimpleNamespace(
+        **{name: getattr(limits, name) if name in keep else lifted
+           for name, lifted in _LIFTED.items()}
+    )  # fmt: skip
+
+
+def _first_above(t: FloatArray, v: FloatArray, ceiling: float) -> float | None:
+    """First time a piecewise-linear table (times s, values) rises above ``ceiling``, s."""
+    over = np.flatnonzero(v > ceiling * (1 + 1e-9) + 1e-12)
+    if over.size == 0:
+        return None
+    k = int(over[0])
+    if k == 0 or t[k] == t[k - 1]:
+        return float(t[k])
+    return float(t[k - 1] + (ceiling - v[k - 1]) / (v[k] - v[k - 1]) * (t[k] - t[k - 1]))
+
+
+def _first_violation(
+    compiled: CompiledProtocol, chamber: str, limits: Any, limit: str
+) -> float | None:
+    """When a chamber's program first breaks one limit, s from the start (None: never)."""
+    channels = compiled.channels[chamber]
+    if limit == "temperature":
+        channel = channels.get("temperature_c")
+        if channel is None:
+            return None
+        times = [
+            _first_above(channel.t_s, channel.v, limits.max_temperature_c),
+            _first_above(channel.t_s, -channel.v, -limits.min_temperature_c),
+        ]
+        found = [x for x in times if x is not None]
+        return min(found) if found else None
+    if limit == "max_ramp_c_per_h":
+        channel = channels.get("temperature_c")
+        if channel is None:
+            return None
+        dt, dv = np.diff(channel.t_s), np.diff(channel.v)
+        steep = np.flatnonzero((dt > 0) & (np.abs(dv) > limits.max_ramp_c_per_h / 3600.0 * dt))
+        return float(channel.t_s[steep[0]]) if steep.size else None
+    channel = channels.get("par" if limit == "max_par" else "flow_cm_s")
+    return None if channel is None else _first_above(channel.t_s, channel.v, getattr(limits, limit))
 
 
 # -- baths -----------------------------------------------------------------------------------

@@ -15,6 +15,7 @@ from controller.schedule import (
     bath_conflicts,
     booking_conflicts,
     find_conflicts,
+    format_when,
     load_grid,
     node_demand_w,
     node_loads,
@@ -109,28 +110,37 @@ def test_a_chamber_the_rig_lacks_is_blamed_on_its_place_in_the_protocol(tmp_path
 
 
 @pytest.mark.parametrize(
-    ("group", "needle"),
+    ("group", "needle", "first_h"),
     [
-        (Group(["S1"], temperature=hold(38.0)), "temperature setpoint 38 °C is above"),
-        (Group(["S1"], light=hold(1200.0)), "PAR setpoint reaches 1200"),
-        (Group(["S1"], flow=hold(25.0)), "flow setpoint reaches 25 cm s-1"),
+        (Group(["S1"], temperature=hold(38.0)), "temperature setpoint 38 °C is above", 0.0),
+        (
+            Group(["S1"], temperature=f'{H1}, {{ kind = "ramp", to = 36.0, duration = "8h" }}'),
+            "temperature setpoint 36 °C is above",
+            8.5,  # 20 → 36 °C from 07:00Z at 2 °C/h passes 35 °C at 14:30Z
+        ),
+        (Group(["S1"], light=hold(1200.0)), "PAR setpoint reaches 1200", 0.0),
+        (Group(["S1"], flow=hold(25.0)), "flow setpoint reaches 25 cm s-1", 0.0),
         (
             Group(["S1"], temperature=f'{H1}, {{ kind = "ramp", to = 26.0, duration = "1h" }}'),
             "temperature changes at up to 6 °C/h",
+            1.0,
         ),
     ],
-    ids=["temperature", "par", "flow", "ramp"],
+    ids=["temperature", "crossing", "par", "flow", "ramp"],
 )
 def test_programs_beyond_a_chambers_limits_are_refused_with_the_block_to_blame(
-    tmp_path: Path, group: Group, needle: str
+    tmp_path: Path, group: Group, needle: str, first_h: float
 ) -> None:
     the_rig = rig(write_rig(tmp_path))
     candidate = booking(write_protocol(tmp_path, groups={"a": group}))
     conflicts, _ = find_conflicts(candidate, [], the_rig)
     limits = [c for c in conflicts if c.kind is ConflictKind.CHAMBER_LIMITS]
-    assert limits, conflicts
+    assert len(limits) == 1, conflicts
     assert limits[0].message.startswith("chamber S1: ")
     assert needle in limits[0].message
+    at = START + timedelta(hours=first_h)
+    assert limits[0].at_utc == at
+    assert limits[0].message.endswith(f"; first at {format_when(at, 'Etc/GMT-1')}")
     assert limits[0].field is not None and limits[0].field.startswith("phases.0.groups.a.")
     assert limits[0].time_independent
 
