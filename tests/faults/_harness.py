@@ -182,6 +182,8 @@ class FaultRecord:
         process dies), s.
     wall_s
         Real time the scenario took, s.
+    note
+        Other measured facts worth a line in the table.
     """
 
     fault: str
@@ -195,6 +197,7 @@ class FaultRecord:
     lost_s: float
     lost_bound_s: float
     wall_s: float
+    note: str = ""
 
     def check(self, *, alarm: str | None) -> None:
         """Assert the record: the alarm, the time to safe state, the log.
@@ -319,7 +322,9 @@ def check_log(path: Path, period_s: float) -> LogCheck:
             contiguous &= len(mine) == ticks and bool((mine == first.utc_s.to_numpy()).all())
         # wall time never goes back along the table; clock time restarts with each session
         contiguous &= bool(rows.utc_s.is_monotonic_increasing)
-        for _, session in rows.groupby(pd.cut(rows.seq, _session_edges(path)), observed=True):
+        for _, session in rows.groupby(
+            pd.cut(rows.seq, _session_edges(path), duplicates="drop"), observed=True
+        ):
             contiguous &= bool(session.t_s.is_monotonic_increasing)
         # one tick apart (a real clock's ticks run a little late or early), except for at
         # most one jump forward per resumed session: its gap

@@ -112,8 +112,8 @@ def render(run: dict[str, Any], records: list[FaultRecord]) -> str:
         f"broker {run['broker']}; the whole matrix took {run['wall_s']:.0f} s.",
         "",
         "| Fault | Injected | Expected behaviour | Alarm | Safe after (s) | Bound (s) "
-        "| Log | Lost (s) | Lost bound (s) |",
-        "|---|---|---|---|---|---|---|---|---|",
+        "| Log | Lost (s) | Lost bound (s) | Also measured |",
+        "|---|---|---|---|---|---|---|---|---|---|",
     ]
     for name in ROWS:
         r = by_fault[name]
@@ -122,7 +122,7 @@ def render(run: dict[str, Any], records: list[FaultRecord]) -> str:
             f"| `{r.fault}` | {_cell(r.injected)} | {_cell(r.expected)} "
             f"| {', '.join(f'`{c}`' for c in (r.alarm or '').split(', ') if c) or '–'} "
             f"| {_seconds(r.safe_after_s)} | {_seconds(r.safe_bound_s)} | {log} "
-            f"| {_seconds(r.lost_s)} | {_seconds(r.lost_bound_s)} |"
+            f"| {_seconds(r.lost_s)} | {_seconds(r.lost_bound_s)} | {_cell(r.note) or '–'} |"
         )
     lines += [
         "",
@@ -165,6 +165,7 @@ def run_matrix() -> tuple[dict[str, Any], list[FaultRecord]]:
                 "no:cacheprovider",
                 "--ignore",
                 str(HERE / "test_table.py"),
+                "-rfE",
             ],
             env=env,
             check=False,

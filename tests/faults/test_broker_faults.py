@@ -41,10 +41,11 @@ RUN_S = 9.0
 """Protocol length, s."""
 OUTAGE_S = 2.0
 """How long the broker stays away, s."""
-LATENESS_BOUND_S = 0.1
-"""Largest tick lateness accepted, s: half a tick, room for a shared 2-core machine and the
-run log's fsync per commit. A loop that waited on the network would be late by the whole
-outage or by the publisher's request timeout (2 s)."""
+LATENESS_BOUND_S = 0.2
+"""Largest tick lateness accepted, s: one tick, room for a shared, loaded 2-core machine
+and the run log's fsync per commit (the measured lateness is in the table). A loop that
+waited on the network would be late by the whole outage (2 s) or by the
+publisher's request timeout (2 s)."""
 WAIT_S = 20.0
 """Longest wait for the broker or the watcher, s."""
 
@@ -142,8 +143,8 @@ async def test_a_broker_outage_leaves_the_ticks_on_time_and_telemetry_resumes(
             fault="broker-outage",
             injected=f"the MQTT broker ({broker.kind}) stopped for {OUTAGE_S:g} s mid-run and "
             "started again; control on the real clock with a 0.2 s tick, telemetry on",
-            expected="no tick missed or late by more than half a tick (the loop never waits "
-            "for the network); the run log complete; telemetry reconnects and flows again",
+            expected="no tick missed or late by a tick (the loop never waits for the "
+            "network); the run log complete; telemetry reconnects and flows again",
             alarm=None,
             safe_after_s=None,
             safe_bound_s=None,
@@ -152,6 +153,9 @@ async def test_a_broker_outage_leaves_the_ticks_on_time_and_telemetry_resumes(
             lost_s=max(0, ticks.ticks - log.ticks) * PERIOD_S,
             lost_bound_s=commit_s,
             wall_s=round(RUN_S, 1),
+            note=f"{ticks.ticks} ticks, none missed; tick lateness max "
+            f"{ticks.max_lateness_s * 1e3:.0f} ms, p99 {ticks.p99_lateness_s * 1e3:.0f} ms; "
+            f"{stats.connections} broker sessions, no sample dropped",
         )
     )
     record.check(alarm=None)

@@ -17,6 +17,7 @@ from __future__ import annotations
 import datetime as dt
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import pytest
@@ -116,17 +117,17 @@ def test_wall_clock_jumps_neither_burst_nor_stall_the_ticks(
     s, ticks = out.samples, out.summary.ticks
     start_utc_s = out.run.clock.utc(0.0).timestamp()
     expected_ticks = round(0.5 * 3600.0 / PERIOD_S)
-    record = records.add(
-        out.record(
-            fault="clock-jump",
-            injected="the system wall clock (time.time, datetime.now) jumps +1 h at 600 s and "
-            "-2 h at 1200 s; the monotonic control clock does not",
-            expected="every tick one period after the last (no burst, no stall); logged UTC "
-            "is the start plus control-clock time, never the jumped wall time; no alarm",
-            onset_s=FORWARD_AT_S,
-            safe_bound_s=None,
-        )
+    measured = out.record(
+        fault="clock-jump",
+        injected="the system wall clock (time.time, datetime.now) jumps +1 h at 600 s and "
+        "-2 h at 1200 s; the monotonic control clock does not",
+        expected="every tick one period after the last (no burst, no stall); logged UTC "
+        "is the start plus control-clock time, never the jumped wall time; no alarm",
+        onset_s=FORWARD_AT_S,
+        safe_bound_s=None,
     )
+    note = f"{ticks.ticks} ticks, {ticks.missed} missed, {ticks.late} late"
+    record = records.add(replace(measured, note=note))
     record.check(alarm=None)
     # the wall clock did jump, as the run's own modules see it
     assert seen["modules"] >= 3

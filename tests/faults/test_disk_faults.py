@@ -99,6 +99,7 @@ def test_a_full_disk_costs_log_rows_but_no_tick_and_logging_resumes_with_room(
             lost_s=lost_s,
             # the outage, plus what was not yet committed when it began
             lost_bound_s=FULL_S + COMMIT_S + PERIOD_S,
+            note=f"{summary.rows_lost} rows dropped, all counted; {ticks.missed} ticks missed",
         )
     )
     record.check(alarm=None)

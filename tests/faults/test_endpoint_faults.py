@@ -16,7 +16,7 @@ import asyncio
 import json
 import time
 from collections.abc import Awaitable, Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import pandas as pd
@@ -243,18 +243,19 @@ def test_a_silent_modbus_module_times_out_trips_comm_loss_and_its_watchdog_goes_
     )
     out = run_over_the_wire(tmp_path, faults=[fault])
     watchdog_s = 3 * PERIOD_S  # the [io] default: three control ticks
-    record = records.add(
-        out.record(
-            fault="modbus-timeout",
-            injected=f"the Modbus TCP server leaves B's requests unanswered from 240 s for "
-            f"{silent_s:g} s (the client's timeout expires)",
-            expected="requests time out without stalling the tick; comm-loss trip; the "
-            "module's watchdog drives its safe outputs; set up again and control resumes "
-            "when it answers",
-            safe_bound_s=watchdog_s + PROBE_S,
-            alarm_until_s=ONSET_S + watchdog_s + PROBE_S,
-        )
+    measured = out.record(
+        fault="modbus-timeout",
+        injected=f"the Modbus TCP server leaves B's requests unanswered from 240 s for "
+        f"{silent_s:g} s (the client's timeout expires)",
+        expected="requests time out without stalling the tick; comm-loss trip; the "
+        "module's watchdog drives its safe outputs; set up again and control resumes "
+        "when it answers",
+        safe_bound_s=watchdog_s + PROBE_S,
+        alarm_until_s=ONSET_S + watchdog_s + PROBE_S,
     )
+    ticks = out.summary.ticks
+    note = f"{ticks.missed} ticks missed, max lateness {ticks.max_lateness_s:g} s (virtual)"
+    record = records.add(replace(measured, note=note))
     record.check(alarm="comm-loss, sensor-stale")
     assert out.summary.ticks.missed == 0  # the timeouts never cost a tick
     silent = out.samples[(out.samples.t_s > ONSET_S) & (out.samples.t_s < ONSET_S + silent_s)]
@@ -279,24 +280,28 @@ def test_an_unplugged_optode_adapter_is_reopened_when_it_comes_back(
     out = run_over_the_wire(
         tmp_path, steps=[(ONSET_S, unplug), (ONSET_S + away_s, plug_in)], watch=False
     )
-    record = records.add(
-        out.record(
-            fault="serial-disconnect",
-            injected=f"the optode's serial adapter unplugged at 240 s (pty closed, link "
-            f"removed) and plugged in again {away_s:g} s later on a new pty",
-            expected="oxygen logged as missing while it is away, never a stale value; "
-            "temperature control unaffected, no trip; the port is reopened once it is back",
-            safe_bound_s=None,
-            alarm_until_s=ONSET_S + away_s,
-        )
+    measured = out.record(
+        fault="serial-disconnect",
+        injected=f"the optode's serial adapter unplugged at 240 s (pty closed, link "
+        f"removed) and plugged in again {away_s:g} s later on a new pty",
+        expected="oxygen logged as missing while it is away, never a stale value; "
+        "temperature control unaffected, no trip; the port is reopened once it is back",
+        safe_bound_s=None,
+        alarm_until_s=ONSET_S + away_s,
     )
-    record.check(alarm=None)
     s = out.samples
+    back = s[(s.t_s >= ONSET_S + away_s) & s.o2_umol_l.notna()]
+    note = (
+        "oxygen never back"
+        if back.empty
+        else (f"oxygen logged again {back.t_s.iloc[0] - ONSET_S - away_s:g} s after the replug")
+    )
+    record = records.add(replace(measured, note=note))
+    record.check(alarm=None)
     assert out.summary.ticks.missed == 0
     away = s[(s.t_s >= ONSET_S + OPTODE_PERIOD_S + PERIOD_S) & (s.t_s < ONSET_S + away_s)]
     assert len(away) and away.o2_umol_l.isna().all()
-    back = s[s.t_s >= ONSET_S + away_s]
-    first_back = back[back.o2_umol_l.notna()]
+    first_back = back
     # reopened within the serial transport's longest back-off between open attempts
     # (60 s, its default cap), one measuring period of the optode and one tick
     back_by_s = ONSET_S + away_s + REOPEN_BACKOFF_MAX_S + OPTODE_PERIOD_S + PERIOD_S

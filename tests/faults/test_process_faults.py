@@ -218,6 +218,7 @@ class Deaths:
     """What the scenario measured (times in s)."""
 
     killed: LogCheck
+    reported: int
     kill_lost_s: float
     watchdog_after_s: float
     cut: LogCheck
@@ -275,6 +276,7 @@ def scenario(tmp_path_factory: pytest.TempPathFactory) -> Deaths:
             info = reader.info()
         return Deaths(
             killed=killed,
+            reported=len(made),
             kill_lost_s=unlogged_s(made, killed),
             watchdog_after_s=watchdog_after_s,
             cut=cut,
@@ -316,6 +318,7 @@ def test_sigkill_leaves_the_outputs_to_the_watchdog_and_the_log_whole(
             # the tick queued but not yet written when the kill came (every tick is
             # committed as it is written: the commit interval is shorter than a tick)
             lost_bound_s=max(PERIOD_S, COMMIT_S),
+            note=f"{s.killed.ticks} of the {s.reported} ticks reported were in the log",
             wall_s=round(s.wall_s, 1),
         )
     )
@@ -343,6 +346,7 @@ def test_a_power_cut_tearing_the_last_commit_loses_only_that_commit(
             lost_s=round(s.cut_lost_s, 3),
             # the tick queued when the power went, and the torn commit's tick
             lost_bound_s=2 * max(PERIOD_S, COMMIT_S),
+            note=f"{s.torn_bytes} bytes torn off the write-ahead file; {s.sessions} sessions",
             wall_s=0.0,
         )
     )
