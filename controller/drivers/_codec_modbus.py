@@ -40,12 +40,14 @@ __all__ = [
     "decode_input_bits",
     "decode_inputs",
     "decode_outputs",
+    "decode_relay_word",
     "decode_relays",
     "decode_safe_outputs",
     "encode_contact_status",
     "encode_input_bits",
     "encode_inputs",
     "encode_outputs",
+    "encode_relay_word",
     "encode_relays",
     "encode_safe_outputs",
     "next_watchdog_count",
@@ -102,6 +104,7 @@ POINTS: tuple[Point, ...] = (
     _p("safe_chiller_pct", _HR, 7, _U16, "%", 0.0, 100.0, 0.01, "chiller drive when tripped"),
     _p("safe_lamp_pct", _HR, 8, _U16, "%", 0.0, 100.0, 0.01, "lamp drive when tripped"),
     _p("safe_pump_pct", _HR, 9, _U16, "%", 0.0, 100.0, 0.01, "pump drive when tripped"),
+    _p("relay_bits", _HR, 10, _U16, "bit field", 0, 0x000F, 1.0, "the relay coils, as bits"),
     _p("heater_on", _CO, 0, _BIT, "relay", 0, 1, 1.0, "heater relay closed"),
     _p("chiller_on", _CO, 1, _BIT, "relay", 0, 1, 1.0, "chiller relay closed"),
     _p("lamp_on", _CO, 2, _BIT, "relay", 0, 1, 1.0, "lamp relay closed"),
@@ -457,6 +460,43 @@ def decode_relays(bits: Sequence[object], *, where: str = "relays") -> RelayBits
         Relay states (no unit).
     """
     return RelayBits(**_decode_bits(bits, _RELAY_NAMES, where))
+
+
+def encode_relay_word(relays: RelayBits) -> int:
+    """The ``relay_bits`` word (holding register 10): coil ``i`` in bit ``i``.
+
+    Parameters
+    ----------
+    relays
+        Relay states (no unit).
+
+    Returns
+    -------
+    int
+        The word, 0..15 (no unit).
+    """
+    return sum(1 << i for i, closed in enumerate(encode_relays(relays)) if closed)
+
+
+def decode_relay_word(word: int, *, where: str = "relay_bits") -> RelayBits:
+    """Decode the ``relay_bits`` word (holding register 10) into relay states.
+
+    Parameters
+    ----------
+    word
+        The word, 0..65535 (no unit).
+    where
+        Field-path prefix named in errors (no unit).
+
+    Returns
+    -------
+    RelayBits
+        Relay states (no unit); a bit above 0x8 set is a malformed word (SquallError).
+    """
+    value = check_word(word, where)
+    if value & ~0x000F:
+        raise SquallError(f"reserved relay bits set (0x{value:04X})", field=where)
+    return decode_relays([bool(value >> i & 1) for i in range(len(_RELAY_NAMES))], where=where)
 
 
 def encode_input_bits(inputs: InputBits) -> tuple[bool, ...]:

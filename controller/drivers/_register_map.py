@@ -33,7 +33,8 @@ __all__ = [
 MAX_RUN_BLOCKS = 8
 """Most blocks one request spans: input registers 0..6 of eight neighbouring blocks are
 7 × 16 + 7 = 119 words, within the 125 of one read (Modbus application protocol v1.1b3, 6.4),
-and holding registers 0..5 are 118 words, within the 123 of one write (6.12); count."""
+and holding registers 0..10 are 7 × 16 + 11 = 123 words, the most one write takes (6.12);
+count."""
 
 
 class ChamberBlockConfig(FileModel):

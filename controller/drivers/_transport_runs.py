@@ -6,19 +6,20 @@ Rules of this module
   no gap (:meth:`~controller.drivers.RegisterMap.runs`); a block with no neighbour is a run
   of one. Reads and writes asked for several of its chambers before the exchange starts (the
   control loop reads every chamber concurrently, then writes every chamber concurrently) are
-  joined into one exchange: one read of input registers 0..6 across the run (readings, fault
-  bits and contacts), one write of holding registers 0..5 of every block across the run (the
-  blocks' safe drives and reserved zeros in between), and one coil write when relays need it
-  (``hardware-notes/register-map.md``, "The controller's cyclic exchange").
+  joined into one exchange (``hardware-notes/register-map.md``, "The controller's cyclic
+  exchange"): one read of input registers 0..6 across the run (readings, fault bits and
+  contacts), and one write of holding registers 0..10 of every block across the run (reserved
+  zeros in between): drives, watchdog timeout, a new watchdog count, safe drives and relay
+  bits. Every write thus sets its module up afresh, so a module that lost power (and booted
+  with its watchdog off, every safe drive 0) is whole again after the next tick's write.
 - When a joined exchange fails (a silent module, a module busy with a tripped watchdog), the
   run is exchanged with **block by block**, concurrently (the link queues the requests), so a
   silent module costs its neighbours nothing but the wait; the run is joined again once every
   block has answered. The failed blocks are retried singly in the same exchange while its
   budget lasts. A device that refuses the joined read itself is read block by block for good.
+  A busy module is fed alone, then written again.
 - Every exchange runs under ``budget_s`` and reports, per chamber, a value or the exception
-  that stopped it; callers re-raise their own. A failure leaves the block needing the
-  register map's start-up sequence (:meth:`BlockRun.setup`) before its next write, since a
-  module that lost power boots with its watchdog off and every safe drive 0.
+  that stopped it; callers re-raise their own.
 - ``CancelledError`` is never caught; the exchange itself is shielded from a caller that
   gives up, so its neighbours still get their answer.
 """
@@ -38,7 +39,7 @@ from controller.drivers._codec_modbus import (
     decode_contact_status,
     decode_input_bits,
     decode_inputs,
-    encode_relays,
+    encode_relay_word,
     next_watchdog_count,
     point,
 )
@@ -52,22 +53,19 @@ from controller.drivers._transport_common import (
 from controller.drivers._transport_modbus import ModbusTransport
 from controller.errors import SquallError
 
-__all__ = ["RELAY_REFRESH", "BlockRun", "Readings"]
+__all__ = ["BlockRun", "Readings"]
 
 _log = logging.getLogger(__name__)
-
-RELAY_REFRESH = 10
-"""Relays are rewritten at least every this many writes even when unchanged, count."""
 
 Readings = tuple[InputValues, InputBits]
 """What one read of a block gives: its analog inputs and its contacts."""
 
 _FAILURES = (TransportError, SquallError, TimeoutError)
 _CONTACTS = 3  # discrete inputs 0..2
-_SAFE_OFFSET = point("safe_heater_pct").offset
 _TIMEOUT_OFFSET = point("watchdog_timeout_s").offset
 _COUNTER_OFFSET = point("watchdog_counter").offset
-_GAP_WORDS = BLOCK_SPAN - _SAFE_OFFSET - 4  # reserved holding registers after the safe drives
+_WRITE_WORDS = point("relay_bits").offset + 1  # holding registers 0..10 of a block
+_GAP_WORDS = BLOCK_SPAN - _WRITE_WORDS  # reserved holding registers after them
 _Outcome = dict[str, object]  # per chamber: a value (True for a write) or an exception
 
 
@@ -79,11 +77,7 @@ class _Block:
     base: int
     safe_words: tuple[int, ...]
     count: int = 0
-    needs_setup: bool = True
-    relays: tuple[bool, ...] | None = None
-    """Relay coils as last written, or None when the module's coils are not known."""
-    relay_age: int = 0
-    """Writes since the relays were last written, count."""
+    """The watchdog count last written (count)."""
 
 
 class _Batch:
@@ -168,43 +162,6 @@ class BlockRun:
         """The run's chambers, by ascending address (no unit)."""
         return tuple(b.chamber for b in self._order)
 
-    def needs_setup(self, chamber: str) -> bool:
-        """Whether a chamber's module gets the start-up sequence before its next write.
-
-        Parameters
-        ----------
-        chamber
-            Chamber id (no unit).
-
-        Returns
-        -------
-        bool
-            True after a failure or before the first set-up (no unit).
-        """
-        return self._blocks[chamber].needs_setup
-
-    def fail(self, chamber: str) -> None:
-        """Note that an exchange with a module failed (or was given up by its caller): it is
-        set up again before its next write, and its relays are rewritten.
-
-        Parameters
-        ----------
-        chamber
-            Chamber id (no unit).
-        """
-        b = self._blocks[chamber]
-        b.needs_setup, b.relays = True, None
-
-    def forget_relays(self, chamber: str) -> None:
-        """Mark a module's relays as unknown (its watchdog set them), so they are rewritten.
-
-        Parameters
-        ----------
-        chamber
-            Chamber id (no unit).
-        """
-        self._blocks[chamber].relays = None
-
     async def aclose(self) -> None:
         """Cancel any exchange still running (at shutdown)."""
         for task in list(self._tasks):
@@ -214,7 +171,8 @@ class BlockRun:
     # ------------------------------------------------------------------ set-up
     async def setup(self, chamber: str) -> None:
         """The register map's start-up sequence for one module: read ``watchdog_tripped``,
-        write the safe drives, write the watchdog timeout and a first feed.
+        then write the watchdog timeout, a first feed and the safe drives in one request
+        (holding registers 4..9; drives and relays are left as they are).
 
         Parameters
         ----------
@@ -230,13 +188,9 @@ class BlockRun:
         bits = await self.link.read_discrete_inputs(self.unit_id, b.base, _CONTACTS)
         if decode_input_bits(bits, where=f"{chamber}.contacts").watchdog_tripped:
             _log.warning("%s: module found tripped by its watchdog; re-arming", chamber)
-        await self.link.write_registers(self.unit_id, b.base + _SAFE_OFFSET, b.safe_words)
         b.count = next_watchdog_count(b.count)
-        await self.link.write_registers(
-            self.unit_id, b.base + _TIMEOUT_OFFSET, [self._timeout_word, b.count]
-        )
-        b.needs_setup = False
-        b.relays = None  # a module set up afresh gets its relays written again
+        words = [self._timeout_word, b.count, *b.safe_words]
+        await self.link.write_registers(self.unit_id, b.base + _TIMEOUT_OFFSET, words)
 
     # ------------------------------------------------------------------ joined calls
     async def read(self, chamber: str) -> Readings:
@@ -259,12 +213,12 @@ class BlockRun:
         """
         outcome = await self._joined("read", chamber, ())
         if isinstance(outcome, BaseException):
-            self.fail(chamber)
             raise outcome
         return outcome  # type: ignore[return-value]
 
     async def write(self, chamber: str, drive_words: Sequence[int]) -> None:
-        """Drive one module and feed its watchdog in the run's next joined write.
+        """Drive one module, set its relays, feed its watchdog and set it up, in the run's next
+        joined write.
 
         Parameters
         ----------
@@ -276,11 +230,10 @@ class BlockRun:
         Raises
         ------
         TransportError, SquallError, TimeoutError
-            The module did not take drives, feed and relays within the budget.
+            The module did not take the write within the budget.
         """
         outcome = await self._joined("write", chamber, tuple(drive_words))
         if isinstance(outcome, BaseException):
-            self.fail(chamber)
             raise outcome
 
     async def _joined(self, kind: str, chamber: str, words: tuple[int, ...]) -> object:
@@ -387,11 +340,7 @@ class BlockRun:
 
         try:
             async with asyncio.timeout(self._budget_s):
-                setups: _Outcome = {}
-                await self._each([[b] for b in asked if b.needs_setup], self._setup_group, setups)
-                out.update({c: v for c, v in setups.items() if _failed(v)})
-                ready = [b for b in asked if b.chamber not in out]
-                groups = [[b] for b in ready] if self.split else _neighbours(ready)
+                groups = [[b] for b in asked] if self.split else _neighbours(asked)
                 await self._each(groups, write, out)
                 failed = [b for g in groups if len(g) > 1 for b in g if _failed(out[b.chamber])]
                 if failed:
@@ -403,69 +352,42 @@ class BlockRun:
             pass
         return self._settle(out, asked)
 
-    async def _setup_group(self, group: Sequence[_Block]) -> _Outcome:
-        for b in group:
-            await self.setup(b.chamber)
-        return {b.chamber: True for b in group}
+    def _words(self, b: _Block, drive_words: tuple[int, ...]) -> list[int]:
+        """Holding registers 0..10 of a block, with a new watchdog count."""
+        heater, chiller, lamp, pump = drive_words[:4]
+        relays = RelayBits(heater_on=heater > 0, chiller_on=chiller > 0, lamp_on=lamp > 0,
+                           pump_on=pump > 0)  # closed where the drive is above 0  # fmt: skip
+        b.count = next_watchdog_count(b.count)
+        return [*drive_words, self._timeout_word, b.count, *b.safe_words, encode_relay_word(relays)]
 
     async def _write_group(
         self, group: Sequence[_Block], wanted: Mapping[str, tuple[int, ...]]
     ) -> _Outcome:
-        """Drives and feed, then relays where needed, of neighbouring blocks."""
-        if len(group) == 1:
-            await self._drive(group[0], wanted[group[0].chamber])
-        else:
+        """One write for neighbouring blocks; block by block if one of them is busy."""
+        if len(group) > 1:
             words: list[int] = []
             for i, b in enumerate(group):
-                b.count = next_watchdog_count(b.count)
-                words += [*wanted[b.chamber], self._timeout_word, b.count]
+                words += self._words(b, wanted[b.chamber])
                 if i < len(group) - 1:
-                    words += [*b.safe_words, *[0] * _GAP_WORDS]
+                    words += [0] * _GAP_WORDS
             try:
                 await self.link.write_registers(self.unit_id, group[0].base, words)
+                return {b.chamber: True for b in group}
             except DeviceRefused as exc:
                 if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
                     raise
-                for b in group:  # one of them is tripped: each is fed and driven alone
-                    await self._drive(b, wanted[b.chamber])
-        await self._relays(group, wanted)
+        for b in group:  # alone, or one of them is tripped: each is written by itself
+            await self._write_one(b, wanted[b.chamber])
         return {b.chamber: True for b in group}
 
-    async def _drive(self, b: _Block, drive_words: tuple[int, ...]) -> None:
-        """Holding registers 0..5 of one block; a busy module is fed alone, then driven."""
-        b.count = next_watchdog_count(b.count)
-        words = [*drive_words, self._timeout_word, b.count]
+    async def _write_one(self, b: _Block, drive_words: tuple[int, ...]) -> None:
+        """Holding registers 0..10 of one block; a busy module is fed alone, then written."""
         try:
-            await self.link.write_registers(self.unit_id, b.base, words)
+            await self.link.write_registers(self.unit_id, b.base, self._words(b, drive_words))
         except DeviceRefused as exc:
             if exc.code is not ModbusExceptionCode.DEVICE_BUSY:
                 raise
             _log.warning("%s: watchdog tripped; feeding, then driving again", b.chamber)
-            b.relays = None
             b.count = next_watchdog_count(b.count)
             await self.link.write_registers(self.unit_id, b.base + _COUNTER_OFFSET, [b.count])
-            b.count = next_watchdog_count(b.count)
-            words[-1] = b.count
-            await self.link.write_registers(self.unit_id, b.base, words)
-
-    async def _relays(self, group: Sequence[_Block], wanted: Mapping[str, tuple[int, ...]]) -> None:
-        """Relay coils 0..3 (closed where the drive is above 0) of the group, in one request,
-        when one of them changes, is in doubt, or is due for its refresh."""
-        bits = {}
-        for b in group:
-            heater, chiller, lamp, pump = wanted[b.chamber][:4]
-            relays = RelayBits(heater_on=heater > 0, chiller_on=chiller > 0, lamp_on=lamp > 0,
-                               pump_on=pump > 0)  # fmt: skip
-            bits[b.chamber] = encode_relays(relays)
-            b.relay_age += 1
-        if all(b.relays == bits[b.chamber] and b.relay_age < RELAY_REFRESH for b in group):
-            return
-        coils: list[bool] = []
-        for i, b in enumerate(group):
-            b.relays = None
-            coils += bits[b.chamber]
-            if i < len(group) - 1:
-                coils += [False] * (BLOCK_SPAN - len(bits[b.chamber]))
-        await self.link.write_coils(self.unit_id, group[0].base, coils)
-        for b in group:
-            b.relays, b.relay_age = bits[b.chamber], 0
+            await self.link.write_registers(self.unit_id, b.base, self._words(b, drive_words))

@@ -8,24 +8,23 @@ Rules of this module
 - Modbus: the blocks of every link are grouped into runs of neighbours
   (:class:`~controller.drivers._transport_runs.BlockRun`), and the reads (and writes) the
   loop makes for all chambers at once are joined into one request per run: input registers
-  0..6 (readings, fault bits, contacts) in one read; holding registers 0..5 (drives,
-  watchdog timeout, a new watchdog count: drives and feed arrive together) in one write;
-  relay coils only when they change, when they are in doubt (after a set-up, a failed
-  exchange or a watchdog trip) and at least every tenth write. A run that fails jointly is
-  exchanged with block by block until every block answers again. Links are exchanged with
-  concurrently. The rig's calibration corrections (``[io.corrections]``) are applied to
-  temperature, PAR and flow.
+  0..6 (readings, fault bits, contacts) in one read; holding registers 0..10 (drives,
+  watchdog timeout, a new watchdog count, safe drives, relay bits closed where the drive is
+  above 0) in one write, so drives, relays and feed arrive together and every write sets the
+  module up afresh. A run that fails jointly is exchanged with block by block until every
+  block answers again; a module busy with a tripped watchdog is fed alone, then written
+  again. Links are exchanged with concurrently. The rig's calibration corrections
+  (``[io.corrections]``) are applied to temperature, PAR and flow.
 - The optode is **not** asked during a read: every optode has its own poller in
   :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and a read
   reports the latest measurement. So a slow or silent optode never stalls a tick.
 - Start-up, per module, before ``ready`` is set (register-map's sequence): read
-  ``watchdog_tripped``; write the rig's safe drives to ``safe_*_pct``; write the watchdog
-  timeout and a first feed. Each request is bounded by its link's timeouts, which start when
-  it is sent, not while it waits behind the other modules' requests; a module that fails is
-  tried again after a back-off with jitter, so modules that failed together do not retry in
-  lock-step. The same set-up runs again before the next write whenever an exchange with the
-  module failed, since a module that lost power boots with the watchdog off and every safe
-  drive 0.
+  ``watchdog_tripped``; write the watchdog timeout, a first feed and the rig's safe drives.
+  Each request is bounded by its link's timeouts, which start when it is sent, not while it
+  waits behind the other modules' requests; a module that fails is tried again after a
+  back-off with jitter, so modules that failed together do not retry in lock-step. A module
+  that later loses power (and boots with the watchdog off and every safe drive 0) is whole
+  again after the next write, which carries all of it.
 - Failures never reach the loop as exceptions: a transport error, a timeout or a malformed
   reply (:class:`~controller.errors.SquallError` from a codec) makes the quantities it carried
   stale (``None``, listed in ``failed``) and ``comm_ok`` False, or the write False.
@@ -383,7 +382,6 @@ class HardwareIO:
             async with asyncio.timeout(self._budget_s):
                 inputs, contacts = await run.read(chamber)
         except _STOP_FAILURES as exc:
-            run.fail(chamber)
             self._note(chamber, "modbus", False, exc)
         else:
             self._note(chamber, "modbus", True)
@@ -397,7 +395,6 @@ class HardwareIO:
             failed |= {quantity for key, quantity in _ANALOG if values[key] is None}
             values |= {"level_ok": contacts.level_ok, "e_stop": not contacts.estop_ok}
             if contacts.watchdog_tripped:
-                run.forget_relays(chamber)  # the trip set the relays from the safe drives
                 _log.warning("%s: the module's watchdog holds its outputs safe", chamber)
         comm_ok = inputs is not None
         opt = self._optodes.get(chamber)
@@ -432,7 +429,7 @@ class HardwareIO:
         Returns
         -------
         bool
-            True when the module took drives, feed and relays; False otherwise.
+            True when the module took drives, relays, feed and safe drives; False otherwise.
         """
         run = self._runs[chamber]
         try:
@@ -440,7 +437,6 @@ class HardwareIO:
             async with asyncio.timeout(self._budget_s):
                 await run.write(chamber, drive_words)
         except _STOP_FAILURES as exc:
-            run.fail(chamber)
             self._note(chamber, "modbus", False, exc)
             return False
         self._note(chamber, "modbus", True)

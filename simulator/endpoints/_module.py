@@ -48,6 +48,8 @@ _SAFE_OFFSET = {n: point("safe_" + n).offset for n in _DRIVES}
 _RELAY_OFFSET = {n: point(n.replace("_pct", "_on")).offset for n in _DRIVES}
 _TIMEOUT = point("watchdog_timeout_s")
 _COUNTER = point("watchdog_counter")
+_RELAY_WORD = point("relay_bits")
+_OUTPUT_OFFSETS = _DRIVE_OFFSETS | {_RELAY_WORD.offset}  # refused while tripped
 
 
 class Refusal(enum.IntEnum):
@@ -215,14 +217,19 @@ class IoModule:
         return (*words, encode_contact_status(self._contacts()))
 
     def holding_words(self) -> tuple[int, ...]:
-        """All holding registers of the block (unmapped offsets read 0).
+        """All holding registers of the block (unmapped offsets read 0; ``relay_bits`` reads
+        the relay coils).
 
         Returns
         -------
         tuple of int
             ``BLOCK_SPAN`` words (no unit).
         """
-        return tuple(self._hr)
+        words = list(self._hr)
+        words[_RELAY_WORD.offset] = sum(
+            1 << i for i, name in enumerate(_DRIVES) if self._coils[_RELAY_OFFSET[name]]
+        )
+        return tuple(words)
 
     def coil_bits(self) -> tuple[bool, ...]:
         """All coils of the block (unmapped offsets read open).
@@ -285,7 +292,7 @@ class IoModule:
                 decode_point(p, [word])
             except SquallError:
                 return Refusal.ILLEGAL_VALUE
-        if self._tripped and _DRIVE_OFFSETS.intersection(range(offset, offset + len(words))):
+        if self._tripped and _OUTPUT_OFFSETS.intersection(range(offset, offset + len(words))):
             return Refusal.BUSY
         return None
 
@@ -311,6 +318,10 @@ class IoModule:
         for o, word in enumerate(words, start=offset):
             if o not in _HR_POINTS:
                 continue  # a reserved offset: the 0 written changes nothing
+            if o == _RELAY_WORD.offset:  # the relay coils, as bits
+                for i, name in enumerate(_DRIVES):
+                    self._coils[_RELAY_OFFSET[name]] = bool(word >> i & 1)
+                continue
             if o == _COUNTER.offset and word != self._hr[o]:
                 self._last_feed_s = now
                 self._tripped = False

@@ -22,10 +22,12 @@ from controller.drivers import (
     decode_input_bits,
     decode_inputs,
     decode_outputs,
+    decode_relay_word,
     decode_relays,
     decode_safe_outputs,
     encode_outputs,
     encode_point,
+    encode_relay_word,
     encode_relays,
     encode_safe_outputs,
     next_watchdog_count,
@@ -191,7 +193,26 @@ async def test_reserved_offsets_read_0_and_take_0_so_one_request_spans_a_run(
         assert rack.outputs("c2").chiller_pct == 20.0 and rack.outputs("c2").pump_pct == 35.0
         reply = await client.read_holding_registers(c1.base, count=16, device_id=1)
         assert decode_safe_outputs(reply.registers[6:10]) == safe
-        assert reply.registers[10:] == [0] * 6
+        assert decode_relay_word(reply.registers[10]) == ALL_ON  # relay_bits mirrors the coils
+        assert reply.registers[11:] == [0] * 5
+
+
+async def test_relay_bits_set_the_coils_with_the_drives_in_one_write(
+    rack: Rack, server: RackServer, client: AsyncModbusTcpClient
+) -> None:
+    async with asyncio.timeout(BOUND_S):
+        b = block(server, "c1")
+        out = OutputValues(heater_pct=40, chiller_pct=10, lamp_pct=25, pump_pct=30)
+        some = RelayBits(heater_on=True, chiller_on=False, lamp_on=False, pump_on=True)
+        words = [*encode_outputs(out), 0, 0, 0, 0, 0, 0, encode_relay_word(some)]
+        assert not (await client.write_registers(b.base, words, device_id=1)).isError()
+        assert decode_relays(server.modbus.module("c1").coil_bits()) == some
+        actual = rack.outputs("c1")
+        assert (actual.heater_pct, actual.chiller_pct, actual.lamp_pct) == (40.0, 0.0, 0.0)
+        assert actual.pump_pct == 30.0
+        reserved = await client.write_register(b.address("relay_bits"), 0x10, device_id=1)
+        assert reserved.isError() and reserved.exception_code == 0x03
+        assert decode_relays(server.modbus.module("c1").coil_bits()) == some
 
 
 async def test_low_first_word_order_is_served(rack: Rack) -> None:

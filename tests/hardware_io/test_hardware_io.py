@@ -176,22 +176,25 @@ def test_writes_drive_the_actuators_through_drives_and_relays() -> None:
     virtual(body)
 
 
-def test_unchanged_relays_are_rewritten_only_now_and_then() -> None:
+def test_every_write_carries_drives_relays_feed_and_safe_drives_in_one_request() -> None:
     async def body(clock: VirtualClock) -> None:
         async with bench(clock) as b:
             (link,) = b.io.links.values()
             before = link.requests
             for _ in range(5):
                 assert await b.io.write("c1", DRIVE)
-            assert link.requests - before == 5 + 1  # drives every time, relays once
-            # a relay opened behind the controller's back is closed again by the refresh
+            assert link.requests - before == 5
+            # a relay opened behind the controller's back is closed again by the next write
             assert b.module("c1").write_coils(0, [False]) is None
             assert b.actual("c1").heater_pct == 0.0
-            for _ in range(5):
-                assert await b.io.write("c1", DRIVE)
-            assert b.actual("c1").heater_pct == 0.0  # nine writes since the relays were set
-            assert await b.io.write("c1", DRIVE)  # the tenth rewrites them
-            assert b.actual("c1") == DRIVE and link.requests - before == 11 + 2
+            assert await b.io.write("c1", DRIVE)
+            assert b.actual("c1") == DRIVE
+            # so are safe drives lost behind its back
+            assert b.module("c1").write_holding(9, [0]) is None
+            assert await b.io.write("c1", OFF)
+            words = b.module("c1").holding_words()
+            assert decode_safe_outputs(words[6:10]).pump_pct == SAFE.pump_pct
+            assert b.module("c1").coil_bits()[:4] == (False, False, False, False)
 
     virtual(body)
 
@@ -399,12 +402,13 @@ def test_the_loops_concurrent_reads_and_writes_of_a_run_take_one_request_each() 
             assert all(r.comm_ok and r.temperature_c is not None for r in reads)
             before = link.requests
             assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
-            assert link.requests - before == 2  # drives and feed, then the relays
+            assert link.requests - before == 1  # drives, relays and feed of both
             assert b.actual("c1") == DRIVE and b.actual("c2") == DRIVE
             counters = [b.module(cid).holding_words()[5] for cid in IDS]
             before = link.requests
             assert all(await asyncio.gather(b.io.write("c1", OFF), b.io.write("c2", DRIVE)))
-            assert link.requests - before == 2  # c1's relays open: one coil write for both
+            assert link.requests - before == 1
+            assert b.module("c1").coil_bits()[:4] == (False, False, False, False)
             assert b.actual("c1") == OFF and b.actual("c2") == DRIVE
             assert [b.module(cid).holding_words()[5] for cid in IDS] != counters  # both fed
             # the safe drives carried between the blocks are the ones set up
