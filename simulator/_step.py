@@ -40,12 +40,13 @@ from simulator._params import RackParams
 from simulator._physics import lag_weights, recurrence
 from simulator._science import ZERO_CELSIUS_K, SaturationTable
 
-__all__ = ["Drive", "Stepper", "WaterState", "o2_end_weights"]
+__all__ = ["Drive", "Stepper", "WaterState", "o2_end_weights", "reach_weights"]
 
 F = NDArray[np.float64]
 
 _CACHE_SIZE = 64
 _SETTLED = 1e-9  # a lamp within this of fully warm (or cold) counts as settled
+_SCALED_MIN_POWER = 1e-260  # a_o^n above this: the scaled sums stay normal doubles
 
 
 class WaterState(NamedTuple):
@@ -394,8 +395,8 @@ def o2_end_weights(
     -----
     C_n = a_o^n·C_0 + Σ_j a_o^(n−1−j)·(φ·S_j + (1 − a_o)·C_sat,j) over sub-step starts j. The
     optode end value is e·y_0 + Σ_m W_m·C_m; substituting C_m gives weights
-    V_i = Σ_(m≥i) W_m·a_o^(m−i) on the inputs of step i, computed backwards with
-    ``scipy.signal.lfilter``. As S ≥ −R (respiration term) and C_sat ≥ 0, every C_m ≥
+    V_i = Σ_(m≥i) W_m·a_o^(m−i) on the inputs of step i (:func:`reach_weights`). As
+    S ≥ −R (respiration term) and C_sat ≥ 0, every C_m ≥
     a_o^n·C_0 − φ·Σ_j R_j, which is the bound.
     """
     k = exchange_per_s
@@ -404,10 +405,9 @@ def o2_end_weights(
     keep = np.exp(-kh)
     fresh = -np.expm1(-kh)
     phi = np.where(kh > 0.0, fresh / np.where(kh > 0.0, k, 1.0), h)
-    back = np.exp(-np.arange(n - 1, -1, -1, dtype=float)[None, :] * kh[:, None])  # a_o^(n−1−j)
-    reach = np.empty((chambers, n + 1))  # V_0..V_n
-    for c in range(chambers):
-        reach[c, ::-1] = lfilter([1.0], [1.0, -keep[c]], optode_w[c, ::-1])
+    powers = np.exp(-np.arange(n + 1, dtype=float)[None, :] * kh[:, None])  # a_o^m, m = 0..n
+    back = powers[:, n - 1 :: -1]  # a_o^(n−1−j)
+    reach = reach_weights(optode_w, keep, powers)  # V_0..V_n
     out = np.zeros((3, chambers, 3 * n + 2))
     out[0, :, :n] = phi[:, None] * back
     out[0, :, n : 2 * n] = -out[0, :, :n]
@@ -421,3 +421,37 @@ def o2_end_weights(
     out[2, :, n : 2 * n] = -phi[:, None]
     out[2, :, 3 * n] = np.exp(-n * kh)
     return out, keep, phi
+
+
+def reach_weights(weights: F, keep: F, powers: F) -> F:
+    """Backward sums V_i = Σ_(m≥i) W_m·a^(m−i), i = 0..n, of every chamber at once.
+
+    Parameters
+    ----------
+    weights
+        W_0..W_n of each chamber, ≥ 0, dimensionless, shape ``(N, n + 1)``.
+    keep
+        a = e^(−k·h) of each chamber, dimensionless, shape ``(N,)``.
+    powers
+        a^m for m = 0..n of each chamber, dimensionless, shape ``(N, n + 1)``.
+
+    Returns
+    -------
+    numpy.ndarray
+        V_0..V_n, dimensionless, shape ``(N, n + 1)``.
+
+    Notes
+    -----
+    V_i = a^(−i)·Σ_(m≥i) W_m·a^m: one reversed cumulative sum over all chambers. Every term
+    is ≥ 0, so its rounding error stays within n·ε of V_i; where a^n would leave the normal
+    range of doubles (a^n ≤ 1e-260) the recurrence V_i = W_i + a·V_(i+1) is run instead
+    (``scipy.signal.lfilter``, one chamber at a time).
+    """
+    if float(powers[:, -1].min(initial=1.0)) > _SCALED_MIN_POWER:
+        scaled = weights * powers
+        total = np.cumsum(scaled[:, ::-1], axis=1)[:, ::-1]
+        return np.asarray(total / powers, dtype=float)
+    reach = np.empty_like(weights)
+    for c in range(len(keep)):
+        reach[c, ::-1] = lfilter([1.0], [1.0, -keep[c]], weights[c, ::-1])
+    return reach
