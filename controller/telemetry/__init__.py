@@ -6,6 +6,7 @@ Topic layout (under a prefix, default ``squall``; ids are single topic levels)::
     <prefix>/<controller>/chamber/<chamber>/sample      QoS 0: the run log's SampleRow
     <prefix>/<controller>/alarm                         QoS 1: the run log's AlarmRecord
     <prefix>/<controller>/event                         QoS 1: the run log's EventRecord
+    <prefix>/<controller>/tasks                         retained, QoS 1: TaskList
     <prefix>/<controller>/cmd                           in, QoS 1: RemoteCommand (off by default)
     <prefix>/<controller>/cmd/result                    QoS 1: CommandResult
 
@@ -55,17 +56,16 @@ if TYPE_CHECKING:
         ControllerStatus,
         PayloadError,
         RemoteCommand,
+        TaskInfo,
+        TaskList,
         decode_model,
         decode_record,
         encode_model,
         encode_record,
+        task_list,
     )
-    from controller.telemetry._publisher import (
-        PublisherStats,
-        TelemetryPublisher,
-        TelemetrySink,
-        TickLike,
-    )
+    from controller.telemetry._publisher import TelemetryPublisher
+    from controller.telemetry._publisher_types import PublisherStats, TelemetrySink, TickLike
     from controller.telemetry._topics import (
         DEFAULT_PREFIX,
         ID_PATTERN,
@@ -82,6 +82,7 @@ if TYPE_CHECKING:
         EventUpdate,
         SampleUpdate,
         StatusUpdate,
+        TasksUpdate,
         TelemetryUpdate,
         TelemetryWatcher,
     )
@@ -110,17 +111,20 @@ _NAMES = {
     "PREFIX_PATTERN": "_topics",
     "ParsedTopic": "_topics",
     "PayloadError": "_payloads",
-    "PublisherStats": "_publisher",
+    "PublisherStats": "_publisher_types",
     "RemoteCommand": "_payloads",
     "SampleUpdate": "_watcher",
     "StatusUpdate": "_watcher",
+    "TaskInfo": "_payloads",
+    "TaskList": "_payloads",
+    "TasksUpdate": "_watcher",
     "TelemetryBuffer": "_buffer",
     "TelemetryConfig": "_config",
     "TelemetryPublisher": "_publisher",
-    "TelemetrySink": "_publisher",
+    "TelemetrySink": "_publisher_types",
     "TelemetryUpdate": "_watcher",
     "TelemetryWatcher": "_watcher",
-    "TickLike": "_publisher",
+    "TickLike": "_publisher_types",
     "TlsConfig": "_config",
     "TopicKind": "_topics",
     "Topics": "_topics",
@@ -130,6 +134,7 @@ _NAMES = {
     "encode_model": "_payloads",
     "encode_record": "_payloads",
     "make_client": "_connect",
+    "task_list": "_payloads",
 }
 
 __getattr__, __dir__ = lazy_exports(__name__, _NAMES)
@@ -162,6 +167,9 @@ __all__ = [
     "RemoteCommand",
     "SampleUpdate",
     "StatusUpdate",
+    "TaskInfo",
+    "TaskList",
+    "TasksUpdate",
     "TelemetryBuffer",
     "TelemetryConfig",
     "TelemetryPublisher",
@@ -178,4 +186,5 @@ __all__ = [
     "encode_model",
     "encode_record",
     "make_client",
+    "task_list",
 ]

@@ -23,6 +23,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+from collections.abc import Sequence
 from datetime import UTC, datetime
 from enum import StrEnum
 from typing import Annotated, Any, Literal, TypeVar
@@ -56,10 +57,13 @@ __all__ = [
     "ControllerStatus",
     "PayloadError",
     "RemoteCommand",
+    "TaskInfo",
+    "TaskList",
     "decode_model",
     "decode_record",
     "encode_model",
     "encode_record",
+    "task_list",
 ]
 
 #: Version of every payload schema, dimensionless.
@@ -185,6 +189,86 @@ class CommandResult(BaseModel):
     accepted: bool = Field(description="Whether the command was carried out.")
     reason: str = Field("", description="Why it was refused; empty when accepted.")
     utc_s: float | None = Field(None, description="When the controller answered, UTC POSIX s.")
+
+
+class TaskInfo(BaseModel):
+    """One operator task of a run (an entry of :class:`TaskList`)."""
+
+    model_config = ConfigDict(frozen=True, extra="ignore")
+
+    uid: str = Field(min_length=1, max_length=128, description="Stable id: the same task keeps it.")
+    kind: str = Field(
+        min_length=1,
+        max_length=32,
+        description="sampling, calibration, maintenance, daily-check, run-start or run-end.",
+    )
+    title: str = Field(max_length=500, description="What to do, in one line.")
+    start_utc_s: float = Field(description="When it starts, UTC POSIX s.")
+    start: str = Field("", description="The same as ISO 8601 UTC, for people.")
+    minutes: float = Field(ge=0, description="Time set aside, minutes.")
+    chambers: tuple[str, ...] = Field((), description="Chambers concerned.")
+    experiment_id: str | None = Field(None, description="Scheduled experiment, if any.")
+    detail: str = Field("", max_length=2000, description="What, why and which procedure.")
+
+
+class TaskList(BaseModel):
+    """A run's operator tasks (topic ``<prefix>/<controller>/tasks``, retained)."""
+
+    model_config = ConfigDict(frozen=True, extra="ignore")
+
+    v: Literal[1] = Field(PAYLOAD_VERSION, description="Payload version, dimensionless.")
+    controller: str = Field(pattern=ID_PATTERN, description="Controller id.")
+    run_id: str | None = Field(None, description="Run the tasks belong to.")
+    utc_s: float | None = Field(None, description="When the list was published, UTC POSIX s.")
+    tasks: tuple[TaskInfo, ...] = Field(
+        (), description="Tasks still to come, by start time; empty once the run has ended."
+    )
+    more: int = Field(
+        0, ge=0, description="Later tasks left out to keep the payload small, dimensionless."
+    )
+
+
+def task_list(
+    controller: str,
+    run_id: str | None,
+    tasks: Sequence[TaskInfo],
+    utc_s: float,
+    *,
+    limit: int = MAX_PAYLOAD_BYTES,
+) -> TaskList:
+    """The task list to publish: the tasks not yet over at ``utc_s``, as many as fit.
+
+    Parameters
+    ----------
+    controller
+        Controller id.
+    run_id
+        The run's id.
+    tasks
+        Every task of the run, by start time.
+    utc_s
+        Now, UTC POSIX s (tasks that ended before are left out).
+    limit
+        Largest payload, bytes; the latest tasks are left out (and counted) beyond it.
+
+    Returns
+    -------
+    TaskList
+        The list, its size within ``limit``.
+    """
+    coming = [t for t in tasks if t.start_utc_s + 60.0 * t.minutes > utc_s]
+    keep = len(coming)
+    while True:
+        listed = TaskList(
+            controller=controller,
+            run_id=run_id,
+            utc_s=utc_s,
+            tasks=tuple(coming[:keep]),
+            more=len(coming) - keep,
+        )
+        if keep == 0 or len(encode_model(listed)) <= limit:
+            return listed
+        keep = keep * 3 // 4
 
 
 # ---------------------------------------------------------------------------- helpers
@@ -364,7 +448,9 @@ def decode_model(
     PayloadError
         Bad JSON, another version, or a field that does not validate (the first one named).
     """
-    what = {ControllerStatus: "status", RemoteCommand: "command"}.get(model, "command result")
+    what = {ControllerStatus: "status", RemoteCommand: "command", TaskList: "task list"}.get(
+        model, "command result"
+    )
     data = _load_object(payload, what, limit)
     try:
         return model.model_validate(data)

@@ -12,6 +12,9 @@ Rules of this module
   :meth:`describe_run` adds what the records do not carry (run id, protocol, duration).
   Status is retained, published on connection, on every change of state or phase, when
   the drop counters moved, and at least every ``status_interval_s``.
+- Operator tasks (:meth:`describe_tasks`): a retained list of the run's tasks still to
+  come, published on connection and whenever the list changes (tasks that are over drop out
+  at the next status), and emptied by a clean stop.
 - Broker loss: the session ends, the record being published goes back to the head of its
   lane, and the task reconnects after a back-off that doubles from ``reconnect_min_s`` to
   ``reconnect_max_s`` (with a jitter of ±20 % seeded by the controller id, so a rack of
@@ -36,10 +39,8 @@ import asyncio
 import logging
 import random
 from collections.abc import Sequence
-from dataclasses import dataclass
-from datetime import datetime
 from pathlib import Path
-from typing import Any, Protocol
+from typing import Any
 
 import aiomqtt
 
@@ -54,8 +55,19 @@ from controller.telemetry._payloads import (
     CommandResult,
     ControllerState,
     ControllerStatus,
+    TaskInfo,
+    TaskList,
     encode_model,
     encode_record,
+    task_list,
+)
+from controller.telemetry._publisher_types import (
+    Offered,
+    PublisherStats,
+    TelemetrySink,
+    TickLike,
+    first_mqtt_error,
+    payload_bytes,
 )
 from controller.telemetry._topics import Topics
 
@@ -68,8 +80,6 @@ __all__ = [
 
 _log = logging.getLogger(__name__)
 
-Offered = SampleRow | Sequence[SampleRow] | AlarmRecord | EventRecord
-
 _STATES = {
     EventKind.RUN_START: ControllerState.RUNNING,
     EventKind.HOLD: ControllerState.HELD,
@@ -78,94 +88,6 @@ _STATES = {
     EventKind.ABORT: ControllerState.ABORTED,
 }
 _ENDED = (ControllerState.FINISHED, ControllerState.ABORTED)
-
-
-class TelemetrySink(Protocol):
-    """What the control loop feeds: anything with a non-blocking ``offer``."""
-
-    def offer(self, item: Offered) -> None:
-        """Take one tick's sample rows, one sample row, an alarm or an event; never block."""
-        ...
-
-
-class TickLike(Protocol):
-    """The fields of a tick report :meth:`TelemetryPublisher.on_tick` reads (the runtime's
-    ``TickStatus`` fits)."""
-
-    @property
-    def elapsed_s(self) -> float:
-        """Protocol time, s."""
-        ...
-
-    @property
-    def duration_s(self) -> float:
-        """Protocol length, s."""
-        ...
-
-    @property
-    def phase(self) -> str:
-        """Phase in force."""
-        ...
-
-    @property
-    def utc(self) -> datetime:
-        """Wall time of the tick, aware UTC."""
-        ...
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class PublisherStats:
-    """Counters of a :class:`TelemetryPublisher`.
-
-    Attributes
-    ----------
-    connected
-        Whether a broker session is up.
-    connections
-        Sessions established so far, dimensionless.
-    published
-        Records published (samples, alarms, events), dimensionless.
-    statuses
-        Status messages published, dimensionless.
-    samples_queued, records_queued
-        Records waiting in the buffer, dimensionless.
-    samples_dropped, records_dropped
-        Records the buffer dropped, dimensionless.
-    commands_accepted, commands_refused
-        Remote commands carried out and refused, dimensionless.
-    last_error
-        The last connection problem, or empty.
-    """
-
-    connected: bool
-    connections: int
-    published: int
-    statuses: int
-    samples_queued: int
-    records_queued: int
-    samples_dropped: int
-    records_dropped: int
-    commands_accepted: int
-    commands_refused: int
-    last_error: str
-
-
-def _payload_bytes(payload: Any) -> bytes:
-    if isinstance(payload, bytes | bytearray):
-        return bytes(payload)
-    if isinstance(payload, str):
-        return payload.encode()
-    return b"" if payload is None else str(payload).encode()
-
-
-def _flatten(error: BaseException) -> BaseException:
-    """The first MQTT error inside an exception group, else ``error`` itself."""
-    if isinstance(error, BaseExceptionGroup):
-        for inner in error.exceptions:
-            found = _flatten(inner)
-            if isinstance(found, aiomqtt.MqttError):
-                return found
-    return error
 
 
 class TelemetryPublisher:
@@ -222,6 +144,9 @@ class TelemetryPublisher:
         self._status_dirty = True
         self._last_status_s: float | None = None
         self._last_drops = (0, 0)
+        # operator tasks: every task of the run, and the list last published
+        self._tasks: tuple[TaskInfo, ...] | None = None
+        self._tasks_sent: TaskList | None = None
         # counters
         self._connections = 0
         self._published = 0
@@ -332,6 +257,39 @@ class TelemetryPublisher:
         self._status_dirty = True
         self._wake.set()
 
+    def describe_tasks(self, tasks: Sequence[TaskInfo]) -> None:
+        """Publish the run's operator tasks (retained); call when the run starts.
+
+        Parameters
+        ----------
+        tasks
+            Every task of the run, by start time; those that are over are left out when
+            published.
+        """
+        self._tasks = tuple(tasks)
+        self._tasks_sent = None
+        self._status_dirty = True  # published with the next status
+        self._wake.set()
+
+    def task_list(self, *, ended: bool = False) -> TaskList | None:
+        """The task list as it would be published now (None without tasks).
+
+        Parameters
+        ----------
+        ended
+            True for the empty list a clean stop leaves.
+
+        Returns
+        -------
+        TaskList or None
+            The tasks not yet over, as many as fit in one payload.
+        """
+        if self._tasks is None:
+            return None
+        tasks = () if ended else self._tasks
+        run_id = self._run.get("run_id")
+        return task_list(self.controller_id, run_id, tasks, self.clock.utc().timestamp())
+
     def on_tick(self, status: TickLike) -> None:
         """Progress callback of the control loop (``ControlLoop(progress=...)``).
 
@@ -436,7 +394,7 @@ class TelemetryPublisher:
             try:
                 await session
             except Exception as exc:
-                self._problem(_flatten(exc))
+                self._problem(first_mqtt_error(exc))
             finally:
                 self._connected.clear()
             if self._connections > before:
@@ -493,6 +451,7 @@ class TelemetryPublisher:
             await client.subscribe(self.topics.command(self.controller_id), qos=1)
             raise_if_cancelling()
             self._status_dirty = True
+            self._tasks_sent = None  # a new session republishes the task list
             self._connected.set()
             try:
                 async with asyncio.TaskGroup() as group:
@@ -511,6 +470,19 @@ class TelemetryPublisher:
             self.topics.status(self.controller_id), encode_model(status), qos=1, retain=True
         )
         self._statuses += 1
+
+    async def _publish_tasks(self, client: aiomqtt.Client, *, ended: bool = False) -> None:
+        """Publish the task list when it differs from the one last published."""
+        listed = self.task_list(ended=ended)
+        if listed is None:
+            return
+        sent = self._tasks_sent
+        if sent is not None and sent.tasks == listed.tasks and sent.more == listed.more:
+            return
+        await client.publish(
+            self.topics.tasks(self.controller_id), encode_model(listed), qos=1, retain=True
+        )
+        self._tasks_sent = listed
 
     def _status_due(self) -> bool:
         if self._status_dirty or self._last_status_s is None:
@@ -550,6 +522,7 @@ class TelemetryPublisher:
             raise_if_cancelling()
             if self._status_due():
                 await self._publish_status(client)
+                await self._publish_tasks(client)
             if await self._publish_record(client):
                 continue
             self._wake.clear()
@@ -569,6 +542,7 @@ class TelemetryPublisher:
             async with asyncio.timeout(self.config.timeout_s):
                 while await self._publish_record(client):
                     pass
+                await self._publish_tasks(client, ended=True)
                 await self._publish_status(client, online=False)
         except (TimeoutError, aiomqtt.MqttError) as exc:
             _log.warning("telemetry: stopped before everything was published: %s", exc)
@@ -581,7 +555,7 @@ class TelemetryPublisher:
             raise_if_cancelling()
             if message.topic.value != command_topic:
                 continue
-            outcome = self.handle_command(_payload_bytes(message.payload))
+            outcome = self.handle_command(payload_bytes(message.payload))
             result = CommandResult(
                 id=outcome.request_id,
                 user=outcome.user,

@@ -13,6 +13,7 @@ Rules of this module
   ``<prefix>/<controller>/chamber/<chamber>/sample``    out        0 (1)    no
   ``<prefix>/<controller>/alarm``                       out        1        no
   ``<prefix>/<controller>/event``                       out        1        no
+  ``<prefix>/<controller>/tasks``                       out        1        yes
   ``<prefix>/<controller>/cmd``                         in         1        no
   ``<prefix>/<controller>/cmd/result``                  out        1        no
   ====================================================  =========  =======  =========
@@ -62,6 +63,8 @@ class TopicKind(StrEnum):
     """An alarm raised, cleared or acknowledged."""
     EVENT = "event"
     """A run event (start, phase change, hold, stop...)."""
+    TASKS = "tasks"
+    """Retained list of the run's operator tasks still to come."""
     COMMAND = "cmd"
     """A remote command sent to the controller."""
     COMMAND_RESULT = "cmd/result"
@@ -200,6 +203,21 @@ class Topics:
             The topic.
         """
         return self._of(controller, TopicKind.EVENT)
+
+    def tasks(self, controller: str) -> str:
+        """Retained topic of a controller's operator tasks.
+
+        Parameters
+        ----------
+        controller
+            Controller id.
+
+        Returns
+        -------
+        str
+            The topic.
+        """
+        return self._of(controller, TopicKind.TASKS)
 
     def command(self, controller: str) -> str:
         """Topic a controller takes remote commands from.

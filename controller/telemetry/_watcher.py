@@ -4,7 +4,7 @@ Rules of this module
 --------------------
 - :class:`TelemetryWatcher` subscribes to ``<prefix>/+/#`` (or to the named controllers only)
   and turns every message into one typed update: :class:`StatusUpdate`,
-  :class:`SampleUpdate`, :class:`AlarmUpdate`, :class:`EventUpdate` or
+  :class:`SampleUpdate`, :class:`AlarmUpdate`, :class:`EventUpdate`, :class:`TasksUpdate` or
   :class:`CommandResultUpdate`; :class:`ConnectionUpdate` reports the broker coming and
   going. A consumer (the terminal UI's bridge task) does::
 
@@ -22,7 +22,7 @@ Rules of this module
   later ones at debug level, and all are counted in :attr:`TelemetryWatcher.rejected`.
 - Updates wait in a bounded queue. When the consumer falls behind by ``max_pending``
   updates, new *sample* updates are dropped (counted in :attr:`TelemetryWatcher.dropped`);
-  statuses, alarms, events and command results are always kept.
+  statuses, alarms, events, task lists and command results are always kept.
 - :attr:`TelemetryWatcher.statuses` and :attr:`TelemetryWatcher.samples` keep the latest
   status per controller and the latest sample per (controller, chamber), for a view that
   starts late or redraws from scratch.
@@ -52,6 +52,7 @@ from controller.telemetry._payloads import (
     ControllerStatus,
     PayloadError,
     RemoteCommand,
+    TaskList,
     decode_model,
     decode_record,
     encode_model,
@@ -65,6 +66,7 @@ __all__ = [
     "EventUpdate",
     "SampleUpdate",
     "StatusUpdate",
+    "TasksUpdate",
     "TelemetryUpdate",
     "TelemetryWatcher",
 ]
@@ -121,6 +123,14 @@ class EventUpdate:
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
+class TasksUpdate:
+    """A controller's retained list of operator tasks (empty once its run has ended)."""
+
+    controller: str
+    tasks: TaskList
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
 class CommandResultUpdate:
     """A controller's answer to a remote command."""
 
@@ -129,7 +139,13 @@ class CommandResultUpdate:
 
 
 TelemetryUpdate = (
-    ConnectionUpdate | StatusUpdate | SampleUpdate | AlarmUpdate | EventUpdate | CommandResultUpdate
+    ConnectionUpdate
+    | StatusUpdate
+    | SampleUpdate
+    | AlarmUpdate
+    | EventUpdate
+    | TasksUpdate
+    | CommandResultUpdate
 )
 
 
@@ -205,6 +221,8 @@ class TelemetryWatcher:
         """Latest status per controller."""
         self.samples: dict[tuple[str, str], SampleRow] = {}
         """Latest sample per (controller, chamber)."""
+        self.tasks: dict[str, TaskList] = {}
+        """Latest task list per controller."""
         self.rejected = 0
         """Messages refused (bad payload, topic and payload disagreeing), dimensionless."""
         self.dropped = 0
@@ -372,6 +390,12 @@ class TelemetryWatcher:
                 return AlarmUpdate(controller=cid, alarm=decode_record(payload, AlarmRecord))
             if parsed.kind is TopicKind.EVENT:
                 return EventUpdate(controller=cid, event=decode_record(payload, EventRecord))
+            if parsed.kind is TopicKind.TASKS:
+                listed = decode_model(payload, TaskList)
+                if listed.controller != cid:
+                    raise PayloadError(f"tasks of {listed.controller!r} on {cid!r}'s topic")
+                self.tasks[cid] = listed
+                return TasksUpdate(controller=cid, tasks=listed)
             result = decode_model(payload, CommandResult)
             return CommandResultUpdate(controller=cid, result=result)
         except PayloadError as exc:
