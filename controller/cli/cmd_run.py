@@ -300,6 +300,9 @@ def _telemetry(
         notice=notice,
     )
     if link is not None:
+        from controller.runtime._telemetry_link import run_tasks
+
+        link.publish_tasks(run_tasks(run.inputs))
         console.print(
             f"telemetry: publishing as {config.controller_id} to {config.address}",
             highlight=False,

@@ -18,6 +18,11 @@ Rules of this module
   trail of what reached them (carried out or refused); a command the gate refused before
   (disabled, user not allowed, malformed) is audited here, so every message on the command
   topic leaves one audit record.
+- Operator tasks: :func:`run_tasks` derives the run's tasks (sampling, calibrations,
+  cleaning, daily checks, start and end; ``tasks_for_run`` of :mod:`controller.schedule`) and
+  :meth:`TelemetryLink.publish_tasks` hands them to the publisher, which keeps them retained
+  on ``<prefix>/<controller>/tasks``. A protocol or rig the tasks cannot be derived from
+  is logged and publishes no tasks; it never stops the run.
 - Publishing needs a paced clock (real time, or a simulation at ``--speed N``): a simulated
   run as fast as possible jumps its clock over the broker's answers, so
   :func:`telemetry_link` says why it does not publish (:data:`NEEDS_PACE`) and the run goes
@@ -29,23 +34,35 @@ from __future__ import annotations
 import asyncio
 import logging
 from collections.abc import Awaitable, Callable, Sequence
+from datetime import UTC
 from pathlib import Path
 from typing import TYPE_CHECKING, TypeVar
 
 from controller.clock import Clock
+from controller.errors import SquallError
 from controller.runtime._ctl_server import loop_audit
+from controller.runtime._inputs import RunInputs
 from controller.runtime._loop import ControlLoop, TickStatus
 from controller.runtime._operator import OperatorError
 
 if TYPE_CHECKING:
+    from controller.schedule._tasks import OperatorTask
     from controller.telemetry import (
         CommandOutcome,
         RemoteCommand,
+        TaskInfo,
         TelemetryConfig,
         TelemetryPublisher,
     )
 
-__all__ = ["NEEDS_PACE", "REMOTE_USER_PREFIX", "TelemetryLink", "telemetry_link"]
+__all__ = [
+    "NEEDS_PACE",
+    "REMOTE_USER_PREFIX",
+    "TelemetryLink",
+    "run_tasks",
+    "task_infos",
+    "telemetry_link",
+]
 
 _log = logging.getLogger(__name__)
 
@@ -192,6 +209,16 @@ class TelemetryLink:
 
         return runner
 
+    def publish_tasks(self, tasks: Sequence[OperatorTask]) -> None:
+        """Keep the run's operator tasks retained on the broker.
+
+        Parameters
+        ----------
+        tasks
+            Every task of the run, by start time (those already over are left out).
+        """
+        self.publisher.describe_tasks(task_infos(tasks))
+
     # ------------------------------------------------------------------ commands
     def _execute(self, command: RemoteCommand) -> str | None:
         """Carry out an accepted command on the loop's hooks; why it was refused, or None."""
@@ -297,3 +324,64 @@ def telemetry_link(
         period_s=period_s,
         base_dir=base_dir,
     )
+
+
+def task_infos(tasks: Sequence[OperatorTask]) -> list[TaskInfo]:
+    """Operator tasks as telemetry payload entries.
+
+    Parameters
+    ----------
+    tasks
+        The tasks (start times aware UTC, lengths in minutes).
+
+    Returns
+    -------
+    list of TaskInfo
+        One entry per task, in the same order; start as POSIX s and ISO 8601 UTC.
+    """
+    from controller.telemetry import TaskInfo
+
+    return [
+        TaskInfo(
+            uid=t.uid,
+            kind=str(t.kind),
+            title=t.title,
+            start_utc_s=t.start_utc.timestamp(),
+            start=t.start_utc.astimezone(UTC).isoformat().replace("+00:00", "Z"),
+            minutes=t.minutes,
+            chambers=t.chambers,
+            experiment_id=t.experiment_id,
+            detail=t.detail,
+        )
+        for t in tasks
+    ]
+
+
+def run_tasks(inputs: RunInputs, *, experiment_id: str | None = None) -> list[OperatorTask]:
+    """The operator tasks of a run (empty, with a warning, when they cannot be derived).
+
+    Parameters
+    ----------
+    inputs
+        The run's protocol and rig (its compiled start is the tasks' start).
+    experiment_id
+        The scheduled experiment, if the run is one.
+
+    Returns
+    -------
+    list of OperatorTask
+        By start time.
+    """
+    from controller.files import parse_toml, validate_data
+    from controller.protocol import Protocol
+    from controller.schedule._tasks import tasks_for_run
+
+    text, file = inputs.protocol_text, inputs.protocol_path
+    try:
+        protocol = validate_data(parse_toml(text, file=file), Protocol, text=text, file=file)
+        return tasks_for_run(
+            protocol, inputs.rig, inputs.compiled.start_utc, experiment_id=experiment_id
+        )
+    except SquallError as exc:
+        _log.warning("telemetry: the run's operator tasks are not published: %s", exc.one_line())
+        return []
