@@ -152,7 +152,8 @@ class SimController:
         self.started = threading.Event()
         self._aio: asyncio.AbstractEventLoop | None = None
         self._loop: ControlLoop | None = None
-        self._thread = threading.Thread(target=self._main, name=controller_id, daemon=True)
+        self._task: asyncio.Task[object] | None = None
+        self._thread = threading.Thread(target=self._body, name=controller_id, daemon=True)
 
     # ------------------------------------------------------------------ thread
     def _progress(self, status: TickStatus) -> None:
@@ -160,9 +161,10 @@ class SimController:
         offset_s = utc_s - RUN_START.timestamp() - status.tick * self.period_s
         self.ticks.append(Tick(time.monotonic(), status.tick, offset_s, utc_s))
 
-    def _main(self) -> None:
+    def _body(self) -> None:
         def runner(loop: ControlLoop) -> Awaitable[RunSummary]:
             self._aio = asyncio.get_running_loop()
+            self._task = asyncio.current_task()
             self._loop = loop
             self.started.set()
             return self.link.runner()(loop)
@@ -179,19 +181,39 @@ class SimController:
         self._thread.start()
 
     def abort(self, user: str = "test") -> None:
-        """Abort the run through its operator hook, in the run's own event loop."""
-        if self._aio is not None and self._loop is not None and self._thread.is_alive():
-            loop = self._loop
-            self._aio.call_soon_threadsafe(lambda: _quiet_abort(loop, user))
+        """Abort the run through its operator hook, in the run's own event loop; a run
+        that cannot take an abort yet (still starting) is cancelled instead."""
+        aio, loop, main = self._aio, self._loop, self._task
+        if aio is None or loop is None or main is None or not self._thread.is_alive():
+            return
 
-    def join(self, timeout_s: float = 30.0) -> RunSummary:
-        """Wait for the run's end; return its summary (re-raising what ended it)."""
+        def stop() -> None:
+            try:
+                loop.abort(user)
+            except OperatorError:  # stopping or ended already: leave it; starting: cancel
+                if loop.status()["state"] == "starting":
+                    main.cancel()  # the shutdown path still makes every chamber safe
+
+        with contextlib.suppress(RuntimeError):  # its event loop closed meanwhile
+            aio.call_soon_threadsafe(stop)
+
+    def join(self, timeout_s: float = 30.0) -> RunSummary | None:
+        """Wait for the run's end; its summary, or None when it was cancelled.
+
+        Raises
+        ------
+        AssertionError
+            The run did not end in time.
+        Exception
+            What else ended the run.
+        """
         self._thread.join(timeout_s)
         if self._thread.is_alive():
             raise AssertionError(f"{self.controller_id} did not stop within {timeout_s} s")
+        if isinstance(self.error, asyncio.CancelledError):
+            return None
         if self.error is not None:
             raise self.error
-        assert self.summary is not None
         return self.summary
 
     def lateness_s(self, since_s: float = -1.0, until_s: float = float("inf")) -> list[float]:
@@ -205,8 +227,3 @@ class SimController:
             return []
         base = min(t.offset_s for t in ticks)
         return [(t.offset_s - base) / self.speed for t in ticks if since_s <= t.real_s < until_s]
-
-
-def _quiet_abort(loop: ControlLoop, user: str) -> None:
-    with contextlib.suppress(OperatorError):  # already stopping or finished
-        loop.abort(user)

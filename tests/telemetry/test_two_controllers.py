@@ -130,7 +130,7 @@ async def test_one_watch_sees_two_controllers_through_a_broker_restart(
     finally:
         for c in controllers:
             c.abort()
-    assert all(s.end_reason is RunEndReason.ABORTED for s in summaries)
+    assert all(s is not None and s.end_reason is RunEndReason.ABORTED for s in summaries)
 
     # the control loops kept their rhythm whatever the broker did (real-time lateness, s)
     for c in controllers:
