@@ -12,12 +12,15 @@ Rules of this module
   zeros in between): drives, watchdog timeout, a new watchdog count, safe drives and relay
   bits. Every write thus sets its module up afresh, so a module that lost power (and booted
   with its watchdog off, every safe drive 0) is whole again after the next tick's write.
-- When a joined exchange fails (a silent module, a module busy with a tripped watchdog), the
-  run is exchanged with **block by block**, concurrently (the link queues the requests), so a
-  silent module costs its neighbours nothing but the wait; the run is joined again once every
-  block has answered. The failed blocks are retried singly in the same exchange while its
-  budget lasts. A device that refuses the joined read itself is read block by block for good.
-  A busy module is fed alone, then written again.
+- When a joined request fails, its blocks are tried again one by one at once, concurrently
+  (the link queues them), while the exchange's budget lasts: a *probe*. Blocks that fail
+  while their neighbours answer become **suspects**, exchanged with singly (their
+  neighbours still jointly) until they answer again, so a silent module costs its
+  neighbours nothing but the wait. When every block fails, the link or the whole module is
+  down or slow: nothing is learned and the run stays joined, since going block by block
+  would only multiply the requests. A joined request that the budget cuts short leaves a
+  probe due for the next exchange. A device that refuses the joined read itself is read
+  block by block for good. A busy module (tripped watchdog) is fed alone, then written again.
 - Every exchange runs under ``budget_s`` and reports, per chamber, a value or the exception
   that stopped it; callers re-raise their own.
 - ``CancelledError`` is never caught; the exchange itself is shielded from a caller that
@@ -151,8 +154,10 @@ class BlockRun:
             for b in blocks
         )
         self._blocks = {b.chamber: b for b in self._order}
-        self.split = False
-        """True while the run is exchanged with block by block (after a failure)."""
+        self.suspects: set[str] = set()
+        """Chambers whose modules failed on their own, after answering neighbours: they are
+        exchanged with singly, their neighbours jointly, until they answer again."""
+        self._probe = False
         self._read_refused = False
         self._batches: dict[str, _Batch] = {}
         self._tasks: set[asyncio.Future[_Outcome]] = set()
@@ -268,50 +273,79 @@ class BlockRun:
             for group in groups:
                 tasks.create_task(one(group))
 
-    def _settle(self, out: _Outcome, asked: Sequence[_Block]) -> _Outcome:
-        """Name a timeout for what never answered; join the run again once all answered."""
+    def _groups(self, blocks: Sequence[_Block], *, joined: bool = True) -> list[list[_Block]]:
+        """Neighbours jointly, suspects singly; everything singly for a probe."""
+        if self._probe or not joined:
+            return [[b] for b in blocks]
+        trusted = [b for b in blocks if b.chamber not in self.suspects]
+        return _neighbours(trusted) + [[b] for b in blocks if b.chamber in self.suspects]
+
+    async def _exchange(
+        self,
+        blocks: Sequence[_Block],
+        fn: Callable[[Sequence[_Block]], Awaitable[_Outcome]],
+        out: _Outcome,
+        pending: list[_Block],
+        *,
+        joined: bool = True,
+    ) -> bool:
+        """Exchange with the blocks; a joined request that failed is retried block by block
+        at once (a probe), and what the probe shows is kept (:meth:`_learn`). ``pending``
+        holds the blocks whose joined request has no outcome yet; returns whether a device
+        refused a joined request outright."""
+        groups = self._groups(blocks, joined=joined)
+        probing, self._probe = self._probe, False
+        pending[:] = [b for g in groups if len(g) > 1 for b in g]  # joined, not yet known
+        await self._each(groups, fn, out)
+        retry = [b for b in pending if isinstance(out[b.chamber], TransportError)]
+        refused = any(isinstance(out[b.chamber], DeviceRefused) for b in retry)
+        pending.clear()
+        if probing:
+            self._learn(blocks, out)
+        if retry:
+            for b in retry:
+                del out[b.chamber]
+            pending[:] = retry  # a budget that runs out during the probe leaves a probe due
+            await self._each([[b] for b in retry], fn, out)
+            pending.clear()
+            self._learn(retry, out)
+        self.suspects -= {b.chamber for b in blocks if not _failed(out[b.chamber])}
+        return refused
+
+    def _learn(self, probed: Sequence[_Block], out: _Outcome) -> None:
+        """Blocks that failed while others answered become suspects; when every one failed,
+        the link or the whole module is down or slow, and nothing is learned."""
+        failed = {b.chamber for b in probed if b.chamber not in out or _failed(out[b.chamber])}
+        if failed and len(failed) < len(probed):
+            if not failed <= self.suspects:
+                _log.info("%s unit %d: %s failed alone; exchanged with singly until they answer",
+                          self.link.name, self.unit_id, ", ".join(sorted(failed)))  # fmt: skip
+            self.suspects |= failed
+
+    def _settle(self, out: _Outcome, asked: Sequence[_Block], pending: list[_Block]) -> _Outcome:
+        """Name a timeout for what never answered; a joined request the budget cut short
+        leaves a probe due for the next exchange."""
+        if any(b.chamber not in out for b in pending):
+            self._probe = True
         for b in asked:
             out.setdefault(b.chamber, TimeoutError(f"no answer within {self._budget_s:g} s"))
-        if self.split and all(
-            b.chamber in out and not _failed(out[b.chamber]) for b in self._order
-        ):
-            self.split = False
-            _log.info("%s unit %d: every block answers; joined again", self.link.name, self.unit_id)
         return out
-
-    def _split(self, why: object) -> None:
-        if not self.split:
-            self.split = True
-            _log.info(
-                "%s unit %d: joined exchange failed (%s); block by block until all answer",
-                self.link.name,
-                self.unit_id,
-                why,
-            )
 
     # ------------------------------------------------------------------ reads
     async def _read_all(self, batch: _Batch) -> _Outcome:
         batch.started = True
         out: _Outcome = {}
-        joined = len(self._order) > 1 and not (self.split or self._read_refused)
-        singles = [[b] for b in self._order]
+        pending: list[_Block] = []
         try:
             async with asyncio.timeout(self._budget_s):
-                await self._each([self._order] if joined else singles, self._read_group, out)
-                first = out[self._order[0].chamber]
-                if joined and isinstance(first, TransportError):  # not one block's bad reply
-                    if isinstance(first, DeviceRefused):
-                        self._read_refused = True
-                        _log.info("%s unit %d refuses a joined read (%s); block by block",
-                                  self.link.name, self.unit_id, first)  # fmt: skip
-                    else:
-                        self._split(first)
-                    out.clear()
-                    await self._each(singles, self._read_group, out)
+                joined = not self._read_refused
+                if await self._exchange(self._order, self._read_group, out, pending, joined=joined):
+                    self._read_refused = True  # e.g. a device that will not read reserved offsets
+                    _log.info("%s unit %d refuses joined reads; reading block by block",
+                              self.link.name, self.unit_id)  # fmt: skip
         except TimeoutError:
-            if joined and not out:
-                self._split("no answer within the budget")
-        return self._settle(out, self._order)
+            pass
+        return self._settle(out, self._order, pending)
 
     async def _read_group(self, group: Sequence[_Block]) -> _Outcome:
         count = (len(group) - 1) * BLOCK_SPAN + CYCLIC_INPUT_WORDS
@@ -334,23 +368,17 @@ class BlockRun:
         wanted = batch.wanted
         asked = [b for b in self._order if b.chamber in wanted]
         out: _Outcome = {}
+        pending: list[_Block] = []
 
         async def write(group: Sequence[_Block]) -> _Outcome:
             return await self._write_group(group, wanted)
 
         try:
             async with asyncio.timeout(self._budget_s):
-                groups = [[b] for b in asked] if self.split else _neighbours(asked)
-                await self._each(groups, write, out)
-                failed = [b for g in groups if len(g) > 1 for b in g if _failed(out[b.chamber])]
-                if failed:
-                    self._split(out[failed[0].chamber])
-                    for b in failed:
-                        del out[b.chamber]
-                    await self._each([[b] for b in failed], write, out)
+                await self._exchange(asked, write, out, pending)
         except TimeoutError:
             pass
-        return self._settle(out, asked)
+        return self._settle(out, asked, pending)
 
     def _words(self, b: _Block, drive_words: tuple[int, ...]) -> list[int]:
         """Holding registers 0..10 of a block, with a new watchdog count."""

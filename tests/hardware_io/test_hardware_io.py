@@ -439,24 +439,45 @@ def test_a_tripped_neighbour_makes_the_joined_write_busy_yet_both_are_driven() -
     virtual(body)
 
 
-def test_a_silent_module_splits_its_run_until_it_answers_again() -> None:
+def test_a_silent_module_is_exchanged_with_alone_until_it_answers_again() -> None:
     async def body(clock: VirtualClock) -> None:
         async with bench(clock, budget_s=1.5) as b:
             (link,) = b.io.links.values()
             fault = Fault(kind=FaultKind.COMM_TIMEOUT, chamber="c1", sensor="modbus")
             b.rack.inject(fault.model_copy(update={"at_s": b.rack.t_s}))
-            for _ in range(2):  # the first read finds out, the second goes block by block
+            (run,) = set(b.io._runs.values())
+            for _ in range(2):  # the first read finds out (a probe), the second knows
                 silent, other = await asyncio.gather(b.io.read("c1"), b.io.read("c2"))
                 assert not silent.comm_ok and other.comm_ok
+                assert run.suspects == {"c1"}
             written = await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS))
             assert written == [False, True]  # the neighbour is still fed
             b.rack.clear_faults(FaultKind.COMM_TIMEOUT)
             reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
-            assert all(r.comm_ok for r in reads)  # every block answered: joined again
+            assert all(r.comm_ok for r in reads) and not run.suspects  # joined again
             before = link.requests
             reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
             assert all(r.comm_ok for r in reads) and link.requests - before == 1
             assert all(await asyncio.gather(*(b.io.write(cid, DRIVE) for cid in IDS)))
             assert b.actual("c1") == DRIVE  # set up again after the silence, then driven
+
+    virtual(body)
+
+
+def test_a_run_silent_as_a_whole_stays_joined() -> None:
+    async def body(clock: VirtualClock) -> None:
+        async with bench(clock, budget_s=1.5) as b:
+            (link,) = b.io.links.values()
+            (run,) = set(b.io._runs.values())
+            for cid in IDS:
+                fault = Fault(kind=FaultKind.COMM_TIMEOUT, chamber=cid, sensor="modbus")
+                b.rack.inject(fault.model_copy(update={"at_s": b.rack.t_s}))
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            assert not any(r.comm_ok for r in reads)
+            assert not run.suspects  # nothing learned: going block by block would not help
+            b.rack.clear_faults(FaultKind.COMM_TIMEOUT)
+            before = link.requests
+            reads = await asyncio.gather(*(b.io.read(cid) for cid in IDS))
+            assert all(r.comm_ok for r in reads) and link.requests - before == 1
 
     virtual(body)
