@@ -145,3 +145,31 @@ def test_a_missing_schedule_is_refused_and_not_created(
     assert main(["tasks", "--schedule", str(missing)]) == 2
     assert "no schedule here" in capsys.readouterr().err
     assert not missing.exists()
+
+
+def test_without_rig_every_rig_is_covered_and_the_calendar_is_in_utc(
+    planned: tuple[Path, Path, list[str]], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rig, schedule, _ = planned
+    other = tmp_path / "rack8-east.toml"
+    other.write_text(
+        rig.read_text(encoding="utf-8")
+        .replace('name = "Saltmarrow Lagoon rack 8"', 'name = "Saltmarrow Lagoon rack 8, east"')
+        .replace('timezone = "Etc/GMT-1"', 'timezone = "Etc/GMT-3"'),
+        encoding="utf-8",
+    )
+    protocol = tmp_path / "hold.toml"
+    with ScheduleStore(schedule) as store:
+        east = store.add(rig_path=other, protocol_path=protocol, start_utc=START, owner="ben").id
+    ics = tmp_path / "all.ics"
+    args = ["tasks", "--schedule", str(schedule), "--from", "2026-12-03T06:00Z", "--days", "1"]
+    assert main([*args, "--ics", str(ics)]) == 0
+    out = capsys.readouterr().out
+    assert f"Start {east} 'Two-day hold'" in out and "09:00+0300" in out  # east's own zone
+    assert "daily-check" in out and "09:00+0100" in out
+    text = ics.read_text(encoding="utf-8")
+    assert "BEGIN:VTIMEZONE" not in text and "DTSTART:20261203T060000Z" in text
+    events = icalendar.Calendar.from_ical(ics.read_bytes()).walk("VEVENT")
+    described = [str(e["DESCRIPTION"]) for e in events]
+    experiments = {d.split("Experiment: ")[1].split("\n")[0] for d in described}
+    assert east in experiments and len(experiments) == 2
