@@ -17,9 +17,10 @@ Rules of this module
   it is recorded with end reason ``interrupted``, from the first sample of its closed stretch
   to the last logged sample (the modules' watchdogs then opened the chambers).
 - One controller per rig: :class:`RigLock` holds an exclusive ``flock`` on ``<rig file>.lock``
-  next to the rig file for the whole run. The kernel drops it when the process dies, so a
-  crashed run can be resumed at once. Simulated rigs live inside their run and share no
-  devices, so simulated runs take no rig lock (the log's own lock still applies).
+  (mode 0600, never opened through a symbolic link) next to the rig file for the whole run.
+  The kernel drops it when the process dies, so a crashed run can be resumed at once.
+  Simulated rigs live inside their run and share no devices, so simulated runs take no rig
+  lock (the log's own lock still applies).
 """
 
 from __future__ import annotations
@@ -47,6 +48,7 @@ from controller.storage import (
     WindowEndReason,
     WindowRecord,
 )
+from controller.storage._opening import open_lock_file
 
 __all__ = [
     "LAUNCH_COMMAND",
@@ -286,19 +288,16 @@ class RigLock:
     Raises
     ------
     SquallError
-        Another controller holds the rig, or the lock file cannot be created.
+        Another controller holds the rig, or the lock file cannot be created, is a symbolic
+        link or is not a regular file.
     """
 
     def __init__(self, rig_path: Path) -> None:
         rig_path = Path(rig_path)
         self.path = rig_path.with_name(rig_path.name + ".lock")
-        try:
-            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
-        except OSError as exc:
-            raise SquallError(
-                f"cannot create the rig's lock file {self.path.name}: {exc.strerror}",
-                file=rig_path,
-            ) from exc
+        # 0600 and never through a symbolic link: nobody else can hold the lock, and a link
+        # planted beside a rig in a shared folder cannot make the run truncate another file
+        fd = open_lock_file(self.path, owner=rig_path, what="the rig's lock file")
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:

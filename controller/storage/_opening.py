@@ -9,14 +9,24 @@ Rules of this module
   file itself stays (it is harmless while unlocked). A separate file is used because closing
   any descriptor of the database file itself would drop SQLite's own POSIX locks.
 - If creating a new log fails half-way, the files created for it are removed again.
+- File modes do not depend on the caller's umask being sensible: a new log is created 0640
+  (owner writes, the owner's group may read, others nothing; a stricter umask narrows it
+  further) before SQLite opens it, and SQLite gives its ``-wal`` and ``-shm`` files the
+  log's own mode. An empty file we own that is reused as a new log loses any world-write
+  bit. Lock files are 0600: nobody else may open them, so nobody else can hold the lock.
+- Symbolic links are not followed where a file is created: a dangling link at the log's path
+  or a link at the lock file's path is refused, so a link planted in a shared folder cannot
+  make the run create, truncate or write a file elsewhere.
 """
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import fcntl
 import os
 import sqlite3
+import stat
 from pathlib import Path
 
 from controller.errors import RuntimeFailure, SquallError
@@ -24,10 +34,23 @@ from controller.errors import RuntimeFailure, SquallError
 from ._records import EventKind, IncubationState, ResumePoint, RunMeta
 from ._schema import create_schema, open_log, read_end
 
-__all__ = ["WriterLock", "configure", "create_log", "refuse_existing", "resume_point"]
+__all__ = [
+    "LOCK_MODE",
+    "LOG_MODE",
+    "WriterLock",
+    "configure",
+    "create_log",
+    "open_lock_file",
+    "refuse_existing",
+    "resume_point",
+]
 
 #: Largest size the -wal file is truncated back to after a checkpoint, bytes.
 _JOURNAL_SIZE_LIMIT_B = 64 * 1024 * 1024
+#: Mode of a new run log (and so of its -wal and -shm files), before the umask.
+LOG_MODE = 0o640
+#: Mode of a new lock file, before the umask.
+LOCK_MODE = 0o600
 
 
 def configure(conn: sqlite3.Connection, *, durable: bool) -> None:
@@ -46,18 +69,51 @@ def configure(conn: sqlite3.Connection, *, durable: bool) -> None:
     conn.execute(f"PRAGMA journal_size_limit = {_JOURNAL_SIZE_LIMIT_B}")
 
 
+def open_lock_file(path: Path, *, owner: Path, what: str) -> int:
+    """Open (creating it 0600 if needed) a lock file for reading and writing, safely.
+
+    Parameters
+    ----------
+    path
+        The lock file.
+    owner
+        The file the lock protects, named in errors.
+    what
+        How errors name the lock, e.g. ``"the run log's lock file"``.
+
+    Returns
+    -------
+    int
+        An open file descriptor (not inherited by child processes).
+
+    Raises
+    ------
+    SquallError
+        The lock file cannot be opened or created, is a symbolic link, or is not a regular
+        file.
+    """
+    flags = os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW | os.O_CLOEXEC
+    try:
+        fd = os.open(path, flags, LOCK_MODE)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise SquallError(
+                f"{what} {path.name} is a symbolic link; refusing to follow it (remove it)",
+                file=owner,
+            ) from None
+        raise SquallError(f"cannot create {what} {path.name}: {exc.strerror}", file=owner) from exc
+    if not stat.S_ISREG(os.fstat(fd).st_mode):
+        os.close(fd)
+        raise SquallError(f"{what} {path.name} is not a regular file (remove it)", file=owner)
+    return fd
+
+
 class WriterLock:
     """Exclusive advisory lock on ``<log>.lock`` held while a writer is open."""
 
     def __init__(self, log_path: Path) -> None:
         self.path = log_path.with_name(log_path.name + ".lock")
-        try:
-            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
-        except OSError as exc:
-            raise SquallError(
-                f"cannot create the run log's lock file {self.path.name}: {exc.strerror}",
-                file=log_path,
-            ) from exc
+        fd = open_lock_file(self.path, owner=log_path, what="the run log's lock file")
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
@@ -120,12 +176,40 @@ def _remove_db_files(path: Path) -> None:
             os.remove(f"{path}{suffix}")
 
 
+def _make_log_file(path: Path) -> bool:
+    """Create the empty log file 0640 without following links; return whether it existed.
+
+    An existing (empty) file is kept, minus a world-write bit when it is ours.
+    """
+    try:
+        fd = os.open(
+            path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC, LOG_MODE
+        )
+    except FileExistsError:
+        info = os.lstat(path)
+        if stat.S_ISLNK(info.st_mode):
+            raise SquallError(
+                "is a symbolic link; a run log is never created through one (remove it or "
+                "choose another log file)",
+                file=path,
+            ) from None
+        if info.st_uid == os.geteuid() and info.st_mode & stat.S_IWOTH:
+            os.chmod(path, stat.S_IMODE(info.st_mode) & ~stat.S_IWOTH)
+        return True
+    except OSError as exc:
+        raise SquallError(f"cannot create run log: {exc.strerror or exc}", file=path) from exc
+    os.close(fd)
+    return False
+
+
 def create_log(path: Path, meta: RunMeta, *, durable: bool) -> sqlite3.Connection:
     """Create a new log at ``path`` (absent or empty) and return its writing connection."""
-    existed = path.exists()
+    existed = _make_log_file(path)
     try:
         conn = sqlite3.connect(path, isolation_level=None, timeout=10.0, check_same_thread=False)
     except sqlite3.Error as exc:
+        if not existed:
+            _remove_db_files(path)
         raise SquallError(f"cannot create run log: {exc}", file=path) from exc
     try:
         mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
