@@ -16,9 +16,9 @@ Rules of this module
   in its history, an alarm in serve's log and output — or move it to *running* with its run
   log, run the protocol snapshot the store keeps (never the file as it is now) to its end,
   and record *done*, or *aborted* after an operator abort (``squall ctl``) or a run-time
-  failure. A hold through ``squall ctl`` shows as *held* in the store until resumed. An
-  experiment that cannot start late enough to matter is not skipped: a start that has
-  passed (serve was down, or the previous run overran) starts as soon as serve gets to it.
+  failure. A hold through ``squall ctl`` shows as *held* in the store until resumed. A
+  start that has passed (serve was down, or the previous run overran) is not skipped: the
+  experiment starts as soon as serve gets to it, with the delay in its history.
 - Run logs: ``<id>-<protocol stem>.sqlite`` in the schedule file's folder (default
   ``runs/``), never overwritten (``-2``, ``-3``… when taken); each has its control socket
   for ``squall ctl``.
