@@ -8,7 +8,14 @@ import pytest
 from pydantic import BaseModel
 
 from controller.storage import AlarmRecord, EventRecord, SampleRow, columns_of
-from controller.telemetry import CommandResult, ControllerStatus, RemoteCommand, Topics
+from controller.telemetry import (
+    CommandResult,
+    ControllerStatus,
+    RemoteCommand,
+    TaskInfo,
+    TaskList,
+    Topics,
+)
 
 from ._helpers import doc_text
 
@@ -33,6 +40,7 @@ def model_fields(model: type[BaseModel]) -> list[str]:
         ("Status (", model_fields(ControllerStatus)),
         ("Command (", model_fields(RemoteCommand)),
         ("Command result", model_fields(CommandResult)),
+        ("Task list (", model_fields(TaskList) + model_fields(TaskInfo)),
     ],
 )
 def test_each_payload_table_lists_the_schema_fields_in_order(
@@ -49,6 +57,7 @@ def test_the_topic_table_matches_the_topic_builder() -> None:
         topics.sample("CTL", "CH"),
         topics.alarm("CTL"),
         topics.event("CTL"),
+        topics.tasks("CTL"),
         topics.command("CTL"),
         topics.command_result("CTL"),
     ]

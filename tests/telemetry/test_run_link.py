@@ -21,6 +21,7 @@ from controller.telemetry import (
     EventUpdate,
     SampleUpdate,
     StatusUpdate,
+    TasksUpdate,
     TelemetryWatcher,
 )
 
@@ -52,7 +53,7 @@ async def test_squall_run_publishes_every_row_and_event_and_ends_finished(
     argv += ["--sim", "--speed", "300", "--log", str(log)]
     codes: list[int] = []
     watcher = TelemetryWatcher(broker.url(), reconnect_min_s=0.05)
-    samples, kinds = [], []
+    samples, kinds, task_lists = [], [], []
     async with watcher:
         await connected(watcher)
         thread = threading.Thread(target=lambda: codes.append(main(argv)))
@@ -64,6 +65,8 @@ async def test_squall_run_publishes_every_row_and_event_and_ends_finished(
                     samples.append(update.sample)
                 elif isinstance(update, EventUpdate):
                     kinds.append(update.event.kind)
+                elif isinstance(update, TasksUpdate):
+                    task_lists.append(update.tasks)
                 elif isinstance(update, StatusUpdate) and not update.status.online:
                     farewell = update.status
                     break
@@ -74,6 +77,11 @@ async def test_squall_run_publishes_every_row_and_event_and_ends_finished(
     assert farewell.state is ControllerState.FINISHED and farewell.run_id is not None
     assert farewell.chambers == chambers and farewell.duration_s == 1200.0
     assert kinds[0] is EventKind.RUN_START and kinds[-1] is EventKind.RUN_STOP
+    # the operator tasks were retained while the run went on, and emptied at its end
+    first, last = task_lists[0], task_lists[-1]
+    assert [t.kind for t in first.tasks] == ["run-start", "run-end"]
+    assert first.tasks[0].start == "2027-07-01T06:00:00Z" and first.tasks[0].chambers == chambers
+    assert first.run_id == farewell.run_id and last.tasks == ()
     with RunLogReader(log) as reader:
         logged = reader.tail(0)
         assert farewell.run_id == reader.meta().run_id
