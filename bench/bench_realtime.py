@@ -2,22 +2,25 @@
 
 A 64-chamber rig derived from ``rigs/saltmarrow-rack8.toml`` (C1..C64 copy C5..C8 in turn; no
 bath, no fault) names its devices by ``[io] from_announcement``; ``squall simulate --port 0
---ports-file F`` serves it in its own process. The controller runs in *this* process on the
+--ports-file F`` serves it in its own process, as I/O modules of eight chambers (one unit id
+per eight, blocks without gaps: ``hardware-notes/register-map.md``), so the controller reads
+and writes each module in one request per tick. The controller runs in *this* process on the
 real clock at a 1 s tick through HardwareIO (Modbus TCP, optode ptys) with interlocks, PID
 and the SQLite log, with the 0.25 s timeouts of ``squall run --period 1``, and is stopped
-(an operator abort) once N ticks followed the first. If that single announced link never
-gets ready (64 blocks queue on one connection; on a loaded machine their set-up times out
-round after round), the blocks are spread over 8 links with 0.45 s timeouts and 90 s to get
-ready, and the output says so.
+(an operator abort) once N ticks followed the first. The announced modules are reached over
+8 TCP connections, one per module, as a rack with one Modbus TCP module per eight chambers
+is wired (``--links K`` for K; ``--links 1`` keeps the ports file's single link, and falls
+back to 8 links with 0.45 s timeouts and 90 s to get ready if that one never gets ready).
 
-Printed side by side from one run: the controller process's CPU share (user + system over
-wall) in steady state and over the whole run; tick lateness p50/p99/max of the steady-state
-ticks measured on the loop's clock, beside RunSummary's p99/max; the run's health; Modbus
-requests per tick. References from the same process: an idle asyncio loop ticking at 1 Hz as
-long, and one Modbus request's client CPU and round trip via the controller's transport, bare
-pymodbus, and the same frame by hand. Goals (issue 4): CPU <= 5 % of one core, p99 lateness
-<= 20 ms; when one is missed (or with ``--profile``) a 20 s run under cProfile (CPU time)
-follows.
+Printed side by side from one run: the controller process's CPU share (its user + system
+CPU time over wall time, this process only) in steady state and over the whole run; tick
+lateness p50/p99/max of the steady-state ticks measured on the loop's clock, beside
+RunSummary's p99/max; the run's health (the share of logged rows with a temperature);
+Modbus requests per tick. References from the same process: an idle asyncio loop ticking at
+1 Hz as long, and one Modbus request's client CPU and round trip via the controller's
+transport, bare pymodbus, and the same frame by hand. Goals (issue 4): CPU <= 5 % of one
+core, p99 lateness <= 20 ms, a healthy run (>= 99 % of logged rows with a temperature); when
+one is missed (or with ``--profile``) a 20 s run under cProfile (CPU time) follows.
 
 Run: ``/work/venv/bin/python bench/bench_realtime.py [--seconds 120] [--quick] [--links K]
 [--profile]`` (``--quick``: 30 s).
@@ -46,7 +49,7 @@ import time
 import tomllib
 from collections.abc import Awaitable, Callable, Iterator
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import date, datetime
 from pathlib import Path
 from typing import Any
 
@@ -74,6 +77,7 @@ TEMPLATES = ("C5", "C6", "C7", "C8")  # the example rig's chambers with their ow
 PERIOD_S = 1.0
 GOAL_CPU_PCT = 5.0
 GOAL_P99_MS = 20.0
+GOAL_ROWS_PCT = 99.0  # logged rows with a temperature: a healthy run reads nearly every tick
 PORTS_WAIT_S = 60.0
 MODBUS_BURST, MODBUS_BURSTS = 500, 4  # requests per burst, bursts per reference
 MODBUS_CALLS = ("read_input_registers", "read_discrete_inputs", "write_registers", "write_coils")
@@ -94,6 +98,8 @@ def _toml(value: Any) -> str:
         return repr(value)
     if isinstance(value, str):
         return json.dumps(value, ensure_ascii=False)  # a valid TOML basic string
+    if isinstance(value, date):  # a date or datetime read from the rig (TOML 1.0 literals)
+        return value.isoformat()
     if isinstance(value, list) and not any(isinstance(v, dict) for v in value):
         return "[" + ", ".join(_toml(v) for v in value) + "]"
     raise TypeError(f"no TOML form for {value!r} in this bench")
@@ -141,7 +147,9 @@ def linked_io(announcement: dict[str, Any], ids: list[str], links: int) -> list[
         part = ids[k : k + size]
         lines += ["", "[[io.modbus]]", f'name = "simulator-{k // size + 1}"']
         lines += [f"tcp = {{ host = {_toml(modbus['host'])}, port = {modbus['port']} }}"]
-        lines += [f"chambers = {_toml(part)}", "timeout_s = 0.1"]  # as io_from_ports' link
+        # one attempt of the whole 0.2 s budget: on a shared machine a late reply is likelier
+        # than a lost one (io_from_ports' link: 0.1 s, three attempts)
+        lines += [f"chambers = {_toml(part)}", "timeout_s = 0.2", "attempts = 1"]
         lines += ["", "[io.modbus.register_map]", f"word_order = {_toml(modbus['word_order'])}"]
         for cid in part:
             block = modbus["blocks"][cid]
@@ -512,9 +520,9 @@ def main() -> None:
     parser.add_argument("--seconds", type=int, default=120, help="steady-state ticks (s)")
     parser.add_argument("--quick", action="store_true", help="30 s instead of 120 s")
     parser.add_argument("--chambers", type=int, default=64, help="chambers in the rig")
-    parser.add_argument("--links", type=int, default=0, help="measure with the announced "
-                        f"blocks on K TCP links (default: one, then {FALLBACK_LINKS} if that "
-                        "never gets ready)")  # fmt: skip
+    parser.add_argument("--links", type=int, default=FALLBACK_LINKS, help="TCP links the "
+                        "announced modules are spread over (default: one per module of 8 "
+                        "chambers); 1 = the ports file's single link")  # fmt: skip
     parser.add_argument("--profile", action="store_true", help="always run the profiled run")
     parser.add_argument("--profile-seconds", type=int, default=20, help="profiled run, s")
     args = parser.parse_args()
@@ -527,27 +535,32 @@ def main() -> None:
         rig, ids = write_rig(folder, n, announced_io("sim-ports.json"), "announced")
         sim = Simulator.start(rig, folder / "sim-ports.json")
         try:
-            run, settings, how = None, settings_for(), "from_announcement, one link"
-            if args.links <= 1:
+            run, settings, links = None, settings_for(), max(1, args.links)
+            how = "from_announcement: one TCP link to 8 modules of 8 chambers"
+            if links == 1:
                 run = attempt(rig, ids, "announced", sim, settings, seconds)
+                if run is None:  # the single link never got ready: spread it, give it time
+                    links = FALLBACK_LINKS
+                    settings = settings_for(FALLBACK_IO_TIMEOUT_S, FALLBACK_READY_TIMEOUT_S)
             if run is None:
-                links = args.links if args.links > 1 else FALLBACK_LINKS
-                settings = settings_for(FALLBACK_IO_TIMEOUT_S, FALLBACK_READY_TIMEOUT_S)
-                how = f"announced blocks on {links} links"
+                how = f"{links} TCP links to 8 modules of 8 chambers"
                 io_lines = linked_io(sim.announcement(), ids, links)
                 rig, _ = write_rig(folder, n, io_lines, f"links{links}")
                 run = attempt(rig, ids, f"links{links}", sim, settings, seconds)
             if run is None:
-                cpu, late = f"{GOAL_CPU_PCT:g} %", f"{GOAL_P99_MS:g} ms"
-                for figure, goal in ((f"controller CPU share, {n} chambers at 1 Hz", cpu),
-                                     ("p99 tick lateness", late)):  # fmt: skip
-                    print(f"RESULT: {figure} | not measured | <= {goal} | never got ready")
+                for figure, goal in (
+                    (f"controller CPU share, {n} chambers at 1 Hz", f"<= {GOAL_CPU_PCT:g} %"),
+                    ("p99 tick lateness", f"<= {GOAL_P99_MS:g} ms"),
+                    ("logged rows with a temperature", f">= {GOAL_ROWS_PCT:g} %"),
+                ):
+                    print(f"RESULT: {figure} | not measured | {goal} | never got ready")
                 raise SystemExit(1)
             idle = idle_reference(seconds)
             cost = modbus_reference(sim)
             report(run, idle, cost, how, n, seconds)
             p99_ms = percentile(run.lateness_s[1:], 99) * 1000.0
-            if args.profile or run.steady[2] > GOAL_CPU_PCT or p99_ms > GOAL_P99_MS:
+            missed = run.steady[2] > GOAL_CPU_PCT or p99_ms > GOAL_P99_MS
+            if args.profile or missed or 100.0 - run.stale_pct < GOAL_ROWS_PCT:
                 slow = dataclasses.replace(settings, ready_timeout_s=FALLBACK_READY_TIMEOUT_S)
                 profile_run(rig, ids, sim, slow, args.profile_seconds)  # more time to get ready
         finally:
@@ -590,10 +603,12 @@ def report(run: ControllerRun, idle: Share, cost: Cost, how: str, n: int, second
     print(f"  {'RunSummary (every tick, 1 ms bins)':<44} {'':>7} "
           f"{ticks.p99_lateness_s * 1e3:>9.2f} {ticks.max_lateness_s * 1e3:>8.2f}")  # fmt: skip
     print(f"RESULT: controller CPU share, {n} chambers at 1 Hz | {run.steady[2]:.2f} % | "
-          f"<= {GOAL_CPU_PCT:g} % | steady state, {how}, {run.stale_pct:.0f} % of rows without "
-          f"a temperature; idle loop {idle[2]:.2f} %")  # fmt: skip
+          f"<= {GOAL_CPU_PCT:g} % | process CPU time / wall time, steady state, {how}; "
+          f"{per_tick:.0f} Modbus requests a tick; idle loop {idle[2]:.2f} %")  # fmt: skip
     print(f"RESULT: p99 tick lateness | {p99:.2f} ms | <= {GOAL_P99_MS:g} ms | steady state, "
           f"{how}; RunSummary p99 over every tick {ticks.p99_lateness_s * 1e3:.0f} ms")  # fmt: skip
+    print(f"RESULT: logged rows with a temperature | {100.0 - run.stale_pct:.2f} % | "
+          f">= {GOAL_ROWS_PCT:g} % | {s.rows_written} rows of {n} chambers, {how}")  # fmt: skip
 
 
 if __name__ == "__main__":

@@ -271,15 +271,17 @@ class ModbusEndpoint:
         count: int,
         registers: list[int],
     ) -> None:
-        for block in blocks:
+        sweep = None
+        if table is Table.INPUT_REGISTER:  # every module of the request sampled in one sweep
+            ids = [b.chamber_id for b in blocks]
+            sweep = self.rack.sweep(ids, [False] * len(ids))
+        for i, block in enumerate(blocks):
             module = self.modules[block.chamber_id]
             if table.is_bit:
                 bits = module.coil_bits() if table is Table.COIL else module.input_bits()
                 registers[block.base // 16 - start_address] = _pack(bits)
                 continue
-            words = (
-                module.input_words() if table is Table.INPUT_REGISTER else module.holding_words()
-            )
+            words = module.encode_sweep(sweep, i) if sweep is not None else module.holding_words()
             words = (*words, *(0,) * (BLOCK_SPAN - len(words)))  # reserved offsets read 0
             first = max(address, block.base)
             last = min(address + count, block.base + BLOCK_SPAN)

@@ -36,7 +36,8 @@ from controller.drivers import (
 )
 from controller.errors import SquallError
 from controller.rig import FaultKind
-from simulator import Rack, SensorNoReply
+from simulator import Rack
+from simulator._readout import Sweep
 
 __all__ = ["IoModule", "Refusal"]
 
@@ -175,12 +176,13 @@ class IoModule:
 
     # ------------------------------------------------------------------ reads
 
-    def _read(self, reader: str, name: str) -> float | None:
-        p = point(name)
-        try:
-            value = float(getattr(self.rack, reader)(self.chamber_id))
-        except SensorNoReply:
+    @staticmethod
+    def _measured(value: float | None, name: str) -> float | None:
+        """What the module's input makes of a sensor's value (None: silent sensor)."""
+        if value is None:
             return None
+        p = point(name)
+        value = float(value)
         if not math.isfinite(value) or value > p.maximum:
             return None  # beyond the input's measuring range: the module flags a fault
         if value < p.minimum:
@@ -205,16 +207,43 @@ class IoModule:
         tuple of int
             Seven register words (no unit).
         """
+        return self.encode_sweep(self.rack.sweep([self.chamber_id], [False]), 0)
+
+    def encode_sweep(self, sweep: Sweep, index: int) -> tuple[int, ...]:
+        """Input registers 0..6 from a rack sweep's readings of this chamber (a sweep reads
+        several modules at once, as one-by-one reads in its order would).
+
+        Parameters
+        ----------
+        sweep
+            Readings of several chambers (°C, µmol photons m⁻² s⁻¹, cm s⁻¹, level switch).
+        index
+            This chamber's place in the sweep (no unit).
+
+        Returns
+        -------
+        tuple of int
+            Seven register words (no unit).
+        """
+        failed = sweep.errors[index] is not None  # a sensor that broke down reads as a fault
         level = self._level_pct()
         level_point = point("level_pct")
         values = InputValues(
-            temperature_c=self._read("read_temperature", "temperature_c"),
-            par_umol_m2_s=self._read("read_par", "par_umol_m2_s"),
-            flow_cm_s=self._read("read_flow", "flow_cm_s"),
+            temperature_c=None
+            if failed
+            else self._measured(sweep.temperature_c[index], "temperature_c"),
+            par_umol_m2_s=None if failed else self._measured(sweep.par[index], "par_umol_m2_s"),
+            flow_cm_s=None if failed else self._measured(sweep.flow_cm_s[index], "flow_cm_s"),
             level_pct=min(max(level, level_point.minimum), level_point.maximum),
         )
         words = encode_inputs(values, self.word_order, where=f"{self.chamber_id}.inputs")
-        return (*words, encode_contact_status(self._contacts()))
+        level_ok = sweep.level_ok[index]
+        contacts = InputBits(
+            level_ok=self.rack.read_level_ok(self.chamber_id) if level_ok is None else level_ok,
+            estop_ok=not self._estop_pressed,
+            watchdog_tripped=self._tripped,
+        )
+        return (*words, encode_contact_status(contacts))
 
     def holding_words(self) -> tuple[int, ...]:
         """All holding registers of the block (unmapped offsets read 0; ``relay_bits`` reads
