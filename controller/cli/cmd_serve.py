@@ -41,7 +41,7 @@ def register(sub: Any) -> None:
     Parameters
     ----------
     sub
-        The subparsers object of the main parser.
+        The subparsers object of the main parser (no unit).
     """
     parser = sub.add_parser(
         "serve",

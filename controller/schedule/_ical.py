@@ -60,7 +60,7 @@ def to_icalendar(
     Parameters
     ----------
     tasks
-        The tasks (any order; written in time order).
+        The tasks (any order; written in time order) (no unit).
     timezone
         IANA zone the start times are written in (the rig's ``maintenance.timezone``).
     calendar_name
@@ -71,7 +71,7 @@ def to_icalendar(
     Returns
     -------
     bytes
-        The calendar, UTF-8 with CRLF line ends (RFC 5545).
+        The calendar, UTF-8 with CRLF line ends (RFC 5545) (no unit).
 
     Raises
     ------

@@ -81,11 +81,11 @@ class PreflightFinding:
     Attributes
     ----------
     chamber
-        Chamber concerned, or ``None`` for the whole rig.
+        Chamber concerned, or ``None`` for the whole rig (no unit).
     check
-        Which check found it.
+        Which check found it (no unit).
     message
-        What is wrong, with the values (one line).
+        What is wrong, with the values (one line) (no unit).
     """
 
     chamber: str | None
@@ -107,11 +107,11 @@ class PreflightReport:
     checked_utc
         When the checks were made, aware UTC.
     chambers
-        Chambers checked.
+        Chambers checked (no unit).
     findings
-        Every reason not to start, in check order.
+        Every reason not to start, in check order (no unit).
     readings
-        The readings taken, by chamber (missing for chambers that could not be read).
+        The readings taken, by chamber (missing for chambers that could not be read) (no unit).
     """
 
     checked_utc: datetime
@@ -143,13 +143,13 @@ class LatchedAlarm:
     Attributes
     ----------
     chamber
-        Chamber concerned (``None``: the whole rig).
+        Chamber concerned (``None``: the whole rig) (no unit).
     code
-        Condition code, e.g. ``over-temperature``.
+        Condition code, e.g. ``over-temperature`` (no unit).
     level
-        ``warning``, ``alarm`` or ``trip``.
+        ``warning``, ``alarm`` or ``trip`` (no unit).
     reason
-        The reason recorded when it was raised.
+        The reason recorded when it was raised (no unit).
     raised_utc
         When it was raised, aware UTC.
     """
@@ -173,13 +173,13 @@ def latched_alarms(log_path: Path) -> list[LatchedAlarm]:
     Parameters
     ----------
     log_path
-        A run log (finished or not).
+        A run log (finished or not) (no unit).
 
     Returns
     -------
     list of LatchedAlarm
         One per chamber and latching condition whose last alarm record is ``raise``, in
-        the order they were raised.
+        the order they were raised (no unit).
     """
     import pandas as pd
 
@@ -212,16 +212,16 @@ def calibration_findings(
     Parameters
     ----------
     rig
-        The rig (dates, limits, zone).
+        The rig (dates, limits, zone) (no unit).
     chambers
-        Chamber ids.
+        Chamber ids (no unit).
     now_utc
         The start, aware.
 
     Returns
     -------
     list of PreflightFinding
-        One per stale calibration.
+        One per stale calibration (no unit).
     """
     return [
         PreflightFinding(state.chamber, PreflightCheck.CALIBRATION, state.describe())
@@ -252,7 +252,7 @@ def reading_findings(
     -------
     list of PreflightFinding
         One per quantity that did not answer or is implausible, and for low water or a
-        pressed E-stop.
+        pressed E-stop (no unit).
     """
     from controller.runtime import Quantity
 
@@ -349,12 +349,12 @@ async def preflight(
     Parameters
     ----------
     rig
-        The rig (calibration dates, limits, zone).
+        The rig (calibration dates, limits, zone) (no unit).
     chambers
         The experiment's chambers.
     io
         The chamber I/O the run will use (or another over the same devices); opened, read
-        once per chamber and closed; nothing is written.
+        once per chamber and closed; nothing is written (no unit).
     now_utc
         The start being checked, aware.
     probe_ranges_c
@@ -370,7 +370,7 @@ async def preflight(
     Returns
     -------
     PreflightReport
-        Passed when there is no finding.
+        Passed when there is no finding (no unit).
     """
     checked = now_utc.astimezone(UTC)
     findings: list[PreflightFinding] = []

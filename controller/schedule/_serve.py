@@ -82,13 +82,13 @@ class ServeConfig:
     Attributes
     ----------
     rig_path
-        The rig file.
+        The rig file (no unit).
     schedule_path
-        The schedule store (must exist).
+        The schedule store (must exist) (no unit).
     sim
         Simulate the rig's chambers on a virtual clock instead of driving its devices.
     speed
-        With ``sim``: None for as fast as possible, else simulated seconds per real second.
+        With ``sim``: None for as fast as possible, else simulated s per real s.
     until_utc
         Start nothing at or after this instant, aware; None for no limit.
     for_s
@@ -96,13 +96,13 @@ class ServeConfig:
     start_utc
         With ``sim``: the virtual clock's start, aware; default the present (whole seconds).
     settings
-        Control settings of every run (tick period…); default :class:`RunSettings`.
+        Control settings of every run (tick period…); default :class:`RunSettings` (no unit).
     seed
         With ``sim``: sensor-noise seed, dimensionless; default the rig's.
     poll_s
         Without ``sim``: how often the store is looked at for new experiments, s.
     by
-        Name serve signs the history with.
+        Name serve signs the history with (no unit).
     """
 
     rig_path: Path
@@ -127,7 +127,7 @@ class ServeResult:
     started_utc, stopped_utc
         When serve started and stopped, on its clock, aware UTC.
     outcomes
-        ``(experiment id, final state)`` of every experiment it took up, in order.
+        ``(experiment id, final state)`` of every experiment it took up, in order (no unit).
     """
 
     started_utc: datetime
@@ -516,15 +516,15 @@ def serve(config: ServeConfig, *, notify: Callable[[str], None] | None = None) -
     Parameters
     ----------
     config
-        Rig, schedule, clock and limits.
+        Rig, schedule, clock and limits (no unit).
     notify
         Called with one line (prefixed with the time) at every state change and alarm;
-        default: logged at INFO.
+        default: logged at INFO (no unit).
 
     Returns
     -------
     ServeResult
-        When serve ran and what became of each experiment it took up.
+        When serve ran and what became of each experiment it took up (no unit).
 
     Raises
     ------

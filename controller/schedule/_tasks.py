@@ -112,21 +112,21 @@ class OperatorTask:
     Attributes
     ----------
     uid
-        Stable identifier: the same inputs give the same uid (iCalendar UID, MQTT key).
+        Stable identifier: the same inputs give the same uid (iCalendar UID, MQTT key) (no unit).
     kind
-        What the task is about.
+        What the task is about (no unit).
     title
-        One line, e.g. ``"Sample C1–C4: water for nutrients"``.
+        One line, e.g. ``"Sample C1–C4: water for nutrients"`` (no unit).
     start_utc
         When it starts, aware UTC.
     minutes
         Time set aside, minutes.
     chambers
-        Chambers concerned, in rig order.
+        Chambers concerned, in rig order (no unit).
     experiment_id
-        The experiment it belongs to, or ``None`` for a run not in a schedule.
+        The experiment it belongs to, or ``None`` for a run not in a schedule (no unit).
     detail
-        Longer text: what, why, which procedure.
+        Longer text: what, why, which procedure (no unit).
     """
 
     uid: str
@@ -151,11 +151,11 @@ class CalibrationState:
     Attributes
     ----------
     chamber
-        Chamber id.
+        Chamber id (no unit).
     kind
-        Which calibration.
+        Which calibration (no unit).
     last_on
-        Local date of the last one, or ``None`` when the rig records none.
+        Local date of the last one, or ``None`` when the rig records none (no unit).
     max_age_d
         The rig's limit, days.
     age_d
@@ -224,9 +224,9 @@ def calibration_states(
     Parameters
     ----------
     rig
-        The rig (its calibration dates, limits and zone).
+        The rig (its calibration dates, limits and zone) (no unit).
     chambers
-        Chamber ids of the rig.
+        Chamber ids of the rig (no unit).
     at_utc
         The instant, aware.
 
@@ -253,7 +253,7 @@ def chamber_list(ids: Sequence[str]) -> str:
     Parameters
     ----------
     ids
-        Chamber ids in order.
+        Chamber ids in order (no unit).
 
     Returns
     -------
@@ -372,19 +372,19 @@ def tasks_for_run(
     Parameters
     ----------
     protocol
-        The validated protocol (its sampling times, chambers and duration).
+        The validated protocol (its sampling times, chambers and duration) (no unit).
     rig
-        The rig (calibration dates, ``[maintenance]`` limits, zone and daily check time).
+        The rig (calibration dates, ``[maintenance]`` limits, zone and daily check time) (no unit).
     start_utc
         The run's start, aware.
     experiment_id
-        The scheduled experiment, if any (part of every uid and shown in every task).
+        The scheduled experiment, if any (part of every uid and shown in every task) (no unit).
 
     Returns
     -------
     list of OperatorTask
         Run start and end, sampling, calibrations, cleaning and daily checks, sorted by
-        start time (then kind and title).
+        start time (then kind and title) (no unit).
 
     Raises
     ------
@@ -501,18 +501,18 @@ def schedule_tasks(
     Parameters
     ----------
     store
-        The schedule store.
+        The schedule store (no unit).
     rig
-        The rig, validated (its dates and limits as they stand now).
+        The rig, validated (its dates and limits as they stand now) (no unit).
     rig_path
-        The rig file (experiments are stored under its resolved path).
+        The rig file (experiments are stored under its resolved path) (no unit).
     start_utc, end_utc
         The window, aware.
 
     Returns
     -------
     list of OperatorTask
-        Sorted by start time.
+        Sorted by start time (no unit).
     """
     from controller.schedule import LIVE_STATES
 
@@ -533,7 +533,7 @@ def experiment_protocol(experiment: Experiment) -> Protocol:
     Parameters
     ----------
     experiment
-        The stored experiment.
+        The stored experiment (no unit).
 
     Returns
     -------
