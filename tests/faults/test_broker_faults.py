@@ -1,6 +1,6 @@
 """The MQTT broker goes away mid-run and comes back: telemetry is on, control must not care.
 
-The control loop runs on the real clock here (a 0.2 s tick on the in-process simulated
+The control loop runs on the real clock here (a 0.5 s tick on the in-process simulated
 rack), with the run's telemetry link publishing to a broker on loopback: the real Mosquitto
 when installed, else the amqtt fallback (``tests/telemetry/_brokers.py``, whose brokers can
 be stopped and started again on the same port). Real time is the point: what a real network
@@ -35,15 +35,18 @@ from ._harness import CHAMBER, FaultRecord, RecordBook, check_log, protocol_text
 
 pytestmark = pytest.mark.timeout(120)
 
-PERIOD_S = 0.2
-"""Control tick, s (real time)."""
+PERIOD_S = 0.5
+"""Control tick, s (real time): a Python process as big as the controller has garbage
+collection pauses of 0.1–0.2 s on a loaded machine (measured here), so a shorter tick would
+test the collector rather than the network."""
 RUN_S = 9.0
 """Protocol length, s."""
 OUTAGE_S = 2.0
 """How long the broker stays away, s."""
-LATENESS_BOUND_S = 0.2
-"""Largest tick lateness accepted, s: one tick, room for a shared, loaded 2-core machine
-and the run log's fsync per commit (the measured lateness is in the table). A loop that
+LATENESS_BOUND_S = PERIOD_S
+"""Largest tick lateness accepted, s: one tick, room for a shared, loaded 2-core machine,
+garbage collection and the run log's fsync per commit (the measured lateness is in the
+table). A loop that
 waited on the network would be late by the whole outage (2 s) or by the
 publisher's request timeout (2 s)."""
 WAIT_S = 20.0
@@ -69,7 +72,7 @@ async def test_a_broker_outage_leaves_the_ticks_on_time_and_telemetry_resumes(
         )
         inputs = load_run_inputs(tmp_path / "protocol.toml", tmp_path / "rig.toml")
         compiled, rig = inputs.compiled, inputs.rig
-        settings = RunSettings(period_s=PERIOD_S, read_timeout_s=0.05, write_timeout_s=0.05)
+        settings = RunSettings(period_s=PERIOD_S, read_timeout_s=0.1, write_timeout_s=0.1)
         plan = plan_control(rig, compiled.chambers, settings, inputs.incubation)
         clock = RealClock(compiled.start_utc)
         safe = {CHAMBER: plan.chambers[CHAMBER].interlocks.safe_outputs()}
@@ -142,7 +145,7 @@ async def test_a_broker_outage_leaves_the_ticks_on_time_and_telemetry_resumes(
         FaultRecord(
             fault="broker-outage",
             injected=f"the MQTT broker ({broker.kind}) stopped for {OUTAGE_S:g} s mid-run and "
-            "started again; control on the real clock with a 0.2 s tick, telemetry on",
+            "started again; control on the real clock with a 0.5 s tick, telemetry on",
             expected="no tick missed or late by a tick (the loop never waits for the "
             "network); the run log complete; telemetry reconnects and flows again",
             alarm=None,
@@ -158,11 +161,11 @@ async def test_a_broker_outage_leaves_the_ticks_on_time_and_telemetry_resumes(
             f"{stats.connections} broker sessions, no sample dropped",
         )
     )
-    record.check(alarm=None)
     assert ticks.missed == 0, ticks
     assert ticks.max_lateness_s < LATENESS_BOUND_S, ticks
+    record.check(alarm=None)
     assert summary.alarms == ()
     # the outage happened during the run, and telemetry came back before it ended
     assert "flowing" in marks and stats.connections >= 2
-    # the publisher's buffer kept the outage's rows (ten ticks of one chamber) to send later
+    # the publisher's buffer kept the outage's rows (four ticks of one chamber) to send later
     assert stats.samples_dropped == 0 and stats.samples_queued == 0
