@@ -17,7 +17,9 @@ Rules of this module
   (``[io.corrections]``) are applied to temperature, PAR and flow.
 - The optode is **not** asked during a read: every optode has its own poller in
   :meth:`HardwareIO.run`, measuring on a fixed grid of ``optode_period_s``, and a read
-  reports the latest measurement. So a slow or silent optode never stalls a tick.
+  reports the latest measurement. So a slow or silent optode never stalls a tick. The
+  optodes' grids are staggered evenly over the period (the k-th of n at ``k * period / n``),
+  so that 64 of them do not all answer at the instant a control tick is due.
 - Start-up, per module, before ``ready`` is set (register-map's sequence): read
   ``watchdog_tripped``; write the watchdog timeout, a first feed and the rig's safe drives.
   Each request is bounded by its link's timeouts, which start when it is sent, not while it
@@ -98,6 +100,9 @@ class _Optode:
 
     chamber: str
     line: SerialLineTransport
+    phase_s: float = 0.0
+    """Offset of this optode's polls on the common grid, s: the optodes' polls are spread
+    over the period, not all due at once (and at the same instant as a control tick)."""
     tag: int = 0
     polled_s: float | None = None
     o2_umol_l: float | None = None
@@ -208,8 +213,9 @@ class HardwareIO:
             cid: _Optode(
                 chamber=cid,
                 line=SerialLineTransport(port.port, baud=port.baud, timeout_s=io.optode_timeout_s),
+                phase_s=k * io.optode_period_s / len(io.optodes),
             )
-            for cid, port in io.optodes.items()
+            for k, (cid, port) in enumerate(io.optodes.items())
         }
         self._corrections = dict(io.corrections)
         self._healthy: dict[tuple[str, str], bool] = {}
@@ -444,8 +450,9 @@ class HardwareIO:
 
     # ------------------------------------------------------------------ optodes
     async def _poll(self, opt: _Optode) -> None:
+        """Ask at once (for ``ready``), then on the grid ``start + phase + k * period``."""
         period = self.optode_period_s
-        next_s = self._clock.now_s()
+        next_s = self._clock.now_s() + opt.phase_s
         while True:
             await self._sample(opt)
             opt.first.set()
