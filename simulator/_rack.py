@@ -284,6 +284,14 @@ class Rack:
         """Whether a chamber's ``device`` ('modbus' or 'optode') answers now."""
         return not self._book.comm_down(self._chamber(chamber_id), device)
 
+    def comm_ok_all(self, device: str) -> tuple[bool, ...]:
+        """:meth:`comm_ok` of every chamber in rig order (no fault active: all True)."""
+        self._sync()
+        book = self._book
+        if not book.active:
+            return (True,) * len(self.chamber_ids)
+        return tuple(not book.comm_down(i, device) for i in range(len(self.chamber_ids)))
+
     # ---------------------------------------------------------------- truth
     def truth(self, chamber_id: str) -> ChamberTruth:
         """The true state of a chamber (no sensor in the way)."""

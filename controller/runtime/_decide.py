@@ -194,6 +194,11 @@ def _feed(
     return state, min(100.0, max(0.0, drive))
 
 
+def _trimmed(setpoint: float | None, trim: PidParams | None) -> bool:
+    """Whether :func:`_feed` looks at the measurement (a trim, and a setpoint above 0)."""
+    return trim is not None and setpoint is not None and setpoint > 0.0
+
+
 class Decider:
     """The loop's memory and per-tick decisions.
 
@@ -217,6 +222,17 @@ class Decider:
         }
         self._last_t_s: float | None = None
         self._drivers = frozenset(plan.drivers)
+        self._probes = {  # each node's chambers with their probes' plausible range, °C
+            n.name: tuple(
+                (
+                    c,
+                    plan.chambers[c].interlocks.sensor_min_c,
+                    plan.chambers[c].interlocks.sensor_max_c,
+                )
+                for c in n.chambers
+            )
+            for n in plan.nodes
+        }
 
     def note_write(self, chamber: str, ok: bool) -> None:
         """Record whether the latest write to a chamber arrived.
@@ -411,23 +427,30 @@ class Decider:
                 lamp, pump = action.force.lamp_pct, action.force.pump_pct
             else:
                 target, reading = targets[chamber], readings[chamber]
+                # a reading is passed through the curve only when its trim will use it
+                lamp_set = cs.lamp_drive_pct(target.par)
                 state.lamp, lamp = _feed(  # in % of drive, through the lamp's curve
                     state.lamp,
                     cs.lamp_trim,
                     100.0,
-                    cs.lamp_drive_pct(target.par),
-                    cs.lamp_drive_pct(reading.par, reading=True),
+                    lamp_set,
+                    cs.lamp_drive_pct(reading.par, reading=True)
+                    if _trimmed(lamp_set, cs.lamp_trim)
+                    else None,
                     dt_s,
                 )
                 if closed:  # flushing pump off; the flow trim waits for the window's end
                     pump = 0.0
                 else:
+                    pump_set = cs.pump_drive_pct(target.flow_cm_s)
                     state.pump, pump = _feed(  # in % of drive, through the pump's curve
                         state.pump,
                         cs.flow_trim,
                         100.0,
-                        cs.pump_drive_pct(target.flow_cm_s),
-                        cs.pump_drive_pct(reading.flow_cm_s, reading=True),
+                        pump_set,
+                        cs.pump_drive_pct(reading.flow_cm_s, reading=True)
+                        if _trimmed(pump_set, cs.flow_trim)
+                        else None,
                         dt_s,
                     )
             shown = Outputs(heater_pct=heater, chiller_pct=chiller, lamp_pct=lamp, pump_pct=pump)
@@ -499,10 +522,9 @@ class Decider:
         state = self._nodes[node.name]
         forced = [f for c in node.chambers if (f := actions[c].force) is not None]
         temps = []
-        for c in node.chambers:
+        for c, low, high in self._probes[node.name]:
             value = readings[c].temperature_c
-            limits = self.plan.chambers[c].interlocks
-            if value is not None and limits.sensor_min_c < value < limits.sensor_max_c:
+            if value is not None and low < value < high:
                 temps.append(value)
         measured = math.fsum(temps) / len(temps) if temps else None
         target = next(

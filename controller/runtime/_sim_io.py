@@ -211,9 +211,10 @@ class SimulatedIO:
         rack brings pending commands into effect on every question, which is costly)."""
         rack = self._rack
         if self._comm_at_s != rack.t_s:
-            self._comm = {
-                (c, d): rack.comm_ok(c, d) for c in rack.chamber_ids for d in (_MODBUS, _OPTODE)
-            }
+            ids = rack.chamber_ids
+            modbus, optode = rack.comm_ok_all(_MODBUS), rack.comm_ok_all(_OPTODE)
+            self._comm = {(c, _MODBUS): up for c, up in zip(ids, modbus, strict=True)}
+            self._comm.update(((c, _OPTODE), up) for c, up in zip(ids, optode, strict=True))
             self._comm_at_s = rack.t_s
         return self._comm[(chamber, device)]
 

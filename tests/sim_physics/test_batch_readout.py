@@ -154,3 +154,16 @@ def test_vectorised_saturation_agrees_with_per_reading_calls() -> None:
     batch = saturation_umol_l(temps, np.full_like(temps, 31.5), 101.0)
     single = np.array([float(saturation_umol_l(float(t), 31.5, 101.0)) for t in temps])
     np.testing.assert_allclose(batch, single, rtol=REL, atol=0.0)
+
+
+def test_comm_ok_all_equals_comm_ok_chamber_by_chamber() -> None:
+    a, _ = twins()
+    ids = a.chamber_ids
+    assert a.comm_ok_all("modbus") == (True,) * len(ids)
+    a.inject(Fault(kind=FaultKind.COMM_TIMEOUT, chamber=ids[1], sensor="optode"))
+    a.inject(Fault(kind=FaultKind.POWER_LOSS, chamber=ids[4]))
+    a.advance(1.0)
+    for device in ("modbus", "optode"):
+        assert a.comm_ok_all(device) == tuple(a.comm_ok(c, device) for c in ids)
+    assert a.comm_ok_all("optode").count(False) == 2
+    assert a.comm_ok_all("modbus").count(False) == 1
