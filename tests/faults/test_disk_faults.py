@@ -159,6 +159,7 @@ def test_logs_of_real_time_runs_fsync_every_commit(
 
 @pytest.mark.xfail(
     strict=True,
+    raises=AssertionError,
     reason="known gap: a session's first rows wait for the next batch before they are "
     "committed, however long the tick",
 )

@@ -334,7 +334,7 @@ def test_a_power_cut_tearing_the_last_commit_loses_only_that_commit(
         FaultRecord(
             fault="power-cut",
             injected="the controller's host loses power: SIGKILL after a resume, the "
-            "write-ahead file torn mid-transaction and its index gone, then --resume",
+            "write-ahead file torn mid-transaction and its index gone, then resumed",
             expected="the torn transaction is ignored on recovery; integrity_check ok; the "
             "log keeps everything before it (commits are fsynced on a real clock) and the "
             "run resumes with a gap event; the actuators lose power with the host",

@@ -168,6 +168,7 @@ def test_a_probe_drifting_faster_than_the_loop_can_follow_trips_at_the_limit(
 
 @pytest.mark.xfail(
     strict=True,
+    raises=AssertionError,
     reason="known gap: a slowly drifting probe is followed by the loop and no interlock "
     "compares it with the optode's own temperature",
 )
@@ -184,7 +185,9 @@ def test_a_slowly_drifting_probe_is_caught_before_the_water_leaves_its_limits(
     out = run_virtual(tmp_path, faults=[fault], onset_s=ONSET_S, hours=2.0)
     truth = out.run.rack.truth(CHAMBER)
     # 6 °C/h for 1.8 h: the water is far below the 10 °C limit while the probe reads 20 °C
-    assert truth.temperature_c < 10.0
+    # (a scenario that no longer shows this is broken, not fixed: an error, not a failure)
+    if not truth.temperature_c < 10.0:
+        raise RuntimeError(f"the water stayed at {truth.temperature_c:.1f} °C")
     assert out.alarms[out.alarms.action == "raise"].code.tolist() != []
 
 
@@ -264,11 +267,14 @@ def test_dead_chiller_in_a_warm_room_trips_over_temperature(
 
 @pytest.mark.xfail(
     strict=True,
+    raises=AssertionError,
     reason="known gap: no interlock watches the flow reading, so a dead pump raises nothing",
 )
 def test_a_dead_pump_raises_an_alarm(tmp_path: Path) -> None:
     fault = Fault(kind=FaultKind.PUMP_FAILURE, chamber=CHAMBER, at_s=ONSET_S)
     out = run_virtual(tmp_path, faults=[fault], onset_s=ONSET_S, hours=0.5)
+    if not float(out.samples.flow_cm_s.iloc[-1]) < 0.5:
+        raise RuntimeError("the pump fault did not stop the flow")
     assert not out.alarms.empty
 
 
