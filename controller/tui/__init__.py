@@ -8,7 +8,8 @@ Layers, from data to screen:
   MQTT telemetry to a broker. All satisfy :class:`DataSource`. :class:`SyntheticRun` writes
   invented logs for demos, benchmarks and tests.
 - :class:`SquallApp` asks its source on a timer and hands each :class:`Snapshot` to the
-  screen on top: chamber board, chamber detail with charts, alarm list, protocol timeline.
+  screen on top: chamber board, chamber detail with charts, alarm list, protocol timeline,
+  operator tasks.
   Widgets hold reactive state and never read data or call drivers.
 - Operator commands (hold, resume, abort, acknowledge, note) go through a
   :class:`CommandChannel`; :class:`NoCommands` is the read-only channel and
@@ -46,10 +47,12 @@ if TYPE_CHECKING:
         RunState,
         RunStatus,
         Snapshot,
+        TaskEntry,
         Trace,
     )
     from ._sources import DataSource, LogSource
     from ._synthetic import SyntheticRun
+    from ._tasks_view import TasksScreen, TasksView
     from ._timeline import Span, Timeline, full_timeline, quick_timeline
 
 _NAMES = {
@@ -85,6 +88,9 @@ _NAMES = {
     "Snapshot": "_snapshot",
     "Span": "_timeline",
     "SyntheticRun": "_synthetic",
+    "TaskEntry": "_snapshot",
+    "TasksScreen": "_tasks_view",
+    "TasksView": "_tasks_view",
     "SquallApp": "_app",
     "THEME": "_app",
     "Timeline": "_timeline",
@@ -134,6 +140,9 @@ __all__ = [
     "Span",
     "SquallApp",
     "SyntheticRun",
+    "TaskEntry",
+    "TasksScreen",
+    "TasksView",
     "Timeline",
     "TimelineScreen",
     "Trace",

@@ -39,7 +39,7 @@ from ._commands import CommandChannel, CommandResult, NoCommands
 from ._dialogs import ConfirmDialog, HelpDialog, NoteDialog
 from ._look import PALETTE
 from ._screens import AlarmScreen, OverviewScreen, TimelineScreen, ViewScreen
-from ._snapshot import RunMode, RunStatus, Snapshot
+from ._snapshot import RunMode, RunStatus, Snapshot, TaskEntry
 from ._sources import DataSource
 from ._timeline import Timeline
 
@@ -105,6 +105,7 @@ class SquallApp(App[None]):
     BINDINGS: ClassVar[list[BindingType]] = [
         Binding("a", "alarms", "alarms"),
         Binding("t", "timeline", "timeline"),
+        Binding("o", "tasks", "tasks", show=False),  # in the help: footers stay in 80 columns
         Binding("h", "hold", "hold"),
         Binding("r", "resume", "resume"),
         Binding("X", "abort", "abort"),
@@ -156,6 +157,10 @@ class SquallApp(App[None]):
         self.snapshot: Snapshot | None = None
         self.timeline: Timeline = source.timeline
         self.sent: list[tuple[str, CommandResult]] = []
+        self.tasks: tuple[TaskEntry, ...] | None = None
+        """The run's operator tasks by start time; None until known."""
+        self.tasks_note = ""
+        """Why the run has no operator tasks, if known."""
         self._refine = refine_timeline
         self._status: RunStatus | None = None
         self._chamber: str | None = None
@@ -168,6 +173,10 @@ class SquallApp(App[None]):
         """Open the source, show the board, start polling."""
         if not self._refine:
             self.timeline = self.source.refine_timeline()
+            derive = getattr(self.source, "derive_tasks", None)
+            if derive is not None:
+                self.tasks = derive()
+                self.tasks_note = str(getattr(self.source, "tasks_note", ""))
         first = self.source.open()
         self.snapshot = first
         await self.push_screen(OverviewScreen())
@@ -206,9 +215,26 @@ class SquallApp(App[None]):
             timeline = self.source.refine_timeline()
         except Exception:  # the quick timeline stays; the view goes on
             _log.exception("placing the protocol's events failed")
+        else:
+            with contextlib.suppress(RuntimeError):  # the app has gone meanwhile
+                self.call_from_thread(self._timeline_arrived, timeline)
+        derive = getattr(self.source, "derive_tasks", None)
+        if derive is None:
             return
-        with contextlib.suppress(RuntimeError):  # the app has gone meanwhile
-            self.call_from_thread(self._timeline_arrived, timeline)
+        try:
+            tasks = derive()
+        except Exception:  # no task list; the view goes on
+            _log.exception("deriving the run's operator tasks failed")
+            tasks = ()
+        note = str(getattr(self.source, "tasks_note", ""))
+        with contextlib.suppress(RuntimeError):
+            self.call_from_thread(self._tasks_arrived, tasks, note)
+
+    def _tasks_arrived(self, tasks: tuple[TaskEntry, ...], note: str) -> None:
+        self.tasks, self.tasks_note = tasks, note
+        screen = self.screen
+        if self.snapshot is not None and isinstance(screen, ViewScreen) and screen.ready:
+            screen.show(self.snapshot)
 
     def _timeline_arrived(self, timeline: Timeline) -> None:
         self.timeline = timeline
@@ -228,6 +254,9 @@ class SquallApp(App[None]):
 
     def _deliver(self, snapshot: Snapshot) -> None:
         self.snapshot = snapshot
+        published = getattr(self.source, "tasks", None)
+        if published is not None and getattr(self.source, "derive_tasks", None) is None:
+            self.tasks = published()  # a broker: the controllers' retained task lists
         if snapshot.run.status is not self._status:
             self._status = snapshot.run.status
             self.refresh_bindings()
@@ -276,6 +305,13 @@ class SquallApp(App[None]):
         """Show the protocol timeline."""
         if not isinstance(self.screen, TimelineScreen):
             self.push_screen(TimelineScreen())
+
+    def action_tasks(self) -> None:
+        """Show the run's operator tasks."""
+        from ._tasks_view import TasksScreen
+
+        if not isinstance(self.screen, TasksScreen):
+            self.push_screen(TasksScreen())
 
     def action_help(self) -> None:
         """Show the key list."""

@@ -14,21 +14,31 @@ Rules of this module
   or a lost broker connection makes the view silent.
 - History for the detail charts is what arrived while watching (the broker keeps no history),
   at most :data:`HISTORY_POINTS` samples per chamber.
+- Operator tasks are the controllers' retained task lists, their chambers named like the
+  board's (``<controller>/<chamber>``).
 """
 
 from __future__ import annotations
 
+import math
 import time
 from collections import deque
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
-import numpy as np
-
 from controller.storage import IncubationState, SampleRow
 
 from ._fold import AlarmRow, apply_alarms, fold_alarms
-from ._snapshot import ChamberState, RunMode, RunState, RunStatus, Snapshot, Trace, finite_or_none
+from ._snapshot import (
+    ChamberState,
+    RunMode,
+    RunState,
+    RunStatus,
+    Snapshot,
+    TaskEntry,
+    Trace,
+    finite_or_none,
+)
 from ._timeline import Timeline
 
 if TYPE_CHECKING:
@@ -110,6 +120,7 @@ class BrokerSource:
         self._changed = True
         self._version = 0
         self._last_status: RunStatus | None = None
+        self._tasks: dict[str, tuple[TaskEntry, ...]] = {}
 
     # -- properties -----------------------------------------------------------------------
 
@@ -162,6 +173,7 @@ class BrokerSource:
             ConnectionUpdate,
             SampleUpdate,
             StatusUpdate,
+            TasksUpdate,
         )
 
         self._changed = True
@@ -173,10 +185,10 @@ class BrokerSource:
             trail.append(
                 (
                     row.utc_s,
-                    np.nan if row.temperature_c is None else row.temperature_c,
-                    np.nan if row.temperature_setpoint_c is None else row.temperature_setpoint_c,
-                    np.nan if row.o2_umol_l is None else row.o2_umol_l,
-                    np.nan if row.o2_sat_pct is None else row.o2_sat_pct,
+                    math.nan if row.temperature_c is None else row.temperature_c,
+                    math.nan if row.temperature_setpoint_c is None else row.temperature_setpoint_c,
+                    math.nan if row.o2_umol_l is None else row.o2_umol_l,
+                    math.nan if row.o2_sat_pct is None else row.o2_sat_pct,
                     row.incubation == IncubationState.CLOSED,
                 )
             )
@@ -206,6 +218,20 @@ class BrokerSource:
         elif isinstance(update, ConnectionUpdate):
             self._connected = update.connected
             self._detail = update.detail
+        elif isinstance(update, TasksUpdate):
+            cid = update.controller
+            self._tasks[cid] = tuple(
+                TaskEntry(
+                    uid=t.uid,
+                    kind=t.kind,
+                    title=t.title,
+                    start_utc_s=t.start_utc_s,
+                    minutes=t.minutes,
+                    chambers=tuple(f"{cid}/{c}" for c in t.chambers),
+                    detail=t.detail,
+                )
+                for t in update.tasks.tasks
+            )
         else:
             self._changed = False  # events and command results: shown through statuses
 
@@ -290,6 +316,8 @@ class BrokerSource:
         trail = list(self._history.get(chamber, ()))
         if not trail:
             return Trace(chamber=chamber)
+        import numpy as np
+
         cols = np.array([t[:5] for t in trail], dtype="float64")
         closed = np.array([t[5] for t in trail], dtype=bool)
         order = np.argsort(cols[:, 0], kind="stable")
@@ -303,6 +331,11 @@ class BrokerSource:
             closed=closed[order],
         )
         return trace.window(float(trace.utc_s[-1]), span_s)
+
+    def tasks(self) -> tuple[TaskEntry, ...]:
+        """Every controller's published operator tasks, by start time."""
+        found = [t for tasks in self._tasks.values() for t in tasks]
+        return tuple(sorted(found, key=lambda t: (t.start_utc_s, t.title)))
 
     def refine_timeline(self) -> Timeline:
         """Nothing to compile: the protocols stay on their controllers."""

@@ -143,7 +143,7 @@ HELP_TEXT = """\
 [b]Everywhere[/b]
   ?            this help                     q        quit the view (the run goes on)
   a            alarm list                    t        protocol timeline
-  escape       back to the chamber board
+  o            operator tasks still to come  escape   back to the chamber board
 [b]Chamber board[/b]
   ↑ ↓ / k j    move between chambers         enter    chamber detail with charts
   page keys    jump ten chambers             home end first / last chamber

@@ -34,6 +34,7 @@ __all__ = [
     "RunState",
     "RunStatus",
     "Snapshot",
+    "TaskEntry",
     "Trace",
     "chamber_state",
     "finite_or_none",
@@ -156,6 +157,43 @@ class ChamberState:
         if self.temperature_c is None or self.temperature_setpoint_c is None:
             return None
         return self.temperature_c - self.temperature_setpoint_c
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class TaskEntry:
+    """One operator task of the run (derived from its protocol and rig, or published).
+
+    Attributes
+    ----------
+    uid
+        Stable identifier of the task.
+    kind
+        ``sampling``, ``calibration``, ``maintenance``, ``daily-check``, ``run-start`` or
+        ``run-end``.
+    title
+        What to do, in one line.
+    start_utc_s
+        When it starts, UTC POSIX s.
+    minutes
+        Time set aside, minutes.
+    chambers
+        Chambers concerned (as the view names them).
+    detail
+        What, why and which procedure.
+    """
+
+    uid: str
+    kind: str
+    title: str
+    start_utc_s: float
+    minutes: float
+    chambers: tuple[str, ...] = ()
+    detail: str = ""
+
+    @property
+    def end_utc_s(self) -> float:
+        """When the time set aside ends, UTC POSIX s."""
+        return self.start_utc_s + 60.0 * self.minutes
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -13,7 +13,8 @@ Rules of this module
 - ``history`` may be slow (it reads hours of one chamber) and is meant for a worker thread:
   it opens its own file, so it never shares a connection with ``poll``.
 - :class:`LogBacked` is what the live and the replay source share: the log, its metadata,
-  the chambers and the protocol timeline.
+  the chambers, the protocol timeline and the run's operator tasks (derived, like the
+  timeline, from the protocol and rig text the log keeps; slow, so in a background thread).
 - Sources never write to the log and never stop a run. Closing the UI closes the reader only.
 """
 
@@ -36,6 +37,7 @@ from ._snapshot import (
     RunState,
     RunStatus,
     Snapshot,
+    TaskEntry,
     Trace,
     chamber_state,
 )
@@ -160,6 +162,9 @@ class LogBacked:
         self._chambers = tuple(c.chamber for c in self._meta.chambers)
         self._protocol_dir = protocol_dir
         self._timeline = title_only(self._meta.protocol_text)
+        self._tasks: tuple[TaskEntry, ...] | None = None
+        self.tasks_note = ""
+        """Why the run has no task list, if its tasks could not be derived."""
 
     @property
     def path(self) -> Path:
@@ -197,6 +202,58 @@ class LogBacked:
 
     def _timeline_refined(self) -> None:
         """Called once the timeline is complete (a subclass marks its next snapshot due)."""
+
+    def tasks(self) -> tuple[TaskEntry, ...] | None:
+        """The run's operator tasks by start time; None until :meth:`derive_tasks` ran."""
+        return self._tasks
+
+    def derive_tasks(self) -> tuple[TaskEntry, ...]:
+        """Derive the run's operator tasks from the protocol and rig text in the log (may
+        block: it validates both files; meant for a background thread).
+
+        Returns
+        -------
+        tuple of TaskEntry
+            By start time; empty, with :attr:`tasks_note` saying why, when the texts do
+            not give any.
+        """
+        from datetime import UTC, datetime
+
+        from controller.errors import SquallError
+        from controller.files import parse_toml, validate_data
+        from controller.protocol import Protocol
+        from controller.rig import Rig
+        from controller.schedule._tasks import tasks_for_run
+
+        meta = self._meta
+        try:
+            protocol = validate_data(
+                parse_toml(meta.protocol_text, file="protocol"),
+                Protocol,
+                text=meta.protocol_text,
+                file="protocol",
+            )
+            rig = validate_data(
+                parse_toml(meta.rig_text, file="rig"), Rig, text=meta.rig_text, file="rig"
+            )
+            found = tasks_for_run(protocol, rig, datetime.fromtimestamp(meta.start_utc_s, UTC))
+        except SquallError as exc:
+            self.tasks_note = f"no operator tasks: {exc.one_line()}"
+            self._tasks = ()
+            return self._tasks
+        self._tasks = tuple(
+            TaskEntry(
+                uid=t.uid,
+                kind=str(t.kind),
+                title=t.title,
+                start_utc_s=t.start_utc.timestamp(),
+                minutes=t.minutes,
+                chambers=t.chambers,
+                detail=t.detail,
+            )
+            for t in found
+        )
+        return self._tasks
 
     def close(self) -> None:
         """Close the log (the run goes on)."""
