@@ -12,6 +12,8 @@ Rules
   of a log (chambers shown as ``<controller>/<chamber>``); the view connects, and reconnects,
   in the background. A malformed URL is one line and exit 2. Commands from this view are
   not offered yet (the controllers' remote commands are off by default anyway).
+- The board paints from the log's newest rows; the protocol timeline and the operator tasks
+  are worked out afterwards in the background, and no pandas is loaded for any of it.
 - Textual is imported inside the handler only, so ``squall --help`` stays fast.
 """
 
@@ -40,8 +42,9 @@ def register(sub: Any) -> None:
         description=(
             "Watch a run in the terminal: every chamber on one board (temperature against "
             "setpoint, PAR, flow, oxygen, incubation, phase, alarms), chamber charts of the "
-            "last hours, the alarm list and the protocol timeline. Keyboard only; press ? for "
-            "the keys. Quitting the view never stops the run."
+            "last hours, the alarm list, the protocol timeline and the operator tasks still "
+            "to come. Keyboard only; press ? for the keys. Quitting the view never stops the "
+            "run."
         ),
         epilog="Without LOG the newest run log under ./runs/ is watched.",
     )
