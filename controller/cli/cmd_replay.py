@@ -7,6 +7,8 @@ Rules
   ends). Replays are read only: no commands reach any controller.
 - ``--speed`` is log seconds per real second, from 1 to 604800 (a week per second); default
   60 (an hour a minute).
+- The first frame paints from the log's first rows; the rest loads in the background (the
+  run bar shows "loading N%") while the keys work, however long the log.
 - A bad LOG or speed is one line and exit 2, before the terminal is switched to the
   full-screen view. Textual is imported inside the handler only.
 """
