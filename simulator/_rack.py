@@ -136,6 +136,7 @@ class Rack:
         self._flush_w_k = np.zeros(self._m)
         self._exchange = np.zeros(len(temps))
         self._node_capacity = self._capacity()
+        self._sweep_cache: dict[bytes, object] = {}  # per-group constants of Rack.sweep
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
             self._book.add(fault, 0.0)

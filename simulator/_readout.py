@@ -113,36 +113,88 @@ def _one(rack: Rack, cid: str, ask_optode: bool, out: Sweep, k: int) -> None:
         out.errors[k] = error
 
 
+@dataclass(frozen=True, slots=True)
+class _Consts:
+    """What does not change between sweeps of one group of chambers (indexed once)."""
+
+    temp_sd: F  # probe noise, °C
+    flow_sd: F  # flow noise, cm s⁻¹
+    o2_sd: F  # optode noise, µmol L⁻¹
+    need: NDArray[np.bool_]  # which of the 5 readings draw noise (PAR column: filled per sweep)
+    temp_off: F
+    o2_off: F
+    drift: F
+    par_frac: F
+    salinity: F
+    volume_l: F
+
+
+def _consts(rack: Rack, idx: Idx) -> _Consts:
+    """The group's constants, cached on the rack's sweep cache by chamber indices."""
+    key = idx.tobytes()
+    cache = rack._sweep_cache
+    found = cache.get(key)
+    if not isinstance(found, _Consts):
+        p = rack._p
+        temp_sd = p.temperature_noise_c[idx]
+        flow_sd = p.flow_noise_cm_s[idx]
+        o2_sd = p.optode_noise_umol_l[idx]
+        need = np.stack((temp_sd, temp_sd, flow_sd, o2_sd, temp_sd), axis=1) > 0.0
+        found = cache[key] = _Consts(
+            temp_sd=temp_sd,
+            flow_sd=flow_sd,
+            o2_sd=o2_sd,
+            need=need,
+            temp_off=p.temperature_offset_c[idx],
+            o2_off=p.optode_offset_umol_l[idx],
+            drift=p.optode_drift_umol_l_per_s[idx],
+            par_frac=p.par_noise_frac[idx],
+            salinity=p.salinity[idx],
+            volume_l=p.volume_l[idx],
+        )
+    return found
+
+
 def _group(rack: Rack, idx: Idx, ask: NDArray[np.bool_], out: Sweep, slots: list[int]) -> None:
     """Read chambers without sensor faults at once, into ``slots`` of ``out``."""
-    p = rack._p
+    c = _consts(rack, idx)
     water = rack._water
-    t_s = rack._t
-    temp_sd = p.temperature_noise_c[idx]
     par_true = rack._par_now()[idx]
-    par_sd = p.par_noise_frac[idx] * par_true
-    flow_true = rack._act.flow_cm_s[idx]
-    flow_sd = p.flow_noise_cm_s[idx]
-    o2_sd = p.optode_noise_umol_l[idx]
-    sds = np.stack((temp_sd, par_sd, flow_sd, o2_sd, temp_sd), axis=1)
-    need = sds > 0.0
-    need[:, 3:] &= ask[:, None]
-    z = np.zeros(need.shape)
-    z[need] = rack._rng.standard_normal(int(need.sum()))  # row-major: chamber by chamber
-    probe = water.probe_c[idx] + p.temperature_offset_c[idx]
-    o2_true = water.optode_umol_l[idx] + p.optode_offset_umol_l[idx]
-    o2_true += p.optode_drift_umol_l_per_s[idx] * t_s
-    true = np.stack((probe, par_true, flow_true, o2_true, probe), axis=1)
-    noisy = np.where(need, true + sds * z, true)
+    par_sd = c.par_frac * par_true
+    need = c.need.copy()
+    need[:, 1] = par_sd > 0.0
+    if not ask.all():
+        need[:, 3:] &= ask[:, None]
+    count = int(need.sum())
+    probe = water.probe_c[idx] + c.temp_off
+    o2_true = water.optode_umol_l[idx] + c.o2_off
+    o2_true += c.drift * rack._t
+    true = np.empty(need.shape)
+    true[:, 0] = probe
+    true[:, 1] = par_true
+    true[:, 2] = rack._act.flow_cm_s[idx]
+    true[:, 3] = o2_true
+    true[:, 4] = probe
+    if count:
+        sds = np.empty(need.shape)
+        sds[:, 0] = c.temp_sd
+        sds[:, 1] = par_sd
+        sds[:, 2] = c.flow_sd
+        sds[:, 3] = c.o2_sd
+        sds[:, 4] = c.temp_sd
+        z = np.zeros(need.shape)
+        z[need] = rack._rng.standard_normal(count)  # row-major: chamber by chamber
+        noisy = np.where(need, true + sds * z, true)
+    else:
+        noisy = true
     noisy[:, :4] += 0.0  # what sensor faults add: nothing (one by one, -0.0 became 0.0 too)
     temperature = noisy[:, 0].tolist()
     par = np.maximum(noisy[:, 1], 0.0).tolist()
     flow = np.maximum(noisy[:, 2], 0.0).tolist()
-    lost = 1.0 - rack._volume[idx] / p.volume_l[idx]
-    level = (lost < p.level_alarm_frac).tolist()
+    lost = 1.0 - rack._volume[idx] / c.volume_l
+    level = (lost < rack._p.level_alarm_frac).tolist()
     o2 = np.maximum(noisy[:, 3], 0.0)
-    foil_c = noisy[:, 4]
-    sat, failures = _saturation(foil_c, p.salinity[idx], p.pressure_kpa, ask)
+    sat, failures = _saturation(noisy[:, 4], c.salinity, rack._p.pressure_kpa, ask)
     pct = (100.0 * o2 / sat).tolist()
     o2_list = o2.tolist()
     for j, k in enumerate(slots):
