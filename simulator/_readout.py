@@ -28,6 +28,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import FaultKind
+from controller.science.oxygen import solubility
 from simulator._science import saturation_umol_l
 from simulator._types import SensorNoReply
 
@@ -78,6 +79,8 @@ class Sweep:
 def _touched(rack: Rack, indices: Sequence[int], optode: Sequence[bool]) -> list[bool]:
     """Which chambers must be read one by one (a sensor fault or a silent device)."""
     book = rack._book
+    if not book.active:  # no fault at all: every device answers, no sensor is faulted
+        return [False] * len(indices)
     hit: set[int] = set()
     for entry in book.active:
         if entry.fault.sensor is not None and entry.fault.kind is not FaultKind.COMM_TIMEOUT:
@@ -218,7 +221,7 @@ def _saturation(
     inside = (temp_c >= _SAT_MIN_C) & (temp_c <= _SAT_MAX_C)
     if bool(inside[ask].all()):
         safe = np.where(ask, temp_c, 20.0)  # unasked optodes: any valid temperature
-        return saturation_umol_l(safe, salinity, pressure_kpa), failures
+        return np.asarray(solubility(safe, salinity, pressure_kpa, unit="umol/L")), failures
     sat = np.ones(len(temp_c))
     for j in np.flatnonzero(ask):
         try:
