@@ -116,6 +116,9 @@ POINTS: tuple[Point, ...] = (
 """Every point of a chamber block, in table and offset order (see hardware-notes)."""
 
 
+_BY_NAME = {p.name: p for p in POINTS}  # a constant index: looked up on every encode and decode
+
+
 def point(name: str) -> Point:
     """Return the point called ``name``.
 
@@ -129,9 +132,9 @@ def point(name: str) -> Point:
     Point
         The point's table, offset, encoding and scaling (no unit: a description).
     """
-    for candidate in POINTS:
-        if candidate.name == name:
-            return candidate
+    found = _BY_NAME.get(name)
+    if found is not None:
+        return found
     known = ", ".join(p.name for p in POINTS)
     raise SquallError(f"no register-map point {name!r}; known points: {known}", field=name)
 

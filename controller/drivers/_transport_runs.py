@@ -18,9 +18,10 @@ Rules of this module
   neighbours still jointly) until they answer again, so a silent module costs its
   neighbours nothing but the wait. When every block fails, the link or the whole module is
   down or slow: nothing is learned and the run stays joined, since going block by block
-  would only multiply the requests. A joined request that the budget cuts short leaves a
-  probe due for the next exchange. A device that refuses the joined read itself is read
-  block by block for good. A busy module (tripped watchdog) is fed alone, then written again.
+  would only multiply the requests. When the budget cuts a joined request short twice in a
+  row (a silent module, or a link too slow for the budget), the next exchange probes. A
+  device that refuses the joined read itself is read block by block for good. A busy
+  module (tripped watchdog) is fed alone, then written again.
 - Every exchange runs under ``budget_s`` and reports, per chamber, a value or the exception
   that stopped it; callers re-raise their own.
 - ``CancelledError`` is never caught; the exchange itself is shielded from a caller that
@@ -69,6 +70,7 @@ _TIMEOUT_OFFSET = point("watchdog_timeout_s").offset
 _COUNTER_OFFSET = point("watchdog_counter").offset
 _WRITE_WORDS = point("relay_bits").offset + 1  # holding registers 0..10 of a block
 _GAP_WORDS = BLOCK_SPAN - _WRITE_WORDS  # reserved holding registers after them
+_PROBE_AFTER = 2  # joined requests cut short in a row before the blocks are probed, count
 _Outcome = dict[str, object]  # per chamber: a value (True for a write) or an exception
 
 
@@ -158,6 +160,7 @@ class BlockRun:
         """Chambers whose modules failed on their own, after answering neighbours: they are
         exchanged with singly, their neighbours jointly, until they answer again."""
         self._probe = False
+        self._cut_short = 0
         self._read_refused = False
         self._batches: dict[str, _Batch] = {}
         self._tasks: set[asyncio.Future[_Outcome]] = set()
@@ -323,10 +326,13 @@ class BlockRun:
             self.suspects |= failed
 
     def _settle(self, out: _Outcome, asked: Sequence[_Block], pending: list[_Block]) -> _Outcome:
-        """Name a timeout for what never answered; a joined request the budget cut short
-        leaves a probe due for the next exchange."""
+        """Name a timeout for what never answered; joined requests the budget cut short in
+        :data:`_PROBE_AFTER` exchanges in a row leave a probe due for the next one."""
         if any(b.chamber not in out for b in pending):
-            self._probe = True
+            self._cut_short += 1  # a slow tick, or a module that never answers: probe on the
+            self._probe = self._cut_short >= _PROBE_AFTER  # second, not on a first slow one
+        else:
+            self._cut_short = 0
         for b in asked:
             out.setdefault(b.chamber, TimeoutError(f"no answer within {self._budget_s:g} s"))
         return out
