@@ -18,8 +18,10 @@ from pymodbus.simulator import DataType, SimData, SimDevice
 
 from controller.clock import VirtualClock
 from controller.drivers import (
+    ChamberBlock,
     OutputValues,
     RelayBits,
+    WordOrder,
     decode_input_bits,
     decode_inputs,
     decode_outputs,
@@ -34,6 +36,7 @@ from controller.drivers._transport_common import (
     RetryPolicy,
 )
 from controller.drivers._transport_modbus import ModbusTransport
+from controller.drivers._transport_runs import BlockRun
 from simulator import Fault, FaultKind, Rack
 from simulator.endpoints import RackServer
 
@@ -379,3 +382,20 @@ def test_rtu_link_moves_words_over_a_serial_line() -> None:
             cable.close()
 
     virtual(body)
+
+
+def test_a_block_run_takes_only_neighbours_and_at_most_eight() -> None:
+    link = ModbusTransport.tcp("127.0.0.1", 1502, policy=POLICY)
+
+    def run(bases: list[int]) -> BlockRun:
+        blocks = [ChamberBlock(chamber_id=f"c{i}", unit_id=1, base=b) for i, b in enumerate(bases)]
+        safe = {b.chamber_id: (0, 0, 0, 0) for b in blocks}
+        return BlockRun(link, 1, blocks, word_order=WordOrder.HIGH_FIRST, timeout_word=50,
+                        safe_words=safe, budget_s=0.5)  # fmt: skip
+
+    assert run([0, 16, 32]).chambers == ("c0", "c1", "c2")
+    assert run([64]).chambers == ("c0",)
+    with pytest.raises(ValueError, match="no gap"):
+        run([0, 32])
+    with pytest.raises(ValueError, match=r"1\.\.8 blocks"):
+        run([16 * k for k in range(9)])
