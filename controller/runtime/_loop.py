@@ -19,7 +19,10 @@ Rules of this module
   reached. A tick's setpoints are those at the protocol time its due time maps to; the run
   ends when that reaches the protocol's duration.
 - One tick: read every chamber concurrently (every read bounded by the tick's read deadline,
-  so one slow device does not hold up the others; what has not answered by then is stale),
+  so one slow device does not hold up the others; what has not answered by then is stale;
+  I/O that can answer every chamber at once without waiting, :class:`ImmediateIO` such as
+  the in-process simulation, is asked so first, with the same results and no task per
+  chamber),
   decide (:class:`~controller.runtime._decide.Decider`: interlocks, incubation cycles,
   setpoints, PID, lamps, pumps), write every chamber concurrently, queue one log row per
   protocol chamber, the alarms and the windows that ended, then report progress. Log rows
