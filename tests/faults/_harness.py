@@ -164,7 +164,8 @@ class FaultRecord:
     expected
         The behaviour the controller must show.
     alarm
-        Alarm code raised by the run log (the first after onset), or None.
+        Codes of the alarms the run log shows raised from onset until the outputs were safe
+        (to the end where nothing had to be made safe), in order, joined by ", "; or None.
     safe_after_s
         Measured time from onset to safe outputs, s of run time; None where the fault
         leaves nothing unsafe to correct (control carries on).
@@ -205,7 +206,7 @@ class FaultRecord:
         Parameters
         ----------
         alarm
-            The alarm code the scenario must raise (None: none may be raised).
+            The alarm codes the scenario must raise, as in :attr:`alarm` (None: none).
         """
         assert self.alarm == alarm, f"{self.fault}: alarm {self.alarm!r}, expected {alarm!r}"
         if self.safe_bound_s is not None:
