@@ -420,6 +420,7 @@ class ReplaySource(LogBacked):
             chunks of :data:`LOAD_CHUNK_ROWS` through a connection of its own, stops early
             when the source is closed, and leaves a log that keeps growing to ``poll``.
         """
+        self._total_rows = self._file.last_rowid()  # the bar's share from the start
         self._loader = self._load_rest
         return self._load_rest
 
