@@ -205,3 +205,48 @@ def test_random_command_lines(workdir: Path, case: tuple[tuple[str, ...], list[s
         assert err.startswith("squall: error: ") and err.count("\n") == 1, err
     elif code == 1:
         assert err.startswith("squall: failed: ") and err.count("\n") == 1, err
+
+
+LONG = "a" * 300
+"""A file name longer than file systems allow (255 bytes): ``stat`` fails with ENAMETOOLONG,
+which ``Path.exists`` does not swallow; the thorough run (``FUZZ_EXAMPLES=1000``) found it."""
+_OPEN_LOG = "controller/storage/_schema.py open_log lets the OSError through"
+
+
+def _too_long(reason: str) -> pytest.MarkDecorator:
+    return pytest.mark.xfail(strict=True, reason=f"open finding: {reason}")
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["check", LONG],
+        ["check", "protocol.toml", "--rig", LONG],
+        ["preview", "protocol.toml", "-o", "x.png", "--csv", LONG],
+        ["run", "protocol.toml", "--rig", LONG, "--sim"],
+        ["simulate", "--rig", LONG],
+        ["tune", "--rig", LONG, "C1"],
+        ["ctl", "--log", LONG, "status"],
+        ["demo", "--no-run", "--out", LONG],
+        ["heatwave", "detect", LONG, "--json", "x.json"],
+        ["schema", "rig", "-o", f"{LONG}/x.json"],
+        pytest.param(["replay", LONG], marks=_too_long(_OPEN_LOG)),
+        pytest.param(["watch", LONG], marks=_too_long(_OPEN_LOG)),
+        pytest.param(["analyze", LONG], marks=_too_long(_OPEN_LOG)),
+        pytest.param(["run", "--resume", LONG], marks=_too_long(_OPEN_LOG)),
+        pytest.param(
+            ["analyze", "absent.sqlite", "--json", LONG],
+            marks=_too_long("controller/cli/cmd_analyze.py _check_outputs"),
+        ),
+        pytest.param(
+            ["export", "-o", f"{LONG}.csv", "absent.sqlite"],
+            marks=_too_long("controller/storage/_export.py export"),
+        ),
+    ],
+    ids=lambda argv: " ".join(a.replace(LONG, "LONG") for a in argv)[:40],
+)
+def test_a_file_name_too_long_is_a_clear_error(workdir: Path, argv: list[str]) -> None:
+    with mock.patch("sys.stdin", io.StringIO("")):
+        code, _out, err = run_cli(argv)
+    assert code == 2, (code, err)
+    assert err.startswith("squall: error: ") and err.count("\n") == 1, err
