@@ -216,8 +216,7 @@ class SquallApp(App[None]):
         except Exception:  # the quick timeline stays; the view goes on
             _log.exception("placing the protocol's events failed")
         else:
-            with contextlib.suppress(RuntimeError):  # the app has gone meanwhile
-                self.call_from_thread(self._timeline_arrived, timeline)
+            self._hand_over(self._timeline_arrived, timeline)
         derive = getattr(self.source, "derive_tasks", None)
         if derive is None:
             return
@@ -227,8 +226,15 @@ class SquallApp(App[None]):
             _log.exception("deriving the run's operator tasks failed")
             tasks = ()
         note = str(getattr(self.source, "tasks_note", ""))
+        self._hand_over(self._tasks_arrived, tasks, note)
+
+    def _hand_over(self, callback: Callable[..., None], *args: object) -> None:
+        """Run ``callback(*args)`` in the app's loop from the background thread, unless the
+        app has gone (its loop may close at any moment while it exits)."""
+        if not self.is_running:
+            return
         with contextlib.suppress(RuntimeError):
-            self.call_from_thread(self._tasks_arrived, tasks, note)
+            self.call_from_thread(callback, *args)
 
     def _tasks_arrived(self, tasks: tuple[TaskEntry, ...], note: str) -> None:
         self.tasks, self.tasks_note = tasks, note
