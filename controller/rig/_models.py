@@ -244,6 +244,7 @@ class Rig(FileModel):
         if self.incubation is not None:
             self.incubation.check("incubation")
         self._bath_gains_agree()
+        self._curves_reach_limits()
         self._plants_serve_nodes()
         if self.power.lamp_budget_w is not None:
             for i, chamber in enumerate(self.chambers):
@@ -253,6 +254,27 @@ class Rig(FileModel):
                         field=f"chambers.{i}.lamp.rated_w",
                     )
         return self
+
+    def _curves_reach_limits(self) -> None:
+        """A chamber may not promise more PAR or flow than its measured curve gives at full
+        drive: protocols are checked against the limits, and the runtime would saturate."""
+        for i, chamber in enumerate(self.chambers):
+            for curve, limit, key, table in (
+                (chamber.lamp.curve(), chamber.limits.max_par, "max_par", "lamp.drive_pct_par"),
+                (
+                    chamber.pump.curve(),
+                    chamber.limits.max_flow_cm_s,
+                    "max_flow_cm_s",
+                    "pump.drive_pct_flow_cm_s",
+                ),
+            ):
+                if curve is not None and limit > curve.full + 1e-9:
+                    raise SquallError(
+                        f"{key} {limit:g} is above what [chambers.{table.split('.')[0]}] "
+                        f"{table.split('.')[1]} gives at 100 % drive ({curve.full:g}); set "
+                        f"[chambers.limits] {key} to at most {curve.full:g}",
+                        field=f"chambers.{i}.limits.{key}",
+                    )
 
     def _plants_serve_nodes(self) -> None:
         """A plant serves thermal nodes: baths, or chambers with their own water; a node

@@ -47,6 +47,7 @@ if TYPE_CHECKING:
     from controller.runtime._settings import (
         ChamberSettings,
         ControlPlan,
+        GainSource,
         NodeSettings,
         RunSettings,
         incubation_settings,
@@ -67,6 +68,7 @@ _NAMES = {
     "ControlPlan": "_settings",
     "Decider": "_decide",
     "Decision": "_decide",
+    "GainSource": "_settings",
     "HardwareIO": "_hardware_io",
     "HardwareRun": "_hardware_run",
     "LaunchRecord": "_launch",
@@ -113,6 +115,7 @@ __all__ = [
     "ControlPlan",
     "Decider",
     "Decision",
+    "GainSource",
     "HardwareIO",
     "HardwareRun",
     "LaunchRecord",

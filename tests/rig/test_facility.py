@@ -152,3 +152,17 @@ def test_malformed_calibration_date_is_refused(tmp_path: Path) -> None:
     with pytest.raises(SquallError) as err:
         load_rig(_write(tmp_path, text))
     assert err.value.field == "chambers.2.calibration.optode_on"
+
+
+def test_max_par_above_the_lamp_table_is_refused(tmp_path: Path) -> None:
+    text = HEAD + (
+        "\n[chambers.limits]\nmax_par = 900.0\n"
+        "\n[chambers.lamp]\ndrive_pct_par = [[0.0, 0.0], [50.0, 420.0], [100.0, 700.0]]\n"
+    )
+    with pytest.raises(SquallError) as err:
+        load_rig(_write(tmp_path, text))
+    assert err.value.field == "chambers.2.limits.max_par"
+    assert err.value.line == _line_of(text, "max_par = 900.0")
+    assert "gives at 100 % drive (700)" in err.value.message
+    ok = load_rig(_write(tmp_path, text.replace("max_par = 900.0", "max_par = 700.0")))
+    assert ok.chamber("B1").limits.max_par == 700.0
