@@ -275,8 +275,19 @@ def _prepare(args: argparse.Namespace) -> SimulatedRun | HardwareRun:
     )
 
 
+def _rig_folder(run: SimulatedRun | HardwareRun, resumed: Path | None) -> Path:
+    """Folder of the run's rig file (a resumed run's: as launched, from its log)."""
+    if resumed is None:
+        return run.inputs.rig_path.parent
+    from controller.runtime._launch import read_launch
+    from controller.storage import RunLogReader
+
+    with RunLogReader(resumed) as reader:
+        return read_launch(reader, reader.meta()).rig_path.parent
+
+
 def _telemetry(
-    run: SimulatedRun | HardwareRun, *, paced: bool, console: Console
+    run: SimulatedRun | HardwareRun, *, paced: bool, console: Console, resumed: Path | None
 ) -> TelemetryLink | None:
     """The run's telemetry link when its rig has a ``[telemetry]`` table (else None)."""
     config = run.inputs.rig.telemetry
@@ -295,7 +306,7 @@ def _telemetry(
         chambers=tuple(run.plan.chambers),
         duration_s=run.inputs.compiled.duration_s,
         period_s=run.plan.settings.period_s,
-        base_dir=run.inputs.rig_path.parent,
+        base_dir=_rig_folder(run, resumed),  # a relative password_file is the rig's
         paced=paced,
         notice=notice,
     )
@@ -323,7 +334,7 @@ def _handle(args: argparse.Namespace) -> int:
     ctl = control_path(run.writer.path)
     paced = not args.sim or parse_speed(args.speed or "max") is not None
     try:
-        link = _telemetry(run, paced=paced, console=console)
+        link = _telemetry(run, paced=paced, console=console, resumed=args.resume)
     except BaseException:
         run.writer.close()
         raise

@@ -202,3 +202,23 @@ def test_a_simulated_run_at_full_speed_says_it_does_not_publish(
     out = capsys.readouterr().out
     assert "note: telemetry is not published by a simulated run at --speed max" in out
     assert "publishing as" not in out
+
+
+def test_a_resumed_run_reads_its_password_file_beside_the_rig_as_launched(
+    tmp_path: Path, broker: Broker, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from controller.runtime import SimulatedRun
+
+    rigs = tmp_path / "rigs"
+    rigs.mkdir()
+    (rigs / "pw.txt").write_text("secret\n")
+    table = telemetry_table(broker.url(), "rack-g", extra='username = "rack-g"\n')
+    (rigs / "rig.toml").write_text(rig_text(("A1",), table + 'password_file = "pw.txt"\n'))
+    (tmp_path / "protocol.toml").write_text(protocol_text(("A1",), "10min"))
+    log = tmp_path / "run.sqlite"
+    run = SimulatedRun.prepare(tmp_path / "protocol.toml", rigs / "rig.toml", log)
+    run.writer.close()  # interrupted before its first tick
+    monkeypatch.chdir(tmp_path)  # neither the rig's folder nor the log's matters here
+    assert main(["run", "--resume", str(log), "--sim", "--speed", "300"]) == 0
+    with RunLogReader(log) as reader:
+        assert reader.info().end is not None
