@@ -9,6 +9,10 @@ Rules of this module
   ``datetime64[ns, UTC]`` rounded to the microsecond, enums and few-valued text are
   categories, other text is the ``string`` dtype. Every frame is indexed by ``seq``, the row
   id (write order), which live watchers pass back to :meth:`RunLogReader.tail`.
+- Logs of a month at 1 Hz hold tens of millions of rows: :meth:`RunLogReader.iter_samples`
+  reads them in chunks of a bounded number of rows (keyset pagination on ``seq``), so memory
+  depends on the chunk size, not on the log. :meth:`RunLogReader.samples` is the whole
+  result at once, for small logs and narrow filters.
 - Anything wrong with the file (missing, not a log, newer schema, damaged) is a
   :class:`SquallError` naming the file.
 """
@@ -17,7 +21,7 @@ from __future__ import annotations
 
 import difflib
 import sqlite3
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import TracebackType
 from typing import Any, Self
@@ -94,7 +98,10 @@ def _series_values(column: Column, values: np.ndarray) -> Any:
         return values.astype("float64")  # None becomes NaN
     if kind is ValueKind.UTC:
         seconds = values.astype("float64")
-        return pd.DatetimeIndex(pd.to_datetime(seconds, unit="s", utc=True)).round("us")
+        times = pd.DatetimeIndex(pd.to_datetime(seconds, unit="s", utc=True)).round("us")
+        # pandas picks a coarser unit when every value is a whole second; pin the documented
+        # one so that all frames (and all chunks of one read) share one dtype
+        return times.as_unit("ns")
     if kind is ValueKind.ENUM or column.category:
         return pd.Categorical(values, dtype=_dtype(column))
     if kind is ValueKind.BOOL and not column.nullable:
@@ -117,6 +124,25 @@ def _frame(rows: list[tuple[Any, ...]], columns: Sequence[Column]) -> pd.DataFra
     if frame.columns.size == 0:  # no columns: keep the (empty) shape explicit
         frame = pd.DataFrame(index=index)
     return frame
+
+
+def _sample_filter(
+    chamber: str | Sequence[str] | None, t_from: float | None, t_to: float | None
+) -> tuple[list[str], list[Any]]:
+    """SQL conditions and their parameters selecting samples by chamber and clock time."""
+    where: list[str] = []
+    params: list[Any] = []
+    if chamber is not None:
+        ids = [chamber] if isinstance(chamber, str) else list(chamber)
+        where.append(f"chamber IN ({', '.join('?' for _ in ids)})")
+        params += ids
+    if t_from is not None:
+        where.append("t_s >= ?")
+        params.append(float(t_from))
+    if t_to is not None:
+        where.append("t_s < ?")
+        params.append(float(t_to))
+    return where, params
 
 
 class RunLogReader:
@@ -237,21 +263,94 @@ class RunLogReader:
         ------
         SquallError
             An unknown column name.
+
+        See Also
+        --------
+        iter_samples : the same rows in chunks of bounded size, for big logs.
         """
         cols = self._sample_columns(columns)
-        where: list[str] = []
-        params: list[Any] = []
-        if chamber is not None:
-            ids = [chamber] if isinstance(chamber, str) else list(chamber)
-            where.append(f"chamber IN ({', '.join('?' for _ in ids)})")
-            params += ids
-        if t_from is not None:
-            where.append("t_s >= ?")
-            params.append(float(t_from))
-        if t_to is not None:
-            where.append("t_s < ?")
-            params.append(float(t_to))
+        where, params = _sample_filter(chamber, t_from, t_to)
         return self._sample_frame(cols, where, params, limit=None)
+
+    def iter_samples(
+        self,
+        columns: str | Sequence[str] | None = None,
+        *,
+        chamber: str | Sequence[str] | None = None,
+        t_from: float | None = None,
+        t_to: float | None = None,
+        chunk_rows: int = 200_000,
+        last_seq: int | None = None,
+    ) -> Iterator[pd.DataFrame]:
+        """Sample rows in chunks of consecutive matching rows, in write order.
+
+        The rows, columns and dtypes are those of :meth:`samples` with the same arguments;
+        only they come ``chunk_rows`` at a time, so memory stays bounded however long the
+        log. Each chunk is one query (one consistent snapshot) and holds no lock between
+        chunks, so a run writing the log is never held up by a slow consumer.
+
+        Parameters
+        ----------
+        columns
+            Frame column names to return (see :func:`frame_columns`); None for all.
+        chamber
+            One chamber id or several; None for all.
+        t_from
+            Only rows with clock time ``t_s >= t_from``, s.
+        t_to
+            Only rows with clock time ``t_s < t_to``, s.
+        chunk_rows
+            Rows per chunk, dimensionless, at least 1; every chunk but the last has exactly
+            this many rows.
+        last_seq
+            Read only rows with ``seq <= last_seq`` (row id, dimensionless); None for the
+            rows committed when this method is called. Rows committed later are left for the
+            next call (or :meth:`tail`), so one iteration never grows while it runs.
+
+        Returns
+        -------
+        Iterator[pandas.DataFrame]
+            Chunks indexed by ``seq``, none of them empty (no chunk at all when no row
+            matches). Categories of free-text columns such as ``chamber`` and ``phase`` are
+            the values present in the chunk, so concatenated chunks hold those columns as
+            text (``object``).
+
+        Raises
+        ------
+        SquallError
+            An unknown column name, at the call (before any row is read), naming it.
+        ValueError
+            ``chunk_rows`` below 1.
+        RuntimeError
+            The reader is closed before the iteration ends.
+        """
+        cols = self._sample_columns(columns)
+        if int(chunk_rows) < 1:
+            raise ValueError(f"chunk_rows must be at least 1, not {chunk_rows!r}")
+        where, params = _sample_filter(chamber, t_from, t_to)
+        end = self.last_rowid() if last_seq is None else int(last_seq)
+        return self._chunks(cols, where, params, end, int(chunk_rows))
+
+    def _chunks(
+        self,
+        cols: Sequence[Column],
+        where: list[str],
+        params: list[Any],
+        end: int,
+        chunk_rows: int,
+    ) -> Iterator[pd.DataFrame]:
+        """Consecutive frames of matching rows with ``seq <= end`` (keyset pagination)."""
+        after = 0
+        while after < end:
+            frame = self._sample_frame(
+                cols, ["seq > ?", "seq <= ?", *where], [after, end, *params], limit=chunk_rows
+            )
+            if frame.empty:
+                return
+            yield frame
+            if len(frame) < chunk_rows:
+                return
+            after = int(frame.index[-1])
 
     def tail(self, since_rowid: int, limit: int | None = None) -> pd.DataFrame:
         """Samples written after row ``since_rowid``, for live watchers.
