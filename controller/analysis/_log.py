@@ -4,8 +4,9 @@ collects every result in one :class:`Analysis`.
 Rules of this module
 --------------------
 - This is the only module of ``controller.analysis`` that touches a file. It reads the run
-  log with :class:`~controller.storage.RunLogReader` in chunks of consecutive rows (by row
-  id), only the columns the analysis needs, so memory stays bounded for month-long 1 Hz logs.
+  log through the public API of :class:`~controller.storage.RunLogReader` only:
+  :meth:`~controller.storage.RunLogReader.iter_samples` gives chunks of consecutive rows,
+  only the columns the analysis needs, so memory stays bounded for month-long 1 Hz logs.
 - Time inside the analysis is ``run_s``: seconds since the run's start in UTC, computed from
   each row's UTC time (so resumed runs, whose clock time restarts, line up).
 - Protocol groups (treatment/control) come from the protocol text stored in the log,
@@ -73,26 +74,6 @@ Progress = Callable[[int, int], None]
 """Called with (rows read, rows to read), dimensionless."""
 
 
-class _ChunkReader(RunLogReader):
-    """A run-log reader that also reads a range of row ids (the storage reader's helpers)."""
-
-    def sample_rows(self, after_seq: int, upto_seq: int, columns: Sequence[str]) -> pd.DataFrame:
-        """Samples with ``after_seq < seq <= upto_seq``, only ``columns``, in row order."""
-        cols = self._sample_columns(columns)
-        where = ["seq > ?", "seq <= ?"]
-        return self._sample_frame(cols, where, [int(after_seq), int(upto_seq)], limit=None)
-
-
-def _chunks(
-    reader: _ChunkReader, last: int, columns: Sequence[str], chunk_rows: int
-) -> Iterator[tuple[int, pd.DataFrame]]:
-    """(row id reached, frame) for consecutive chunks of rows ``1..last``."""
-    step = max(int(chunk_rows), 1)
-    for after in range(0, last, step):
-        upto = min(after + step, last)
-        yield upto, reader.sample_rows(after, upto, columns)
-
-
 def read_sample_chunks(
     path: str | Path, columns: Sequence[str] = READ_COLUMNS, chunk_rows: int = 200_000
 ) -> Iterator[pd.DataFrame]:
@@ -117,10 +98,8 @@ def read_sample_chunks(
     SquallError
         The log cannot be read.
     """
-    with _ChunkReader(Path(path)) as reader:
-        last = reader.last_rowid()
-        for _, frame in _chunks(reader, last, columns, chunk_rows):
-            yield frame
+    with RunLogReader(Path(path)) as reader:
+        yield from reader.iter_samples(columns, chunk_rows=max(int(chunk_rows), 1))
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -306,7 +285,7 @@ def analyze_log(
     """
     settings = settings or AnalysisSettings()
     path = Path(path)
-    with _ChunkReader(path) as reader:
+    with RunLogReader(path) as reader:
         info = reader.info()
         meta = info.meta
         chambers = pd.DataFrame(
@@ -350,14 +329,17 @@ def analyze_log(
         done = 0
         if progress is not None:
             progress(0, last)
-        for upto, frame in _chunks(reader, last, READ_COLUMNS, chunk_rows):
+        chunks = reader.iter_samples(
+            READ_COLUMNS, chunk_rows=max(int(chunk_rows), 1), last_seq=last
+        )
+        for frame in chunks:
             frame["run_s"] = _run_seconds(frame["time"], start)
             win_acc.update(frame[list(WINDOW_INPUT_COLUMNS)])
             quality_acc.update(frame[list(QUALITY_INPUT_COLUMNS)])
             traces.update(frame)
             done += len(frame)
             if progress is not None:
-                progress(upto, last)
+                progress(int(frame.index[-1]), last)  # row id reached; the last chunk ends at last
     groups, group_note = groups_from_protocol(meta.protocol_text)
     notes = [group_note] if group_note else []
     windows = classify_windows(win_acc.table(), chambers, settings)
