@@ -3,7 +3,9 @@
 - :class:`RunLogWriter` creates a log (or resumes an interrupted one) and writes samples
   every tick, committing at most every ``commit_interval_s`` of the run's clock; alarms,
   events, closed incubation windows and operator actions are committed at once.
-- :class:`RunLogReader` reads it into pandas frames, also while the writer is active.
+- :class:`RunLogReader` reads it into pandas frames, also while the writer is active:
+  whole (:meth:`RunLogReader.samples`) or, for logs of any length in bounded memory, in
+  chunks of consecutive rows (:meth:`RunLogReader.iter_samples`).
 - :func:`export` writes the contract run table (``squall export``) to Parquet or CSV.
 
 The row shapes in :mod:`._records` are the one source of truth for the tables, the frames
