@@ -436,10 +436,15 @@ class RunLogWriter:
         self._last_t_s = t_s
 
     def _after_write(self, t_s: float) -> None:
-        """Commit when the clock time moved ``commit_interval_s`` past the last commit."""
+        """Commit a session's first rows at once, then whenever the clock time moved
+        ``commit_interval_s`` past the last commit."""
         self._see(t_s)
         if self._last_commit_t_s is None:
-            self._last_commit_t_s = t_s  # the interval counts from the first data
+            # The first rows of a session (a start or a resume) go to disk at once: waiting
+            # for the next batch would put a whole tick at risk when the tick is longer
+            # than the interval.
+            self.flush()
+            return
         dt_s = t_s - self._last_commit_t_s
         # dt_s < 0: the clock went back (a bug or a new clock); commit rather than wait.
         if dt_s >= self._interval_s or dt_s < 0:

@@ -62,14 +62,6 @@ GAPS: tuple[tuple[str, str], ...] = (
         "zero against its setpoint. The log's incubation column keeps saying the chamber is "
         "open (the pump is commanded), though no water is exchanged.",
     ),
-    (
-        "test_disk_faults.py::test_a_session_s_first_rows_are_committed_within_the_commit_interval",
-        "The run log commits a session's first rows only with the next batch (the commit "
-        "interval counts from the first data), so a crash just after a start or a resume "
-        "can lose two ticks, and with a tick longer than the interval more than the "
-        "interval. Committing the first batch at once closes it; the storage tests expect "
-        "the present behaviour.",
-    ),
 )
 """Known gaps, each kept by a strict ``xfail`` test (test id, what is missing)."""
 

@@ -99,12 +99,13 @@ def test_malformed_row_is_a_bug_and_rolls_back_the_pending_batch(tmp_path: Path)
     bad = tick_rows(0.5)
     object.__setattr__(bad[1], "chamber", None)  # NOT NULL column
     with RunLogWriter(log, meta=make_meta(3), commit_interval_s=1.0) as writer:
-        writer.append_samples(tick_rows(0.0))
+        writer.append_samples(tick_rows(0.0))  # a session's first rows: committed at once
+        writer.append_samples(tick_rows(0.25))  # pending
         with pytest.raises(sqlite3.IntegrityError):
             writer.append_samples(bad)
         writer.append_samples(tick_rows(1.0))
     with RunLogReader(log) as reader:
-        assert reader.samples(columns=["t_s"])["t_s"].tolist() == [1.0] * 3
+        assert reader.samples(columns=["t_s"])["t_s"].tolist() == [0.0] * 3 + [1.0] * 3
 
 
 def _write_finished(log: Path) -> None:

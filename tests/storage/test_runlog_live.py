@@ -41,8 +41,8 @@ def test_rows_become_visible_only_when_the_commit_interval_has_passed(tmp_path: 
         seen.append(_count(reader))
         assert (writer.pending_rows, writer.last_commit_t_s) == (0, 2.0)
         reader.close()
-    # first data at t = 0; commits when t reaches 1.0 s and 2.0 s
-    assert seen == [0, 0, 0, 0, 15, 15, 15, 15, 27]
+    # a session's first rows are committed at once (t = 0); then when t reaches 1.0 s and 2.0 s
+    assert seen == [3, 3, 3, 3, 15, 15, 15, 15, 27]
 
 
 def test_zero_interval_commits_every_call(tmp_path: Path) -> None:
@@ -76,7 +76,8 @@ def test_alarm_commits_pending_samples_at_once(tmp_path: Path) -> None:
             )
             after = _count(reader)
             alarms = len(reader.alarms())
-    assert (before, after, alarms) == (0, 6, 1)
+    # the first tick was committed at once; the second waited for the alarm
+    assert (before, after, alarms) == (3, 6, 1)
 
 
 def test_reader_and_writer_work_side_by_side(tmp_path: Path) -> None:
