@@ -1,29 +1,26 @@
 """Benchmark: real-time control of 64 chambers at 1 Hz through the simulator's loopback endpoints.
 
 A 64-chamber rig derived from ``rigs/saltmarrow-rack8.toml`` (C1..C64 copy C5..C8 in turn; no
-bath, no fault) names its devices by ``[io] from_announcement``; ``squall simulate --port 0
---ports-file F`` serves it in its own process, as I/O modules of eight chambers (one unit id
-per eight, blocks without gaps: ``hardware-notes/register-map.md``), so the controller reads
-and writes each module in one request per tick. The controller runs in *this* process on the
-real clock at a 1 s tick through HardwareIO (Modbus TCP, optode ptys) with interlocks, PID
-and the SQLite log, with the 0.25 s timeouts of ``squall run --period 1``, and is stopped
-(an operator abort) once N ticks followed the first. The announced modules are reached over
-8 TCP connections, one per module, as a rack with one Modbus TCP module per eight chambers
-is wired (``--links K`` for K; ``--links 1`` keeps the ports file's single link, and falls
-back to 8 links with 0.45 s timeouts and 90 s to get ready if that one never gets ready).
+bath, no fault) names its devices by ``[io] from_announcement``; ``squall simulate`` serves it
+in its own process as I/O modules of eight chambers (a unit id each, blocks without gaps:
+``hardware-notes/register-map.md``), so each module is read and written in one request a
+tick. The controller runs in *this* process on the real clock at a 1 s tick through
+HardwareIO (Modbus TCP, optode ptys) with interlocks, PID and the SQLite log, with the 0.25 s
+timeouts of ``squall run --period 1``, and is stopped (an operator abort) once N ticks
+followed the first. The modules are reached over 8 TCP connections, one per module, as a
+rack with a Modbus TCP module per eight chambers is wired (``--links K``; ``--links 1`` keeps
+the ports file's one link, and falls back to 8 links with 0.45 s timeouts and 90 s to get
+ready if it never gets ready).
 
-Printed side by side from one run: the controller process's CPU share (its user + system
-CPU time over wall time, this process only) in steady state and over the whole run; tick
-lateness p50/p99/max of the steady-state ticks measured on the loop's clock, beside
-RunSummary's p99/max; the run's health (the share of logged rows with a temperature);
-Modbus requests per tick. References from the same process: an idle asyncio loop ticking at
-1 Hz as long, and one Modbus request's client CPU and round trip via the controller's
-transport, bare pymodbus, and the same frame by hand. Goals (issue 4): CPU <= 5 % of one
-core, p99 lateness <= 20 ms, a healthy run (>= 99 % of logged rows with a temperature); when
-one is missed (or with ``--profile``) a 20 s run under cProfile (CPU time) follows.
-
-Run: ``/work/venv/bin/python bench/bench_realtime.py [--seconds 120] [--quick] [--links K]
-[--profile]`` (``--quick``: 30 s).
+Printed side by side from one run: the controller process's CPU share (its user + system CPU
+time over wall time) in steady state and over the whole run; tick lateness p50/p99/max of
+the steady-state ticks on the loop's clock, beside RunSummary's; the share of logged rows
+with a temperature; Modbus requests per tick. References from the same process: an idle
+asyncio loop ticking at 1 Hz as long, and one Modbus request's client CPU and round trip via
+the controller's transport, bare pymodbus, and the same frame by hand. Goals (issue 4): CPU
+<= 5 % of one core, p99 lateness <= 20 ms, >= 99 % of rows with a temperature; when one is
+missed (or with ``--profile``) a 20 s run under cProfile (CPU time) follows. Run:
+``bench/bench_realtime.py [--seconds 120] [--quick] [--links K] [--profile]`` (quick: 30 s).
 """
 
 from __future__ import annotations
@@ -147,9 +144,8 @@ def linked_io(announcement: dict[str, Any], ids: list[str], links: int) -> list[
         part = ids[k : k + size]
         lines += ["", "[[io.modbus]]", f'name = "simulator-{k // size + 1}"']
         lines += [f"tcp = {{ host = {_toml(modbus['host'])}, port = {modbus['port']} }}"]
-        # one attempt of the whole 0.2 s budget: on a shared machine a late reply is likelier
-        # than a lost one (io_from_ports' link: 0.1 s, three attempts)
-        lines += [f"chambers = {_toml(part)}", "timeout_s = 0.2", "attempts = 1"]
+        # one attempt of the 0.2 s budget: on a shared machine a late reply is likelier than
+        lines += [f"chambers = {_toml(part)}", "timeout_s = 0.2", "attempts = 1"]  # a lost one
         lines += ["", "[io.modbus.register_map]", f"word_order = {_toml(modbus['word_order'])}"]
         for cid in part:
             block = modbus["blocks"][cid]
