@@ -21,7 +21,8 @@ Three measurements, each beside a reference measured in the same run:
    (an hour a second) for N seconds with the app's frame timer (0.1 s): work per frame (poll
    + hand-over to the widgets), interval between frames (which includes Textual's paint),
    and process CPU per frame, as percentiles; on the board and on a chamber's charts with
-   the log in memory, and on the board while it still loads ("cold"). Smooth means frames
+   the log in memory, and on the board while it still loads ("cold": the app's worker
+   thread reads it; the frames carry no read). Smooth means frames
    keep their 0.1 s rhythm: goal p95 interval ≤ 150 ms.
 
 No timing is asserted in tests; this prints figures and ``RESULT:`` lines for bench/run.
@@ -335,7 +336,7 @@ def replay(folder: Path, seconds: float, days: float) -> None:
     print(f"   ({ticks * CHAMBERS} rows, written in {made_s:.1f} s) at 3600x, {seconds:g} s, ")
     print(f"   frame timer {0.1 * 1000:.0f} ms, {SIZE[0]}x{SIZE[1]}")
     print("   'loaded': the log read into memory before playing (steady playback);")
-    print("   'cold': playing at once while 2000-row chunks load in the frames")
+    print("   'cold': playing at once while the rest of the log loads in the app's worker thread")
     head = "   case            frames  work p50/p95/p99/max ms    interval p50/p95/max ms"
     print(head + "  CPU/frame ms")
     interval_p95: dict[str, float] = {}
