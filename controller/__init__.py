@@ -5,11 +5,21 @@ I/O and reads no clock, and a thin imperative shell (``cli``, drivers, storage, 
 the core to files, devices and people.
 """
 
-from importlib.metadata import PackageNotFoundError, version
-
-try:
-    __version__ = version("squall")
-except PackageNotFoundError:  # running from a source tree that was never installed
-    __version__ = "0.0.0+unknown"
+from __future__ import annotations
 
 __all__ = ["__version__"]
+
+
+def __getattr__(name: str) -> str:
+    # The installed version is looked up on first use only: reading the package metadata
+    # costs a noticeable part of a command's start-up (e.g. 'squall watch').
+    if name != "__version__":
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        value = version("squall")
+    except PackageNotFoundError:  # running from a source tree that was never installed
+        value = "0.0.0+unknown"
+    globals()["__version__"] = value
+    return value
