@@ -209,12 +209,8 @@ def test_random_command_lines(workdir: Path, case: tuple[tuple[str, ...], list[s
 
 LONG = "a" * 300
 """A file name longer than file systems allow (255 bytes): ``stat`` fails with ENAMETOOLONG,
-which ``Path.exists`` does not swallow; the thorough run (``FUZZ_EXAMPLES=1000``) found it."""
-_OPEN_LOG = "controller/storage/_schema.py open_log lets the OSError through"
-
-
-def _too_long(reason: str) -> pytest.MarkDecorator:
-    return pytest.mark.xfail(strict=True, reason=f"open finding: {reason}")
+which ``Path.exists`` does not swallow. The thorough run (``FUZZ_EXAMPLES=1000``) found six
+commands tracing back on it; the CLI now turns it into a located error, and this keeps it so."""
 
 
 @pytest.mark.parametrize(
@@ -230,18 +226,13 @@ def _too_long(reason: str) -> pytest.MarkDecorator:
         ["demo", "--no-run", "--out", LONG],
         ["heatwave", "detect", LONG, "--json", "x.json"],
         ["schema", "rig", "-o", f"{LONG}/x.json"],
-        pytest.param(["replay", LONG], marks=_too_long(_OPEN_LOG)),
-        pytest.param(["watch", LONG], marks=_too_long(_OPEN_LOG)),
-        pytest.param(["analyze", LONG], marks=_too_long(_OPEN_LOG)),
-        pytest.param(["run", "--resume", LONG], marks=_too_long(_OPEN_LOG)),
-        pytest.param(
-            ["analyze", "absent.sqlite", "--json", LONG],
-            marks=_too_long("controller/cli/cmd_analyze.py _check_outputs"),
-        ),
-        pytest.param(
-            ["export", "-o", f"{LONG}.csv", "absent.sqlite"],
-            marks=_too_long("controller/storage/_export.py export"),
-        ),
+        ["replay", LONG],
+        ["watch", LONG],
+        ["analyze", LONG],
+        ["run", "--resume", LONG],
+        ["analyze", "absent.sqlite", "--json", LONG],
+        ["export", "-o", f"{LONG}.csv", "absent.sqlite"],
+        ["schedule", "list", "--schedule", LONG],
     ],
     ids=lambda argv: " ".join(a.replace(LONG, "LONG") for a in argv)[:40],
 )
