@@ -57,6 +57,12 @@ if TYPE_CHECKING:
     from controller.runtime._sim_io import SimulatedIO
     from controller.runtime._simulated import SimulatedRun, run_simulated
     from controller.runtime._summary import RunSummary, TickStats, TickStatus
+    from controller.runtime._telemetry_link import (
+        TelemetryLink,
+        run_tasks,
+        task_infos,
+        telemetry_link,
+    )
 
 _NAMES = {
     "OFF": "_decide",
@@ -87,6 +93,7 @@ _NAMES = {
     "SetpointTable": "_setpoints",
     "SimulatedIO": "_sim_io",
     "SimulatedRun": "_simulated",
+    "TelemetryLink": "_telemetry_link",
     "StartPoint": "_protocol_clock",
     "Target": "_decide",
     "TickStats": "_summary",
@@ -99,6 +106,9 @@ _NAMES = {
     "load_run_inputs": "_inputs",
     "node_model": "_settings",
     "plan_control": "_settings",
+    "run_tasks": "_telemetry_link",
+    "task_infos": "_telemetry_link",
+    "telemetry_link": "_telemetry_link",
     "run_simulated": "_simulated",
     "stale_readings": "_io",
 }
@@ -136,6 +146,7 @@ __all__ = [
     "SimulatedRun",
     "StartPoint",
     "Target",
+    "TelemetryLink",
     "TickStats",
     "TickStatus",
     "alarm_record",
@@ -147,5 +158,8 @@ __all__ = [
     "node_model",
     "plan_control",
     "run_simulated",
+    "run_tasks",
     "stale_readings",
+    "task_infos",
+    "telemetry_link",
 ]

@@ -45,7 +45,7 @@ if TYPE_CHECKING:
         WindowEndReason,
         WindowRecord,
     )
-    from ._schema import APPLICATION_ID, SCHEMA_VERSION, TABLES
+    from ._schema import APPLICATION_ID, SCHEMA_VERSION, TABLES, open_log, read_end, read_meta
     from ._writer import RunLogWriter
 
 _NAMES = {
@@ -81,6 +81,9 @@ _NAMES = {
     "export": "_export",
     "frame_columns": "_reader",
     "frame_dtypes": "_reader",
+    "open_log": "_schema",
+    "read_end": "_schema",
+    "read_meta": "_schema",
 }
 
 __getattr__, __dir__ = lazy_exports(__name__, _NAMES)
@@ -118,4 +121,7 @@ __all__ = [
     "export",
     "frame_columns",
     "frame_dtypes",
+    "open_log",
+    "read_end",
+    "read_meta",
 ]

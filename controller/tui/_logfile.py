@@ -33,8 +33,10 @@ from controller.storage import (
     RunMeta,
     SampleRow,
     columns_of,
+    open_log,
+    read_end,
+    read_meta,
 )
-from controller.storage._schema import open_log, read_end, read_meta
 
 from ._fold import AlarmRow, EventRow
 
