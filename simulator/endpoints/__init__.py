@@ -10,10 +10,11 @@ them from devices.
 from simulator.endpoints._modbus import ModbusEndpoint
 from simulator.endpoints._module import IoModule, Refusal
 from simulator.endpoints._optode import FIRMWARE, OptodeEmulator, measurement_from_reading
-from simulator.endpoints._runner import Announcement, RackServer
+from simulator.endpoints._runner import SYNC_QUANTUM_S, Announcement, RackServer, module_layout
 
 __all__ = [
     "FIRMWARE",
+    "SYNC_QUANTUM_S",
     "Announcement",
     "IoModule",
     "ModbusEndpoint",
@@ -21,4 +22,5 @@ __all__ = [
     "RackServer",
     "Refusal",
     "measurement_from_reading",
+    "module_layout",
 ]

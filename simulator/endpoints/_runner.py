@@ -3,10 +3,11 @@
 Rules of this module
 --------------------
 - :class:`RackServer` owns the endpoints. With a clock, the rack's simulated time follows the
-  clock in whole physics steps (``[sim] physics_step_s``): ``sync()`` advances the rack by
-  every step that has fully passed, and every endpoint calls it before answering, so a reply
-  is at most one step older than its request, and the physics is integrated once per step
-  however many requests arrive. :meth:`RackServer.run` also syncs on a fixed cadence, which
+  clock in whole steps of :data:`SYNC_QUANTUM_S` (or of ``[sim] physics_step_s`` when that is
+  shorter): ``sync()`` advances the rack by every step that has fully passed, and every
+  endpoint calls it before answering, so a reply (and a module's watchdog) is at most one
+  step late, and the physics is integrated once per step however many requests arrive.
+  :meth:`RackServer.run` also syncs on a fixed cadence, which
   keeps the physics and the device watchdogs moving when nobody asks.
 - The rack is served as modules of eight chambers (:func:`module_layout`): chamber k (rig
   order) on unit ``1 + k // 8`` at base ``16 * (k % 8)``, so every unit is one run of
@@ -39,7 +40,12 @@ from simulator import Rack
 from simulator.endpoints._modbus import ModbusEndpoint
 from simulator.endpoints._optode import OptodeEmulator
 
-__all__ = ["Announcement", "RackServer", "module_layout"]
+__all__ = ["SYNC_QUANTUM_S", "Announcement", "RackServer", "module_layout"]
+
+SYNC_QUANTUM_S = 0.1
+"""Longest step the rack follows the clock by, s (the physics step when that is shorter):
+the rack is advanced at most once per quantum however many requests arrive, and a reply or
+a watchdog expiry is at most this late."""
 
 
 def module_layout(chamber_ids: tuple[str, ...]) -> RegisterMap:
@@ -156,7 +162,7 @@ class RackServer:
         self.rack = rack
         self.clock = clock
         self._offset_s = 0.0 if clock is None else clock.now_s() - rack.t_s
-        self._step_s = rack.rig.sim.physics_step_s
+        self._step_s = min(rack.rig.sim.physics_step_s, SYNC_QUANTUM_S)
         sync = None if clock is None else self.sync
         self.modbus = ModbusEndpoint(
             rack, register_map or module_layout(rack.chamber_ids), sync=sync
@@ -249,8 +255,8 @@ class RackServer:
     # ------------------------------------------------------------------- time
 
     def sync(self) -> None:
-        """Advance the rack by the whole physics steps the clock has passed; refresh every
-        I/O module when it moved (the endpoints refresh the modules they answer for anyway)."""
+        """Advance the rack by the whole steps the clock has passed; refresh every I/O module
+        when it moved (the endpoints refresh the modules they answer for anyway)."""
         if self.clock is None:
             self.modbus.tick()
             return
