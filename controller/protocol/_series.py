@@ -29,7 +29,12 @@ from typing import TypeVar
 import numpy as np
 
 from controller.errors import SquallError
-from controller.science.heatwave import Climatology, climatology, load_climatology_csv
+from controller.science.heatwave import (
+    Climatology,
+    climatology,
+    load_climatology_csv,
+    open_data_file,
+)
 from controller.science.heatwave import load_series_csv as load_daily_series_csv
 
 __all__ = ["ReplaySeries", "SeriesFiles", "load_replay_csv"]
@@ -85,10 +90,7 @@ def load_replay_csv(path: Path, column: str | None) -> ReplaySeries:
         With the file, line and column of the first bad cell.
     """
     wanted = column or "temperature_c"
-    try:
-        handle = path.open(newline="", encoding="utf-8-sig")
-    except OSError as exc:
-        raise SquallError(f"cannot read the file: {exc.strerror or exc}", file=path) from exc
+    handle = open_data_file(path)
     times: list[datetime] = []
     values: list[float] = []
     with handle:

@@ -23,8 +23,10 @@ from __future__ import annotations
 import csv
 import datetime as dt
 import math
+import stat
 from collections.abc import Iterator
 from pathlib import Path
+from typing import TextIO
 
 import numpy as np
 import pandas as pd
@@ -32,18 +34,46 @@ import pandas as pd
 from controller.errors import SquallError
 from controller.science._climatology import DAYS_IN_CLIMATOLOGY_YEAR, FEB29_DOY, Climatology
 
-__all__ = ["load_climatology_csv", "load_series_csv"]
+__all__ = ["load_climatology_csv", "load_series_csv", "open_data_file"]
 
 _MISSING = {"", "nan", "na", "n/a", "null"}
 
 
-def _rows(path: Path, required: tuple[str, ...]) -> Iterator[tuple[int, dict[str, str]]]:
-    """Yield ``(line, {column: cell})`` for each data row, after checking the header."""
+def open_data_file(path: Path) -> TextIO:
+    """Open a data file a protocol names, refusing anything but a regular file.
+
+    A device, pipe or socket named as data would be read without end (``/dev/zero``) or
+    block (a FIFO), so its type is checked before it is opened.
+
+    Parameters
+    ----------
+    path
+        The file (no unit).
+
+    Returns
+    -------
+    TextIO
+        The open text file (UTF-8, a byte-order mark skipped, newlines as written).
+
+    Raises
+    ------
+    SquallError
+        The file is missing, unreadable, or not a regular file.
+    """
     try:
-        handle = path.open(newline="", encoding="utf-8-sig")
+        mode = path.stat().st_mode
+        if not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
+            raise SquallError(
+                "cannot read the file: not a regular file (a device, pipe or socket)", file=path
+            )
+        return path.open(newline="", encoding="utf-8-sig")
     except OSError as exc:
         raise SquallError(f"cannot read the file: {exc.strerror or exc}", file=path) from exc
-    with handle:
+
+
+def _rows(path: Path, required: tuple[str, ...]) -> Iterator[tuple[int, dict[str, str]]]:
+    """Yield ``(line, {column: cell})`` for each data row, after checking the header."""
+    with open_data_file(path) as handle:
         reader = csv.reader(handle)
         columns: list[str] | None = None
         try:

@@ -36,7 +36,11 @@ from controller.science._climatology import (
     daily_series,
     leap_day_of_year,
 )
-from controller.science._series_csv import load_climatology_csv, load_series_csv
+from controller.science._series_csv import (
+    load_climatology_csv,
+    load_series_csv,
+    open_data_file,
+)
 
 __all__ = [
     "CATEGORY_MULTIPLES",
@@ -53,6 +57,7 @@ __all__ = [
     "leap_day_of_year",
     "load_climatology_csv",
     "load_series_csv",
+    "open_data_file",
 ]
 
 

@@ -6,10 +6,9 @@ same data whoever runs it from wherever; and since the run log keeps the protoco
 folder, a resumed run reads the same files. Paths that leave that folder (``../data/x.csv``,
 absolute paths) are allowed on purpose: ``squall heatwave design`` writes them when a site
 series lives beside the protocols folder, and an operator runs their own protocols with their
-own rights. The data must be a regular file: a folder is refused clearly; refusing devices
-and pipes by their type (a protocol naming ``/dev/zero`` makes ``squall check`` read
-forever) is an open finding, pinned by the expected failure below until
-``controller/protocol/_series.py`` checks the file type.
+own rights. The data must be a regular file: a folder is refused clearly, and devices and
+pipes are refused by their type before they are opened (a protocol naming ``/dev/zero``
+would otherwise make ``squall check`` read forever).
 """
 
 from __future__ import annotations
@@ -80,11 +79,6 @@ def test_a_folder_named_as_data_is_refused_clearly(tmp_path: Path) -> None:
     assert err.count("\n") == 1
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="open finding (hardware-notes/security.md): data files are not checked to be "
-    "regular files, so a device or pipe is read as if it were a CSV",
-)
 def test_a_device_named_as_data_is_refused_by_its_type(tmp_path: Path) -> None:
     if not os.path.exists(os.devnull):
         pytest.skip("no null device")
