@@ -112,14 +112,20 @@ def samples(log: Path) -> pd.DataFrame | None:
         return None
 
 
-async def watchdogs_tripped(host: str, port: int) -> bool | None:
+async def watchdogs_tripped(modbus: dict[str, object]) -> bool | None:
     """True once every chamber's module reports its watchdog tripped (outputs held safe)."""
+    host, port = str(modbus["host"]), int(str(modbus["port"]))
+    blocks = modbus["blocks"]
+    assert isinstance(blocks, dict)
     client = AsyncModbusTcpClient(host, port=port, timeout=1.0, retries=0)
     try:
         if not await client.connect():
             return None
-        for k in range(len(CHAMBERS)):  # default layout: block k at 32·k, unit 1
-            reply = await client.read_discrete_inputs(32 * k + 2, count=1, device_id=1)
+        for chamber in CHAMBERS:  # where the simulator announced each chamber's block
+            block = blocks[chamber]
+            reply = await client.read_discrete_inputs(
+                int(block["base"]) + 2, count=1, device_id=int(block["unit_id"])
+            )
             if reply.isError() or not reply.bits[0]:
                 return None
         return True
@@ -140,7 +146,6 @@ async def test_sigkill_then_resume_keeps_the_log_whole_and_the_protocol_on_time(
     async with simulator(tmp_path) as ports:
         modbus = ports["modbus"]
         assert isinstance(modbus, dict)
-        host, port = str(modbus["host"]), int(modbus["port"])
         run = await squall(
             "run", str(protocol), "--rig", str(tmp_path / "rig.toml"), "--log", str(log),
             "--period", str(PERIOD_S),
@@ -160,7 +165,7 @@ async def test_sigkill_then_resume_keeps_the_log_whole_and_the_protocol_on_time(
         os.kill(run.pid, signal.SIGKILL)
         assert await run.wait() == -signal.SIGKILL
         # no controller: each module's watchdog (three ticks) drives its outputs safe
-        assert await until("watchdogs trip", lambda: watchdogs_tripped(host, port))
+        assert await until("watchdogs trip", lambda: watchdogs_tripped(modbus))
         with sqlite3.connect(log) as conn:
             assert conn.execute("PRAGMA integrity_check").fetchone() == ("ok",)
         before = samples(log)
