@@ -31,8 +31,12 @@ so wall times are about twice those of a quiet run): ``--quick`` 57.7 ms/tick (2
 138 240 rows, all present; peak RSS 198 then 203 MiB), ``--days 2`` 80.2 ms/tick (17 280
 ticks, 1 105 920 rows, all present, integrity ok, 529 alarms from 40 faults, none
 unhandled; peak RSS 204.6 MiB after day 1 and after day 2, gc-tracked objects 132 434 and
-132 431). At these rates the full 30-day form takes 4-7 hours; on a quiet machine the
-64-chamber tick measured 27 ms (about 2 hours).
+132 431). Those rates predate the simulated run's batched sensor reads. The full 30-day
+form after them (2026-12-02, load about 1.5-3 with a benchmark and the test suite beside it):
+259 200 of 259 200 ticks, 16 588 800 of 16 588 800 rows, no pair missing or repeated,
+integrity ok, 534 alarms from 40 faults of all 11 kinds, no unhandled exception; peak RSS
+203.0 MiB after day 1 and 204.6 MiB after day 30 (1.008x), gc-tracked objects 132 525 and
+132 470; 2187 s wall, 8.44 ms per 64-chamber tick.
 """
 
 from __future__ import annotations
