@@ -12,6 +12,7 @@ import textwrap
 from collections.abc import Callable, Iterator
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import pytest
 
@@ -136,7 +137,7 @@ def test_reopening_keeps_what_was_stored(tmp_path: Path, files: dict[str, Path])
 def test_add_stores_a_planned_experiment_with_a_snapshot_and_history(
     store: ScheduleStore, files: dict[str, Path], clock: Clock
 ) -> None:
-    local_start = START.astimezone(__import__("zoneinfo").ZoneInfo("Europe/Paris"))
+    local_start = START.astimezone(ZoneInfo("Etc/GMT-2"))  # a zone two hours east of UTC
     experiment = add(store, files, start_utc=local_start, note="first try")
     assert experiment.id == "E0001"
     assert experiment.state is S.PLANNED
