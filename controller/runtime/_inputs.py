@@ -11,10 +11,14 @@ Rules of this module
   in the working folder. A new log opens with its launch record (:mod:`._launch`).
 - A resumed run's protocol and rig are the text its log keeps (errors name ``LOG:protocol``
   and ``LOG:rig``), compiled from the run's original start.
+- The stored rig text has its inline broker passwords redacted (:mod:`._redact`); a resumed
+  run takes them from the rig file it was launched with.
 """
 
 from __future__ import annotations
 
+import dataclasses
+import logging
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -32,6 +36,7 @@ from controller.runtime._launch import (
     interrupted_windows,
     launch_audit,
 )
+from controller.runtime._redact import redact_rig_text, restore_telemetry
 from controller.runtime._settings import ControlPlan, incubation_settings
 from controller.storage import (
     ChamberRecord,
@@ -51,6 +56,8 @@ __all__ = [
     "open_resumed",
     "resumed_inputs",
 ]
+
+_log = logging.getLogger(__name__)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -248,7 +255,7 @@ def create_run_log(
     meta = RunMeta(
         run_id=path.stem,
         protocol_text=inputs.protocol_text,
-        rig_text=inputs.rig_text,
+        rig_text=redact_rig_text(inputs.rig_text),  # inline broker passwords stay out
         start_utc_s=inputs.compiled.start_utc.timestamp(),
         clock_kind=clock_kind,
         chambers=tuple(
@@ -298,7 +305,7 @@ def resumed_inputs(log_path: Path, meta: RunMeta, launch: LaunchRecord) -> RunIn
     RunInputs
         Compiled from the run's original start.
     """
-    return inputs_from_text(
+    inputs = inputs_from_text(
         protocol_text=meta.protocol_text,
         protocol_file=Path(f"{log_path}:protocol"),
         protocol_dir=launch.protocol_path.parent,
@@ -306,6 +313,11 @@ def resumed_inputs(log_path: Path, meta: RunMeta, launch: LaunchRecord) -> RunIn
         rig_file=Path(f"{log_path}:rig"),
         start_utc=meta.start_time,
     )
+    # the log keeps no inline broker password: it comes back from the launched rig file
+    rig, off = restore_telemetry(inputs.rig, launch.rig_path)
+    if off is not None:
+        _log.warning("%s: %s", log_path, off)
+    return inputs if rig is inputs.rig else dataclasses.replace(inputs, rig=rig)
 
 
 def open_resumed(

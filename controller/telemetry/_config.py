@@ -137,6 +137,32 @@ class TlsConfig(FileModel):
             raise ValueError("cert_file and key_file go together: give both or neither")
         return self
 
+    def resolved(self, base_dir: Path | None) -> TlsConfig:
+        """These settings with relative file paths made relative to ``base_dir``.
+
+        A rig file's paths are relative to the rig file's folder (as ``password_file`` is),
+        never to the folder the controller happens to be started from.
+
+        Parameters
+        ----------
+        base_dir
+            The rig file's folder; None keeps the paths as written.
+
+        Returns
+        -------
+        TlsConfig
+            A copy whose ``ca_file``, ``cert_file`` and ``key_file`` are absolute or
+            relative to ``base_dir``.
+        """
+        if base_dir is None:
+            return self
+        update = {
+            name: base_dir / path
+            for name in ("ca_file", "cert_file", "key_file")
+            if (path := getattr(self, name)) is not None and not path.is_absolute()
+        }
+        return self.model_copy(update=update) if update else self
+
 
 class CommandsConfig(FileModel):
     """Remote commands through the broker (``[telemetry.commands]``); off by default."""

@@ -105,7 +105,8 @@ class TelemetryPublisher:
     log_command
         Called with the outcome of every message on the command topic, accepted or not.
     base_dir
-        Folder a relative ``password_file`` is relative to (the rig file's).
+        Folder that a relative ``password_file``, ``ca_file``, ``cert_file`` or ``key_file``
+        is relative to (the rig file's).
     software_version
         Version reported in the status.
 
@@ -130,6 +131,8 @@ class TelemetryPublisher:
         self.commands = CommandGate(config.commands, execute=execute, log_command=log_command)
         self.topics = Topics(config.prefix)
         self._username, self._password = config.credentials(base_dir)
+        # TLS files, like the password file, are relative to the rig file's folder
+        self._tls = None if config.tls is None else config.tls.resolved(base_dir)
         self._software_version = software_version
         self._buffer = TelemetryBuffer(config.buffer_samples, config.buffer_records)
         self._wake = asyncio.Event()
@@ -437,7 +440,7 @@ class TelemetryPublisher:
             identifier=f"squall-ctl-{self.controller_id}",
             username=self._username,
             password=self._password,
-            tls=config.tls,
+            tls=self._tls,
             keepalive_s=config.keepalive_s,
             timeout_s=config.timeout_s,
             will=self._will(),
