@@ -1,5 +1,6 @@
-"""``squall serve --rig RIG [--schedule FILE] [--sim] [--speed N|max] [--until ISO | --for
-DURATION] [--period SECONDS] [--sim-start ISO]``: run a rig's schedule unattended.
+"""``squall serve --rig RIG [--schedule FILE] [--sim [--write-schedule]] [--speed N|max]
+[--until ISO | --for DURATION] [--period SECONDS] [--sim-start ISO]``: run a rig's schedule
+unattended, or rehearse it.
 
 Rules
 -----
@@ -15,6 +16,11 @@ Rules
   schedule passes in seconds; without ``--until``/``--for`` it ends when nothing is planned.
   Without ``--sim`` serve drives the devices in real time until ``--until``/``--for`` or
   Ctrl-C.
+- ``--sim`` rehearses on a copy of the schedule (``rehearsals/<stem>-<time>/`` beside it,
+  with the rehearsal's run logs) and leaves the schedule itself as it was; it takes no rig
+  lock, so it can run beside the rig's real serve. ``--write-schedule`` records the
+  simulated runs into the schedule given instead (a training or demonstration schedule),
+  holding the rig's lock like a real serve.
 - Bad input (unknown rig file, missing schedule, a time without a zone, a malformed
   duration): one line, exit 2, nothing changed. A line per state change goes to stdout.
 """
@@ -65,6 +71,12 @@ def register(sub: Any) -> None:
     )
     parser.add_argument(
         "--sim", action="store_true", help="simulate the rig's chambers on a virtual clock"
+    )
+    parser.add_argument(
+        "--write-schedule",
+        action="store_true",
+        help="with --sim: record the simulated runs into the schedule given (default: "
+        "rehearse on a copy beside it and leave the schedule as it was)",
     )
     parser.add_argument(
         "--speed",
@@ -127,14 +139,23 @@ def _duration(text: str | None) -> float | None:
     return value
 
 
+def _speed(text: str | None) -> float | None:
+    from controller.cli.cmd_run import parse_speed
+
+    return None if text is None else parse_speed(text)
+
+
 def _handle(args: argparse.Namespace) -> int:
     """Serve the rig's schedule; print a line per state change and a summary."""
-    from controller.cli.cmd_run import parse_speed
     from controller.runtime import RunSettings
     from controller.schedule._serve import ServeConfig, serve
 
     if not args.sim:
-        for value, option in ((args.speed, "--speed"), (args.sim_start, "--sim-start")):
+        for value, option in (
+            (args.speed, "--speed"),
+            (args.sim_start, "--sim-start"),
+            (args.write_schedule or None, "--write-schedule"),
+        ):
             if value is not None:
                 raise SquallError(f"{option} applies to a simulated serve only (add --sim)",
                                   field=option)  # fmt: skip
@@ -143,15 +164,33 @@ def _handle(args: argparse.Namespace) -> int:
         raise SquallError(f"the tick period must be 1 s or more, got {period!r}", field="--period")
     default = RunSettings()
     timeout_s = min(default.read_timeout_s, period / 4.0)
+    settings = RunSettings(period_s=period, read_timeout_s=timeout_s, write_timeout_s=timeout_s)
+    until_utc, for_s = _time(args.until, "--until"), _duration(args.for_)
+    start_utc, speed = _time(args.sim_start, "--sim-start"), _speed(args.speed)
+    schedule = args.schedule
+    rehearsal = args.sim and not args.write_schedule
+    if rehearsal:
+        from controller.files import load_model
+        from controller.rig import Rig
+        from controller.schedule._rehearsal import rehearsal_copy
+
+        load_model(args.rig, Rig)  # a bad rig file is refused before anything is copied
+        schedule = rehearsal_copy(args.schedule)
+        print(
+            f"rehearsal on a copy: {schedule} ({args.schedule} is left as it was; "
+            "--write-schedule records into it)",
+            flush=True,
+        )
     config = ServeConfig(
         rig_path=args.rig,
-        schedule_path=args.schedule,
+        schedule_path=schedule,
+        hold_rig=not rehearsal,
         sim=args.sim,
-        speed=parse_speed(args.speed) if args.speed is not None else None,
-        until_utc=_time(args.until, "--until"),
-        for_s=_duration(args.for_),
-        start_utc=_time(args.sim_start, "--sim-start"),
-        settings=RunSettings(period_s=period, read_timeout_s=timeout_s, write_timeout_s=timeout_s),
+        speed=speed,
+        until_utc=until_utc,
+        for_s=for_s,
+        start_utc=start_utc,
+        settings=settings,
     )
     result = serve(config, notify=lambda line: print(line, flush=True))
     taken = ", ".join(f"{exp_id} {state.value}" for exp_id, state in result.outcomes)

@@ -4,7 +4,10 @@ Rules of this module
 --------------------
 - One serve per rig: serve holds the rig's lock (:class:`~controller.runtime.RigLock`,
   ``<rig file>.lock``) from start to end, with or without ``--sim``; a second serve (or a
-  ``squall run`` on the rig's devices) is refused with one line.
+  ``squall run`` on the rig's devices) is refused with one line. A rehearsal
+  (``--sim`` on a copy of the schedule, :mod:`._rehearsal`) drives no device and writes no
+  shared schedule, so it does not take the lock (``hold_rig=False``) and can run beside the
+  rig's real serve.
 - Everything waits on one clock. Without ``--sim`` that is the real clock and the runs drive
   the rig's devices; with ``--sim`` it is one :class:`~controller.clock.VirtualClock` for the
   whole serve (autojump, or ``speed`` times real time) starting at the present (or an
@@ -103,6 +106,9 @@ class ServeConfig:
         Without ``sim``: how often the store is looked at for new experiments, s.
     by
         Name serve signs the history with (no unit).
+    hold_rig
+        Hold the rig's lock; only a simulated serve may leave it (a rehearsal on a copy of
+        the schedule).
     """
 
     rig_path: Path
@@ -116,6 +122,7 @@ class ServeConfig:
     seed: int | None = None
     poll_s: float = 60.0
     by: str = "serve"
+    hold_rig: bool = True
 
 
 @dataclass(frozen=True)
@@ -551,7 +558,7 @@ def serve(config: ServeConfig, *, notify: Callable[[str], None] | None = None) -
         raise SquallError(f"must be a duration above 0, got {config.for_s!r} s", field="--for")
     if not config.sim and (config.speed is not None or config.start_utc is not None):
         raise SquallError("--speed applies to a simulated serve only (add --sim)", field="--speed")
-    lock = _lock(rig_path)
+    lock = _lock(rig_path) if config.hold_rig or not config.sim else None
     try:
         clock: RealClock | VirtualClock
         if config.sim:
@@ -574,4 +581,5 @@ def serve(config: ServeConfig, *, notify: Callable[[str], None] | None = None) -
             run_with_clock(clock, main)
             return ServeResult(started, clock.utc(), tuple(server.outcomes))
     finally:
-        lock.release()
+        if lock is not None:
+            lock.release()

@@ -107,7 +107,7 @@ def test_stale_calibration_refuses_with_an_alarm_and_the_next_experiment_still_r
                 START + timedelta(hours=12))  # fmt: skip
     code = main(
         [
-            "serve", "--rig", str(rig), "--schedule", str(schedule), "--sim",
+            "serve", "--rig", str(rig), "--schedule", str(schedule), "--sim", "--write-schedule",
             "--sim-start", START.isoformat(), "--period", "300",
         ]
     )  # fmt: skip
@@ -173,7 +173,9 @@ def test_a_second_serve_on_the_same_rig_is_refused_and_changes_nothing(
     exp = _add(schedule, rig, _protocol(tmp_path, "bath", ["C1", "C2"]), START)
     holder = RigLock(rig)  # the first serve holds the rig
     try:
-        code = main(["serve", "--rig", str(rig), "--schedule", str(schedule), "--sim"])
+        code = main(
+            ["serve", "--rig", str(rig), "--schedule", str(schedule), "--sim", "--write-schedule"]
+        )
     finally:
         holder.release()
     err = capsys.readouterr().err.strip()
