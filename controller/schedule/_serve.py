@@ -22,6 +22,10 @@ Rules of this module
   failure. A hold through ``squall ctl`` shows as *held* in the store until resumed. A
   start that has passed (serve was down, or the previous run overran) is not skipped: the
   experiment starts as soon as serve gets to it, with the delay in its history.
+- Telemetry: a run publishes over MQTT as ``squall run`` does when the rig file has a
+  ``[telemetry]`` table (samples, alarms, events, status and the experiment's operator
+  tasks; remote commands where enabled), for as long as it runs. A simulated serve as fast
+  as possible does not publish (its clock jumps over the broker's answers) and says so.
 - Run logs: ``<id>-<protocol stem>.sqlite`` in the schedule file's folder (default
   ``runs/``), never overwritten (``-2``, ``-3``… when taken); each has its control socket
   for ``squall ctl``.
@@ -44,7 +48,7 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -52,16 +56,14 @@ from typing import TYPE_CHECKING
 
 from controller.errors import SquallError
 from controller.schedule import ExperimentState, format_when
+from controller.schedule._serve_jobs import Job, prepare_job, run_telemetry
 
 if TYPE_CHECKING:
     from controller.clock import Clock
     from controller.rig import Rig
     from controller.runtime import (
-        ChamberIO,
         ControlLoop,
-        ControlPlan,
         RigLock,
-        RunInputs,
         RunSettings,
         RunSummary,
         TickStatus,
@@ -145,15 +147,6 @@ class ServeResult:
 def _clip(text: str) -> str:
     text = " ".join(text.split())
     return text if len(text) <= _REASON_MAX else text[: _REASON_MAX - 1] + "…"
-
-
-@dataclass(kw_only=True)
-class _Job:
-    """One experiment made ready to run: inputs, plan and how to get its chamber I/O."""
-
-    inputs: RunInputs
-    plan: ControlPlan
-    make_io: Callable[[], ChamberIO]
 
 
 class _Server:
@@ -340,8 +333,24 @@ class _Server:
             return
         self._say(f"{exp.id} running '{exp.title}' on {', '.join(exp.chambers)}; log {log_path}")
         loop = self._loop(job, writer, exp)
+
+        def with_control(loop: ControlLoop) -> Awaitable[RunSummary]:
+            return run_with_control(loop, control_path(log_path))
+
         try:
-            summary: RunSummary = await run_with_control(loop, control_path(log_path))
+            link = run_telemetry(
+                job,
+                writer,
+                exp,
+                clock=self.clock,
+                rig_path=self.rig_path,
+                paced=not (self.config.sim and self.config.speed is None),
+                say=self._say,
+            )
+            if link is None:
+                summary: RunSummary = await with_control(loop)
+            else:
+                summary = await link.run(loop, with_control)
         except Exception as error:
             self._alarm(f"{exp.id} run failed: {type(error).__name__}: {error}")
             self._finish(
@@ -378,7 +387,7 @@ class _Server:
             detail = f" ({summary.detail})" if summary.detail else ""
             self._finish(exp, _S.ABORTED, f"{summary.end_reason.value}{detail}{alarms}")
 
-    def _loop(self, job: _Job, writer: RunLogWriter, exp: Experiment) -> ControlLoop:
+    def _loop(self, job: Job, writer: RunLogWriter, exp: Experiment) -> ControlLoop:
         """The control loop of a job; holds through ``squall ctl`` show in the store.
 
         A hold freezes protocol time, so the loop is asked whether it is held only when a
@@ -411,66 +420,19 @@ class _Server:
         )
         return loop
 
-    def _prepare(self, exp: Experiment) -> _Job:
+    def _prepare(self, exp: Experiment) -> Job:
         """Validate and compile the snapshot against the rig file as it is now."""
-        from controller.files import read_text
-        from controller.runtime import inputs_from_text, plan_control
-
-        rig_text = read_text(self.rig_path)
-        start = self.clock.utc().replace(microsecond=0)
-        inputs = inputs_from_text(
-            protocol_text=exp.protocol_text,
-            protocol_file=exp.protocol_path,
-            protocol_dir=exp.protocol_path.parent,
-            rig_text=rig_text,
-            rig_file=self.rig_path,
-            start_utc=start,
+        job = prepare_job(
+            exp,
+            rig_path=self.rig_path,
+            clock=self.clock,
+            settings=self.settings,
+            sim=self.config.sim,
+            speed=self.config.speed,
+            seed=self.config.seed,
         )
-        self.rig = inputs.rig  # the rig file as it stands (calibration dates may be new)
-        plan = plan_control(inputs.rig, inputs.compiled.chambers, self.settings, inputs.incubation)
-        if self.config.sim:
-            return _Job(inputs=inputs, plan=plan, make_io=self._sim_io(inputs, plan))
-        return _Job(inputs=inputs, plan=plan, make_io=self._hardware_io(inputs, plan))
-
-    def _sim_io(self, inputs: RunInputs, plan: ControlPlan) -> Callable[[], ChamberIO]:
-        """A fresh simulated rack for the run; every I/O made is a view of it."""
-        from controller.runtime import SimulatedIO
-        from simulator import Rack
-
-        rig, settings = inputs.rig, plan.settings
-        rack = Rack(rig, seed=self.config.seed, start_utc=self.clock.utc())
-        step_s = settings.period_s if self.config.speed is None else None
-        safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}
-        wiring = rig.io  # the rig's [io] settings apply to its simulated modules too
-        watchdog_s = wiring.watchdog_timeout_s if wiring is not None else None
-
-        def make() -> ChamberIO:
-            return SimulatedIO(
-                rack,
-                self.clock,
-                step_s=step_s,
-                optode_period_s=wiring.optode_period_s if wiring is not None else 30.0,
-                watchdog_s=watchdog_s or 3.0 * settings.period_s,
-                safe=safe,
-            )
-
-        return make
-
-    def _hardware_io(self, inputs: RunInputs, plan: ControlPlan) -> Callable[[], ChamberIO]:
-        """The rig's devices; each call opens its own connections."""
-        from controller.files import locate
-        from controller.runtime import HardwareIO
-
-        def make() -> ChamberIO:
-            try:
-                return HardwareIO.from_rig(
-                    inputs.rig, self.clock, base_dir=self.rig_path.parent, plan=plan
-                )
-            except SquallError as exc:
-                raise locate(exc, text=inputs.rig_text, file=inputs.rig_path) from None
-
-        make()  # problems with the [io] table refuse the experiment before preflight
-        return make
+        self.rig = job.inputs.rig  # the rig file as it stands (calibration dates may be new)
+        return job
 
     def _log_path(self, exp: Experiment) -> Path:
         folder = self.config.schedule_path.resolve().parent
