@@ -3,7 +3,8 @@
 - :class:`RunLogWriter` creates a log (or resumes an interrupted one) and writes samples
   every tick, committing at most every ``commit_interval_s`` of the run's clock; alarms,
   events, closed incubation windows and operator actions are committed at once.
-- :class:`RunLogReader` reads it into pandas frames, also while the writer is active:
+- :class:`LogConnection` is the pandas-free read-only base (metadata, end, newest row);
+  :class:`RunLogReader` reads it into pandas frames, also while the writer is active:
   whole (:meth:`RunLogReader.samples`) or, for logs of any length in bounded memory, in
   chunks of consecutive rows (:meth:`RunLogReader.iter_samples`).
 - :func:`export` writes the contract run table (``squall export``) to Parquet or CSV.
@@ -21,6 +22,7 @@ from controller._lazy import lazy_exports
 
 if TYPE_CHECKING:
     from ._columns import Column, ValueKind, columns_of
+    from ._connection import LogConnection
     from ._contract import EXPORT_COLUMNS
     from ._export import ExportFormat, export
     from ._reader import RunLogReader, frame_columns, frame_dtypes
@@ -63,6 +65,7 @@ _NAMES = {
     "ExportFormat": "_export",
     "IncubationState": "_records",
     "LightState": "_records",
+    "LogConnection": "_connection",
     "ResumePoint": "_records",
     "RunEnd": "_records",
     "RunEndReason": "_records",
@@ -105,6 +108,7 @@ __all__ = [
     "ExportFormat",
     "IncubationState",
     "LightState",
+    "LogConnection",
     "ResumePoint",
     "RunEnd",
     "RunEndReason",

@@ -20,11 +20,8 @@ Rules of this module
 from __future__ import annotations
 
 import difflib
-import sqlite3
 from collections.abc import Iterator, Sequence
-from pathlib import Path
-from types import TracebackType
-from typing import Any, Self
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -32,18 +29,17 @@ import pandas as pd
 from controller.errors import SquallError
 
 from ._columns import Column, ValueKind, columns_of
+from ._connection import LogConnection
 from ._records import (
     AlarmRecord,
     AuditRecord,
     ChamberRecord,
     EventRecord,
     RunLogInfo,
-    RunMeta,
     SampleRow,
     SessionRecord,
     WindowRecord,
 )
-from ._schema import open_log, read_end, read_meta
 
 __all__ = ["RunLogReader", "frame_columns", "frame_dtypes"]
 
@@ -145,7 +141,7 @@ def _sample_filter(
     return where, params
 
 
-class RunLogReader:
+class RunLogReader(LogConnection):
     """Read-only view of one run log.
 
     Parameters
@@ -159,60 +155,10 @@ class RunLogReader:
         Missing file, not a squall run log, incomplete, or a newer log schema.
     """
 
-    def __init__(self, path: str | Path) -> None:
-        self._path = Path(path)
-        self._conn: sqlite3.Connection | None = None
-        self._conn, self._version = open_log(self._path, readonly=True)
-
-    @property
-    def path(self) -> Path:
-        """The log file."""
-        return self._path
-
-    @property
-    def schema_version(self) -> int:
-        """Log schema version of the file, dimensionless."""
-        return self._version
-
-    def close(self) -> None:
-        """Close the connection (idempotent)."""
-        if self._conn is not None:
-            self._conn.close()
-            self._conn = None
-
-    def __enter__(self) -> Self:
-        return self
-
-    def __exit__(
-        self,
-        exc_type: type[BaseException] | None,
-        exc: BaseException | None,
-        tb: TracebackType | None,
-    ) -> None:
-        self.close()
-
-    def _fetch(self, sql: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
-        """Run one query, turning SQLite errors into SquallError naming the file."""
-        if self._conn is None:
-            raise RuntimeError(f"run log reader for {self._path} is closed")
-        try:
-            return self._conn.execute(sql, tuple(params)).fetchall()
-        except sqlite3.DatabaseError as exc:
-            raise SquallError(f"cannot read run log: {exc}", file=self._path) from exc
-
-    # -- metadata ---------------------------------------------------------------------------
-
-    def meta(self) -> RunMeta:
-        """The run's metadata (protocol and rig text, start, clock, chambers, version)."""
-        if self._conn is None:
-            raise RuntimeError(f"run log reader for {self._path} is closed")
-        return read_meta(self._conn, self._path)
-
     def info(self) -> RunLogInfo:
         """Metadata plus whether and how the run ended, sessions and sample count."""
         meta = self.meta()
-        assert self._conn is not None
-        end = read_end(self._conn, self._path)
+        end = self.end()
         sessions = self._fetch("SELECT count(*) FROM sessions")[0][0]
         # rows are never deleted, so the largest row id is the number of samples
         samples = self._fetch("SELECT coalesce(max(seq), 0) FROM samples")[0][0]
@@ -227,10 +173,6 @@ class RunLogReader:
     def chambers(self) -> tuple[ChamberRecord, ...]:
         """The rig's chambers as they were at the start of the run, in rig order."""
         return self.meta().chambers
-
-    def last_rowid(self) -> int:
-        """Row id of the newest committed sample, 0 when there is none."""
-        return int(self._fetch("SELECT coalesce(max(seq), 0) FROM samples")[0][0])
 
     # -- samples ----------------------------------------------------------------------------
 

@@ -16,26 +16,18 @@ Rules of this module
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Sequence
-from pathlib import Path
-from types import TracebackType
-from typing import TYPE_CHECKING, Any, Self
+from typing import TYPE_CHECKING, Any
 
-from controller.errors import SquallError
 from controller.storage import (
     AlarmAction,
     AlarmLevel,
     AlarmRecord,
     EventKind,
     EventRecord,
-    RunEnd,
-    RunMeta,
+    LogConnection,
     SampleRow,
     columns_of,
-    open_log,
-    read_end,
-    read_meta,
 )
 
 from ._fold import AlarmRow, EventRow
@@ -63,7 +55,7 @@ _check_fields(_ALARM_FIELDS, [c.name for c in columns_of(AlarmRecord)])
 _check_fields(_EVENT_FIELDS, [c.name for c in columns_of(EventRecord)])
 
 
-class LogFile:
+class LogFile(LogConnection):
     """Read-only rows of one run log.
 
     Parameters
@@ -76,58 +68,6 @@ class LogFile:
     SquallError
         Missing, not a squall run log, incomplete, or a newer log schema.
     """
-
-    def __init__(self, path: str | Path) -> None:
-        self._path = Path(path)
-        self._conn: sqlite3.Connection | None = None
-        self._conn, _ = open_log(self._path, readonly=True)
-
-    @property
-    def path(self) -> Path:
-        """The log file."""
-        return self._path
-
-    def close(self) -> None:
-        """Close the connection (idempotent)."""
-        if self._conn is not None:
-            self._conn.close()
-            self._conn = None
-
-    def __enter__(self) -> Self:
-        return self
-
-    def __exit__(
-        self,
-        exc_type: type[BaseException] | None,
-        exc: BaseException | None,
-        tb: TracebackType | None,
-    ) -> None:
-        self.close()
-
-    def _connection(self) -> sqlite3.Connection:
-        if self._conn is None:
-            raise RuntimeError(f"run log {self._path} is closed")
-        return self._conn
-
-    def _fetch(self, sql: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
-        try:
-            return self._connection().execute(sql, tuple(params)).fetchall()
-        except sqlite3.DatabaseError as exc:
-            raise SquallError(f"cannot read run log: {exc}", file=self._path) from exc
-
-    # -- run --------------------------------------------------------------------------------
-
-    def meta(self) -> RunMeta:
-        """The run's metadata (protocol and rig text, start, clock kind, chambers)."""
-        return read_meta(self._connection(), self._path)
-
-    def end(self) -> RunEnd | None:
-        """How the run ended, or None while it has not (or was interrupted)."""
-        return read_end(self._connection(), self._path)
-
-    def last_rowid(self) -> int:
-        """Row id of the newest committed sample, 0 when there is none."""
-        return int(self._fetch("SELECT coalesce(max(seq), 0) FROM samples")[0][0])
 
     # -- samples ----------------------------------------------------------------------------
 
