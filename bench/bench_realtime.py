@@ -43,13 +43,13 @@ import subprocess
 import sys
 import tempfile
 import time
-import tomllib
 from collections.abc import Awaitable, Callable, Iterator
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from _realtime_files import announced_io, linked_io, write_protocol, write_rig  # beside this
 from pymodbus.client import AsyncModbusTcpClient
 
 from controller.clock import Clock, RealClock, run_with_clock
@@ -69,8 +69,6 @@ from controller.runtime._hardware_io import HardwareIO
 from controller.storage import ClockKind
 
 ROOT = Path(__file__).resolve().parent.parent
-RIG = ROOT / "rigs" / "saltmarrow-rack8.toml"
-TEMPLATES = ("C5", "C6", "C7", "C8")  # the example rig's chambers with their own water
 PERIOD_S = 1.0
 GOAL_CPU_PCT = 5.0
 GOAL_P99_MS = 20.0
@@ -83,106 +81,6 @@ FALLBACK_IO_TIMEOUT_S = 0.45  # their read and write timeouts, s (the tick is 1 
 FALLBACK_READY_TIMEOUT_S = 90.0  # and how long their set-up may take, s
 Share = tuple[float, float, float]  # user %, system %, total % of one core
 Cost = dict[str, tuple[float, float]]  # client CPU and round trip of one request, s, by way
-
-
-# ---------------------------------------------------------------------------------- files
-
-
-def _toml(value: Any) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int | float):
-        return repr(value)
-    if isinstance(value, str):
-        return json.dumps(value, ensure_ascii=False)  # a valid TOML basic string
-    if isinstance(value, date):  # a date or datetime read from the rig (TOML 1.0 literals)
-        return value.isoformat()
-    if isinstance(value, list) and not any(isinstance(v, dict) for v in value):
-        return "[" + ", ".join(_toml(v) for v in value) + "]"
-    raise TypeError(f"no TOML form for {value!r} in this bench")
-
-
-def _table(lines: list[str], path: str, table: dict[str, Any]) -> None:
-    """Append the scalars of ``table``, then its sub-tables as ``[path.key]``."""
-    lines.extend(f"{k} = {_toml(v)}" for k, v in table.items() if not isinstance(v, dict))
-    for key, value in table.items():
-        if isinstance(value, dict):
-            lines += ["", f"[{path}.{key}]"]
-            _table(lines, f"{path}.{key}", value)
-
-
-def write_rig(folder: Path, n: int, io_lines: list[str], name: str) -> tuple[Path, list[str]]:
-    """Write the n-chamber rig with the given ``[io]`` lines; return its path and ids."""
-    source = tomllib.loads(RIG.read_text(encoding="utf-8"))
-    templates = [c for c in source["chambers"] if c["id"] in TEMPLATES]
-    if len(templates) != len(TEMPLATES) or any("bath" in c for c in templates):
-        raise SystemExit(f"{RIG.name} no longer has independent chambers {TEMPLATES}")
-    lines = [f"# derived from {RIG.name} by bench/bench_realtime.py"]
-    lines += [f"name = {_toml(source['name'] + f' x{n} (bench)')}", "", "[sim]"]
-    _table(lines, "sim", {k: v for k, v in source.get("sim", {}).items() if k != "faults"})
-    lines += ["", *io_lines]
-    ids = [f"C{i + 1}" for i in range(n)]
-    for i, cid in enumerate(ids):
-        lines += ["", "[[chambers]]"]
-        _table(lines, "chambers", dict(templates[i % len(templates)], id=cid))
-    path = folder / f"{name}.toml"
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    return path, ids
-
-
-def announced_io(ports_file: str) -> list[str]:
-    """``[io]`` naming the simulator's ports file (what the issue asks to measure)."""
-    return ["[io]", f"from_announcement = {_toml(ports_file)}"]
-
-
-def linked_io(announcement: dict[str, Any], ids: list[str], links: int) -> list[str]:
-    """``[io]`` with the announced blocks and optode ports spread over ``links`` TCP
-    connections to the same simulator (chambers dealt out in rig order)."""
-    modbus = announcement["modbus"]
-    lines, size = ["[io]"], math.ceil(len(ids) / links)
-    for k in range(0, len(ids), size):
-        part = ids[k : k + size]
-        lines += ["", "[[io.modbus]]", f'name = "simulator-{k // size + 1}"']
-        lines += [f"tcp = {{ host = {_toml(modbus['host'])}, port = {modbus['port']} }}"]
-        # one attempt of the 0.2 s budget: on a shared machine a late reply is likelier than
-        lines += [f"chambers = {_toml(part)}", "timeout_s = 0.2", "attempts = 1"]  # a lost one
-        lines += ["", "[io.modbus.register_map]", f"word_order = {_toml(modbus['word_order'])}"]
-        for cid in part:
-            block = modbus["blocks"][cid]
-            lines += ["", f"[io.modbus.register_map.chambers.{cid}]"]
-            lines += [f"unit_id = {block['unit_id']}", f"block_address = {block['base']}"]
-    for cid, port in announcement.get("optodes", {}).items():
-        lines += ["", f"[io.optodes.{cid}]", f"port = {_toml(port)}"]
-    return lines
-
-
-def write_protocol(folder: Path, ids: list[str], seconds: int, name: str) -> Path:
-    """A protocol for every chamber: hold 20 °C, a 1 °C/h ramp, hold; light and flow held."""
-    hold_s = max(1, seconds // 2)
-    ramp_to_c = 20.0 + (seconds - hold_s) / 2 / 3600.0  # 1 °C/h for a quarter of the run
-    text = f"""format = "squall-protocol/1"
-title = "Real-time benchmark ({len(ids)} chambers, {seconds} s)"
-begins = "on-launch"
-utc_offset = "+00:00"
-
-[groups.all]
-role = "treatment"
-chambers = {_toml(ids)}
-
-[[phases]]
-name = "realtime"
-duration = "PT{seconds}S"
-  [phases.programs]
-  temperature = [
-    {{ kind = "hold", value = 20.0, duration = "PT{hold_s}S" }},
-    {{ kind = "ramp", to = {ramp_to_c:.6f}, rate_per_h = 1.0 }},
-    {{ kind = "hold", value = {ramp_to_c:.6f} }},
-  ]
-  light = [ {{ kind = "hold", value = 300.0 }} ]
-  flow = [ {{ kind = "hold", value = 4.0 }} ]
-"""
-    (path := folder / f"{name}.toml").write_text(text, encoding="utf-8")
-    return path
 
 
 # ------------------------------------------------------------------------------- simulator
@@ -532,14 +430,15 @@ def main() -> None:
         sim = Simulator.start(rig, folder / "sim-ports.json")
         try:
             run, settings, links = None, settings_for(), max(1, args.links)
-            how = "from_announcement: one TCP link to 8 modules of 8 chambers"
+            modules = f"{math.ceil(n / 8)} modules of up to 8 chambers"  # as the simulator serves
+            how = f"from_announcement: one TCP link to {modules}"
             if links == 1:
                 run = attempt(rig, ids, "announced", sim, settings, seconds)
                 if run is None:  # the single link never got ready: spread it, give it time
                     links = FALLBACK_LINKS
                     settings = settings_for(FALLBACK_IO_TIMEOUT_S, FALLBACK_READY_TIMEOUT_S)
             if run is None:
-                how = f"{links} TCP links to 8 modules of 8 chambers"
+                how = f"{links} TCP links to {modules}"
                 io_lines = linked_io(sim.announcement(), ids, links)
                 rig, _ = write_rig(folder, n, io_lines, f"links{links}")
                 run = attempt(rig, ids, f"links{links}", sim, settings, seconds)
