@@ -7,10 +7,11 @@ in its own process as I/O modules of eight chambers (a unit id each, blocks with
 tick. The controller runs in *this* process on the real clock at a 1 s tick through
 HardwareIO (Modbus TCP, optode ptys) with interlocks, PID and the SQLite log, with the 0.25 s
 timeouts of ``squall run --period 1``, and is stopped (an operator abort) once N ticks
-followed the first. The modules are reached over 8 TCP connections, one per module, as a
-rack with a Modbus TCP module per eight chambers is wired (``--links K``; ``--links 1`` keeps
-the ports file's one link, and falls back to 8 links with 0.45 s timeouts and 90 s to get
-ready if it never gets ready).
+followed the first. The rig names the simulator's ports file (``[io] from_announcement``),
+which gives a TCP connection per module, as a rack with a Modbus TCP module per eight
+chambers is wired; ``--links K`` spreads the chambers over K connections instead. Should
+the announced links never get ready, 8 links with 0.45 s timeouts and 90 s to get ready are
+tried.
 
 Printed side by side from one run: the controller process's CPU share (its user + system CPU
 time over wall time) in steady state and over the whole run; tick lateness p50/p99/max of
@@ -76,7 +77,7 @@ GOAL_ROWS_PCT = 99.0  # logged rows with a temperature: a healthy run reads near
 PORTS_WAIT_S = 60.0
 MODBUS_BURST, MODBUS_BURSTS = 500, 4  # requests per burst, bursts per reference
 MODBUS_CALLS = ("read_input_registers", "read_discrete_inputs", "write_registers", "write_coils")
-FALLBACK_LINKS = 8  # TCP links tried when the announced single link never gets ready
+FALLBACK_LINKS = 8  # TCP links tried when the announced links never get ready
 FALLBACK_IO_TIMEOUT_S = 0.45  # their read and write timeouts, s (the tick is 1 s)
 FALLBACK_READY_TIMEOUT_S = 90.0  # and how long their set-up may take, s
 Share = tuple[float, float, float]  # user %, system %, total % of one core
@@ -414,9 +415,9 @@ def main() -> None:
     parser.add_argument("--seconds", type=int, default=120, help="steady-state ticks (s)")
     parser.add_argument("--quick", action="store_true", help="30 s instead of 120 s")
     parser.add_argument("--chambers", type=int, default=64, help="chambers in the rig")
-    parser.add_argument("--links", type=int, default=FALLBACK_LINKS, help="TCP links the "
-                        "announced modules are spread over (default: one per module of 8 "
-                        "chambers); 1 = the ports file's single link")  # fmt: skip
+    parser.add_argument("--links", type=int, default=0, help="TCP links the chambers are "
+                        "spread over (default 0: as the ports file announces, one per module "
+                        "of 8 chambers)")  # fmt: skip
     parser.add_argument("--profile", action="store_true", help="always run the profiled run")
     parser.add_argument("--profile-seconds", type=int, default=20, help="profiled run, s")
     args = parser.parse_args()
@@ -429,16 +430,16 @@ def main() -> None:
         rig, ids = write_rig(folder, n, announced_io("sim-ports.json"), "announced")
         sim = Simulator.start(rig, folder / "sim-ports.json")
         try:
-            run, settings, links = None, settings_for(), max(1, args.links)
-            modules = f"{math.ceil(n / 8)} modules of up to 8 chambers"  # as the simulator serves
-            how = f"from_announcement: one TCP link to {modules}"
-            if links == 1:
+            run, settings, links = None, settings_for(), max(0, args.links)
+            modules = math.ceil(n / 8)  # the simulator serves modules of up to 8 chambers
+            how = f"from_announcement: {modules} TCP links to {modules} modules"
+            if links == 0:
                 run = attempt(rig, ids, "announced", sim, settings, seconds)
-                if run is None:  # the single link never got ready: spread it, give it time
+                if run is None:  # the announced links never got ready: give them time
                     links = FALLBACK_LINKS
                     settings = settings_for(FALLBACK_IO_TIMEOUT_S, FALLBACK_READY_TIMEOUT_S)
             if run is None:
-                how = f"{links} TCP links to {modules}"
+                how = f"{links} TCP links to {modules} modules"
                 io_lines = linked_io(sim.announcement(), ids, links)
                 rig, _ = write_rig(folder, n, io_lines, f"links{links}")
                 run = attempt(rig, ids, f"links{links}", sim, settings, seconds)

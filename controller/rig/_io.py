@@ -17,7 +17,9 @@ Rules of this module
   that ``squall simulate --ports-file FILE.json`` writes, so the very same rig file runs
   against the simulator on loopback. The file is read when the run starts (the simulator
   picks new pseudo-terminal paths every time), relative to the rig file's folder; the other
-  settings of ``[io]`` (watchdog, optode cadence, timeouts) still apply.
+  settings of ``[io]`` (watchdog, optode cadence, timeouts) still apply. Each I/O module
+  (unit id) the simulator serves gets a TCP link of its own, as a rack with a Modbus TCP
+  module per eight chambers is wired.
 - Everything is checked against the rig's chambers when the rig is loaded (or, for a ports
   file, when it is read) and reported as :class:`~controller.errors.SquallError` with the
   dotted field path, so ``squall check --rig`` points at the line.
@@ -310,8 +312,10 @@ def io_from_ports(
     Returns
     -------
     RigIo
-        One TCP link with every chamber's block where the simulator serves it, and one
-        optode port per chamber (no unit).
+        One TCP link per I/O module the simulator serves (as a rack with a Modbus TCP
+        module per eight chambers is wired: the modules are read side by side, and a slow
+        reply holds up only its own module's chambers), each chamber's block where the
+        simulator serves it, and one optode port per chamber (no unit).
     """
     try:
         ports = _PortsFile.model_validate(data)
@@ -330,33 +334,40 @@ def io_from_ports(
             file=source,
             field="modbus.blocks",
         )
-    overrides = {
-        cid: ChamberBlockConfig(
-            unit_id=ports.modbus.blocks[cid].unit_id,
-            block_address=ports.modbus.blocks[cid].base,
-        )
-        for cid in chamber_ids
-    }
+    units: dict[int, list[str]] = {}  # chambers of each I/O module, in rig order
+    for cid in chamber_ids:
+        units.setdefault(ports.modbus.blocks[cid].unit_id, []).append(cid)
     try:
-        link = ModbusLink(
-            name="simulator",
-            tcp=TcpConnection(host=ports.modbus.host, port=ports.modbus.port),
-            timeout_s=_LOOPBACK_TIMEOUT_S,
-            chambers=list(chamber_ids),
-            register_map=RegisterMapConfig(word_order=ports.modbus.word_order, chambers=overrides),
-        )
+        links = [
+            ModbusLink(
+                name="simulator" if len(units) == 1 else f"simulator-unit-{unit}",
+                tcp=TcpConnection(host=ports.modbus.host, port=ports.modbus.port),
+                timeout_s=_LOOPBACK_TIMEOUT_S,
+                chambers=ids,
+                register_map=RegisterMapConfig(
+                    word_order=ports.modbus.word_order,
+                    chambers={
+                        cid: ChamberBlockConfig(
+                            unit_id=unit, block_address=ports.modbus.blocks[cid].base
+                        )
+                        for cid in ids
+                    },
+                ),
+            )
+            for unit, ids in units.items()
+        ]
     except ValidationError as exc:
         raise SquallError(
             f"unusable block layout: {exc.errors()[0]['msg']}", file=source, field="modbus.blocks"
         ) from None
-    base = template or RigIo(modbus=[link])
+    base = template or RigIo(modbus=links)
     settings = dict(base)
     for key in ("from_announcement", "modbus", "optodes"):
         del settings[key]
     optodes = {
         cid: OptodePort(port=path) for cid, path in ports.optodes.items() if cid in chamber_ids
     }
-    io = RigIo(modbus=[link], optodes=optodes, **settings)
+    io = RigIo(modbus=links, optodes=optodes, **settings)
     io.check_chambers(chamber_ids, where="announcement")
     return io
 

@@ -212,3 +212,20 @@ def test_a_ports_file_for_another_rig_is_refused(tmp_path: Path) -> None:
     with pytest.raises(SquallError, match="not a simulator ports file") as caught:
         io_from_ports({"modbus": {"host": "127.0.0.1"}}, ["c1"])
     assert caught.value.field == "modbus.port"
+
+
+def test_an_announcement_of_several_modules_gives_a_link_per_module() -> None:
+    """Ten chambers served as modules of eight (``hardware-notes/register-map.md``): two
+    links, each with its own module's chambers in rig order, blocks where announced."""
+    ids = [f"c{k + 1}" for k in range(10)]
+    blocks = {cid: {"unit_id": 1 + k // 8, "base": 16 * (k % 8)} for k, cid in enumerate(ids)}
+    modbus = {"host": "127.0.0.1", "port": 5020, "word_order": "high-first", "blocks": blocks}
+    data = {"modbus": modbus}
+    io = io_from_ports(data, ids)
+    assert [link.name for link in io.modbus] == ["simulator-unit-1", "simulator-unit-2"]
+    assert [link.chambers for link in io.modbus] == [ids[:8], ids[8:]]
+    for link in io.modbus:
+        layout = RegisterMap.build(link.chambers or [], link.register_map)
+        for cid in link.chambers or []:
+            block = layout.block(cid)
+            assert {"unit_id": block.unit_id, "base": block.base} == blocks[cid]
