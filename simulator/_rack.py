@@ -30,6 +30,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
+from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._actuators import Actuators, Arrivals, substeps
 from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
@@ -136,7 +137,7 @@ class Rack:
         self._flush_w_k = np.zeros(self._m)
         self._exchange = np.zeros(len(temps))
         self._node_capacity = self._capacity()
-        self._sweep_cache: dict[bytes, object] = {}  # per-group constants of Rack.sweep
+        self._sweep_consts: object | None = None  # sensor constants of Rack.sweep (fixed)
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
             self._book.add(fault, 0.0)
@@ -566,7 +567,7 @@ class Rack:
         o2 += fault_offset(self._book.sensor_faults(i, "optode"), self._t, self._rng)
         true_temp = float(self._water.probe_c[i]) + float(p.temperature_offset_c[i])
         temp = noisy(true_temp, float(p.temperature_noise_c[i]), self._rng)
-        sat = float(saturation_umol_l(temp, float(p.salinity[i]), p.pressure_kpa))
+        sat = solubility_umol_l_scalar(temp, float(p.salinity[i]), float(p.pressure_kpa))
         return optode_reading(
             o2,
             temp,
