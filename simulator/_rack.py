@@ -137,6 +137,11 @@ class Rack:
         self._flush_w_k = np.zeros(self._m)
         self._exchange = np.zeros(len(temps))
         self._node_capacity = self._capacity()
+        self._capacity_version = self._volume_version  # the volumes _node_capacity is for
+        self._node_list: list[int] = p.node_of_chamber.tolist()
+        self._rho_cp: list[float] = p.rho_cp_j_l_k.tolist()
+        self._reaeration: list[float] = p.reaeration_per_s.tolist()
+        self._lamp_keep: list[float] = (1.0 - p.ageing_frac_per_1000_h).tolist()
         self._sweep_consts: object | None = None  # sensor constants of Rack.sweep (fixed)
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
@@ -386,13 +391,25 @@ class Rack:
         act = self._act
         act.refresh(self._t, self._book, faults_changed)
         if act.lamp_version != self._lamp_version:  # lamps changed: new PAR, new lit pattern
-            self._lamp_base_s = self._lamp_s()
+            # _lamp_s() and ageing_factor() per lamp in plain floats (same operations)
+            lit_s = self._t - self._lamp_since_s
+            base, par = [], []
+            for done, on, new, keep in zip(
+                self._lamp_base_s.tolist(),
+                self._lamp_lit.tolist(),
+                act.new_lamp_par.tolist(),
+                self._lamp_keep,
+                strict=True,
+            ):
+                seconds = done + on * lit_s
+                base.append(seconds)
+                par.append(new * keep ** (seconds / 3600.0 / 1000.0))
+            self._lamp_base_s = np.array(base)
             self._lamp_since_s = self._t
             self._lamp_lit = act.lit
             self._lamp_version = act.lamp_version
             self._age_steps.clear()
-            age = ageing_factor(self._lamp_base_s / 3600.0, self._p.ageing_frac_per_1000_h)
-            self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
+            self._par_warm = np.array(par)
         if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
             tau = self._p.warmup_tau_s
             warmth = np.where(tau > 0.0, self._water.warmth, self._act.lit)
@@ -450,14 +467,30 @@ class Rack:
         self._configure_water(key)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
-        """Flushing heat flow, O2 exchange and heat capacity for the present flows and volumes."""
-        p = self._p
-        flush = self._act.flush_l_s
+        """Flushing heat flow, O2 exchange and heat capacity for the present flows and volumes.
+
+        In plain floats, summing per node in chamber order as ``numpy.bincount`` does; the
+        heat capacity only changes with the volumes, so it is kept per volume version.
+        """
         self._water_key = key
         self._water_id += 1
-        self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
-        self._exchange = flush / self._volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
-        self._node_capacity = self._capacity()
+        flush_w_k = [0.0] * self._m
+        exchange = []
+        for node, flush, rho_cp, volume, aeration in zip(
+            self._node_list,
+            self._act.flush_l_s.tolist(),
+            self._rho_cp,
+            self._volume.tolist(),
+            self._reaeration,
+            strict=True,
+        ):
+            flush_w_k[node] += flush * rho_cp
+            exchange.append(flush / volume + (aeration if flush > 0.0 else 0.0))
+        self._flush_w_k = np.array(flush_w_k)
+        self._exchange = np.array(exchange)
+        if self._capacity_version != self._volume_version:
+            self._node_capacity = self._capacity()
+            self._capacity_version = self._volume_version
 
     def _integrate(self, n: int, h: float, arrivals: Arrivals) -> None:
         """Step every chamber from now through n sub-steps of h seconds."""
