@@ -255,9 +255,7 @@ class Stepper:
             for w, c, g, base in zip(heater, chiller, inv_g, water.t_base_c, strict=True)
         ]
         lead = [t - ti for t, ti in zip(temp_c.tolist(), t_inf, strict=True)]
-        excess = [
-            (ti - room) * span + d * k for ti, d, k in zip(t_inf, lead, settle, strict=True)
-        ]
+        excess = [(ti - room) * span + d * k for ti, d, k in zip(t_inf, lead, settle, strict=True)]
         ends = np.array((lead, t_inf))[:, :, None]
         path = np.multiply(ends[0], water.powers)
         path += ends[1]
@@ -391,35 +389,27 @@ class Stepper:
     def _make_water(self, n: int, h: float, drive: Drive) -> _Water:
         grid = self._grid(n, h)
         inflow = self._p.inflow_temperature_c
-        rate, tau, inv_g, t_base, settle = [], [], [], [], []
-        for ua, ua_room, flush, capacity in zip(
-            self._ua,
-            self._ua_room,
-            drive.flush_w_k.tolist(),
-            drive.capacity_j_k.tolist(),
-            strict=True,
-        ):
-            g_tot = ua + flush
-            tau_j = capacity / g_tot
-            rate_j = h / tau_j
-            inv_g_j = 1.0 / g_tot
-            rate.append(rate_j)
-            tau.append(tau_j)
-            inv_g.append(inv_g_j)
-            t_base.append((ua_room + flush * inflow) * inv_g_j)
-            settle.append(-tau_j * math.expm1(-n * rate_j))
-        kh, keep, gain = [], [], []
-        for k in drive.exchange_per_s.tolist():
-            k_h = k * h
-            fresh = -math.expm1(-k_h)
-            kh.append(k_h)
-            keep.append(math.exp(-k_h))
-            gain.append((fresh / k if k_h > 0.0 else h, fresh))
+        g_tot = [ua + flush for ua, flush in zip(self._ua, drive.flush_w_k.tolist(), strict=True)]
+        tau = [c / g for c, g in zip(drive.capacity_j_k.tolist(), g_tot, strict=True)]
+        rate = [h / t for t in tau]
+        inv_g = [1.0 / g for g in g_tot]
+        t_base = [
+            (ua_room + flush * inflow) * inv
+            for ua_room, flush, inv in zip(
+                self._ua_room, drive.flush_w_k.tolist(), inv_g, strict=True
+            )
+        ]
+        settle = [-t * math.expm1(-n * r) for t, r in zip(tau, rate, strict=True)]
+        exchange = drive.exchange_per_s.tolist()
+        kh = [k * h for k in exchange]
+        fresh = [-math.expm1(-x) for x in kh]
+        phi = [f / k if x > 0.0 else h for f, k, x in zip(fresh, exchange, kh, strict=True)]
         # a^m and a_o^m for m = 0..n, both as e^(−m·h/τ) and e^(−m·k·h), in one exp
-        powers = np.exp(np.multiply.outer(np.array(rate + kh), grid.back))
+        exponents = np.array(rate + kh)
+        powers = np.exp(np.multiply.outer(exponents, grid.back))
         m = len(rate)
         o2_powers = powers[m:]
-        gains = np.array(gain)[:, :, None]
+        gains = np.array((phi, fresh)).T[:, :, None]
         scaled = max(kh, default=0.0) * n <= _MAX_SCALED_EXPONENT
         o2_scaled = gains / o2_powers[:, None, 1:] if scaled else gains
         return _Water(
@@ -429,10 +419,10 @@ class Stepper:
             t_base_c=t_base,
             settle_k_s=settle,
             powers=powers[:m],
-            neg_rate=-np.array(rate)[:, None],
+            neg_rate=np.negative(exponents[:m, None]),
             o2_powers=o2_powers,
             o2_scaled=o2_scaled,
-            o2_keep=np.array(keep),
+            o2_keep=o2_powers[:, 1],
             o2_gain=gains,
             scaled=scaled,
             exchanging=max(kh, default=0.0) > 0.0,
