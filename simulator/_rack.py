@@ -37,7 +37,7 @@ from simulator._faults import FaultBook, ScheduledFault
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
-from simulator._physics import ageing_factor
+from simulator._physics import aged_lamps, ageing_factor, water_exchange
 from simulator._readout import Sweep, sweep
 from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
@@ -391,19 +391,9 @@ class Rack:
         act = self._act
         act.refresh(self._t, self._book, faults_changed)
         if act.lamp_version != self._lamp_version:  # lamps changed: new PAR, new lit pattern
-            # _lamp_s() and ageing_factor() per lamp in plain floats (same operations)
-            lit_s = self._t - self._lamp_since_s
-            base, par = [], []
-            for done, on, new, keep in zip(
-                self._lamp_base_s.tolist(),
-                self._lamp_lit.tolist(),
-                act.new_lamp_par.tolist(),
-                self._lamp_keep,
-                strict=True,
-            ):
-                seconds = done + on * lit_s
-                base.append(seconds)
-                par.append(new * keep ** (seconds / 3600.0 / 1000.0))
+            since = self._t - self._lamp_since_s
+            lamps = (self._lamp_base_s, self._lamp_lit, act.new_lamp_par)
+            base, par = aged_lamps(*lamps, since, self._lamp_keep)
             self._lamp_base_s = np.array(base)
             self._lamp_since_s = self._t
             self._lamp_lit = act.lit
@@ -467,25 +457,13 @@ class Rack:
         self._configure_water(key)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
-        """Flushing heat flow, O2 exchange and heat capacity for the present flows and volumes.
-
-        In plain floats, summing per node in chamber order as ``numpy.bincount`` does; the
-        heat capacity only changes with the volumes, so it is kept per volume version.
-        """
+        """Flushing heat flow, O2 exchange and heat capacity (kept per volume version)."""
         self._water_key = key
         self._water_id += 1
-        flush_w_k = [0.0] * self._m
-        exchange = []
-        for node, flush, rho_cp, volume, aeration in zip(
-            self._node_list,
-            self._act.flush_l_s.tolist(),
-            self._rho_cp,
-            self._volume.tolist(),
-            self._reaeration,
-            strict=True,
-        ):
-            flush_w_k[node] += flush * rho_cp
-            exchange.append(flush / volume + (aeration if flush > 0.0 else 0.0))
+        flows = (self._act.flush_l_s, self._volume)
+        flush_w_k, exchange = water_exchange(
+            *flows, self._node_list, self._rho_cp, self._reaeration
+        )
         self._flush_w_k = np.array(flush_w_k)
         self._exchange = np.array(exchange)
         if self._capacity_version != self._volume_version:
