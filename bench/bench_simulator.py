@@ -25,11 +25,24 @@ node temperatures from python-control's at every interval end (goal ≤ 0.001 °
 far the open-loop run strays from the stepwise one (temperature and O2) where both ran.
 
 Run: ``/work/venv/bin/python bench/bench_simulator.py [--ticks 1,10,60,600] [--days 7]``.
+
+**Work per control tick** (``--tick-cost``): what a ``squall run --sim`` tick asks of the
+rack at a 10 s tick on the example rig, with every drive changing every tick as a controller
+changes them (heaters, sun-like lamps, flow-controlled pumps): ``set_outputs`` on all 8
+chambers, ``advance(10)``, ``comm_ok_all`` for both devices and one ``sweep`` of every
+chamber (optodes every third tick). Best of ``--repeats`` runs, ms per tick. With
+``--against TREE`` the same program runs, alternately in fresh processes, on the simulator of
+another checkout (e.g. the base commit's) and the ratio is printed: measured side by side
+in one run of this bench. ``/work/venv/bin/python bench/bench_simulator.py --tick-cost
+[--against /work/main] [--tick-count 4000] [--repeats 5]``.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -173,6 +186,60 @@ def run_python_control(rig: Rig, heater: np.ndarray, tick_s: float) -> tuple[flo
     return wall, np.asarray(response.outputs)[:, ticks].T
 
 
+def tick_program(rig: Rig, ticks: int) -> list[list[tuple[float, float, float, float]]]:
+    """Drives per tick and chamber (heater, chiller, lamp, pump; %), all changing each tick."""
+    rng = np.random.default_rng(7)
+    n = len(rig.chambers)
+    t = np.arange(ticks)[:, None] * 10.0
+    heater = np.clip(40.0 + 30.0 * np.sin(t / 5000.0) + rng.uniform(-5, 5, (ticks, n)), 0, 100)
+    chiller = np.where(heater < 20.0, 10.0, 0.0)
+    sun = np.clip(np.sin(2 * np.pi * (t % DAY_S) / DAY_S), 0.0, None)
+    lamp = np.clip(80.0 * sun + rng.uniform(-1, 1, (ticks, n)) * (sun > 0), 0, 100)
+    pump = np.clip(15.0 + 5.0 * np.sin(t / 900.0) + rng.uniform(-1, 1, (ticks, n)), 0, 100)
+    return np.stack((heater, chiller, lamp, pump), axis=2).tolist()  # type: ignore[no-any-return]
+
+
+def tick_cost(ticks: int, repeats: int) -> float:
+    """Best wall time per tick of the rack's work in a 10 s control tick, ms."""
+    rig = load_model(RIG, Rig)
+    program = tick_program(rig, ticks)
+    best = float("inf")
+    for _ in range(repeats):
+        rack = Rack(rig, seed=1)
+        ids = list(rack.chamber_ids)
+        begin = time.perf_counter()
+        for k, row in enumerate(program):
+            for cid, (heat, cool, lamp, pump) in zip(ids, row, strict=True):
+                rack.set_outputs(
+                    cid, heater_pct=heat, chiller_pct=cool, lamp_pct=lamp, pump_pct=pump
+                )
+            rack.advance(10.0)
+            rack.comm_ok_all("modbus")
+            rack.comm_ok_all("optode")
+            rack.sweep(ids, [k % 3 == 0] * len(ids))
+        best = min(best, time.perf_counter() - begin)
+    return 1000.0 * best / ticks
+
+
+def tick_cost_side_by_side(against: str, ticks: int, repeats: int) -> None:
+    """This tree's tick cost against another checkout's, alternating fresh processes."""
+    here = str(Path(__file__).resolve().parent.parent)
+    found: dict[str, list[float]] = {here: [], against: []}
+    for _ in range(repeats):
+        for tree in (against, here):
+            env = {**os.environ, "PYTHONPATH": tree}
+            args = [sys.executable, __file__, "--tick-cost", "--tick-count", str(ticks)]
+            out = subprocess.run(
+                [*args, "--repeats", "1"], env=env, capture_output=True, text=True, check=True
+            )
+            found[tree].append(float(out.stdout.split()[-2]))
+    base, mine = min(found[against]), min(found[here])
+    print(f"rack work per 10 s tick, 8 chambers, best of {repeats} alternating processes:")
+    print(f"  {against}: {base:.4f} ms/tick")
+    print(f"  {here}: {mine:.4f} ms/tick")
+    print(f"  ratio this/other: {mine / base:.3f}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--ticks", default="1,10,60,600", help="input intervals, s (list)")
@@ -183,7 +250,17 @@ def main() -> None:
         default=100_000,
         help="most ticks stepped one by one per interval (the rate is extrapolated)",
     )
+    parser.add_argument("--tick-cost", action="store_true", help="rack work per control tick")
+    parser.add_argument("--against", help="another checkout to compare the tick cost with")
+    parser.add_argument("--tick-count", type=int, default=4000, help="ticks of --tick-cost")
+    parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
     args = parser.parse_args()
+    if args.tick_cost and args.against:
+        tick_cost_side_by_side(args.against, args.tick_count, args.repeats)
+        return
+    if args.tick_cost:
+        print(f"rack work per 10 s tick: {tick_cost(args.tick_count, args.repeats):.4f} ms/tick")
+        return
     rig = load_model(RIG, Rig)
     span = args.days * DAY_S
     drivers = node_drivers(rig)

@@ -20,7 +20,6 @@ from numpy.typing import NDArray
 
 from simulator._faults import ActuatorMasks, FaultBook
 from simulator._params import RackParams
-from simulator._physics import lamp_curve, pump_fraction
 
 __all__ = ["Actuators", "Arrivals", "Effective", "effective_drives", "substeps"]
 
@@ -139,6 +138,16 @@ class Actuators:
         self._chiller_w_pct = (p.chiller_max_w / 100.0).tolist()
         self._dead_s = p.dead_time_s.tolist()
         self._drivers = p.driver_of_node.tolist()
+        # lamp_curve and pump_fraction per chamber in plain floats (same operations)
+        curved = (p.curve_shape > 1e-9).tolist()
+        k = np.where(p.curve_shape > 1e-9, p.curve_shape, 1.0)
+        self._lamp_k = [float(v) if bend else None for v, bend in zip(k, curved, strict=True)]
+        self._lamp_norm = np.expm1(-k).tolist()
+        self._par_at_full = p.par_at_full.tolist()
+        self._dead_band = p.dead_band_pct.tolist()
+        self._flow_full = p.flow_at_full_cm_s.tolist()
+        self._flush_full = p.flush_at_full_l_s.tolist()
+        self._lit_list: list[float] = [0.0] * n
         self._sent: list[tuple[float, float]] = [(0.0, 0.0)] * m
         self._line: list[deque[tuple[float, float, float]]] = [deque() for _ in range(m)]
         self._next_arrival_s = math.inf
@@ -219,37 +228,54 @@ class Actuators:
                 masks,
             )
             if not np.array_equal(eff.lamp_pct, self.lamp_pct):
-                self._set_lamp(eff.lamp_pct)
+                self._set_lamp(eff.lamp_pct.tolist())
             if not np.array_equal(eff.pump_pct, self.pump_pct):
-                self._set_pump(eff.pump_pct)
+                self._set_pump(eff.pump_pct.tolist())
             self.heater_pct = eff.heater_pct.tolist()
             self.chiller_pct = eff.chiller_pct.tolist()
             self._queue(t_s)
             return
         if dirty & _LAMP:
-            self._set_lamp(np.array(self._cmd[2]))
+            self._set_lamp(self._cmd[2])
         if dirty & _PUMP:
-            self._set_pump(np.array(self._cmd[3]))
+            self._set_pump(self._cmd[3])
         if dirty & _POWER:
             heater, chiller = self._cmd[0], self._cmd[1]
             self.heater_pct = [heater[d] for d in self._drivers]
             self.chiller_pct = [chiller[d] for d in self._drivers]
             self._queue(t_s)
 
-    def _set_lamp(self, lamp_pct: F) -> None:
-        p = self._p
-        self.lamp_pct = lamp_pct
-        self.new_lamp_par = lamp_curve(lamp_pct, p.par_at_full, p.curve_shape)
-        self.lit = (lamp_pct > 0.0).astype(float)
-        self.any_lit = bool(self.lit.any())
+    def _set_lamp(self, lamp_pct: list[float]) -> None:
+        """New lamp drives (%): PAR of new warm lamps by
+        :func:`simulator._physics.lamp_curve`, in floats."""
+        par = []
+        for drive, k, norm, full in zip(
+            lamp_pct, self._lamp_k, self._lamp_norm, self._par_at_full, strict=True
+        ):
+            frac = min(max(drive, 0.0), 100.0) / 100.0
+            par.append(full * (frac if k is None else math.expm1(-k * frac) / norm))
+        lit = [1.0 if drive > 0.0 else 0.0 for drive in lamp_pct]
+        self.lamp_pct = np.array(lamp_pct, dtype=float)
+        self.new_lamp_par = np.array(par)
+        if lit != self._lit_list:  # the same pattern keeps its array: consumers test identity
+            self._lit_list = lit
+            self.lit = np.array(lit)
+            self.any_lit = 1.0 in lit
         self.lamp_version += 1
 
-    def _set_pump(self, pump_pct: F) -> None:
-        p = self._p
-        self.pump_pct = pump_pct
-        pump = pump_fraction(pump_pct, p.dead_band_pct)
-        self.flow_cm_s = pump * p.flow_at_full_cm_s
-        self.flush_l_s = pump * p.flush_at_full_l_s
+    def _set_pump(self, pump_pct: list[float]) -> None:
+        """New pump drives (%): flow and flushing by
+        :func:`simulator._physics.pump_fraction`, in floats."""
+        flow, flush = [], []
+        for drive, dead, flow_full, flush_full in zip(
+            pump_pct, self._dead_band, self._flow_full, self._flush_full, strict=True
+        ):
+            share = max(min(max(drive, 0.0), 100.0) - dead, 0.0) / (100.0 - dead)
+            flow.append(share * flow_full)
+            flush.append(share * flush_full)
+        self.pump_pct = np.array(pump_pct, dtype=float)
+        self.flow_cm_s = np.array(flow)
+        self.flush_l_s = np.array(flush)
         self.flow_version += 1
 
     def _queue(self, t_s: float) -> None:
@@ -396,9 +422,9 @@ class Actuators:
         self._cmd = [[float(v) for v in row] for row in cmd]
         eff = effective_drives(self._p, cmd[0], cmd[1], cmd[2], cmd[3], book.masks)
         if not np.array_equal(eff.lamp_pct, self.lamp_pct):
-            self._set_lamp(np.array(eff.lamp_pct, dtype=float))
+            self._set_lamp(np.asarray(eff.lamp_pct, dtype=float).tolist())
         if not np.array_equal(eff.pump_pct, self.pump_pct):
-            self._set_pump(np.array(eff.pump_pct, dtype=float))
+            self._set_pump(np.asarray(eff.pump_pct, dtype=float).tolist())
         self.heater_pct = np.asarray(eff.heater_pct, dtype=float).tolist()
         self.chiller_pct = np.asarray(eff.chiller_pct, dtype=float).tolist()
         self._faulted = book.masks.actuators_hit

@@ -15,6 +15,7 @@ from numpy.typing import NDArray
 from scipy.signal import lfilter
 
 __all__ = [
+    "aged_lamps",
     "ageing_factor",
     "apply_floor",
     "lag_weights",
@@ -22,6 +23,7 @@ __all__ = [
     "pump_fraction",
     "recurrence",
     "series_recurrence",
+    "water_exchange",
 ]
 
 F = NDArray[np.float64]
@@ -376,3 +378,75 @@ def pump_fraction(drive_pct: F, dead_band_pct: F) -> F:
     """
     d = np.clip(drive_pct, 0.0, 100.0)
     return np.asarray(np.maximum(d - dead_band_pct, 0.0) / (100.0 - dead_band_pct), dtype=float)
+
+
+def aged_lamps(
+    lit_before_s: F, lit: F, new_par: F, since_s: float, keep_per_1000_h: list[float]
+) -> tuple[list[float], list[float]]:
+    """Lamp hours and aged warm PAR of every lamp when the lamps change, in plain floats.
+
+    Parameters
+    ----------
+    lit_before_s
+        Seconds each lamp had been lit at the previous change, s, shape ``(N,)``.
+    lit
+        1 where the lamp was on since then, else 0, dimensionless, shape ``(N,)``.
+    new_par
+        PAR of each lamp when new and warm at its new drive, µmol photons m⁻² s⁻¹, ``(N,)``.
+    since_s
+        Time since the previous change, s.
+    keep_per_1000_h
+        1 − fractional output loss per 1000 h lit of each lamp, fraction, N values.
+
+    Returns
+    -------
+    tuple of list
+        Seconds lit now (s), and PAR at the new drive and present age (µmol photons m⁻² s⁻¹):
+        :func:`ageing_factor` applied with the same operations, one lamp at a time.
+    """
+    before, on_off = lit_before_s.tolist(), lit.tolist()
+    seconds = [done + on * since_s for done, on in zip(before, on_off, strict=True)]
+    par = [
+        new * keep ** (s / 3600.0 / 1000.0)
+        for new, keep, s in zip(new_par.tolist(), keep_per_1000_h, seconds, strict=True)
+    ]
+    return seconds, par
+
+
+def water_exchange(
+    flush_l_s: F,
+    volume_l: F,
+    node_of: list[int],
+    rho_cp_j_l_k: list[float],
+    reaeration_per_s: list[float],
+) -> tuple[list[float], list[float]]:
+    """Flushing heat flow of each thermal node and O2 exchange of each chamber, in floats.
+
+    Parameters
+    ----------
+    flush_l_s
+        Fresh inflow into each chamber, L s⁻¹, shape ``(N,)``.
+    volume_l
+        Water in each chamber, L, shape ``(N,)``.
+    node_of
+        Thermal node of each chamber (nodes numbered from 0), dimensionless, N values.
+    rho_cp_j_l_k
+        Volumetric heat capacity of each chamber's water, J L⁻¹ K⁻¹, N values.
+    reaeration_per_s
+        Surface re-aeration of each chamber while its incubation is open, s⁻¹, N values.
+
+    Returns
+    -------
+    tuple of list
+        q·ρ·cp summed per node in chamber order, as ``numpy.bincount`` sums (W K⁻¹, one
+        value per node up to the highest in ``node_of``), and q/V plus re-aeration where
+        water flows (s⁻¹, N values).
+    """
+    flush_w_k = [0.0] * (max(node_of, default=-1) + 1)
+    exchange = []
+    for node, flush, rho_cp, volume, aeration in zip(
+        node_of, flush_l_s.tolist(), rho_cp_j_l_k, volume_l.tolist(), reaeration_per_s, strict=True
+    ):
+        flush_w_k[node] += flush * rho_cp
+        exchange.append(flush / volume + (aeration if flush > 0.0 else 0.0))
+    return flush_w_k, exchange

@@ -30,13 +30,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
+from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._actuators import Actuators, Arrivals, substeps
 from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
-from simulator._physics import ageing_factor
+from simulator._physics import aged_lamps, ageing_factor, water_exchange
 from simulator._readout import Sweep, sweep
 from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
@@ -136,7 +137,12 @@ class Rack:
         self._flush_w_k = np.zeros(self._m)
         self._exchange = np.zeros(len(temps))
         self._node_capacity = self._capacity()
-        self._sweep_cache: dict[bytes, object] = {}  # per-group constants of Rack.sweep
+        self._capacity_version = self._volume_version  # the volumes _node_capacity is for
+        self._node_list: list[int] = p.node_of_chamber.tolist()
+        self._rho_cp: list[float] = p.rho_cp_j_l_k.tolist()
+        self._reaeration: list[float] = p.reaeration_per_s.tolist()
+        self._lamp_keep: list[float] = (1.0 - p.ageing_frac_per_1000_h).tolist()
+        self._sweep_consts: object | None = None  # sensor constants of Rack.sweep (fixed)
         self._book = FaultBook(p.chamber_ids)
         for fault in p.faults:
             self._book.add(fault, 0.0)
@@ -385,13 +391,15 @@ class Rack:
         act = self._act
         act.refresh(self._t, self._book, faults_changed)
         if act.lamp_version != self._lamp_version:  # lamps changed: new PAR, new lit pattern
-            self._lamp_base_s = self._lamp_s()
+            since = self._t - self._lamp_since_s
+            lamps = (self._lamp_base_s, self._lamp_lit, act.new_lamp_par)
+            base, par = aged_lamps(*lamps, since, self._lamp_keep)
+            self._lamp_base_s = np.array(base)
             self._lamp_since_s = self._t
             self._lamp_lit = act.lit
             self._lamp_version = act.lamp_version
             self._age_steps.clear()
-            age = ageing_factor(self._lamp_base_s / 3600.0, self._p.ageing_frac_per_1000_h)
-            self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
+            self._par_warm = np.array(par)
         if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
             tau = self._p.warmup_tau_s
             warmth = np.where(tau > 0.0, self._water.warmth, self._act.lit)
@@ -449,14 +457,18 @@ class Rack:
         self._configure_water(key)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
-        """Flushing heat flow, O2 exchange and heat capacity for the present flows and volumes."""
-        p = self._p
-        flush = self._act.flush_l_s
+        """Flushing heat flow, O2 exchange and heat capacity (kept per volume version)."""
         self._water_key = key
         self._water_id += 1
-        self._flush_w_k = np.bincount(p.node_of_chamber, flush * p.rho_cp_j_l_k, self._m)
-        self._exchange = flush / self._volume + np.where(flush > 0.0, p.reaeration_per_s, 0.0)
-        self._node_capacity = self._capacity()
+        flows = (self._act.flush_l_s, self._volume)
+        flush_w_k, exchange = water_exchange(
+            *flows, self._node_list, self._rho_cp, self._reaeration
+        )
+        self._flush_w_k = np.array(flush_w_k)
+        self._exchange = np.array(exchange)
+        if self._capacity_version != self._volume_version:
+            self._node_capacity = self._capacity()
+            self._capacity_version = self._volume_version
 
     def _integrate(self, n: int, h: float, arrivals: Arrivals) -> None:
         """Step every chamber from now through n sub-steps of h seconds."""
@@ -566,7 +578,7 @@ class Rack:
         o2 += fault_offset(self._book.sensor_faults(i, "optode"), self._t, self._rng)
         true_temp = float(self._water.probe_c[i]) + float(p.temperature_offset_c[i])
         temp = noisy(true_temp, float(p.temperature_noise_c[i]), self._rng)
-        sat = float(saturation_umol_l(temp, float(p.salinity[i]), p.pressure_kpa))
+        sat = solubility_umol_l_scalar(temp, float(p.salinity[i]), float(p.pressure_kpa))
         return optode_reading(
             o2,
             temp,

@@ -1,5 +1,5 @@
 """Every chamber's sensors read in one call: the readings, noise and errors of reading them
-one by one, at the cost of a few array operations.
+one by one, at the cost of one call to the noise generator and some float arithmetic.
 
 Rules of this module
 --------------------
@@ -8,11 +8,14 @@ Rules of this module
   would give: the same values and the same draws from the rack's generator, in the same
   order. A chamber that a sensor fault touches (dropout, stuck, drift, spikes), or one whose
   device is silent, is read through those very methods, in its place in the order; the
-  chambers between such ones are read in vectorised groups.
+  chambers between such ones are read in groups.
 - Within a group, the Gaussian draws the chambers would take one by one (noise whose standard
   deviation is above 0: temperature, PAR, flow, then optode oxygen and optode temperature)
   are drawn in one ``standard_normal`` call, which gives the very numbers of the one-by-one
-  calls, and put back where each reading would have taken them.
+  calls, and taken where each reading would have taken them. The rest is plain floats with
+  the one-by-one reads' arithmetic in its order (8 chambers are too few for numpy to pay),
+  and the O2 saturation is :func:`controller.science.oxygen.solubility_umol_l_scalar`, the
+  very function the one-by-one optode read uses.
 - An error other than :class:`~simulator.SensorNoReply` (the O2 solubility refuses a
   temperature outside −5 … 50 °C) ends that chamber's reading where a one-by-one read would
   have ended it; the error is handed back for that chamber and the others are read on.
@@ -24,24 +27,14 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-import numpy as np
-from numpy.typing import NDArray
-
 from controller.rig import FaultKind
-from controller.science.oxygen import solubility
-from simulator._science import saturation_umol_l
+from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._types import SensorNoReply
 
 if TYPE_CHECKING:
     from simulator._rack import Rack
 
 __all__ = ["Sweep", "sweep"]
-
-F = NDArray[np.float64]
-Idx = NDArray[np.intp]
-
-_SAT_MIN_C = -5.0  # the solubility's accepted temperature range, °C
-_SAT_MAX_C = 50.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -118,117 +111,120 @@ def _one(rack: Rack, cid: str, ask_optode: bool, out: Sweep, k: int) -> None:
 
 @dataclass(frozen=True, slots=True)
 class _Consts:
-    """What does not change between sweeps of one group of chambers (indexed once)."""
+    """Per-chamber sensor constants of a rack as plain floats (rig order).
 
-    temp_sd: F  # probe noise, °C
-    flow_sd: F  # flow noise, cm s⁻¹
-    o2_sd: F  # optode noise, µmol L⁻¹
-    need: NDArray[np.bool_]  # which of the 5 readings draw noise (PAR column: filled per sweep)
-    temp_off: F
-    o2_off: F
-    drift: F
-    par_frac: F
-    salinity: F
-    volume_l: F
+    Built once per rack from its resolved parameters, which never change after the rack is
+    built: nothing invalidates it.
+    """
+
+    temp_sd: list[float]  # probe noise, °C
+    flow_sd: list[float]  # flow noise, cm s⁻¹
+    o2_sd: list[float]  # optode noise, µmol L⁻¹
+    temp_off: list[float]  # probe offset, °C
+    o2_off: list[float]  # optode offset, µmol L⁻¹
+    drift: list[float]  # optode drift, µmol L⁻¹ s⁻¹
+    par_frac: list[float]  # PAR noise, fraction of the reading
+    cold: list[float]  # output share of a cold lamp
+    salinity: list[float]  # PSS-78
+    volume_l: list[float]  # full water volume, L
+    level_alarm_frac: float  # level switch trips above this share lost
+    pressure_kpa: float
 
 
-def _consts(rack: Rack, idx: Idx) -> _Consts:
-    """The group's constants, cached on the rack's sweep cache by chamber indices."""
-    key = idx.tobytes()
-    cache = rack._sweep_cache
-    found = cache.get(key)
+def _consts(rack: Rack) -> _Consts:
+    """The rack's sensor constants, built on the first sweep and kept on the rack."""
+    found = rack._sweep_consts
     if not isinstance(found, _Consts):
         p = rack._p
-        temp_sd = p.temperature_noise_c[idx]
-        flow_sd = p.flow_noise_cm_s[idx]
-        o2_sd = p.optode_noise_umol_l[idx]
-        need = np.stack((temp_sd, temp_sd, flow_sd, o2_sd, temp_sd), axis=1) > 0.0
-        found = cache[key] = _Consts(
-            temp_sd=temp_sd,
-            flow_sd=flow_sd,
-            o2_sd=o2_sd,
-            need=need,
-            temp_off=p.temperature_offset_c[idx],
-            o2_off=p.optode_offset_umol_l[idx],
-            drift=p.optode_drift_umol_l_per_s[idx],
-            par_frac=p.par_noise_frac[idx],
-            salinity=p.salinity[idx],
-            volume_l=p.volume_l[idx],
+        found = rack._sweep_consts = _Consts(
+            temp_sd=p.temperature_noise_c.tolist(),
+            flow_sd=p.flow_noise_cm_s.tolist(),
+            o2_sd=p.optode_noise_umol_l.tolist(),
+            temp_off=p.temperature_offset_c.tolist(),
+            o2_off=p.optode_offset_umol_l.tolist(),
+            drift=p.optode_drift_umol_l_per_s.tolist(),
+            par_frac=p.par_noise_frac.tolist(),
+            cold=p.cold_output_frac.tolist(),
+            salinity=p.salinity.tolist(),
+            volume_l=p.volume_l.tolist(),
+            level_alarm_frac=float(p.level_alarm_frac),
+            pressure_kpa=float(p.pressure_kpa),
         )
     return found
 
 
-def _group(rack: Rack, idx: Idx, ask: NDArray[np.bool_], out: Sweep, slots: list[int]) -> None:
-    """Read chambers without sensor faults at once, into ``slots`` of ``out``."""
-    c = _consts(rack, idx)
+def _group(rack: Rack, indices: list[int], ask: list[bool], out: Sweep, slots: list[int]) -> None:
+    """Read chambers without sensor faults at once, into ``slots`` of ``out``.
+
+    Plain floats, chamber by chamber, with the arithmetic of the one-by-one reads in their
+    order (``noisy`` and ``fault_offset``, the latter adding 0.0); only the Gaussian draws
+    are taken at once, in the order those reads take them.
+    """
+    c = _consts(rack)
     water = rack._water
-    par_true = rack._par_now()[idx]
-    par_sd = c.par_frac * par_true
-    need = c.need.copy()
-    need[:, 1] = par_sd > 0.0
-    if not ask.all():
-        need[:, 3:] &= ask[:, None]
-    count = int(need.sum())
-    probe = water.probe_c[idx] + c.temp_off
-    o2_true = water.optode_umol_l[idx] + c.o2_off
-    o2_true += c.drift * rack._t
-    true = np.empty(need.shape)
-    true[:, 0] = probe
-    true[:, 1] = par_true
-    true[:, 2] = rack._act.flow_cm_s[idx]
-    true[:, 3] = o2_true
-    true[:, 4] = probe
-    if count:
-        sds = np.empty(need.shape)
-        sds[:, 0] = c.temp_sd
-        sds[:, 1] = par_sd
-        sds[:, 2] = c.flow_sd
-        sds[:, 3] = c.o2_sd
-        sds[:, 4] = c.temp_sd
-        z = np.zeros(need.shape)
-        z[need] = rack._rng.standard_normal(count)  # row-major: chamber by chamber
-        noisy = np.where(need, true + sds * z, true)
-    else:
-        noisy = true
-    noisy[:, :4] += 0.0  # what sensor faults add: nothing (one by one, -0.0 became 0.0 too)
-    temperature = noisy[:, 0].tolist()
-    par = np.maximum(noisy[:, 1], 0.0).tolist()
-    flow = np.maximum(noisy[:, 2], 0.0).tolist()
-    lost = 1.0 - rack._volume[idx] / c.volume_l
-    level = (lost < rack._p.level_alarm_frac).tolist()
-    o2 = np.maximum(noisy[:, 3], 0.0)
-    sat, failures = _saturation(noisy[:, 4], c.salinity, rack._p.pressure_kpa, ask)
-    pct = (100.0 * o2 / sat).tolist()
-    o2_list = o2.tolist()
-    for j, k in enumerate(slots):
-        out.temperature_c[k] = temperature[j]
-        out.par[k] = par[j]
-        out.flow_cm_s[k] = flow[j]
-        out.level_ok[k] = level[j]
-        if failures[j] is not None:
-            out.errors[k] = failures[j]
-        elif ask[j]:
-            out.o2_umol_l[k] = o2_list[j]
-            out.o2_sat_pct[k] = pct[j]
-
-
-def _saturation(
-    temp_c: F, salinity: F, pressure_kpa: float, ask: NDArray[np.bool_]
-) -> tuple[F, list[Exception | None]]:
-    """Air saturation at the optodes' temperature readings (µmol L⁻¹), and per chamber the
-    error the solubility raised for it (only chambers whose optode was asked count)."""
-    failures: list[Exception | None] = [None] * len(temp_c)
-    inside = (temp_c >= _SAT_MIN_C) & (temp_c <= _SAT_MAX_C)
-    if bool(inside[ask].all()):
-        safe = np.where(ask, temp_c, 20.0)  # unasked optodes: any valid temperature
-        return np.asarray(solubility(safe, salinity, pressure_kpa, unit="umol/L")), failures
-    sat = np.ones(len(temp_c))
-    for j in np.flatnonzero(ask):
+    probe_c = water.probe_c.tolist()
+    optode_c = water.optode_umol_l.tolist()
+    warmth = water.warmth.tolist()
+    par_warm = rack._par_warm.tolist()
+    flow_cm_s = rack._act.flow_cm_s.tolist()
+    volume = rack._volume.tolist()
+    t_s = rack._t
+    temp_sd, flow_sd, o2_sd, par_frac, cold = c.temp_sd, c.flow_sd, c.o2_sd, c.par_frac, c.cold
+    # Pass 1: the true values and how many draws each chamber takes.
+    trues: list[tuple[float, float, float]] = []
+    count = 0
+    for i, asked in zip(indices, ask, strict=True):
+        lamp_cold = cold[i]
+        par = par_warm[i] * (lamp_cold + (1.0 - lamp_cold) * warmth[i])  # Rack._par_now
+        par_sd = par_frac[i] * par
+        trues.append((probe_c[i] + c.temp_off[i], par, par_sd))
+        draws = [temp_sd[i] > 0.0, par_sd > 0.0, flow_sd[i] > 0.0]
+        if asked:
+            draws += [o2_sd[i] > 0.0, temp_sd[i] > 0.0]
+        count += sum(draws)
+    z = rack._rng.standard_normal(count).tolist() if count else []
+    # Pass 2: the readings, taking the draws in order.
+    k = 0
+    alarm = c.level_alarm_frac
+    for j, i in enumerate(indices):
+        slot = slots[j]
+        probe, par, par_sd = trues[j]
+        sd = temp_sd[i]
+        if sd > 0.0:
+            temperature = probe + sd * z[k]
+            k += 1
+        else:
+            temperature = probe
+        if par_sd > 0.0:
+            par = par + par_sd * z[k]
+            k += 1
+        flow = flow_cm_s[i]
+        if flow_sd[i] > 0.0:
+            flow = flow + flow_sd[i] * z[k]
+            k += 1
+        out.temperature_c[slot] = temperature + 0.0
+        out.par[slot] = max(par + 0.0, 0.0)
+        out.flow_cm_s[slot] = max(flow + 0.0, 0.0)
+        out.level_ok[slot] = 1.0 - volume[i] / c.volume_l[i] < alarm
+        if not ask[j]:
+            continue
+        o2 = optode_c[i] + c.o2_off[i]
+        o2 += c.drift[i] * t_s
+        if o2_sd[i] > 0.0:
+            o2 = o2 + o2_sd[i] * z[k]
+            k += 1
+        o2 = max(o2 + 0.0, 0.0)
+        optode_temp = probe
+        if sd > 0.0:
+            optode_temp = probe + sd * z[k]
+            k += 1
         try:
-            sat[j] = float(saturation_umol_l(float(temp_c[j]), float(salinity[j]), pressure_kpa))
-        except Exception as error:
-            failures[j] = error
-    return sat, failures
+            sat = solubility_umol_l_scalar(optode_temp, c.salinity[i], c.pressure_kpa)
+        except Exception as error:  # ends this chamber's reading, as a one-by-one read would
+            out.errors[slot] = error
+            continue
+        out.o2_umol_l[slot] = o2
+        out.o2_sat_pct[slot] = 100.0 * o2 / sat
 
 
 def sweep(rack: Rack, chamber_ids: Sequence[str], optode: Sequence[bool]) -> Sweep:
@@ -251,19 +247,22 @@ def sweep(rack: Rack, chamber_ids: Sequence[str], optode: Sequence[bool]) -> Swe
     n = len(chamber_ids)
     out = Sweep([None] * n, [None] * n, [None] * n, [None] * n, [None] * n, [None] * n, [None] * n)
     index = rack._index
-    indices = []
-    for cid in chamber_ids:
-        if cid not in index:
-            raise KeyError(f"no chamber {cid!r} in this rack")
-        indices.append(index[cid])
-    touched = _touched(rack, indices, optode)
+    try:
+        indices = [index[cid] for cid in chamber_ids]
+    except KeyError as missing:
+        raise KeyError(f"no chamber {missing.args[0]!r} in this rack") from None
+    asks = [bool(ask) for ask in optode]
+    if len(asks) != n:
+        raise ValueError(f"{n} chambers but {len(asks)} optode flags")
+    if not rack._book.active:  # no fault at all: one group of every chamber
+        _group(rack, indices, asks, out, list(range(n)))
+        return out
+    touched = _touched(rack, indices, asks)
     start = 0
     for stop in [*(k for k in range(n) if touched[k]), n]:
         if stop > start:
-            slots = list(range(start, stop))
-            idx = np.array(indices[start:stop], dtype=np.intp)
-            _group(rack, idx, np.array(optode[start:stop], dtype=bool), out, slots)
+            _group(rack, indices[start:stop], asks[start:stop], out, list(range(start, stop)))
         if stop < n:
-            _one(rack, chamber_ids[stop], optode[stop], out, stop)
+            _one(rack, chamber_ids[stop], asks[stop], out, stop)
         start = stop + 1
     return out

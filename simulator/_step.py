@@ -27,12 +27,12 @@ How a segment of n sub-steps of h seconds is solved:
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.signal import lfilter
 
 from simulator._actuators import Arrivals
 from simulator._oxygen import Metabolism
@@ -40,13 +40,13 @@ from simulator._params import RackParams
 from simulator._physics import lag_weights, recurrence
 from simulator._science import ZERO_CELSIUS_K, SaturationTable
 
-__all__ = ["Drive", "Stepper", "WaterState", "o2_end_weights", "reach_weights"]
+__all__ = ["Drive", "Stepper", "WaterState"]
 
 F = NDArray[np.float64]
 
 _CACHE_SIZE = 64
 _SETTLED = 1e-9  # a lamp within this of fully warm (or cold) counts as settled
-_SCALED_MIN_POWER = 1e-260  # a_o^n above this: the scaled sums stay normal doubles
+_MAX_SCALED_EXPONENT = 500.0  # k·h·n up to this: the O2 sums scaled by a_o^(−m) stay finite
 
 
 class WaterState(NamedTuple):
@@ -119,27 +119,29 @@ class _Grid:
     optode_w: F  # lag weights of the O2 at t = 0..n·h, (N, n + 1)
     optode_end: F
     warm_decay: F  # e^(−m·h/τ_warm-up) for m = 0..n, (N, n + 1)
-    scratch: F  # [production, respiration, saturation, O2_0, optode_0] per chamber, (N, 3n + 2)
-    terms: F  # view of scratch: production and respiration per sub-step, (N, 2, n)
-    saturation: F  # view of scratch: saturation per sub-step, (N, n)
-    start: F  # view of scratch: O2 and optode at the segment start, (N, 2)
+    back: F  # −m for m = 0..n, (n + 1,)
+    terms: F  # scratch: production and respiration per sub-step, (N, 2, n)
+    sums: F  # scratch: 0, then running sums of the scaled O2 inputs, (N, n + 1)
+    lags: dict[tuple[int, ...], F]  # arrival pattern → max(m − k_j, 0), (M, n + 1)
 
 
 @dataclass(frozen=True, slots=True)
 class _Water:
     """Coefficients of one grid and water configuration (flows, volumes)."""
 
-    rate: F  # h/τ of each node, (M,)
-    tau_s: F  # τ = C/(UA + G), s, (M,)
+    rate: list[float]  # h/τ of each node, M values
+    tau_s: list[float]  # τ = C/(UA + G), s
+    inv_g: list[float]  # 1/(UA + G), K W⁻¹
+    t_base_c: list[float]  # (UA·T_room + G·T_in)/(UA + G), °C
+    settle_k_s: list[float]  # τ(1 − a^n): ∫ of the transient per K of T_0 − T∞, s
     powers: F  # a^m for m = 0..n, (M, n + 1)
-    inv_g: F  # 1/(UA + G), K W⁻¹, (M,)
-    t_base_c: F  # (UA·T_room + G·T_in)/(UA + G), °C, (M,)
-    settle_k_s: F  # τ(1 − a^n): ∫ of the transient per K of T_0 − T∞, s, (M,)
-    o2: F  # weights: scratch row → [O2 end, optode end, O2 lower bound], (3, N, 3n + 2)
+    neg_rate: F  # −h/τ of each node, (M, 1)
+    o2_powers: F  # a_o^m = e^(−k·h·m) for m = 0..n, (N, n + 1)
+    o2_scaled: F  # [φ, 1 − a_o]·a_o^(−m) for m = 1..n, (N, 2, n)
     o2_keep: F  # a_o = e^(−k·h), (N,)
-    o2_phi: F  # φ = (1 − a_o)/k, s, (N,)
+    o2_gain: F  # [φ, 1 − a_o] with φ = (1 − a_o)/k in s, (N, 2, 1)
+    scaled: bool  # a_o^(−n) stays finite: the scaled sums may be used
     exchanging: bool  # any chamber exchanges O2 with saturated water
-    shifts: dict[tuple[int, ...], tuple[F, F]]  # arrival pattern → (step response, its ∫)
 
 
 class Stepper:
@@ -153,6 +155,13 @@ class Stepper:
         O2 saturation of each chamber's water as a function of temperature.
     biology
         The communities' net O2 source.
+
+    Notes
+    -----
+    Arrays are worth their call overhead only along the sub-steps (``(rows, n)``); what is
+    one number per node or chamber (coefficients, end values, light of settled lamps) is
+    computed in plain floats, with the same operations in the same order as the array
+    expressions they stand for.
     """
 
     def __init__(self, p: RackParams, saturation: SaturationTable, biology: Metabolism) -> None:
@@ -168,6 +177,11 @@ class Stepper:
         self._room_c = p.room_temperature_c
         self._cold = p.cold_output_frac
         self._warm_gain = 1.0 - p.cold_output_frac
+        self._cold_list: list[float] = self._cold.tolist()
+        self._gain_list: list[float] = self._warm_gain.tolist()
+        self._inv_ik: list[float] = biology.inv_ik.tolist()
+        self._ua: list[float] = p.ua_w_k.tolist()
+        self._ua_room: list[float] = (p.ua_w_k * p.room_temperature_c).tolist()
         self._grids: dict[tuple[int, float], _Grid] = {}
         self._waters: dict[tuple[int, float, int], _Water] = {}
         self._light_key: tuple[object, object] = (None, None)
@@ -198,21 +212,7 @@ class Stepper:
         """
         grid = self._grid(n, h)
         water = self._water(n, h, drive)
-        watts = drive.water_w
-        t_inf = watts[0] - watts[1]
-        t_inf *= water.inv_g
-        t_inf += water.t_base_c
-        lead = state.temp_c - t_inf
-        path = lead[:, None] * water.powers
-        path += t_inf[:, None]
-        excess = t_inf - self._room_c
-        excess *= n * h
-        excess += lead * water.settle_k_s
-        for ks, delta in drive.arrivals:
-            step, integral = self._shift(water, ks, n, h)
-            change = np.multiply(delta, water.inv_g)
-            path += change[:, None] * step
-            excess += change * integral
+        path, excess = self._thermal(state.temp_c, drive, grid, water, n, h)
 
         chambers = path if self._own_water else path.take(self._node_of, axis=0)
         starts = chambers[:, :-1]
@@ -229,48 +229,87 @@ class Stepper:
             hottest = float(path.max())
             if hottest > bio.lowest_threshold_c:
                 bio.stress(starts, terms, hottest)
-        if water.exchanging:
-            grid.saturation[...] = self._saturation.rows(starts)
-        start = grid.start
-        start[:, 0] = state.o2_umol_l
-        start[:, 1] = state.optode_umol_l
-        ends = np.vecdot(water.o2, grid.scratch)
-        if float(ends[2].min()) < 0.0:
-            self._floored(ends, state, grid, water, n)
-
+        o2 = self._oxygen(state.o2_umol_l, starts, grid, water)
+        optode = np.vecdot(grid.optode_w, o2)
+        optode += grid.optode_end * state.optode_umol_l
         probe = np.vecdot(grid.probe_w, chambers)
         probe += grid.probe_end * state.probe_c
-        return WaterState(path[:, -1], ends[0], probe, ends[1], warmth_end), excess
+        return WaterState(path[:, -1], o2[:, -1], probe, optode, warmth_end), excess
 
     # ------------------------------------------------------------------ pieces
-    def _shift(self, water: _Water, ks: tuple[int, ...], n: int, h: float) -> tuple[F, F]:
-        """Unit step responses of the nodes to a change at boundary k_j, and their integrals.
+    def _thermal(
+        self, temp_c: F, drive: Drive, grid: _Grid, water: _Water, n: int, h: float
+    ) -> tuple[F, F]:
+        """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``) and ∫(T − T_room)dt
+        of each node (K s, ``(M,)``).
 
-        Cached per arrival pattern; a node with k_j = n has no change (all zeros).
+        T_m = T∞ + (T_0 − T∞)·a^m, plus Δ·(1 − a^(m−k)) for m > k for each power change
+        arriving at boundary k that moves T∞ by Δ.
         """
-        found = water.shifts.get(ks)
-        if found is None:
-            k = np.array(ks, dtype=float)[:, None]
-            lag = np.arange(n + 1, dtype=float)[None, :] - k
-            rate = water.rate[:, None]
-            step = np.where(lag > 0.0, -np.expm1(-np.maximum(lag, 0.0) * rate), 0.0)
-            left = n - k[:, 0]
-            integral = left * h + water.tau_s * np.expm1(-left * water.rate)
-            if len(water.shifts) >= _CACHE_SIZE:
-                water.shifts.clear()
-            found = water.shifts[ks] = (step, integral)
-        return found
+        room = self._room_c
+        span = n * h
+        heater, chiller = drive.water_w.tolist()
+        inv_g, settle = water.inv_g, water.settle_k_s
+        t_inf = [
+            (w - c) * g + base
+            for w, c, g, base in zip(heater, chiller, inv_g, water.t_base_c, strict=True)
+        ]
+        lead = [t - ti for t, ti in zip(temp_c.tolist(), t_inf, strict=True)]
+        excess = [(ti - room) * span + d * k for ti, d, k in zip(t_inf, lead, settle, strict=True)]
+        ends = np.array((lead, t_inf))[:, :, None]
+        path = np.multiply(ends[0], water.powers)
+        path += ends[1]
+        for ks, delta in drive.arrivals:
+            change = [d * g for d, g in zip(delta, inv_g, strict=True)]
+            for j, k in enumerate(ks):
+                if k < n:
+                    left = n - k
+                    integral = left * h + water.tau_s[j] * math.expm1(-left * water.rate[j])
+                    excess[j] += change[j] * integral
+            # Δ·(1 − a^(m−k)) = −Δ·expm1(−(m − k)·h/τ) for m > k, 0 before
+            rise = np.multiply(self._lags(grid, ks, n), water.neg_rate)
+            np.expm1(rise, out=rise)
+            rise *= np.array(change)[:, None]
+            path -= rise
+        return path, np.array(excess)
 
-    def _floored(self, ends: F, state: WaterState, grid: _Grid, water: _Water, n: int) -> None:
-        """Step the O2 recurrence with its floor at 0 and redo the end values (in place)."""
+    def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water) -> F:
+        """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)``.
+
+        C_m = a_o·C_(m−1) + φ·S_(m−1) + (1 − a_o)·C_sat,(m−1) summed in closed form,
+        C_m = a_o^m·(C_0 + Σ_(j<m) a_o^(−(j+1))·u_j), with the net source S and saturation
+        of the sub-step starts; where that could dip below 0 (the floor) or a_o^(−n) would
+        overflow, the recurrence is stepped instead.
+        """
         terms = grid.terms
-        u = water.o2_phi[:, None] * (terms[:, 0] - terms[:, 1])
-        if water.exchanging:
-            u += (1.0 - water.o2_keep)[:, None] * grid.saturation
-        path = recurrence(water.o2_keep, u.T, state.o2_umol_l, floor=True).T
-        ends[0] = path[:, -1]
-        ends[1] = grid.optode_end * state.optode_umol_l + grid.optode_w[:, 0] * state.o2_umol_l
-        ends[1] += np.vecdot(grid.optode_w[:, 1:], path)
+        net = np.subtract(terms[:, 0], terms[:, 1])
+        saturation = self._saturation.rows(starts) if water.exchanging else None
+        if water.scaled:
+            inputs = net * water.o2_scaled[:, 0]
+            if saturation is not None:
+                inputs += saturation * water.o2_scaled[:, 1]
+            sums = grid.sums
+            np.cumsum(inputs, axis=1, out=sums[:, 1:])
+            path = np.add(sums, o2_0[:, None])
+            path *= water.o2_powers
+            if float(path.min()) >= 0.0:
+                return path
+        gain = water.o2_gain
+        inputs = net * gain[:, 0]
+        if saturation is not None:
+            inputs += saturation * gain[:, 1]
+        stepped = recurrence(water.o2_keep, inputs.T, o2_0, floor=True).T
+        return np.concatenate((o2_0[:, None], stepped), axis=1)
+
+    def _lags(self, grid: _Grid, ks: tuple[int, ...], n: int) -> F:
+        """max(m − k_j, 0) for m = 0..n of every node (cached per arrival pattern)."""
+        found = grid.lags.get(ks)
+        if found is None:
+            if len(grid.lags) >= _CACHE_SIZE:
+                grid.lags.clear()
+            k = np.array(ks, dtype=float)[:, None]
+            found = grid.lags[ks] = np.maximum(-grid.back[None, :] - k, 0.0)
+        return found
 
     def _light(self, warmth: F, drive: Drive, grid: _Grid) -> tuple[F, F]:
         """Light limitation tanh(I/Ik) (``(N, 1)``, or ``(N, n)`` while lamps warm) and end warmth.
@@ -284,8 +323,19 @@ class Stepper:
             seen_par, seen_lit = self._light_key
             if seen_par is drive.par_warm and seen_lit is lit:
                 return self._light_now, lit
-            par = drive.par_warm * (self._cold + self._warm_gain * lit)
-            self._light_now = self._bio.light(par)[:, None]
+            # Metabolism.light of par_warm·(cold + gain·lit), one chamber at a time
+            limited = []
+            for warm, on, cold, gain, inv_ik in zip(
+                drive.par_warm.tolist(),
+                lit.tolist(),
+                self._cold_list,
+                self._gain_list,
+                self._inv_ik,
+                strict=True,
+            ):
+                x = 2.0 * min(warm * (cold + gain * on) * inv_ik, 40.0)
+                limited.append(-2.0 / (math.exp(x) + 1.0) + 1.0)
+            self._light_now = np.array(limited)[:, None]
             self._light_key = (drive.par_warm, lit)
             return self._light_now, lit
         path = (warmth - lit)[:, None] * grid.warm_decay
@@ -315,17 +365,16 @@ class Stepper:
         optode_end, optode_w = lag_weights(p.optode_tau_s, h, n)
         tau = np.maximum(p.warmup_tau_s, 1e-9)
         decay = np.exp(-(np.arange(n + 1, dtype=float)[None, :] * h) / tau[:, None])
-        scratch = np.zeros((chambers, 3 * n + 2))
         return _Grid(
             probe_w=np.ascontiguousarray(probe_w.T),
             probe_end=probe_end,
             optode_w=np.ascontiguousarray(optode_w.T),
             optode_end=optode_end,
             warm_decay=decay,
-            scratch=scratch,
-            terms=scratch[:, : 2 * n].reshape(chambers, 2, n),
-            saturation=scratch[:, 2 * n : 3 * n],
-            start=scratch[:, 3 * n :],
+            back=-np.arange(n + 1, dtype=float),
+            terms=np.zeros((chambers, 2, n)),
+            sums=np.zeros((chambers, n + 1)),
+            lags={},
         )
 
     def _water(self, n: int, h: float, drive: Drive) -> _Water:
@@ -338,120 +387,43 @@ class Stepper:
         return water
 
     def _make_water(self, n: int, h: float, drive: Drive) -> _Water:
-        p = self._p
-        g_tot = p.ua_w_k + drive.flush_w_k
-        tau = drive.capacity_j_k / g_tot
-        rate = h / tau
-        powers = np.exp(-np.arange(n + 1, dtype=float)[None, :] * rate[:, None])
-        inv_g = 1.0 / g_tot
-        base = p.ua_w_k * p.room_temperature_c + drive.flush_w_k * p.inflow_temperature_c
         grid = self._grid(n, h)
-        weights, keep, phi = o2_end_weights(
-            drive.exchange_per_s, h, n, grid.optode_w, grid.optode_end
-        )
+        inflow = self._p.inflow_temperature_c
+        g_tot = [ua + flush for ua, flush in zip(self._ua, drive.flush_w_k.tolist(), strict=True)]
+        tau = [c / g for c, g in zip(drive.capacity_j_k.tolist(), g_tot, strict=True)]
+        rate = [h / t for t in tau]
+        inv_g = [1.0 / g for g in g_tot]
+        t_base = [
+            (ua_room + flush * inflow) * inv
+            for ua_room, flush, inv in zip(
+                self._ua_room, drive.flush_w_k.tolist(), inv_g, strict=True
+            )
+        ]
+        settle = [-t * math.expm1(-n * r) for t, r in zip(tau, rate, strict=True)]
+        exchange = drive.exchange_per_s.tolist()
+        kh = [k * h for k in exchange]
+        fresh = [-math.expm1(-x) for x in kh]
+        phi = [f / k if x > 0.0 else h for f, k, x in zip(fresh, exchange, kh, strict=True)]
+        # a^m and a_o^m for m = 0..n, both as e^(−m·h/τ) and e^(−m·k·h), in one exp
+        exponents = np.array(rate + kh)
+        powers = np.exp(np.multiply.outer(exponents, grid.back))
+        m = len(rate)
+        o2_powers = powers[m:]
+        gains = np.array((phi, fresh)).T[:, :, None]
+        scaled = max(kh, default=0.0) * n <= _MAX_SCALED_EXPONENT
+        o2_scaled = gains / o2_powers[:, None, 1:] if scaled else gains
         return _Water(
             rate=rate,
             tau_s=tau,
-            powers=powers,
             inv_g=inv_g,
-            t_base_c=base * inv_g,
-            settle_k_s=-tau * np.expm1(-n * rate),
-            o2=weights,
-            o2_keep=keep,
-            o2_phi=phi,
-            exchanging=bool((drive.exchange_per_s > 0.0).any()),
-            shifts={},
+            t_base_c=t_base,
+            settle_k_s=settle,
+            powers=powers[:m],
+            neg_rate=np.negative(exponents[:m, None]),
+            o2_powers=o2_powers,
+            o2_scaled=o2_scaled,
+            o2_keep=o2_powers[:, 1],
+            o2_gain=gains,
+            scaled=scaled,
+            exchanging=max(kh, default=0.0) > 0.0,
         )
-
-
-def o2_end_weights(
-    exchange_per_s: F, h: float, n: int, optode_w: F, optode_end: F
-) -> tuple[F, F, F]:
-    """Weights turning one segment's source terms into end O2, end optode and an O2 bound.
-
-    Parameters
-    ----------
-    exchange_per_s
-        O2 exchange rate k of each chamber, s⁻¹, shape ``(N,)``.
-    h
-        Sub-step length, s.
-    n
-        Number of sub-steps, dimensionless.
-    optode_w
-        Optode lag weights of the O2 at t = 0..n·h, dimensionless, shape ``(N, n + 1)``.
-    optode_end
-        Optode lag decay over the segment, dimensionless, shape ``(N,)``.
-
-    Returns
-    -------
-    tuple of numpy.ndarray
-        The weights, shape ``(3, N, 3n + 2)``, to be dotted with the row [production terms
-        (n), respiration terms (n), saturation (n), O2_0, optode_0] of each chamber (µmol L⁻¹
-        s⁻¹, µmol L⁻¹ s⁻¹, µmol L⁻¹, µmol L⁻¹, µmol L⁻¹) to give the end O2, the end optode
-        value and a lower bound of the O2 over the segment (all µmol L⁻¹); a_o = e^(−k·h)
-        and φ = (1 − a_o)/k (s), both shape ``(N,)``.
-
-    Notes
-    -----
-    C_n = a_o^n·C_0 + Σ_j a_o^(n−1−j)·(φ·S_j + (1 − a_o)·C_sat,j) over sub-step starts j. The
-    optode end value is e·y_0 + Σ_m W_m·C_m; substituting C_m gives weights
-    V_i = Σ_(m≥i) W_m·a_o^(m−i) on the inputs of step i (:func:`reach_weights`). As
-    S ≥ −R (respiration term) and C_sat ≥ 0, every C_m ≥
-    a_o^n·C_0 − φ·Σ_j R_j, which is the bound.
-    """
-    k = exchange_per_s
-    chambers = len(k)
-    kh = k * h
-    keep = np.exp(-kh)
-    fresh = -np.expm1(-kh)
-    phi = np.where(kh > 0.0, fresh / np.where(kh > 0.0, k, 1.0), h)
-    powers = np.exp(-np.arange(n + 1, dtype=float)[None, :] * kh[:, None])  # a_o^m, m = 0..n
-    back = powers[:, n - 1 :: -1]  # a_o^(n−1−j)
-    reach = reach_weights(optode_w, keep, powers)  # V_0..V_n
-    out = np.zeros((3, chambers, 3 * n + 2))
-    out[0, :, :n] = phi[:, None] * back
-    out[0, :, n : 2 * n] = -out[0, :, :n]
-    out[0, :, 2 * n : 3 * n] = fresh[:, None] * back
-    out[0, :, 3 * n] = np.exp(-n * kh)
-    out[1, :, :n] = phi[:, None] * reach[:, 1:]
-    out[1, :, n : 2 * n] = -out[1, :, :n]
-    out[1, :, 2 * n : 3 * n] = fresh[:, None] * reach[:, 1:]
-    out[1, :, 3 * n] = reach[:, 0]
-    out[1, :, 3 * n + 1] = optode_end
-    out[2, :, n : 2 * n] = -phi[:, None]
-    out[2, :, 3 * n] = np.exp(-n * kh)
-    return out, keep, phi
-
-
-def reach_weights(weights: F, keep: F, powers: F) -> F:
-    """Backward sums V_i = Σ_(m≥i) W_m·a^(m−i), i = 0..n, of every chamber at once.
-
-    Parameters
-    ----------
-    weights
-        W_0..W_n of each chamber, ≥ 0, dimensionless, shape ``(N, n + 1)``.
-    keep
-        a = e^(−k·h) of each chamber, dimensionless, shape ``(N,)``.
-    powers
-        a^m for m = 0..n of each chamber, dimensionless, shape ``(N, n + 1)``.
-
-    Returns
-    -------
-    numpy.ndarray
-        V_0..V_n, dimensionless, shape ``(N, n + 1)``.
-
-    Notes
-    -----
-    V_i = a^(−i)·Σ_(m≥i) W_m·a^m: one reversed cumulative sum over all chambers. Every term
-    is ≥ 0, so its rounding error stays within n·ε of V_i; where a^n would leave the normal
-    range of doubles (a^n ≤ 1e-260) the recurrence V_i = W_i + a·V_(i+1) is run instead
-    (``scipy.signal.lfilter``, one chamber at a time).
-    """
-    if float(powers[:, -1].min(initial=1.0)) > _SCALED_MIN_POWER:
-        scaled = weights * powers
-        total = np.cumsum(scaled[:, ::-1], axis=1)[:, ::-1]
-        return np.asarray(total / powers, dtype=float)
-    reach = np.empty_like(weights)
-    for c in range(len(keep)):
-        reach[c, ::-1] = lfilter([1.0], [1.0, -keep[c]], weights[c, ::-1])
-    return reach

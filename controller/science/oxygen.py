@@ -36,6 +36,7 @@ doi:10.13155/45915.
 
 from __future__ import annotations
 
+import math
 from typing import Final
 
 import gsw
@@ -54,6 +55,7 @@ __all__ = [
     "normalise_unit",
     "seawater_density_kg_m3",
     "solubility",
+    "solubility_umol_l_scalar",
     "water_vapour_pressure_hpa",
 ]
 
@@ -242,6 +244,56 @@ def solubility(
         return _out(_gg92(temp, sal, _GG92_UMOL_KG) * factor)
     umol_l = _saturation_umol_l_1atm(temp, sal) * factor
     return _out(_from_umol_l(umol_l, canonical, temp, sal, pressure_hpa, vapour))
+
+
+def solubility_umol_l_scalar(temp_c: float, salinity: float, pressure_kpa: float) -> float:
+    """:func:`solubility` in µmol/L for one water sample, in plain floats.
+
+    Parameters
+    ----------
+    temp_c
+        Water temperature, °C (fit range 0–40).
+    salinity
+        Practical salinity (PSS-78), dimensionless (fit range 0–42).
+    pressure_kpa
+        Barometric (total air) pressure over the water, kPa.
+
+    Returns
+    -------
+    float
+        Air-saturation oxygen, µmol L⁻¹.
+
+    Notes
+    -----
+    The very operations of ``solubility(temp_c, salinity, pressure_kpa, unit="umol/L")`` in
+    the same order, and the same range checks and errors, without building arrays: a
+    fraction of its cost where one value at a time is wanted (a simulated optode's reading).
+    Where numpy's ``exp`` and ``log`` are the C library's (no AVX-512 kernels), the result
+    is the same double.
+    """
+    pressure_hpa = 10.0 * pressure_kpa
+    if temp_c < -5.0 or temp_c > 50.0:
+        raise SquallError(
+            "temperature must be within -5..50 °C (Garcia & Gordon fit 0..40 °C)", field="temp_c"
+        )
+    if salinity < 0.0 or salinity > 50.0:
+        raise SquallError("salinity must be within 0..50 (fit 0..42, PSS-78)", field="salinity")
+    if pressure_hpa < 100.0 or pressure_hpa > 2000.0:
+        raise SquallError("barometric pressure must be within 10..200 kPa", field="pressure_kpa")
+    kelvin = temp_c + 273.15
+    vapour = STANDARD_PRESSURE_HPA * math.exp(
+        24.4543
+        - 67.4509 * (100.0 / kelvin)
+        - 4.8489 * math.log(kelvin / 100.0)
+        - 0.000544 * salinity
+    )
+    factor = (pressure_hpa - vapour) / (STANDARD_PRESSURE_HPA - vapour)
+    a, b, c0 = _GG92_ML_L
+    ts = math.log((298.15 - temp_c) / (273.15 + temp_c))
+    fresh = a[0] + ts * (a[1] + ts * (a[2] + ts * (a[3] + ts * (a[4] + ts * a[5]))))
+    salt = b[0] + ts * (b[1] + ts * (b[2] + ts * b[3]))
+    one_atm = math.exp(fresh + salinity * salt + c0 * salinity * salinity)
+    return _UMOL_PER_ML * one_atm * factor
 
 
 def _saturation_umol_l_1atm(temp: np.ndarray, sal: np.ndarray) -> np.ndarray:

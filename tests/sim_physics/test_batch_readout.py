@@ -167,3 +167,24 @@ def test_comm_ok_all_equals_comm_ok_chamber_by_chamber() -> None:
         assert a.comm_ok_all(device) == tuple(a.comm_ok(c, device) for c in ids)
     assert a.comm_ok_all("optode").count(False) == 2
     assert a.comm_ok_all("modbus").count(False) == 1
+
+
+def test_scalar_solubility_is_the_array_solubility_one_value_at_a_time() -> None:
+    # solubility_umol_l_scalar repeats controller.science.oxygen.solubility (Garcia & Gordon
+    # 1992, mL/L fit, SCOR WG 142 conversion) in plain floats: same values, same refusals.
+    from controller.errors import SquallError
+    from controller.science.oxygen import solubility, solubility_umol_l_scalar
+
+    rng = np.random.default_rng(5)
+    temps = rng.uniform(-5.0, 50.0, 500)
+    salts = rng.uniform(0.0, 50.0, 500)
+    kpas = rng.uniform(10.0, 200.0, 500)
+    want = solubility(temps, salts, kpas, unit="umol/L")
+    got = [solubility_umol_l_scalar(t, s, p) for t, s, p in zip(temps, salts, kpas, strict=True)]
+    np.testing.assert_allclose(got, want, rtol=1e-14, atol=0.0)
+    for bad in ((50.5, 30.0, 101.0), (10.0, -1.0, 101.0), (10.0, 30.0, 9.0)):
+        with pytest.raises(SquallError) as theirs:
+            solubility(*bad, unit="umol/L")
+        with pytest.raises(SquallError) as mine:
+            solubility_umol_l_scalar(*bad)
+        assert str(mine.value) == str(theirs.value)
