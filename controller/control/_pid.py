@@ -24,6 +24,7 @@ from dataclasses import dataclass
 from functools import cached_property
 
 __all__ = [
+    "PidLoop",
     "PidParams",
     "PidResult",
     "PidState",
@@ -166,14 +167,55 @@ class PidResult:
     saturated: bool
 
 
-def _derivative(state: PidState, params: PidParams, measured: float, dt_s: float) -> float:
+def _derivative(
+    params: PidParams,
+    derivative: float,
+    last_measured: float | None,
+    measured: float,
+    dt_s: float,
+) -> float:
     """Filtered derivative on the measurement, backward difference (stable for any dt)."""
-    if params.td_s == 0.0 or state.last_measured is None:
+    if params.td_s == 0.0 or last_measured is None:
         return 0.0
     denom = params.td_s + params.derivative_filter_n * dt_s
     keep = params.td_s / denom
     gain = params.kc * params.td_s * params.derivative_filter_n / denom
-    return keep * state.derivative - gain * (measured - state.last_measured)
+    return keep * derivative - gain * (measured - last_measured)
+
+
+def _advance(
+    params: PidParams,
+    integral: float,
+    derivative: float,
+    last_measured: float | None,
+    measured: float,
+    setpoint: float,
+    dt_s: float,
+) -> tuple[float, float, float, float, float]:
+    """The arithmetic of one automatic step on plain values, inputs not checked.
+
+    Returns ``(p, d, v, u, i_next)``: proportional and derivative terms, output before (v)
+    and after (u) limiting, and the integral for the next step, all in the output unit. The
+    integral used in the step is ``integral``. :func:`pid_step` and :class:`PidLoop` both
+    call this, so they cannot drift apart.
+    """
+    p = params.kc * (params.setpoint_weight * setpoint - measured)
+    d = (
+        0.0
+        if params.td_s == 0.0 or last_measured is None
+        else _derivative(params, derivative, last_measured, measured, dt_s)
+    )
+    v = p + integral + d
+    u = params.out_max if v > params.out_max else params.out_min if v < params.out_min else v
+    if params.has_integral:
+        i_next = (
+            integral
+            + params.kc * dt_s / params.ti_s * (setpoint - measured)
+            - math.expm1(-dt_s / params.tt_s) * (u - v)
+        )
+    else:
+        i_next = integral
+    return p, d, v, u, i_next
 
 
 def _check_inputs(measured: float, setpoint: float, dt_s: float) -> None:
@@ -217,21 +259,32 @@ def pid_step(
     a step longer than Tt never overshoots the tracking target.
     """
     _check_inputs(measured, setpoint, dt_s)
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = _derivative(state, params, measured, dt_s)
     i = state.integral
-    v = p + i + d
-    u = params.out_max if v > params.out_max else params.out_min if v < params.out_min else v
-    if params.has_integral:
-        i_next = (
-            i
-            + params.kc * dt_s / params.ti_s * (setpoint - measured)
-            - math.expm1(-dt_s / params.tt_s) * (u - v)
-        )
-    else:
-        i_next = i
+    p, d, v, u, i_next = _advance(
+        params, i, state.derivative, state.last_measured, measured, setpoint, dt_s
+    )
     new_state = PidState(integral=i_next, derivative=d, last_measured=measured, last_output=u)
     return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != v)
+
+
+def _follow(
+    params: PidParams,
+    derivative: float,
+    last_measured: float | None,
+    manual_output: float,
+    measured: float,
+    setpoint: float,
+    dt_s: float,
+) -> tuple[float, float, float, float]:
+    """The arithmetic of :func:`pid_track` on plain values, inputs not checked.
+
+    Returns ``(u, p, d, i)``: the limited manual output, the P and D terms, and the integral
+    that makes the controller's output equal ``u`` (output unit each).
+    """
+    u = params.clamp(manual_output)
+    p = params.kc * (params.setpoint_weight * setpoint - measured)
+    d = _derivative(params, derivative, last_measured, measured, dt_s)
+    return u, p, d, u - p - d
 
 
 def pid_track(
@@ -269,12 +322,115 @@ def pid_track(
     """
     _check_inputs(manual_output, setpoint, dt_s)
     _finite(measured, "measured")
-    u = params.clamp(manual_output)
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = _derivative(state, params, measured, dt_s)
-    i = u - p - d
+    u, p, d, i = _follow(
+        params, state.derivative, state.last_measured, manual_output, measured, setpoint, dt_s
+    )
     new_state = PidState(integral=i, derivative=d, last_measured=measured, last_output=u)
     return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != manual_output)
+
+
+class PidLoop:
+    """One loop's memory kept in place, for a runtime that steps many loops every tick.
+
+    The arithmetic is that of :func:`pid_step` and :func:`pid_track` (the same private
+    functions do it), and the inputs are checked the same way; only the bookkeeping differs:
+    the state is updated in place instead of a new :class:`PidState` and :class:`PidResult`
+    being built per step.
+
+    Parameters
+    ----------
+    params
+        Gains and limits (validated when they were built).
+    state
+        State to start from, default ``PidState()``.
+
+    Attributes
+    ----------
+    integral, derivative, last_measured, last_output
+        As the fields of :class:`PidState` (output unit; measurement unit; None before the
+        first step).
+    """
+
+    __slots__ = ("derivative", "integral", "last_measured", "last_output", "params")
+
+    def __init__(self, params: PidParams, state: PidState | None = None) -> None:
+        state = PidState() if state is None else state
+        self.params = params
+        self.integral = state.integral
+        self.derivative = state.derivative
+        self.last_measured = state.last_measured
+        self.last_output = state.last_output
+
+    @property
+    def state(self) -> PidState:
+        """The memory as a :class:`PidState` (output and measurement units)."""
+        return PidState(
+            integral=self.integral,
+            derivative=self.derivative,
+            last_measured=self.last_measured,
+            last_output=self.last_output,
+        )
+
+    def step(self, measured: float, setpoint: float, dt_s: float) -> float:
+        """One automatic step, as :func:`pid_step`.
+
+        Parameters
+        ----------
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r, measurement unit.
+        dt_s
+            Time since the previous step, s, above 0.
+
+        Returns
+        -------
+        float
+            Output after limiting, output unit.
+        """
+        if not (
+            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
+        ):
+            _check_inputs(measured, setpoint, dt_s)
+        _, d, _, u, i_next = _advance(
+            self.params,
+            self.integral,
+            self.derivative,
+            self.last_measured,
+            measured,
+            setpoint,
+            dt_s,
+        )
+        self.integral, self.derivative = i_next, d
+        self.last_measured, self.last_output = measured, u
+        return u
+
+    def track(self, manual_output: float, measured: float, setpoint: float, dt_s: float) -> float:
+        """Follow a manual output, as :func:`pid_track`.
+
+        Parameters
+        ----------
+        manual_output
+            Output applied, output unit; limited to the range.
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r that automatic mode will use, measurement unit.
+        dt_s
+            Time since the previous sample, s, above 0.
+
+        Returns
+        -------
+        float
+            The limited manual output, output unit.
+        """
+        _check_inputs(manual_output, setpoint, dt_s)
+        _finite(measured, "measured")
+        params, last = self.params, self.last_measured
+        u, _, d, i = _follow(params, self.derivative, last, manual_output, measured, setpoint, dt_s)
+        self.integral, self.derivative = i, d
+        self.last_measured, self.last_output = measured, u
+        return u
 
 
 def split_range(u_pct: float, deadband_pct: float = 2.0) -> tuple[float, float]:
@@ -295,10 +451,12 @@ def split_range(u_pct: float, deadband_pct: float = 2.0) -> tuple[float, float]:
         band each drive rises linearly from 0 at the band edge to 100 at ±100 %, so the map
         is continuous.
     """
-    u = min(100.0, max(-100.0, _finite(u_pct, "u_pct")))
-    db = _finite(deadband_pct, "deadband_pct")
-    if not 0.0 <= db < 100.0:
+    u, db = float(u_pct), float(deadband_pct)
+    if not (math.isfinite(u) and 0.0 <= db < 100.0):  # one test for the usual case
+        _finite(u, "u_pct")
+        _finite(db, "deadband_pct")
         raise ValueError(f"deadband_pct must be in [0, 100), got {deadband_pct!r}")
+    u = -100.0 if u < -100.0 else 100.0 if u > 100.0 else u
     if u > db:
         return min(100.0, 100.0 * (u - db) / (100.0 - db)), 0.0
     if u < -db:
@@ -423,11 +581,19 @@ def rate_limit(prev_sp: float, target_sp: float, max_rate_per_s: float, dt_s: fl
     float
         The setpoint to apply now, setpoint unit.
     """
-    prev_sp = _finite(prev_sp, "prev_sp")
-    target_sp = _finite(target_sp, "target_sp")
-    if math.isnan(max_rate_per_s) or max_rate_per_s < 0:
-        raise ValueError(f"max_rate_per_s must be 0 or more, got {max_rate_per_s!r}")
-    if _finite(dt_s, "dt_s") < 0:
-        raise ValueError(f"dt_s must not be negative, got {dt_s!r}")
+    prev_sp, target_sp = float(prev_sp), float(target_sp)
+    if not (
+        math.isfinite(prev_sp)
+        and math.isfinite(target_sp)
+        and max_rate_per_s >= 0
+        and math.isfinite(dt_s)
+        and dt_s >= 0
+    ):  # one test for the usual case; the messages below say which input is wrong
+        _finite(prev_sp, "prev_sp")
+        _finite(target_sp, "target_sp")
+        if math.isnan(max_rate_per_s) or max_rate_per_s < 0:
+            raise ValueError(f"max_rate_per_s must be 0 or more, got {max_rate_per_s!r}")
+        if _finite(dt_s, "dt_s") < 0:
+            raise ValueError(f"dt_s must not be negative, got {dt_s!r}")
     step = max_rate_per_s * dt_s if dt_s > 0 else 0.0
     return prev_sp + max(-step, min(step, target_sp - prev_sp))
