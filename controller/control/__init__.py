@@ -41,9 +41,11 @@ from controller.control._interlocks import (
     Signal,
     acknowledge,
     evaluate,
+    evaluate_values,
     transition_table_markdown,
 )
 from controller.control._pid import (
+    PidLoop,
     PidParams,
     PidResult,
     PidState,
@@ -92,6 +94,7 @@ __all__ = [
     "Level",
     "Outputs",
     "PidGains",
+    "PidLoop",
     "PidParams",
     "PidResult",
     "PidState",
@@ -108,6 +111,7 @@ __all__ = [
     "default_policies",
     "end_window",
     "evaluate",
+    "evaluate_values",
     "fopdt_from_relay",
     "fopdt_from_ultimate",
     "light_change_times",

@@ -55,6 +55,7 @@ __all__ = [
     "Signal",
     "acknowledge",
     "evaluate",
+    "evaluate_values",
     "transition_table_markdown",
 ]
 
@@ -107,6 +108,12 @@ _TRANSITIONS: Mapping[tuple[bool, ConditionState, Signal], ConditionState] = Map
 _HOLDING = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED, _C.LATCHED})
 _PRESENT = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED})
 
+#: Every condition CLEAR. States share this one read-only mapping whenever nothing holds
+#: (:func:`_frozen`), so :func:`evaluate_values` tells a quiet chamber by identity alone.
+_ALL_CLEAR: Mapping[Condition, ConditionState] = MappingProxyType(
+    dict.fromkeys(Condition, _C.CLEAR)
+)
+
 
 _SAFETY_OF_LEVEL = {
     Level.WARNING: SafetyState.WARNING,
@@ -155,9 +162,7 @@ class InterlockState:
         The actions decided by the latest evaluation or acknowledgement; None before any.
     """
 
-    conditions: Mapping[Condition, ConditionState] = field(
-        default_factory=lambda: MappingProxyType(dict.fromkeys(Condition, ConditionState.CLEAR))
-    )
+    conditions: Mapping[Condition, ConditionState] = field(default_factory=lambda: _ALL_CLEAR)
     safety: SafetyState = SafetyState.STARTING
     started_s: float | None = None
     last_t_s: float | None = None
@@ -173,6 +178,14 @@ class InterlockState:
     def holding(self) -> tuple[Condition, ...]:
         """Conditions that are active, acknowledged or latched, in declaration order."""
         return tuple(c for c in Condition if self.conditions[c] in _HOLDING)
+
+
+def _frozen(conditions: dict[Condition, ConditionState]) -> Mapping[Condition, ConditionState]:
+    """A read-only view of a fresh dict of condition states; :data:`_ALL_CLEAR` when all
+    are clear."""
+    if all(state is _C.CLEAR for state in conditions.values()):
+        return _ALL_CLEAR
+    return MappingProxyType(conditions)
 
 
 def _step(
@@ -234,7 +247,7 @@ class _Memory(NamedTuple):
 
 def _remember(
     state: InterlockState,
-    readings: Readings,
+    comm_ok: bool | None,
     reply: float | None,
     limits: InterlockLimits,
     t_s: float,
@@ -246,7 +259,7 @@ def _remember(
     last_comm = state.last_comm_ok_s
     frozen_ref, frozen_since = state.frozen_ref_c, state.frozen_since_s
     anchor_c, anchor_s = state.rate_anchor_c, state.rate_anchor_s
-    if readings.comm_ok:
+    if comm_ok:
         last_comm = t_s
     if reply is not None:
         last_reply = t_s
@@ -270,7 +283,8 @@ def _remember(
 def _signals(
     old: InterlockState,
     memory: _Memory,
-    readings: Readings,
+    level_ok: bool | None,
+    e_stop: bool | None,
     reply: float | None,
     limits: InterlockLimits,
 ) -> tuple[bool | None, ...]:
@@ -279,7 +293,6 @@ def _signals(
     t_s = memory.last_t_s
     valid = reply is not None and limits.sensor_min_c < reply < limits.sensor_max_c
     stale = t_s - memory.last_reply_s >= limits.stale_after_s
-    level_ok, e_stop = readings.level_ok, readings.e_stop
     low = None if level_ok is None else not level_ok
     comm = t_s - memory.last_comm_ok_s >= limits.comm_loss_after_s
     if not valid:
@@ -439,19 +452,65 @@ def evaluate(
         ``(new_state, actions, events)``: the new state, what to do with the outputs, and
         the events (raised, cleared, latched, safety changed) with their reasons.
     """
+    return evaluate_values(
+        state,
+        readings.temperature_c,
+        readings.level_ok,
+        readings.comm_ok,
+        readings.e_stop,
+        limits,
+        t_s,
+    )
+
+
+def evaluate_values(
+    state: InterlockState,
+    temperature_c: float | None,
+    level_ok: bool | None,
+    comm_ok: bool | None,
+    e_stop: bool | None,
+    limits: InterlockLimits,
+    t_s: float,
+) -> tuple[InterlockState, Actions, tuple[InterlockEvent, ...]]:
+    """:func:`evaluate` with the readings given one by one (no :class:`Readings` to build).
+
+    Parameters
+    ----------
+    state
+        State from the previous evaluation.
+    temperature_c
+        Probe reading, °C, or None (no reply), as :attr:`Readings.temperature_c`.
+    level_ok
+        Level switch, dimensionless, as :attr:`Readings.level_ok`.
+    comm_ok
+        Device exchange, dimensionless, as :attr:`Readings.comm_ok`.
+    e_stop
+        Emergency stop, dimensionless, as :attr:`Readings.e_stop`.
+    limits
+        Thresholds and policies.
+    t_s
+        Clock time, s, not before the previous evaluation.
+
+    Returns
+    -------
+    tuple
+        ``(new_state, actions, events)`` as from :func:`evaluate`.
+    """
     if not math.isfinite(t_s):
         raise ValueError(f"t_s must be finite, got {t_s!r}")
     if state.last_t_s is not None and t_s < state.last_t_s:
         raise ValueError(f"t_s {t_s!r} is before the previous evaluation at {state.last_t_s!r}")
-    reply = readings.temperature_c
+    reply = temperature_c
     if reply is not None and math.isnan(reply):
         reply = math.inf  # NaN is an implausible reading
-    memory = _remember(state, readings, reply, limits, t_s)
-    signals = _signals(state, memory, readings, reply, limits)
+    memory = _remember(state, comm_ok, reply, limits, t_s)
+    signals = _signals(state, memory, level_ok, e_stop, reply, limits)
     policies = limits.policies
     conditions: Mapping[Condition, ConditionState] = state.conditions
     events: list[InterlockEvent] = []
-    for condition, present in zip(_SIGNAL_ORDER, signals, strict=True):
+    # a quiet chamber (nothing holds, nothing present) skips the loop: CLEAR stays CLEAR
+    quiet = conditions is _ALL_CLEAR and not any(signals)
+    for condition, present in () if quiet else zip(_SIGNAL_ORDER, signals, strict=True):
         if present is None:
             continue
         before = conditions[condition]
@@ -481,9 +540,9 @@ def evaluate(
     healthy = (
         reply is not None
         and limits.sensor_min_c < reply < limits.sensor_max_c
-        and readings.comm_ok is not False
-        and readings.level_ok is not False
-        and readings.e_stop is not True
+        and comm_ok is not False
+        and level_ok is not False
+        and e_stop is not True
     )
     if (
         conditions is state.conditions
@@ -492,7 +551,7 @@ def evaluate(
     ):
         safety, healthy_seen, actions = state.safety, state.healthy_seen, state.actions
     else:
-        conditions = MappingProxyType(dict(conditions))
+        conditions = _frozen(dict(conditions))
         safety, healthy_seen, actions = _conclude(state, conditions, limits, t_s, healthy, events)
     # Every field given, none validated by InterlockState: fill the frozen instance's
     # attribute dict in one go instead of twelve object.__setattr__ calls (a third of the
@@ -556,7 +615,7 @@ def acknowledge(
         level=policy.level,
         message=f"{condition.value} acknowledged ({before.value} -> {after.value})",
     )
-    frozen = MappingProxyType(conditions)
+    frozen = _frozen(conditions)
     events = [event]
     safety, healthy_seen, actions = _conclude(state, frozen, limits, t_s, False, events)
     new = replace(
