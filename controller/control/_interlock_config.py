@@ -106,16 +106,11 @@ class Outputs:
             Equal to ``Outputs(heater_pct=..., ...)`` with the same drives.
         """
         out = object.__new__(cls)
-        object.__setattr__(
-            out,
-            "__dict__",
-            {
-                "heater_pct": heater_pct,
-                "chiller_pct": chiller_pct,
-                "lamp_pct": lamp_pct,
-                "pump_pct": pump_pct,
-            },
-        )
+        fields = out.__dict__  # filled in place: a frozen instance refuses attribute writes
+        fields["heater_pct"] = heater_pct
+        fields["chiller_pct"] = chiller_pct
+        fields["lamp_pct"] = lamp_pct
+        fields["pump_pct"] = pump_pct
         return out
 
 

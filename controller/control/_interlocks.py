@@ -30,7 +30,6 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from enum import Enum
 from types import MappingProxyType
-from typing import NamedTuple
 
 from controller.control._interlock_config import (
     Actions,
@@ -231,29 +230,17 @@ _SIGNAL_ORDER = (
 )
 
 
-class _Memory(NamedTuple):
-    """What an evaluation remembers besides the condition states (times in s, readings in
-    °C); the fields of :class:`InterlockState` of the same names."""
-
-    started_s: float
-    last_t_s: float
-    last_reply_s: float
-    last_comm_ok_s: float
-    frozen_ref_c: float | None
-    frozen_since_s: float | None
-    rate_anchor_c: float | None
-    rate_anchor_s: float | None
-
-
 def _remember(
     state: InterlockState,
     comm_ok: bool | None,
     reply: float | None,
     limits: InterlockLimits,
     t_s: float,
-) -> _Memory:
-    """The memory (not the condition states) after this tick's readings; ``reply`` is the
-    probe reading with NaN already made implausible (°C, or None: no reply)."""
+) -> InterlockState:
+    """The next state with the memory this tick's readings leave (times in s, readings in
+    °C); ``reply`` is the probe reading with NaN already made implausible (°C, or None: no
+    reply). Its conditions, safety, healthy_seen and actions are still ``state``'s: only
+    :func:`evaluate_values`, which built it, sets them before anyone else sees it."""
     started = state.started_s if state.started_s is not None else t_s
     last_reply = state.last_reply_s
     last_comm = state.last_comm_ok_s
@@ -268,21 +255,34 @@ def _remember(
                 frozen_ref, frozen_since = reply, t_s
             if anchor_s is None or t_s - anchor_s >= limits.rate_window_s:
                 anchor_c, anchor_s = reply, t_s
-    return _Memory(
-        started,
-        t_s,
-        started if last_reply is None else last_reply,
-        started if last_comm is None else last_comm,
-        frozen_ref,
-        frozen_since,
-        anchor_c,
-        anchor_s,
+    # Every field given, none validated by InterlockState: set the frozen instance's
+    # attribute dict in one go instead of twelve object.__setattr__ calls (a third of the
+    # cost of a quiet tick otherwise).
+    new = object.__new__(InterlockState)
+    object.__setattr__(
+        new,
+        "__dict__",
+        {
+            "conditions": state.conditions,
+            "safety": state.safety,
+            "started_s": started,
+            "last_t_s": t_s,
+            "last_reply_s": started if last_reply is None else last_reply,
+            "frozen_ref_c": frozen_ref,
+            "frozen_since_s": frozen_since,
+            "rate_anchor_c": anchor_c,
+            "rate_anchor_s": anchor_s,
+            "last_comm_ok_s": started if last_comm is None else last_comm,
+            "healthy_seen": state.healthy_seen,
+            "actions": state.actions,
+        },
     )
+    return new
 
 
 def _signals(
     old: InterlockState,
-    memory: _Memory,
+    memory: InterlockState,
     level_ok: bool | None,
     e_stop: bool | None,
     reply: float | None,
@@ -321,7 +321,7 @@ def _signals(
 def _reason(
     condition: Condition,
     old: InterlockState,
-    memory: _Memory,
+    memory: InterlockState,
     reply: float | None,
     limits: InterlockLimits,
 ) -> str:
@@ -503,8 +503,8 @@ def evaluate_values(
     reply = temperature_c
     if reply is not None and math.isnan(reply):
         reply = math.inf  # NaN is an implausible reading
-    memory = _remember(state, comm_ok, reply, limits, t_s)
-    signals = _signals(state, memory, level_ok, e_stop, reply, limits)
+    new = _remember(state, comm_ok, reply, limits, t_s)
+    signals = _signals(state, new, level_ok, e_stop, reply, limits)
     policies = limits.policies
     conditions: Mapping[Condition, ConditionState] = state.conditions
     events: list[InterlockEvent] = []
@@ -527,7 +527,7 @@ def evaluate_values(
         if conditions is state.conditions:
             conditions = dict(conditions)
         conditions[condition] = after  # type: ignore[index]
-        why = _reason(condition, state, memory, reply, limits)
+        why = _reason(condition, state, new, reply, limits)
         if after in _PRESENT and before not in _PRESENT:
             kind = EventKind.RAISED
         elif after is ConditionState.LATCHED:
@@ -553,24 +553,9 @@ def evaluate_values(
     else:
         conditions = _frozen(dict(conditions))
         safety, healthy_seen, actions = _conclude(state, conditions, limits, t_s, healthy, events)
-    # Every field given, none validated by InterlockState: fill the frozen instance's
-    # attribute dict in one go instead of twelve object.__setattr__ calls (a third of the
-    # cost of a quiet tick otherwise).
-    new = object.__new__(InterlockState)
-    new.__dict__.update(
-        conditions=conditions,
-        safety=safety,
-        started_s=memory.started_s,
-        last_t_s=t_s,
-        last_reply_s=memory.last_reply_s,
-        frozen_ref_c=memory.frozen_ref_c,
-        frozen_since_s=memory.frozen_since_s,
-        rate_anchor_c=memory.rate_anchor_c,
-        rate_anchor_s=memory.rate_anchor_s,
-        last_comm_ok_s=memory.last_comm_ok_s,
-        healthy_seen=healthy_seen,
-        actions=actions,
-    )
+    fields = new.__dict__  # the new state is not out yet: its last four fields go in now
+    fields["conditions"], fields["safety"] = conditions, safety
+    fields["healthy_seen"], fields["actions"] = healthy_seen, actions
     return new, actions, tuple(events)
 
 

@@ -4,7 +4,9 @@ Rules of this module
 --------------------
 - Nothing here reads a clock or keeps hidden state: every call takes the previous
   :class:`PidState` and the elapsed time ``dt_s`` and returns a new state. Parameters and
-  states are frozen dataclasses that validate themselves when built.
+  states are frozen dataclasses that validate themselves when built. The one exception is
+  :class:`PidLoop`, the same step on a state kept in place for loops stepped every tick
+  (its state is in plain view; :func:`pid_step` and :func:`pid_track` run on it).
 - The controller is u = Kc·[b·r − y + (1/Ti)∫(r − y)dt − Td·dy_f/dt], output limited to
   [out_min, out_max] in the actuator's own physical unit (for example −100..100 % for a
   split-range heater/chiller pair, see :func:`split_range`).
@@ -183,47 +185,159 @@ def _derivative(
     return keep * derivative - gain * (measured - last_measured)
 
 
-def _advance(
-    params: PidParams,
-    integral: float,
-    derivative: float,
-    last_measured: float | None,
-    measured: float,
-    setpoint: float,
-    dt_s: float,
-) -> tuple[float, float, float, float, float]:
-    """The arithmetic of one automatic step on plain values, inputs not checked.
-
-    Returns ``(p, d, v, u, i_next)``: proportional and derivative terms, output before (v)
-    and after (u) limiting, and the integral for the next step, all in the output unit. The
-    integral used in the step is ``integral``. :func:`pid_step` and :class:`PidLoop` both
-    call this, so they cannot drift apart.
-    """
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = (
-        0.0
-        if params.td_s == 0.0 or last_measured is None
-        else _derivative(params, derivative, last_measured, measured, dt_s)
-    )
-    v = p + integral + d
-    u = params.out_max if v > params.out_max else params.out_min if v < params.out_min else v
-    if params.has_integral:
-        i_next = (
-            integral
-            + params.kc * dt_s / params.ti_s * (setpoint - measured)
-            - math.expm1(-dt_s / params.tt_s) * (u - v)
-        )
-    else:
-        i_next = integral
-    return p, d, v, u, i_next
-
-
 def _check_inputs(measured: float, setpoint: float, dt_s: float) -> None:
     if math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0:
         return
     _finite(measured, "measured")
     _finite(setpoint, "setpoint")
     raise ValueError(f"dt_s must be finite and above 0, got {dt_s!r}")
+
+
+class PidLoop:
+    """One loop's memory kept in place, for a runtime that steps many loops every tick.
+
+    :func:`pid_step` and :func:`pid_track` are built on it, so the arithmetic and the input
+    checks are the same; only the bookkeeping differs: the state is updated in place instead
+    of a new :class:`PidState` and :class:`PidResult` being built per step.
+
+    Parameters
+    ----------
+    params
+        Gains and limits (validated when they were built).
+    state
+        State to start from, default ``PidState()``.
+
+    Attributes
+    ----------
+    integral, derivative, last_measured, last_output
+        As the fields of :class:`PidState` (output unit; measurement unit; None before the
+        first step).
+
+    Notes
+    -----
+    The gains and limits a step reads are copied from ``params`` once, here. ``params`` is
+    frozen and :attr:`params` cannot be replaced, so the copies cannot go stale.
+    """
+
+    __slots__ = (
+        "_has_integral",
+        "_kc",
+        "_out_max",
+        "_out_min",
+        "_p",
+        "_params",
+        "_setpoint_weight",
+        "_td_s",
+        "_ti_s",
+        "_tt_s",
+        "_v",
+        "derivative",
+        "integral",
+        "last_measured",
+        "last_output",
+    )
+
+    def __init__(self, params: PidParams, state: PidState | None = None) -> None:
+        state = PidState() if state is None else state
+        self._params = params
+        self._kc, self._setpoint_weight = params.kc, params.setpoint_weight
+        self._td_s, self._ti_s, self._tt_s = params.td_s, params.ti_s, params.tt_s
+        self._out_min, self._out_max = params.out_min, params.out_max
+        self._has_integral = params.has_integral
+        self.integral = state.integral
+        self.derivative = state.derivative
+        self.last_measured = state.last_measured
+        self.last_output = state.last_output
+        self._p = self._v = 0.0  # P term and unlimited output of the latest call, output unit
+
+    @property
+    def params(self) -> PidParams:
+        """Gains and limits (read-only)."""
+        return self._params
+
+    @property
+    def state(self) -> PidState:
+        """The memory as a :class:`PidState` (output and measurement units)."""
+        return PidState(
+            integral=self.integral,
+            derivative=self.derivative,
+            last_measured=self.last_measured,
+            last_output=self.last_output,
+        )
+
+    def step(self, measured: float, setpoint: float, dt_s: float) -> float:
+        """One automatic step, as :func:`pid_step`.
+
+        Parameters
+        ----------
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r, measurement unit.
+        dt_s
+            Time since the previous step, s, above 0.
+
+        Returns
+        -------
+        float
+            Output after limiting, output unit.
+        """
+        if not (
+            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
+        ):
+            _check_inputs(measured, setpoint, dt_s)
+        kc = self._kc
+        p = kc * (self._setpoint_weight * setpoint - measured)
+        last = self.last_measured
+        d = (
+            0.0
+            if self._td_s == 0.0 or last is None
+            else _derivative(self._params, self.derivative, last, measured, dt_s)
+        )
+        i = self.integral
+        v = p + i + d
+        high, low = self._out_max, self._out_min
+        u = high if v > high else low if v < low else v
+        if self._has_integral:
+            i = (
+                i
+                + kc * dt_s / self._ti_s * (setpoint - measured)
+                - math.expm1(-dt_s / self._tt_s) * (u - v)
+            )
+        self.integral, self.derivative = i, d
+        self.last_measured, self.last_output = measured, u
+        self._p, self._v = p, v
+        return u
+
+    def track(self, manual_output: float, measured: float, setpoint: float, dt_s: float) -> float:
+        """Follow a manual output, as :func:`pid_track`.
+
+        Parameters
+        ----------
+        manual_output
+            Output applied, output unit; limited to the range.
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r that automatic mode will use, measurement unit.
+        dt_s
+            Time since the previous sample, s, above 0.
+
+        Returns
+        -------
+        float
+            The limited manual output, output unit.
+        """
+        _check_inputs(manual_output, setpoint, dt_s)
+        _finite(measured, "measured")
+        params = self._params
+        u = params.clamp(manual_output)
+        p = params.kc * (params.setpoint_weight * setpoint - measured)
+        d = _derivative(params, self.derivative, self.last_measured, measured, dt_s)
+        self.integral, self.derivative = u - p - d, d
+        self.last_measured, self.last_output = measured, u
+        self._p, self._v = p, u
+        return u
 
 
 def pid_step(
@@ -258,33 +372,16 @@ def pid_step(
     and u after limiting. The back-calculation term is written as a first-order lag so that
     a step longer than Tt never overshoots the tracking target.
     """
-    _check_inputs(measured, setpoint, dt_s)
-    i = state.integral
-    p, d, v, u, i_next = _advance(
-        params, i, state.derivative, state.last_measured, measured, setpoint, dt_s
+    loop = PidLoop(params, state)
+    u = loop.step(measured, setpoint, dt_s)
+    return PidResult(
+        state=loop.state,
+        output=u,
+        p=loop._p,
+        i=state.integral,
+        d=loop.derivative,
+        saturated=u != loop._v,
     )
-    new_state = PidState(integral=i_next, derivative=d, last_measured=measured, last_output=u)
-    return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != v)
-
-
-def _follow(
-    params: PidParams,
-    derivative: float,
-    last_measured: float | None,
-    manual_output: float,
-    measured: float,
-    setpoint: float,
-    dt_s: float,
-) -> tuple[float, float, float, float]:
-    """The arithmetic of :func:`pid_track` on plain values, inputs not checked.
-
-    Returns ``(u, p, d, i)``: the limited manual output, the P and D terms, and the integral
-    that makes the controller's output equal ``u`` (output unit each).
-    """
-    u = params.clamp(manual_output)
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = _derivative(params, derivative, last_measured, measured, dt_s)
-    return u, p, d, u - p - d
 
 
 def pid_track(
@@ -320,117 +417,16 @@ def pid_track(
     PidResult
         New state, the (limited) manual output, and the P, I and D terms behind it.
     """
-    _check_inputs(manual_output, setpoint, dt_s)
-    _finite(measured, "measured")
-    u, p, d, i = _follow(
-        params, state.derivative, state.last_measured, manual_output, measured, setpoint, dt_s
+    loop = PidLoop(params, state)
+    u = loop.track(manual_output, measured, setpoint, dt_s)
+    return PidResult(
+        state=loop.state,
+        output=u,
+        p=loop._p,
+        i=loop.integral,
+        d=loop.derivative,
+        saturated=u != manual_output,
     )
-    new_state = PidState(integral=i, derivative=d, last_measured=measured, last_output=u)
-    return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != manual_output)
-
-
-class PidLoop:
-    """One loop's memory kept in place, for a runtime that steps many loops every tick.
-
-    The arithmetic is that of :func:`pid_step` and :func:`pid_track` (the same private
-    functions do it), and the inputs are checked the same way; only the bookkeeping differs:
-    the state is updated in place instead of a new :class:`PidState` and :class:`PidResult`
-    being built per step.
-
-    Parameters
-    ----------
-    params
-        Gains and limits (validated when they were built).
-    state
-        State to start from, default ``PidState()``.
-
-    Attributes
-    ----------
-    integral, derivative, last_measured, last_output
-        As the fields of :class:`PidState` (output unit; measurement unit; None before the
-        first step).
-    """
-
-    __slots__ = ("derivative", "integral", "last_measured", "last_output", "params")
-
-    def __init__(self, params: PidParams, state: PidState | None = None) -> None:
-        state = PidState() if state is None else state
-        self.params = params
-        self.integral = state.integral
-        self.derivative = state.derivative
-        self.last_measured = state.last_measured
-        self.last_output = state.last_output
-
-    @property
-    def state(self) -> PidState:
-        """The memory as a :class:`PidState` (output and measurement units)."""
-        return PidState(
-            integral=self.integral,
-            derivative=self.derivative,
-            last_measured=self.last_measured,
-            last_output=self.last_output,
-        )
-
-    def step(self, measured: float, setpoint: float, dt_s: float) -> float:
-        """One automatic step, as :func:`pid_step`.
-
-        Parameters
-        ----------
-        measured
-            Process value y, measurement unit.
-        setpoint
-            Setpoint r, measurement unit.
-        dt_s
-            Time since the previous step, s, above 0.
-
-        Returns
-        -------
-        float
-            Output after limiting, output unit.
-        """
-        if not (
-            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
-        ):
-            _check_inputs(measured, setpoint, dt_s)
-        _, d, _, u, i_next = _advance(
-            self.params,
-            self.integral,
-            self.derivative,
-            self.last_measured,
-            measured,
-            setpoint,
-            dt_s,
-        )
-        self.integral, self.derivative = i_next, d
-        self.last_measured, self.last_output = measured, u
-        return u
-
-    def track(self, manual_output: float, measured: float, setpoint: float, dt_s: float) -> float:
-        """Follow a manual output, as :func:`pid_track`.
-
-        Parameters
-        ----------
-        manual_output
-            Output applied, output unit; limited to the range.
-        measured
-            Process value y, measurement unit.
-        setpoint
-            Setpoint r that automatic mode will use, measurement unit.
-        dt_s
-            Time since the previous sample, s, above 0.
-
-        Returns
-        -------
-        float
-            The limited manual output, output unit.
-        """
-        _check_inputs(manual_output, setpoint, dt_s)
-        _finite(measured, "measured")
-        params, last = self.params, self.last_measured
-        u, _, d, i = _follow(params, self.derivative, last, manual_output, measured, setpoint, dt_s)
-        self.integral, self.derivative = i, d
-        self.last_measured, self.last_output = measured, u
-        return u
 
 
 def split_range(u_pct: float, deadband_pct: float = 2.0) -> tuple[float, float]:
