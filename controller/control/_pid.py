@@ -216,10 +216,15 @@ class PidLoop:
     Notes
     -----
     The gains and limits a step reads are copied from ``params`` once, here. ``params`` is
-    frozen and :attr:`params` cannot be replaced, so the copies cannot go stale.
+    frozen and :attr:`params` cannot be replaced, so the copies cannot go stale. The integral
+    gain Kc·h/Ti and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step
+    length h and recomputed whenever a step comes with another one.
     """
 
     __slots__ = (
+        "_back",
+        "_dt_s",
+        "_gain_i",
         "_has_integral",
         "_kc",
         "_out_max",
@@ -244,6 +249,8 @@ class PidLoop:
         self._td_s, self._ti_s, self._tt_s = params.td_s, params.ti_s, params.tt_s
         self._out_min, self._out_max = params.out_min, params.out_max
         self._has_integral = params.has_integral
+        self._dt_s = math.nan  # step length the two factors below are for (none yet), s
+        self._gain_i = self._back = 0.0  # Kc·h/Ti (output unit per measurement unit), e^{−h/Tt} − 1
         self.integral = state.integral
         self.derivative = state.derivative
         self.last_measured = state.last_measured
@@ -299,11 +306,11 @@ class PidLoop:
         high, low = self._out_max, self._out_min
         u = high if v > high else low if v < low else v
         if self._has_integral:
-            i = (
-                i
-                + kc * dt_s / self._ti_s * (setpoint - measured)
-                - math.expm1(-dt_s / self._tt_s) * (u - v)
-            )
+            if dt_s != self._dt_s:
+                self._dt_s = dt_s
+                self._gain_i = kc * dt_s / self._ti_s
+                self._back = math.expm1(-dt_s / self._tt_s)
+            i = i + self._gain_i * (setpoint - measured) - self._back * (u - v)
         self.integral, self.derivative = i, d
         self.last_measured, self.last_output = measured, u
         self._p, self._v = p, v

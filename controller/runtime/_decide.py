@@ -45,6 +45,7 @@ from controller.control import (
     InterlockState,
     Outputs,
     PidLoop,
+    PidParams,
     SafetyState,
     TimeProportionState,
     WindowEnd,
@@ -183,25 +184,21 @@ class _Chamber:
         "force",
         "interlock",
         "lamp",
-        "lamp_curve",
         "limits",
         "name",
         "node",
         "pump",
-        "pump_curve",
         "write_ok",
     )
 
     def __init__(self, name: str, settings: ChamberSettings, cycles: bool, driver: bool) -> None:
         self.name = name
         self.limits = settings.interlocks
-        self.lamp_curve = settings.lamp_curve
-        self.pump_curve = settings.pump_curve
         self.driver = driver  # whether its module carries its node's heater and chiller
         self.node: _Node  # set by the node that holds it
         self.interlock = InterlockState()
-        self.lamp = None if settings.lamp_trim is None else PidLoop(settings.lamp_trim)
-        self.pump = None if settings.flow_trim is None else PidLoop(settings.flow_trim)
+        self.lamp = _Actuator(settings.lamp_curve, settings.lamp_trim)
+        self.pump = _Actuator(settings.pump_curve, settings.flow_trim)
         self.write_ok = True
         self.force: Outputs | None = None
         self.alarm: Condition | None = None
@@ -242,30 +239,52 @@ class _Node:
         self.shown_setpoint_c: float | None = None
 
 
-def _feed(
-    loop: PidLoop | None,
-    curve: DriveCurve,
-    setpoint: float | None,
-    measured: float | None,
-    dt_s: float,
-) -> float:
-    """Drive of a lamp or pump, %: the curve's feed-forward for the setpoint plus a PI trim
-    on the sensor, both in % of drive (a reading goes through the curve only when the trim
-    uses it)."""
-    if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
-        return 0.0
-    drive = curve.drive_for(setpoint)
-    if drive <= 0.0:
-        return 0.0
-    if loop is None:
-        correction = 0.0
-    elif measured is None:
-        correction = loop.last_output or 0.0
-    else:
-        correction = loop.step(curve.equivalent_drive(measured), drive, dt_s)
-    drive = 100.0 * (drive + correction) / 100.0
-    drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
-    return drive if drive < 100.0 else 100.0
+class _Actuator:
+    """A lamp or pump: its drive curve, its PI trim (None: open loop) and the feed-forward
+    drive of the latest setpoint.
+
+    That drive is kept with the setpoint it was computed for and recomputed whenever the
+    setpoint differs; the curve is frozen and never replaced, so it cannot go stale.
+    """
+
+    __slots__ = ("_drive", "_setpoint", "curve", "trim")
+
+    def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
+        self.curve = curve
+        self.trim = None if trim is None else PidLoop(trim)
+        self._setpoint = math.nan  # equal to no setpoint: the first one computes its drive
+        self._drive = 0.0
+
+    def drive(self, setpoint: float | None, measured: float | None, dt_s: float) -> float:
+        """Drive, %: the curve's feed-forward for the setpoint plus the PI trim on the sensor,
+        both in % of drive (a reading goes through the curve only when the trim uses it).
+
+        Parameters
+        ----------
+        setpoint
+            PAR (µmol photons m⁻² s⁻¹) or flow (cm s⁻¹) wanted, or None (uncontrolled: off).
+        measured
+            The sensor's reading in the same unit, or None.
+        dt_s
+            Time since the previous tick, s.
+        """
+        if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
+            return 0.0
+        if setpoint != self._setpoint:
+            self._setpoint, self._drive = setpoint, self.curve.drive_for(setpoint)
+        drive = self._drive
+        if drive <= 0.0:
+            return 0.0
+        trim = self.trim
+        if trim is None:
+            correction = 0.0
+        elif measured is None:
+            correction = trim.last_output or 0.0
+        else:
+            correction = trim.step(self.curve.equivalent_drive(measured), drive, dt_s)
+        drive = 100.0 * (drive + correction) / 100.0
+        drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
+        return drive if drive < 100.0 else 100.0
 
 
 class Decider:
@@ -494,11 +513,11 @@ class Decider:
                 lamp, pump = force.lamp_pct, force.pump_pct
             else:
                 target, reading = targets[name], readings[name]
-                lamp = _feed(ch.lamp, ch.lamp_curve, target.par, reading.par, dt_s)
+                lamp = ch.lamp.drive(target.par, reading.par, dt_s)
                 if cycle is not None and cycle.status is IncubationStatus.CLOSED:
                     pump = 0.0  # flushing pump off; the flow trim waits for the window's end
                 else:
-                    pump = _feed(ch.pump, ch.pump_curve, target.flow_cm_s, reading.flow_cm_s, dt_s)
+                    pump = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
             shown = unchecked(node.heater, node.chiller, lamp, pump)
             decided[name] = _decided(
                 shown,
