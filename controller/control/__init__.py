@@ -49,11 +49,13 @@ from controller.control._pid import (
     PidParams,
     PidResult,
     PidState,
-    TimeProportionState,
     pid_step,
     pid_track,
     rate_limit,
     split_range,
+)
+from controller.control._time_proportion import (
+    TimeProportionState,
     time_proportion,
     time_proportion_step,
 )

@@ -20,7 +20,7 @@ Rules of this module
 - Nothing here reads a clock or does I/O: the caller passes readings and the time.
 - A quiet tick is cheap (it runs for every chamber every tick): the per-tick path reads
   ``_NEXT``, the table re-indexed, and formats a reason text only when a signal changes a
-  condition's state (:func:`_reason`).
+  condition's state (:func:`reason_text`, in ``_interlock_reasons.py``).
 """
 
 from __future__ import annotations
@@ -42,6 +42,7 @@ from controller.control._interlock_config import (
     Readings,
     SafetyState,
 )
+from controller.control._interlock_reasons import reason_text
 
 __all__ = [
     "Actions",
@@ -289,7 +290,7 @@ def _signals(
     limits: InterlockLimits,
 ) -> tuple[bool | None, ...]:
     """Each condition's signal this tick, in ``_SIGNAL_ORDER``: True (present), False
-    (absent) or None (no new information). No text is made here: see :func:`_reason`."""
+    (absent) or None (no new information). No text is made here: see :func:`reason_text`."""
     t_s = memory.last_t_s
     valid = reply is not None and limits.sensor_min_c < reply < limits.sensor_max_c
     stale = t_s - memory.last_reply_s >= limits.stale_after_s
@@ -316,58 +317,6 @@ def _signals(
         if span_s >= limits.rate_window_s:
             fast = abs((reply - anchor_c) / span_s * 3600.0) >= limits.max_rate_c_per_h
     return (False, stale, hot, cold, frozen, fast, low, comm, e_stop)
-
-
-def _reason(
-    condition: Condition,
-    old: InterlockState,
-    memory: InterlockState,
-    reply: float | None,
-    limits: InterlockLimits,
-) -> str:
-    """The reason text of a signal that changes ``condition``'s state (values and limits
-    with units), from the same inputs :func:`_signals` read."""
-    t_s = memory.last_t_s
-    match condition:
-        case Condition.SENSOR_OUT_OF_RANGE:
-            return (
-                f"probe reads {reply:.3f} °C, plausible only between "
-                f"{limits.sensor_min_c:.3f} and {limits.sensor_max_c:.3f} °C"
-            )
-        case Condition.SENSOR_STALE:
-            age_s = t_s - memory.last_reply_s
-            return f"no probe reply for {age_s:.1f} s (limit {limits.stale_after_s:.1f} s)"
-        case Condition.OVER_TEMPERATURE:
-            return f"temperature {reply:.3f} °C, limit {limits.max_temperature_c:.3f} °C"
-        case Condition.UNDER_TEMPERATURE:
-            return f"temperature {reply:.3f} °C, limit {limits.min_temperature_c:.3f} °C"
-        case Condition.SENSOR_FROZEN:
-            assert memory.frozen_since_s is not None
-            still_s = t_s - memory.frozen_since_s
-            return (
-                f"probe unchanged within {limits.frozen_epsilon_c:g} °C for {still_s:.0f} s "
-                f"(limit {limits.frozen_after_s:.0f} s)"
-            )
-        case Condition.RATE_OF_CHANGE:
-            assert reply is not None and old.rate_anchor_s is not None
-            assert old.rate_anchor_c is not None
-            span_s = t_s - old.rate_anchor_s
-            rate = (reply - old.rate_anchor_c) / span_s * 3600.0
-            return (
-                f"temperature changing at {rate:+.3f} °C/h over {span_s:.0f} s "
-                f"(limit {limits.max_rate_c_per_h:.3f} °C/h)"
-            )
-        case Condition.LOW_LEVEL:
-            return "water level switch low"
-        case Condition.COMM_LOSS:
-            comm_age_s = t_s - memory.last_comm_ok_s
-            return (
-                f"no good device exchange for {comm_age_s:.1f} s "
-                f"(limit {limits.comm_loss_after_s:.1f} s)"
-            )
-        case Condition.E_STOP:
-            return "emergency stop pressed"
-    raise AssertionError(condition)  # pragma: no cover - every condition is listed
 
 
 def _worst(
@@ -527,7 +476,7 @@ def evaluate_values(
         if conditions is state.conditions:
             conditions = dict(conditions)
         conditions[condition] = after  # type: ignore[index]
-        why = _reason(condition, state, new, reply, limits)
+        why = reason_text(condition, state, new, reply, limits)
         if after in _PRESENT and before not in _PRESENT:
             kind = EventKind.RAISED
         elif after is ConditionState.LATCHED:
