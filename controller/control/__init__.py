@@ -41,17 +41,21 @@ from controller.control._interlocks import (
     Signal,
     acknowledge,
     evaluate,
+    evaluate_values,
     transition_table_markdown,
 )
 from controller.control._pid import (
+    PidLoop,
     PidParams,
     PidResult,
     PidState,
-    TimeProportionState,
     pid_step,
     pid_track,
     rate_limit,
     split_range,
+)
+from controller.control._time_proportion import (
+    TimeProportionState,
     time_proportion,
     time_proportion_step,
 )
@@ -92,6 +96,7 @@ __all__ = [
     "Level",
     "Outputs",
     "PidGains",
+    "PidLoop",
     "PidParams",
     "PidResult",
     "PidState",
@@ -108,6 +113,7 @@ __all__ = [
     "default_policies",
     "end_window",
     "evaluate",
+    "evaluate_values",
     "fopdt_from_relay",
     "fopdt_from_ultimate",
     "light_change_times",

@@ -85,6 +85,34 @@ class Outputs:
         for name in ("heater_pct", "chiller_pct", "lamp_pct", "pump_pct"):
             _pct(getattr(self, name), name)
 
+    @classmethod
+    def unchecked(
+        cls, heater_pct: float, chiller_pct: float, lamp_pct: float, pump_pct: float
+    ) -> Outputs:
+        """Outputs built without the range check, for a loop's hot path.
+
+        Only for drives the caller already holds within 0–100 %: clipped to that range, or
+        taken from outputs that were checked when built. Anything else builds
+        :class:`Outputs` normally.
+
+        Parameters
+        ----------
+        heater_pct, chiller_pct, lamp_pct, pump_pct
+            Drives, %, each 0–100.
+
+        Returns
+        -------
+        Outputs
+            Equal to ``Outputs(heater_pct=..., ...)`` with the same drives.
+        """
+        out = object.__new__(cls)
+        fields = out.__dict__  # filled in place: a frozen instance refuses attribute writes
+        fields["heater_pct"] = heater_pct
+        fields["chiller_pct"] = chiller_pct
+        fields["lamp_pct"] = lamp_pct
+        fields["pump_pct"] = pump_pct
+        return out
+
 
 @dataclass(frozen=True, kw_only=True)
 class ConditionPolicy:

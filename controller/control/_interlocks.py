@@ -20,7 +20,7 @@ Rules of this module
 - Nothing here reads a clock or does I/O: the caller passes readings and the time.
 - A quiet tick is cheap (it runs for every chamber every tick): the per-tick path reads
   ``_NEXT``, the table re-indexed, and formats a reason text only when a signal changes a
-  condition's state (:func:`_reason`).
+  condition's state (:func:`reason_text`, in ``_interlock_reasons.py``).
 """
 
 from __future__ import annotations
@@ -30,7 +30,6 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from enum import Enum
 from types import MappingProxyType
-from typing import NamedTuple
 
 from controller.control._interlock_config import (
     Actions,
@@ -43,6 +42,7 @@ from controller.control._interlock_config import (
     Readings,
     SafetyState,
 )
+from controller.control._interlock_reasons import reason_text
 
 __all__ = [
     "Actions",
@@ -55,6 +55,7 @@ __all__ = [
     "Signal",
     "acknowledge",
     "evaluate",
+    "evaluate_values",
     "transition_table_markdown",
 ]
 
@@ -107,6 +108,12 @@ _TRANSITIONS: Mapping[tuple[bool, ConditionState, Signal], ConditionState] = Map
 _HOLDING = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED, _C.LATCHED})
 _PRESENT = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED})
 
+#: Every condition CLEAR. States share this one read-only mapping whenever nothing holds
+#: (:func:`_frozen`), so :func:`evaluate_values` tells a quiet chamber by identity alone.
+_ALL_CLEAR: Mapping[Condition, ConditionState] = MappingProxyType(
+    dict.fromkeys(Condition, _C.CLEAR)
+)
+
 
 _SAFETY_OF_LEVEL = {
     Level.WARNING: SafetyState.WARNING,
@@ -155,9 +162,7 @@ class InterlockState:
         The actions decided by the latest evaluation or acknowledgement; None before any.
     """
 
-    conditions: Mapping[Condition, ConditionState] = field(
-        default_factory=lambda: MappingProxyType(dict.fromkeys(Condition, ConditionState.CLEAR))
-    )
+    conditions: Mapping[Condition, ConditionState] = field(default_factory=lambda: _ALL_CLEAR)
     safety: SafetyState = SafetyState.STARTING
     started_s: float | None = None
     last_t_s: float | None = None
@@ -173,6 +178,14 @@ class InterlockState:
     def holding(self) -> tuple[Condition, ...]:
         """Conditions that are active, acknowledged or latched, in declaration order."""
         return tuple(c for c in Condition if self.conditions[c] in _HOLDING)
+
+
+def _frozen(conditions: dict[Condition, ConditionState]) -> Mapping[Condition, ConditionState]:
+    """A read-only view of a fresh dict of condition states; :data:`_ALL_CLEAR` when all
+    are clear."""
+    if all(state is _C.CLEAR for state in conditions.values()):
+        return _ALL_CLEAR
+    return MappingProxyType(conditions)
 
 
 def _step(
@@ -218,35 +231,23 @@ _SIGNAL_ORDER = (
 )
 
 
-class _Memory(NamedTuple):
-    """What an evaluation remembers besides the condition states (times in s, readings in
-    °C); the fields of :class:`InterlockState` of the same names."""
-
-    started_s: float
-    last_t_s: float
-    last_reply_s: float
-    last_comm_ok_s: float
-    frozen_ref_c: float | None
-    frozen_since_s: float | None
-    rate_anchor_c: float | None
-    rate_anchor_s: float | None
-
-
 def _remember(
     state: InterlockState,
-    readings: Readings,
+    comm_ok: bool | None,
     reply: float | None,
     limits: InterlockLimits,
     t_s: float,
-) -> _Memory:
-    """The memory (not the condition states) after this tick's readings; ``reply`` is the
-    probe reading with NaN already made implausible (°C, or None: no reply)."""
+) -> InterlockState:
+    """The next state with the memory this tick's readings leave (times in s, readings in
+    °C); ``reply`` is the probe reading with NaN already made implausible (°C, or None: no
+    reply). Its conditions, safety, healthy_seen and actions are still ``state``'s: only
+    :func:`evaluate_values`, which built it, sets them before anyone else sees it."""
     started = state.started_s if state.started_s is not None else t_s
     last_reply = state.last_reply_s
     last_comm = state.last_comm_ok_s
     frozen_ref, frozen_since = state.frozen_ref_c, state.frozen_since_s
     anchor_c, anchor_s = state.rate_anchor_c, state.rate_anchor_s
-    if readings.comm_ok:
+    if comm_ok:
         last_comm = t_s
     if reply is not None:
         last_reply = t_s
@@ -255,31 +256,44 @@ def _remember(
                 frozen_ref, frozen_since = reply, t_s
             if anchor_s is None or t_s - anchor_s >= limits.rate_window_s:
                 anchor_c, anchor_s = reply, t_s
-    return _Memory(
-        started,
-        t_s,
-        started if last_reply is None else last_reply,
-        started if last_comm is None else last_comm,
-        frozen_ref,
-        frozen_since,
-        anchor_c,
-        anchor_s,
+    # Every field given, none validated by InterlockState: set the frozen instance's
+    # attribute dict in one go instead of twelve object.__setattr__ calls (a third of the
+    # cost of a quiet tick otherwise).
+    new = object.__new__(InterlockState)
+    object.__setattr__(
+        new,
+        "__dict__",
+        {
+            "conditions": state.conditions,
+            "safety": state.safety,
+            "started_s": started,
+            "last_t_s": t_s,
+            "last_reply_s": started if last_reply is None else last_reply,
+            "frozen_ref_c": frozen_ref,
+            "frozen_since_s": frozen_since,
+            "rate_anchor_c": anchor_c,
+            "rate_anchor_s": anchor_s,
+            "last_comm_ok_s": started if last_comm is None else last_comm,
+            "healthy_seen": state.healthy_seen,
+            "actions": state.actions,
+        },
     )
+    return new
 
 
 def _signals(
     old: InterlockState,
-    memory: _Memory,
-    readings: Readings,
+    memory: InterlockState,
+    level_ok: bool | None,
+    e_stop: bool | None,
     reply: float | None,
     limits: InterlockLimits,
 ) -> tuple[bool | None, ...]:
     """Each condition's signal this tick, in ``_SIGNAL_ORDER``: True (present), False
-    (absent) or None (no new information). No text is made here: see :func:`_reason`."""
+    (absent) or None (no new information). No text is made here: see :func:`reason_text`."""
     t_s = memory.last_t_s
     valid = reply is not None and limits.sensor_min_c < reply < limits.sensor_max_c
     stale = t_s - memory.last_reply_s >= limits.stale_after_s
-    level_ok, e_stop = readings.level_ok, readings.e_stop
     low = None if level_ok is None else not level_ok
     comm = t_s - memory.last_comm_ok_s >= limits.comm_loss_after_s
     if not valid:
@@ -303,58 +317,6 @@ def _signals(
         if span_s >= limits.rate_window_s:
             fast = abs((reply - anchor_c) / span_s * 3600.0) >= limits.max_rate_c_per_h
     return (False, stale, hot, cold, frozen, fast, low, comm, e_stop)
-
-
-def _reason(
-    condition: Condition,
-    old: InterlockState,
-    memory: _Memory,
-    reply: float | None,
-    limits: InterlockLimits,
-) -> str:
-    """The reason text of a signal that changes ``condition``'s state (values and limits
-    with units), from the same inputs :func:`_signals` read."""
-    t_s = memory.last_t_s
-    match condition:
-        case Condition.SENSOR_OUT_OF_RANGE:
-            return (
-                f"probe reads {reply:.3f} °C, plausible only between "
-                f"{limits.sensor_min_c:.3f} and {limits.sensor_max_c:.3f} °C"
-            )
-        case Condition.SENSOR_STALE:
-            age_s = t_s - memory.last_reply_s
-            return f"no probe reply for {age_s:.1f} s (limit {limits.stale_after_s:.1f} s)"
-        case Condition.OVER_TEMPERATURE:
-            return f"temperature {reply:.3f} °C, limit {limits.max_temperature_c:.3f} °C"
-        case Condition.UNDER_TEMPERATURE:
-            return f"temperature {reply:.3f} °C, limit {limits.min_temperature_c:.3f} °C"
-        case Condition.SENSOR_FROZEN:
-            assert memory.frozen_since_s is not None
-            still_s = t_s - memory.frozen_since_s
-            return (
-                f"probe unchanged within {limits.frozen_epsilon_c:g} °C for {still_s:.0f} s "
-                f"(limit {limits.frozen_after_s:.0f} s)"
-            )
-        case Condition.RATE_OF_CHANGE:
-            assert reply is not None and old.rate_anchor_s is not None
-            assert old.rate_anchor_c is not None
-            span_s = t_s - old.rate_anchor_s
-            rate = (reply - old.rate_anchor_c) / span_s * 3600.0
-            return (
-                f"temperature changing at {rate:+.3f} °C/h over {span_s:.0f} s "
-                f"(limit {limits.max_rate_c_per_h:.3f} °C/h)"
-            )
-        case Condition.LOW_LEVEL:
-            return "water level switch low"
-        case Condition.COMM_LOSS:
-            comm_age_s = t_s - memory.last_comm_ok_s
-            return (
-                f"no good device exchange for {comm_age_s:.1f} s "
-                f"(limit {limits.comm_loss_after_s:.1f} s)"
-            )
-        case Condition.E_STOP:
-            return "emergency stop pressed"
-    raise AssertionError(condition)  # pragma: no cover - every condition is listed
 
 
 def _worst(
@@ -439,19 +401,65 @@ def evaluate(
         ``(new_state, actions, events)``: the new state, what to do with the outputs, and
         the events (raised, cleared, latched, safety changed) with their reasons.
     """
+    return evaluate_values(
+        state,
+        readings.temperature_c,
+        readings.level_ok,
+        readings.comm_ok,
+        readings.e_stop,
+        limits,
+        t_s,
+    )
+
+
+def evaluate_values(
+    state: InterlockState,
+    temperature_c: float | None,
+    level_ok: bool | None,
+    comm_ok: bool | None,
+    e_stop: bool | None,
+    limits: InterlockLimits,
+    t_s: float,
+) -> tuple[InterlockState, Actions, tuple[InterlockEvent, ...]]:
+    """:func:`evaluate` with the readings given one by one (no :class:`Readings` to build).
+
+    Parameters
+    ----------
+    state
+        State from the previous evaluation.
+    temperature_c
+        Probe reading, °C, or None (no reply), as :attr:`Readings.temperature_c`.
+    level_ok
+        Level switch, dimensionless, as :attr:`Readings.level_ok`.
+    comm_ok
+        Device exchange, dimensionless, as :attr:`Readings.comm_ok`.
+    e_stop
+        Emergency stop, dimensionless, as :attr:`Readings.e_stop`.
+    limits
+        Thresholds and policies.
+    t_s
+        Clock time, s, not before the previous evaluation.
+
+    Returns
+    -------
+    tuple
+        ``(new_state, actions, events)`` as from :func:`evaluate`.
+    """
     if not math.isfinite(t_s):
         raise ValueError(f"t_s must be finite, got {t_s!r}")
     if state.last_t_s is not None and t_s < state.last_t_s:
         raise ValueError(f"t_s {t_s!r} is before the previous evaluation at {state.last_t_s!r}")
-    reply = readings.temperature_c
+    reply = temperature_c
     if reply is not None and math.isnan(reply):
         reply = math.inf  # NaN is an implausible reading
-    memory = _remember(state, readings, reply, limits, t_s)
-    signals = _signals(state, memory, readings, reply, limits)
+    new = _remember(state, comm_ok, reply, limits, t_s)
+    signals = _signals(state, new, level_ok, e_stop, reply, limits)
     policies = limits.policies
     conditions: Mapping[Condition, ConditionState] = state.conditions
     events: list[InterlockEvent] = []
-    for condition, present in zip(_SIGNAL_ORDER, signals, strict=True):
+    # a quiet chamber (nothing holds, nothing present) skips the loop: CLEAR stays CLEAR
+    quiet = conditions is _ALL_CLEAR and not any(signals)
+    for condition, present in () if quiet else zip(_SIGNAL_ORDER, signals, strict=True):
         if present is None:
             continue
         before = conditions[condition]
@@ -468,7 +476,7 @@ def evaluate(
         if conditions is state.conditions:
             conditions = dict(conditions)
         conditions[condition] = after  # type: ignore[index]
-        why = _reason(condition, state, memory, reply, limits)
+        why = reason_text(condition, state, new, reply, limits)
         if after in _PRESENT and before not in _PRESENT:
             kind = EventKind.RAISED
         elif after is ConditionState.LATCHED:
@@ -481,9 +489,9 @@ def evaluate(
     healthy = (
         reply is not None
         and limits.sensor_min_c < reply < limits.sensor_max_c
-        and readings.comm_ok is not False
-        and readings.level_ok is not False
-        and readings.e_stop is not True
+        and comm_ok is not False
+        and level_ok is not False
+        and e_stop is not True
     )
     if (
         conditions is state.conditions
@@ -492,26 +500,11 @@ def evaluate(
     ):
         safety, healthy_seen, actions = state.safety, state.healthy_seen, state.actions
     else:
-        conditions = MappingProxyType(dict(conditions))
+        conditions = _frozen(dict(conditions))
         safety, healthy_seen, actions = _conclude(state, conditions, limits, t_s, healthy, events)
-    # Every field given, none validated by InterlockState: fill the frozen instance's
-    # attribute dict in one go instead of twelve object.__setattr__ calls (a third of the
-    # cost of a quiet tick otherwise).
-    new = object.__new__(InterlockState)
-    new.__dict__.update(
-        conditions=conditions,
-        safety=safety,
-        started_s=memory.started_s,
-        last_t_s=t_s,
-        last_reply_s=memory.last_reply_s,
-        frozen_ref_c=memory.frozen_ref_c,
-        frozen_since_s=memory.frozen_since_s,
-        rate_anchor_c=memory.rate_anchor_c,
-        rate_anchor_s=memory.rate_anchor_s,
-        last_comm_ok_s=memory.last_comm_ok_s,
-        healthy_seen=healthy_seen,
-        actions=actions,
-    )
+    fields = new.__dict__  # the new state is not out yet: its last four fields go in now
+    fields["conditions"], fields["safety"] = conditions, safety
+    fields["healthy_seen"], fields["actions"] = healthy_seen, actions
     return new, actions, tuple(events)
 
 
@@ -556,7 +549,7 @@ def acknowledge(
         level=policy.level,
         message=f"{condition.value} acknowledged ({before.value} -> {after.value})",
     )
-    frozen = MappingProxyType(conditions)
+    frozen = _frozen(conditions)
     events = [event]
     safety, healthy_seen, actions = _conclude(state, frozen, limits, t_s, False, events)
     new = replace(

@@ -4,7 +4,9 @@ Rules of this module
 --------------------
 - Nothing here reads a clock or keeps hidden state: every call takes the previous
   :class:`PidState` and the elapsed time ``dt_s`` and returns a new state. Parameters and
-  states are frozen dataclasses that validate themselves when built.
+  states are frozen dataclasses that validate themselves when built. The one exception is
+  :class:`PidLoop`, the same step on a state kept in place for loops stepped every tick
+  (its state is in plain view; :func:`pid_step` and :func:`pid_track` run on it).
 - The controller is u = Kc·[b·r − y + (1/Ti)∫(r − y)dt − Td·dy_f/dt], output limited to
   [out_min, out_max] in the actuator's own physical unit (for example −100..100 % for a
   split-range heater/chiller pair, see :func:`split_range`).
@@ -24,16 +26,14 @@ from dataclasses import dataclass
 from functools import cached_property
 
 __all__ = [
+    "PidLoop",
     "PidParams",
     "PidResult",
     "PidState",
-    "TimeProportionState",
     "pid_step",
     "pid_track",
     "rate_limit",
     "split_range",
-    "time_proportion",
-    "time_proportion_step",
 ]
 
 
@@ -166,14 +166,20 @@ class PidResult:
     saturated: bool
 
 
-def _derivative(state: PidState, params: PidParams, measured: float, dt_s: float) -> float:
+def _derivative(
+    params: PidParams,
+    derivative: float,
+    last_measured: float | None,
+    measured: float,
+    dt_s: float,
+) -> float:
     """Filtered derivative on the measurement, backward difference (stable for any dt)."""
-    if params.td_s == 0.0 or state.last_measured is None:
+    if params.td_s == 0.0 or last_measured is None:
         return 0.0
     denom = params.td_s + params.derivative_filter_n * dt_s
     keep = params.td_s / denom
     gain = params.kc * params.td_s * params.derivative_filter_n / denom
-    return keep * state.derivative - gain * (measured - state.last_measured)
+    return keep * derivative - gain * (measured - last_measured)
 
 
 def _check_inputs(measured: float, setpoint: float, dt_s: float) -> None:
@@ -182,6 +188,160 @@ def _check_inputs(measured: float, setpoint: float, dt_s: float) -> None:
     _finite(measured, "measured")
     _finite(setpoint, "setpoint")
     raise ValueError(f"dt_s must be finite and above 0, got {dt_s!r}")
+
+
+class PidLoop:
+    """One loop's memory kept in place, for a runtime that steps many loops every tick.
+
+    :func:`pid_step` and :func:`pid_track` are built on it, so the arithmetic and the input
+    checks are the same; only the bookkeeping differs: the state is updated in place instead
+    of a new :class:`PidState` and :class:`PidResult` being built per step.
+
+    Parameters
+    ----------
+    params
+        Gains and limits (validated when they were built).
+    state
+        State to start from, default ``PidState()``.
+
+    Attributes
+    ----------
+    integral, derivative, last_measured, last_output
+        As the fields of :class:`PidState` (output unit; measurement unit; None before the
+        first step).
+
+    Notes
+    -----
+    The gains and limits a step reads are copied from ``params`` once, here. ``params`` is
+    frozen and :attr:`params` cannot be replaced, so the copies cannot go stale. The integral
+    gain Kc·h/Ti and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step
+    length h and recomputed whenever a step comes with another one.
+    """
+
+    __slots__ = (
+        "_back",
+        "_dt_s",
+        "_gain_i",
+        "_has_integral",
+        "_kc",
+        "_out_max",
+        "_out_min",
+        "_p",
+        "_params",
+        "_setpoint_weight",
+        "_td_s",
+        "_ti_s",
+        "_tt_s",
+        "_v",
+        "derivative",
+        "integral",
+        "last_measured",
+        "last_output",
+    )
+
+    def __init__(self, params: PidParams, state: PidState | None = None) -> None:
+        state = PidState() if state is None else state
+        self._params = params
+        self._kc, self._setpoint_weight = params.kc, params.setpoint_weight
+        self._td_s, self._ti_s, self._tt_s = params.td_s, params.ti_s, params.tt_s
+        self._out_min, self._out_max = params.out_min, params.out_max
+        self._has_integral = params.has_integral
+        self._dt_s = math.nan  # step length the two factors below are for (none yet), s
+        self._gain_i = self._back = 0.0  # Kc·h/Ti (output unit per measurement unit), e^{−h/Tt} − 1
+        self.integral = state.integral
+        self.derivative = state.derivative
+        self.last_measured = state.last_measured
+        self.last_output = state.last_output
+        self._p = self._v = 0.0  # P term and unlimited output of the latest call, output unit
+
+    @property
+    def params(self) -> PidParams:
+        """Gains and limits (read-only)."""
+        return self._params
+
+    @property
+    def state(self) -> PidState:
+        """The memory as a :class:`PidState` (output and measurement units)."""
+        return PidState(
+            integral=self.integral,
+            derivative=self.derivative,
+            last_measured=self.last_measured,
+            last_output=self.last_output,
+        )
+
+    def step(self, measured: float, setpoint: float, dt_s: float) -> float:
+        """One automatic step, as :func:`pid_step`.
+
+        Parameters
+        ----------
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r, measurement unit.
+        dt_s
+            Time since the previous step, s, above 0.
+
+        Returns
+        -------
+        float
+            Output after limiting, output unit.
+        """
+        if not (
+            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
+        ):
+            _check_inputs(measured, setpoint, dt_s)
+        kc = self._kc
+        p = kc * (self._setpoint_weight * setpoint - measured)
+        last = self.last_measured
+        d = (
+            0.0
+            if self._td_s == 0.0 or last is None
+            else _derivative(self._params, self.derivative, last, measured, dt_s)
+        )
+        i = self.integral
+        v = p + i + d
+        high, low = self._out_max, self._out_min
+        u = high if v > high else low if v < low else v
+        if self._has_integral:
+            if dt_s != self._dt_s:
+                self._dt_s = dt_s
+                self._gain_i = kc * dt_s / self._ti_s
+                self._back = math.expm1(-dt_s / self._tt_s)
+            i = i + self._gain_i * (setpoint - measured) - self._back * (u - v)
+        self.integral, self.derivative = i, d
+        self.last_measured, self.last_output = measured, u
+        self._p, self._v = p, v
+        return u
+
+    def track(self, manual_output: float, measured: float, setpoint: float, dt_s: float) -> float:
+        """Follow a manual output, as :func:`pid_track`.
+
+        Parameters
+        ----------
+        manual_output
+            Output applied, output unit; limited to the range.
+        measured
+            Process value y, measurement unit.
+        setpoint
+            Setpoint r that automatic mode will use, measurement unit.
+        dt_s
+            Time since the previous sample, s, above 0.
+
+        Returns
+        -------
+        float
+            The limited manual output, output unit.
+        """
+        _check_inputs(manual_output, setpoint, dt_s)
+        _finite(measured, "measured")
+        params = self._params
+        u = params.clamp(manual_output)
+        p = params.kc * (params.setpoint_weight * setpoint - measured)
+        d = _derivative(params, self.derivative, self.last_measured, measured, dt_s)
+        self.integral, self.derivative = u - p - d, d
+        self.last_measured, self.last_output = measured, u
+        self._p, self._v = p, u
+        return u
 
 
 def pid_step(
@@ -216,22 +376,16 @@ def pid_step(
     and u after limiting. The back-calculation term is written as a first-order lag so that
     a step longer than Tt never overshoots the tracking target.
     """
-    _check_inputs(measured, setpoint, dt_s)
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = _derivative(state, params, measured, dt_s)
-    i = state.integral
-    v = p + i + d
-    u = params.out_max if v > params.out_max else params.out_min if v < params.out_min else v
-    if params.has_integral:
-        i_next = (
-            i
-            + params.kc * dt_s / params.ti_s * (setpoint - measured)
-            - math.expm1(-dt_s / params.tt_s) * (u - v)
-        )
-    else:
-        i_next = i
-    new_state = PidState(integral=i_next, derivative=d, last_measured=measured, last_output=u)
-    return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != v)
+    loop = PidLoop(params, state)
+    u = loop.step(measured, setpoint, dt_s)
+    return PidResult(
+        state=loop.state,
+        output=u,
+        p=loop._p,
+        i=state.integral,
+        d=loop.derivative,
+        saturated=u != loop._v,
+    )
 
 
 def pid_track(
@@ -267,14 +421,16 @@ def pid_track(
     PidResult
         New state, the (limited) manual output, and the P, I and D terms behind it.
     """
-    _check_inputs(manual_output, setpoint, dt_s)
-    _finite(measured, "measured")
-    u = params.clamp(manual_output)
-    p = params.kc * (params.setpoint_weight * setpoint - measured)
-    d = _derivative(state, params, measured, dt_s)
-    i = u - p - d
-    new_state = PidState(integral=i, derivative=d, last_measured=measured, last_output=u)
-    return PidResult(state=new_state, output=u, p=p, i=i, d=d, saturated=u != manual_output)
+    loop = PidLoop(params, state)
+    u = loop.track(manual_output, measured, setpoint, dt_s)
+    return PidResult(
+        state=loop.state,
+        output=u,
+        p=loop._p,
+        i=loop.integral,
+        d=loop.derivative,
+        saturated=u != manual_output,
+    )
 
 
 def split_range(u_pct: float, deadband_pct: float = 2.0) -> tuple[float, float]:
@@ -295,112 +451,17 @@ def split_range(u_pct: float, deadband_pct: float = 2.0) -> tuple[float, float]:
         band each drive rises linearly from 0 at the band edge to 100 at ±100 %, so the map
         is continuous.
     """
-    u = min(100.0, max(-100.0, _finite(u_pct, "u_pct")))
-    db = _finite(deadband_pct, "deadband_pct")
-    if not 0.0 <= db < 100.0:
+    u, db = float(u_pct), float(deadband_pct)
+    if not (math.isfinite(u) and 0.0 <= db < 100.0):  # one test for the usual case
+        _finite(u, "u_pct")
+        _finite(db, "deadband_pct")
         raise ValueError(f"deadband_pct must be in [0, 100), got {deadband_pct!r}")
+    u = -100.0 if u < -100.0 else 100.0 if u > 100.0 else u
     if u > db:
         return min(100.0, 100.0 * (u - db) / (100.0 - db)), 0.0
     if u < -db:
         return 0.0, min(100.0, 100.0 * (-u - db) / (100.0 - db))
     return 0.0, 0.0
-
-
-def _on_time_s(duty_pct: float, cycle_s: float, min_switch_s: float) -> float:
-    if _finite(cycle_s, "cycle_s") <= 0:
-        raise ValueError(f"cycle_s must be above 0, got {cycle_s!r}")
-    if not 0.0 <= _finite(min_switch_s, "min_switch_s") <= cycle_s / 2:
-        raise ValueError("min_switch_s must be between 0 and half of cycle_s")
-    on_s = min(100.0, max(0.0, _finite(duty_pct, "duty_pct"))) / 100.0 * cycle_s
-    if on_s < min_switch_s:
-        return 0.0
-    if cycle_s - on_s < min_switch_s:
-        return cycle_s
-    return on_s
-
-
-def time_proportion(
-    duty_pct: float, cycle_s: float, t_in_cycle_s: float, min_switch_s: float = 0.0
-) -> bool:
-    """Whether an on/off heater is on at a point of its cycle (time-proportioning).
-
-    Parameters
-    ----------
-    duty_pct
-        Wanted mean drive, %, clipped to 0–100.
-    cycle_s
-        Cycle length, s, above 0 (a contactor wants tens of seconds, a solid-state relay
-        can cycle in a second or two; common practice).
-    t_in_cycle_s
-        Time since the cycle began, s; taken modulo ``cycle_s``, so clock time works too.
-    min_switch_s
-        Shortest on or off pulse, s, 0 to ``cycle_s / 2``: shorter pulses are dropped
-        (drive 0 % or 100 % for that cycle) to spare the relay.
-
-    Returns
-    -------
-    bool
-        True while the heater should be on: the first ``duty_pct`` % of each cycle.
-    """
-    on_s = _on_time_s(duty_pct, cycle_s, min_switch_s)
-    return _finite(t_in_cycle_s, "t_in_cycle_s") % cycle_s < on_s
-
-
-@dataclass(frozen=True, kw_only=True)
-class TimeProportionState:
-    """Cycle bookkeeping of :func:`time_proportion_step`.
-
-    Parameters
-    ----------
-    cycle_start_s
-        Clock time the current cycle began, s; None before the first call.
-    on_s
-        On time latched for the current cycle, s.
-    """
-
-    cycle_start_s: float | None = None
-    on_s: float = 0.0
-
-
-def time_proportion_step(
-    state: TimeProportionState,
-    duty_pct: float,
-    cycle_s: float,
-    t_s: float,
-    min_switch_s: float = 0.0,
-) -> tuple[TimeProportionState, bool]:
-    """Time-proportioning that latches the duty at the start of each cycle.
-
-    Unlike :func:`time_proportion`, a duty that changes mid-cycle takes effect at the next
-    cycle, so the relay switches at most twice per cycle.
-
-    Parameters
-    ----------
-    state
-        Previous state (``TimeProportionState()`` to start).
-    duty_pct
-        Wanted mean drive, %, clipped to 0–100.
-    cycle_s
-        Cycle length, s, above 0.
-    t_s
-        Clock time now, s, not before the previous call.
-    min_switch_s
-        Shortest on or off pulse, s, 0 to ``cycle_s / 2``.
-
-    Returns
-    -------
-    tuple
-        New state, and whether the heater is on now.
-    """
-    t_s = _finite(t_s, "t_s")
-    start = state.cycle_start_s
-    on_s = state.on_s
-    if start is not None and t_s < start:
-        raise ValueError(f"t_s {t_s!r} is before the current cycle start {start!r}")
-    if start is None or t_s - start >= cycle_s:
-        start = t_s if start is None else start + math.floor((t_s - start) / cycle_s) * cycle_s
-        on_s = _on_time_s(duty_pct, cycle_s, min_switch_s)
-    return TimeProportionState(cycle_start_s=start, on_s=on_s), t_s - start < on_s
 
 
 def rate_limit(prev_sp: float, target_sp: float, max_rate_per_s: float, dt_s: float) -> float:
@@ -423,11 +484,19 @@ def rate_limit(prev_sp: float, target_sp: float, max_rate_per_s: float, dt_s: fl
     float
         The setpoint to apply now, setpoint unit.
     """
-    prev_sp = _finite(prev_sp, "prev_sp")
-    target_sp = _finite(target_sp, "target_sp")
-    if math.isnan(max_rate_per_s) or max_rate_per_s < 0:
-        raise ValueError(f"max_rate_per_s must be 0 or more, got {max_rate_per_s!r}")
-    if _finite(dt_s, "dt_s") < 0:
-        raise ValueError(f"dt_s must not be negative, got {dt_s!r}")
+    prev_sp, target_sp = float(prev_sp), float(target_sp)
+    if not (
+        math.isfinite(prev_sp)
+        and math.isfinite(target_sp)
+        and max_rate_per_s >= 0
+        and math.isfinite(dt_s)
+        and dt_s >= 0
+    ):  # one test for the usual case; the messages below say which input is wrong
+        _finite(prev_sp, "prev_sp")
+        _finite(target_sp, "target_sp")
+        if math.isnan(max_rate_per_s) or max_rate_per_s < 0:
+            raise ValueError(f"max_rate_per_s must be 0 or more, got {max_rate_per_s!r}")
+        if _finite(dt_s, "dt_s") < 0:
+            raise ValueError(f"dt_s must not be negative, got {dt_s!r}")
     step = max_rate_per_s * dt_s if dt_s > 0 else 0.0
     return prev_sp + max(-step, min(step, target_sp - prev_sp))

@@ -317,7 +317,11 @@ class DriveCurve:
         """
         if value <= 0.0:
             return 0.0
-        return min(100.0, max(self.drive_pct[0], self.equivalent_drive(value)))
+        drive = self.equivalent_drive(value)
+        edge = self.drive_pct[0]
+        # min(100, max(edge, drive)), written out: the builtins' call costs more than the test
+        drive = drive if drive > edge else edge
+        return drive if drive < 100.0 else 100.0
 
     def equivalent_drive(self, value: float) -> float:
         """The drive that would deliver a quantity, extended straight beyond the table.
@@ -336,7 +340,12 @@ class DriveCurve:
             Drive, %, not clipped.
         """
         xs, ys = self.value, self.drive_pct
-        k = min(max(bisect_right(xs, value), 1), len(xs) - 1)
+        last = len(xs) - 1
+        if last == 1:  # a straight line: its one segment, whichever side the value is
+            k = 1
+        else:
+            k = bisect_right(xs, value)
+            k = 1 if k < 1 else last if k > last else k
         x0, x1, y0, y1 = xs[k - 1], xs[k], ys[k - 1], ys[k]
         return y0 + (value - x0) * (y1 - y0) / (x1 - x0)
 

@@ -33,35 +33,28 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from controller.control import (
-    Actions,
     ClosedWindow,
     Condition,
     CycleInputs,
-    CycleState,
     IncubationStatus,
     InterlockEvent,
     InterlockState,
     Outputs,
-    PidParams,
-    PidState,
-    Readings,
     SafetyState,
-    TimeProportionState,
     WindowEnd,
     acknowledge,
     cycle_step,
     end_window,
-    evaluate,
-    pid_step,
-    pid_track,
+    evaluate_values,
     rate_limit,
     time_proportion_step,
 )
+from controller.runtime._decide_state import ChamberMemory, NodeMemory
 from controller.runtime._io import ChamberReadings, Quantity
-from controller.runtime._settings import ControlPlan, NodeSettings
+from controller.runtime._settings import ControlPlan
 
 __all__ = ["OFF", "ChamberDecision", "Decider", "Decision", "Schedule", "Target"]
 
@@ -90,7 +83,7 @@ class Target:
     flow_cm_s: float | None
 
 
-@dataclass(frozen=True, slots=True, kw_only=True)
+@dataclass(frozen=True, kw_only=True)  # no slots: :func:`_decided` fills its __dict__
 class ChamberDecision:
     """What was decided for one protocol chamber.
 
@@ -114,6 +107,25 @@ class ChamberDecision:
     safety: SafetyState
     setpoint_c: float | None
     incubation: IncubationStatus | None = None
+
+
+def _decided(
+    outputs: Outputs,
+    alarm: Condition | None,
+    safety: SafetyState,
+    setpoint_c: float | None,
+    incubation: IncubationStatus | None,
+) -> ChamberDecision:
+    """``ChamberDecision(outputs=..., ...)`` for the decider's own values (nothing to check),
+    four times faster than the frozen dataclass's __init__."""
+    decision = object.__new__(ChamberDecision)
+    fields = decision.__dict__  # filled in place: a frozen instance refuses attribute writes
+    fields["outputs"] = outputs
+    fields["alarm"] = alarm
+    fields["safety"] = safety
+    fields["setpoint_c"] = setpoint_c
+    fields["incubation"] = incubation
+    return decision
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -157,48 +169,6 @@ class Decision:
     windows: tuple[tuple[str, ClosedWindow], ...] = ()
 
 
-@dataclass(slots=True)
-class _NodeState:
-    pid: PidState
-    setpoint_c: float | None = None
-    output_pct: float = 0.0
-    cycle: TimeProportionState = field(default_factory=TimeProportionState)
-
-
-@dataclass(slots=True)
-class _ChamberState:
-    interlock: InterlockState
-    lamp: PidState
-    pump: PidState
-    write_ok: bool = True
-    force: Outputs | None = None
-    cycle: CycleState | None = None
-
-
-def _feed(
-    state: PidState,
-    trim: PidParams | None,
-    full_scale: float,
-    setpoint: float | None,
-    measured: float | None,
-    dt_s: float,
-) -> tuple[PidState, float]:
-    """Drive of a lamp or pump: linear feed-forward plus a PI trim on its sensor, %."""
-    if setpoint is None or setpoint <= 0.0:
-        return state, 0.0
-    correction = state.last_output or 0.0
-    if trim is not None and measured is not None:
-        result = pid_step(state, trim, measured, setpoint, dt_s)
-        state, correction = result.state, result.output
-    drive = 100.0 * (setpoint + correction) / full_scale
-    return state, min(100.0, max(0.0, drive))
-
-
-def _trimmed(setpoint: float | None, trim: PidParams | None) -> bool:
-    """Whether :func:`_feed` looks at the measurement (a trim, and a setpoint above 0)."""
-    return trim is not None and setpoint is not None and setpoint > 0.0
-
-
 class Decider:
     """The loop's memory and per-tick decisions.
 
@@ -206,33 +176,38 @@ class Decider:
     ----------
     plan
         Nodes, chambers and settings of the run.
+
+    Notes
+    -----
+    Settings the ticks need are taken from ``plan`` once, here. The plan is frozen and
+    :attr:`plan` cannot be replaced, so nothing taken from it can go stale.
     """
 
     def __init__(self, plan: ControlPlan) -> None:
-        self.plan = plan
-        self._nodes = {n.name: _NodeState(pid=PidState()) for n in plan.nodes}
+        self._plan = plan
+        drivers = frozenset(plan.drivers)
         self._chambers = {
-            c: _ChamberState(
-                interlock=InterlockState(),
-                lamp=PidState(),
-                pump=PidState(),
-                cycle=CycleState() if c in plan.incubation else None,
-            )
-            for c in plan.chambers
+            c: ChamberMemory(c, cs, c in plan.incubation, c in drivers)
+            for c, cs in plan.chambers.items()
         }
+        self._order = tuple(self._chambers.values())  # rig order
+        self._nodes = tuple(
+            NodeMemory(n, tuple(self._chambers[c] for c in n.chambers)) for n in plan.nodes
+        )
+        for node in self._nodes:
+            for member in node.members:
+                member.node = node
+        self._idle_drivers = tuple(  # an idle chamber carries the bath's heater
+            (n.settings.driver, n) for n in self._nodes if n.settings.driver not in plan.chambers
+        )
+        settings = plan.settings
+        self._deadband_pct = settings.split_deadband_pct
         self._last_t_s: float | None = None
-        self._drivers = frozenset(plan.drivers)
-        self._probes = {  # each node's chambers with their probes' plausible range, °C
-            n.name: tuple(
-                (
-                    c,
-                    plan.chambers[c].interlocks.sensor_min_c,
-                    plan.chambers[c].interlocks.sensor_max_c,
-                )
-                for c in n.chambers
-            )
-            for n in plan.nodes
-        }
+
+    @property
+    def plan(self) -> ControlPlan:
+        """Nodes, chambers and settings of the run (read-only)."""
+        return self._plan
 
     def note_write(self, chamber: str, ok: bool) -> None:
         """Record whether the latest write to a chamber arrived.
@@ -263,7 +238,7 @@ class Decider:
             The chamber's default safe state, lowered further by whatever its interlocks
             force at the latest tick (a leak keeps the pump off), % each.
         """
-        safe = self.plan.chambers[chamber].interlocks.safe_outputs()
+        safe = self._chambers[chamber].limits.safe_outputs()
         force = self._chambers[chamber].force
         if force is None:
             return safe
@@ -330,8 +305,7 @@ class Decider:
             Nothing to acknowledge; the state is unchanged.
         """
         state = self._chambers[chamber]
-        limits = self.plan.chambers[chamber].interlocks
-        state.interlock, _, events = acknowledge(state.interlock, condition, limits, t_s)
+        state.interlock, _, events = acknowledge(state.interlock, condition, state.limits, t_s)
         return events
 
     def end_windows(
@@ -388,97 +362,61 @@ class Decider:
         Decision
             Outputs to write, per-chamber decisions, interlock events and ended windows.
         """
-        plan = self.plan
-        dt_s = plan.settings.period_s if self._last_t_s is None else t_s - self._last_t_s
+        dt_s = self._plan.settings.period_s if self._last_t_s is None else t_s - self._last_t_s
         dt_s = max(dt_s, 1e-6)
         self._last_t_s = t_s
-        actions: dict[str, Actions] = {}
         events: list[tuple[str, InterlockEvent]] = []
-        for chamber, cs in plan.chambers.items():
-            state = self._chambers[chamber]
-            reading = readings[chamber]
-            new, action, happened = evaluate(
-                state.interlock,
-                Readings(
-                    temperature_c=reading.temperature_c,
-                    level_ok=reading.level_ok,
-                    comm_ok=reading.comm_ok and state.write_ok,
-                    e_stop=reading.e_stop,
-                ),
-                cs.interlocks,
+        forcing = False  # whether any chamber's outputs are forced this tick
+        for ch in self._order:
+            reading = readings[ch.name]
+            ch.interlock, action, happened = evaluate_values(
+                ch.interlock,
+                reading.temperature_c,
+                reading.level_ok,
+                reading.comm_ok and ch.write_ok,
+                reading.e_stop,
+                ch.limits,
                 t_s,
             )
-            state.interlock = new
-            state.force = action.force
-            actions[chamber] = action
-            events.extend((chamber, event) for event in happened)
-        windows = self._cycles(readings, targets, actions, t_s, schedule)
-        drives: dict[str, tuple[float, float, float | None]] = {}
-        for node in plan.nodes:
-            drives[node.name] = self._node(node, readings, targets, actions, t_s, dt_s)
+            ch.force, ch.alarm = action.force, action.alarm
+            if action.force is not None:
+                forcing = True
+            if happened:
+                events.extend((ch.name, event) for event in happened)
+        windows = self._cycles(readings, targets, t_s, schedule)
+        for node in self._nodes:
+            self._node(node, readings, targets, t_s, dt_s, forcing)
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
-        for chamber, cs in plan.chambers.items():
-            state = self._chambers[chamber]
-            action = actions[chamber]
-            heater, chiller, setpoint = drives[cs.node]
-            closed = state.cycle is not None and state.cycle.status is IncubationStatus.CLOSED
-            if action.force is not None:
-                lamp, pump = action.force.lamp_pct, action.force.pump_pct
+        unchecked = Outputs.unchecked  # every drive below is clipped or from checked outputs
+        for ch in self._order:
+            name, node, force, cycle = ch.name, ch.node, ch.force, ch.cycle
+            if force is not None:
+                lamp, pump = force.lamp_pct, force.pump_pct
             else:
-                target, reading = targets[chamber], readings[chamber]
-                # a reading is passed through the curve only when its trim will use it
-                lamp_set = cs.lamp_drive_pct(target.par)
-                state.lamp, lamp = _feed(  # in % of drive, through the lamp's curve
-                    state.lamp,
-                    cs.lamp_trim,
-                    100.0,
-                    lamp_set,
-                    cs.lamp_drive_pct(reading.par, reading=True)
-                    if _trimmed(lamp_set, cs.lamp_trim)
-                    else None,
-                    dt_s,
-                )
-                if closed:  # flushing pump off; the flow trim waits for the window's end
-                    pump = 0.0
+                target, reading = targets[name], readings[name]
+                lamp = ch.lamp.drive(target.par, reading.par, dt_s)
+                if cycle is not None and cycle.status is IncubationStatus.CLOSED:
+                    pump = 0.0  # flushing pump off; the flow trim waits for the window's end
                 else:
-                    pump_set = cs.pump_drive_pct(target.flow_cm_s)
-                    state.pump, pump = _feed(  # in % of drive, through the pump's curve
-                        state.pump,
-                        cs.flow_trim,
-                        100.0,
-                        pump_set,
-                        cs.pump_drive_pct(reading.flow_cm_s, reading=True)
-                        if _trimmed(pump_set, cs.flow_trim)
-                        else None,
-                        dt_s,
-                    )
-            shown = Outputs(heater_pct=heater, chiller_pct=chiller, lamp_pct=lamp, pump_pct=pump)
-            decided[chamber] = ChamberDecision(
-                outputs=shown,
-                alarm=action.alarm,
-                safety=state.interlock.safety,
-                setpoint_c=setpoint,
-                incubation=None if state.cycle is None else state.cycle.status,
+                    pump = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
+            shown = unchecked(node.heater, node.chiller, lamp, pump)
+            decided[name] = _decided(
+                shown,
+                ch.alarm,
+                ch.interlock.safety,
+                node.shown_setpoint_c,
+                None if cycle is None else cycle.status,
             )
-            writes[chamber] = (
-                shown
-                if chamber in self._drivers
-                else Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=lamp, pump_pct=pump)
-            )
-        for node in plan.nodes:
-            if node.driver not in plan.chambers:  # an idle chamber carries the bath's heater
-                heater, chiller, _ = drives[node.name]
-                writes[node.driver] = Outputs(
-                    heater_pct=heater, chiller_pct=chiller, lamp_pct=0.0, pump_pct=0.0
-                )
+            writes[name] = shown if ch.driver else unchecked(0.0, 0.0, lamp, pump)
+        for driver, node in self._idle_drivers:
+            writes[driver] = unchecked(node.heater, node.chiller, 0.0, 0.0)
         return Decision(writes=writes, chambers=decided, events=tuple(events), windows=windows)
 
     def _cycles(
         self,
         readings: Mapping[str, ChamberReadings],
         targets: Mapping[str, Target],
-        actions: Mapping[str, Actions],
         t_s: float,
         schedule: Schedule | None,
     ) -> tuple[tuple[str, ClosedWindow], ...]:
@@ -486,7 +424,7 @@ class Decider:
         if schedule is None:
             return ()
         ended: list[tuple[str, ClosedWindow]] = []
-        for chamber, settings in self.plan.incubation.items():
+        for chamber, settings in self._plan.incubation.items():
             state = self._chambers[chamber]
             assert state.cycle is not None
             reading, par = readings[chamber], targets[chamber].par
@@ -500,7 +438,7 @@ class Decider:
                     light_change_in_s=schedule.light_change_in_s.get(chamber, math.inf),
                     phase=schedule.phase,
                     phase_ends_in_s=schedule.phase_ends_in_s,
-                    forced=actions[chamber].force is not None,
+                    forced=state.force is not None,
                 ),
                 settings,
             )
@@ -511,57 +449,57 @@ class Decider:
 
     def _node(
         self,
-        node: NodeSettings,
+        node: NodeMemory,
         readings: Mapping[str, ChamberReadings],
         targets: Mapping[str, Target],
-        actions: Mapping[str, Actions],
         t_s: float,
         dt_s: float,
-    ) -> tuple[float, float, float | None]:
-        """Heater and chiller drives (%) of one node, and its applied setpoint (°C)."""
-        state = self._nodes[node.name]
-        forced = [f for c in node.chambers if (f := actions[c].force) is not None]
+        forcing: bool,
+    ) -> None:
+        """Set the node's heater and chiller drives (%) and shown setpoint (°C) of this tick;
+        ``forcing``: whether any chamber's outputs are forced this tick."""
         temps = []
-        for c, low, high in self._probes[node.name]:
+        for c, low, high in node.probes:
             value = readings[c].temperature_c
             if value is not None and low < value < high:
                 temps.append(value)
         measured = math.fsum(temps) / len(temps) if temps else None
-        target = next(
-            (
-                targets[c].temperature_c
-                for c in node.chambers
-                if targets[c].temperature_c is not None
-            ),
-            None,
-        )
-        params = node.pid
+        target = None
+        for member in node.members:
+            target = targets[member.name].temperature_c
+            if target is not None:
+                break
+        forced = forcing and any(member.force is not None for member in node.members)
         if forced or target is None:
-            heater = min((f.heater_pct for f in forced), default=0.0)
-            chiller = min((f.chiller_pct for f in forced), default=0.0)
+            forces = [f for member in node.members if (f := member.force) is not None]
+            heater = min((f.heater_pct for f in forces), default=0.0)
+            chiller = min((f.chiller_pct for f in forces), default=0.0)
             manual = heater - chiller
             if measured is not None:
                 # automatic control restarts its rate-limited setpoint at the measurement, so
                 # the integral is tracked against that setpoint (tracking the protocol's
                 # setpoint instead left an integral that slammed the chiller or heater to
                 # full drive on the first tick after a trip cleared)
-                state.pid = pid_track(state.pid, params, manual, measured, measured, dt_s).state
-                state.setpoint_c = measured
-            state.output_pct = manual
-            return heater, chiller, (None if target is None else state.setpoint_c)
+                node.pid.track(manual, measured, measured, dt_s)
+                node.setpoint_c = measured
+            node.output_pct = manual
+            node.heater, node.chiller = heater, chiller
+            node.shown_setpoint_c = None if target is None else node.setpoint_c
+            return
         if measured is not None:
-            previous = measured if state.setpoint_c is None else state.setpoint_c
-            state.setpoint_c = rate_limit(previous, target, node.max_ramp_c_per_h / 3600.0, dt_s)
-            result = pid_step(state.pid, params, measured, state.setpoint_c, dt_s)
-            state.pid, state.output_pct = result.state, result.output
-        heater, chiller = node.split(state.output_pct, self.plan.settings.split_deadband_pct)
-        if node.heater_on_off:
-            state.cycle, on = time_proportion_step(
-                state.cycle,
+            previous = measured if node.setpoint_c is None else node.setpoint_c
+            node.setpoint_c = rate_limit(previous, target, node.ramp_per_s, dt_s)
+            node.output_pct = node.pid.step(measured, node.setpoint_c, dt_s)
+        heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
+        if node.settings.heater_on_off:
+            settings = self._plan.settings
+            node.cycle, on = time_proportion_step(
+                node.cycle,
                 heater,
-                self.plan.settings.on_off_cycle_s,
+                settings.on_off_cycle_s,
                 t_s,
-                self.plan.settings.on_off_min_switch_s,
+                settings.on_off_min_switch_s,
             )
             heater = 100.0 if on else 0.0
-        return heater, chiller, state.setpoint_c
+        node.heater, node.chiller = heater, chiller
+        node.shown_setpoint_c = node.setpoint_c

@@ -1,0 +1,138 @@
+"""The decider's memory of each protocol chamber, thermal node and actuator, with the settings
+each tick reads taken once from the (frozen) control plan.
+
+Rule: plain mutable holders for :class:`~controller.runtime.Decider`, which alone changes
+them; an actuator computes its drive here (feed-forward on its curve plus its PI trim).
+"""
+
+from __future__ import annotations
+
+import math
+
+from controller.control import (
+    Condition,
+    CycleState,
+    InterlockState,
+    Outputs,
+    PidLoop,
+    PidParams,
+    TimeProportionState,
+)
+from controller.rig import DriveCurve
+from controller.runtime._settings import ChamberSettings, NodeSettings
+
+__all__ = ["Actuator", "ChamberMemory", "NodeMemory"]
+
+
+class ChamberMemory:
+    """One protocol chamber: its settings, taken from the (frozen) plan once, and the loop's
+    memory of it (interlocks, lamp and pump trims, write result, forced outputs, cycle)."""
+
+    __slots__ = (
+        "alarm",
+        "cycle",
+        "driver",
+        "force",
+        "interlock",
+        "lamp",
+        "limits",
+        "name",
+        "node",
+        "pump",
+        "write_ok",
+    )
+
+    def __init__(self, name: str, settings: ChamberSettings, cycles: bool, driver: bool) -> None:
+        self.name = name
+        self.limits = settings.interlocks
+        self.driver = driver  # whether its module carries its node's heater and chiller
+        self.node: NodeMemory  # set by the node that holds it
+        self.interlock = InterlockState()
+        self.lamp = Actuator(settings.lamp_curve, settings.lamp_trim)
+        self.pump = Actuator(settings.pump_curve, settings.flow_trim)
+        self.write_ok = True
+        self.force: Outputs | None = None
+        self.alarm: Condition | None = None
+        self.cycle = CycleState() if cycles else None
+
+
+class NodeMemory:
+    """One thermal node: its settings, taken from the plan once, and its loop's memory."""
+
+    __slots__ = (
+        "chiller",
+        "cycle",
+        "heater",
+        "members",
+        "output_pct",
+        "pid",
+        "probes",
+        "ramp_per_s",
+        "setpoint_c",
+        "settings",
+        "shown_setpoint_c",
+    )
+
+    def __init__(self, settings: NodeSettings, members: tuple[ChamberMemory, ...]) -> None:
+        self.settings = settings
+        self.members = members
+        self.probes = tuple(  # each chamber with its probe's plausible range, °C
+            (c.name, c.limits.sensor_min_c, c.limits.sensor_max_c) for c in members
+        )
+        self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
+        self.pid = PidLoop(settings.pid)
+        self.setpoint_c: float | None = None
+        self.output_pct = 0.0
+        self.cycle = TimeProportionState()
+        # this tick's decision: heater and chiller drives (%) and the setpoint shown (°C)
+        self.heater = 0.0
+        self.chiller = 0.0
+        self.shown_setpoint_c: float | None = None
+
+
+class Actuator:
+    """A lamp or pump: its drive curve, its PI trim (None: open loop) and the feed-forward
+    drive of the latest setpoint.
+
+    That drive is kept with the setpoint it was computed for and recomputed whenever the
+    setpoint differs; the curve is frozen and never replaced, so it cannot go stale.
+    """
+
+    __slots__ = ("_drive", "_setpoint", "curve", "trim")
+
+    def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
+        self.curve = curve
+        self.trim = None if trim is None else PidLoop(trim)
+        self._setpoint = math.nan  # equal to no setpoint: the first one computes its drive
+        self._drive = 0.0
+
+    def drive(self, setpoint: float | None, measured: float | None, dt_s: float) -> float:
+        """Drive, %: the curve's feed-forward for the setpoint plus the PI trim on the sensor,
+        both in % of drive (a reading goes through the curve only when the trim uses it).
+
+        Parameters
+        ----------
+        setpoint
+            PAR (µmol photons m⁻² s⁻¹) or flow (cm s⁻¹) wanted, or None (uncontrolled: off).
+        measured
+            The sensor's reading in the same unit, or None.
+        dt_s
+            Time since the previous tick, s.
+        """
+        if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
+            return 0.0
+        if setpoint != self._setpoint:
+            self._setpoint, self._drive = setpoint, self.curve.drive_for(setpoint)
+        drive = self._drive
+        if drive <= 0.0:
+            return 0.0
+        trim = self.trim
+        if trim is None:
+            correction = 0.0
+        elif measured is None:
+            correction = trim.last_output or 0.0
+        else:
+            correction = trim.step(self.curve.equivalent_drive(measured), drive, dt_s)
+        drive = 100.0 * (drive + correction) / 100.0
+        drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
+        return drive if drive < 100.0 else 100.0
