@@ -205,14 +205,16 @@ class SampleRow:
         ----------
         values
             One value per field in declaration order (as :meth:`values` gives them), each
-            in the unit its field names.
+            in the unit its field names; ``incubation`` may be the state's text value.
 
         Returns
         -------
         SampleRow
             The row.
         """
-        return cls(**dict(zip(SAMPLE_FIELDS, values, strict=True)))
+        named = dict(zip(SAMPLE_FIELDS, values, strict=True))
+        named["incubation"] = IncubationState(named["incubation"])
+        return cls(**named)
 
 
 SAMPLE_FIELDS: tuple[str, ...] = tuple(f.name for f in fields(SampleRow))

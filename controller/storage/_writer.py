@@ -275,7 +275,9 @@ class RunLogWriter:
         ----------
         rows
             Sample rows in time order, each a tuple of every field's value in declaration
-            order (``t_s`` in s, ``utc_s`` in POSIX s, …; units as the fields name them).
+            order (``t_s`` in s, ``utc_s`` in POSIX s, …; units as the fields name them);
+            ``incubation`` may be the state's text value (SQLite binds a plain ``str``
+            faster than an enum member).
 
         Raises
         ------

@@ -10,7 +10,8 @@ import pandas as pd
 import pytest
 from runlog_helpers import START_UTC_S, make_meta, tick_rows
 
-from controller.storage import RunLogReader, RunLogWriter, SampleRow
+from controller.storage import IncubationState, RunLogReader, RunLogWriter, SampleRow
+from controller.storage._records import SAMPLE_FIELDS
 
 
 def test_values_are_every_field_in_order_and_make_the_same_row_again() -> None:
@@ -69,3 +70,14 @@ def test_a_resumed_log_refuses_value_tuples_it_already_has(tmp_path: Path) -> No
         writer.close()
     with RunLogReader(log) as reader:
         assert len(reader.samples()) == 6
+
+
+def test_incubation_may_be_given_as_its_text_value() -> None:
+    row = tick_rows(3.0, 3, closed_chamber=2)[2]
+    values = list(row.values())
+    values[SAMPLE_FIELDS.index("incubation")] = "closed"
+    again = SampleRow.from_values(values)
+    assert again == row and again.incubation is IncubationState.CLOSED
+    values[SAMPLE_FIELDS.index("incubation")] = "ajar"
+    with pytest.raises(ValueError):
+        SampleRow.from_values(values)
