@@ -105,6 +105,7 @@ class SimulatedIO:
         self._optode: dict[str, tuple[float, float | None, float | None]] = {}
         self._comm_at_s: float | None = None
         self._comm: dict[tuple[str, str], bool] = {}
+        self._comm_of: dict[str, tuple[bool, ...]] = {}  # by device, in rig order
         self._all_up = (False, False)  # every module, every optode answered at _comm_at_s
         self._watchdog_s = None if watchdog_s is None else _positive(watchdog_s, "watchdog_s")
         off = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
@@ -254,10 +255,9 @@ class SimulatedIO:
         the rack answers for it once its time has moved on), which keys this cache."""
         rack = self._rack
         if self._comm_at_s != rack.t_s:
-            ids = rack.chamber_ids
             modbus, optode = rack.comm_ok_all(_MODBUS), rack.comm_ok_all(_OPTODE)
-            self._comm = {(c, _MODBUS): up for c, up in zip(ids, modbus, strict=True)}
-            self._comm.update(((c, _OPTODE), up) for c, up in zip(ids, optode, strict=True))
+            self._comm_of = {_MODBUS: modbus, _OPTODE: optode}
+            self._comm.clear()  # filled as asked (_answers)
             self._all_up = (all(modbus), all(optode))
             self._comm_at_s = rack.t_s
         return self._all_up
@@ -265,7 +265,12 @@ class SimulatedIO:
     def _answers(self, chamber: str, device: str) -> bool:
         """Whether a device answers now (see :meth:`_all_answer`)."""
         self._all_answer()
-        return self._comm[(chamber, device)]
+        comm = self._comm
+        if not comm:
+            ids = self._rack.chamber_ids
+            for kind, ups in self._comm_of.items():
+                comm.update(((c, kind), up) for c, up in zip(ids, ups, strict=True))
+        return comm[(chamber, device)]
 
     async def _silence(self) -> None:
         """Wait for a device that will not answer, as a transport's reply timeout does."""
