@@ -4,7 +4,9 @@ Rules of this module
 --------------------
 - Setpoints are evaluated with the compiled protocol's vectorised
   :func:`~controller.protocol.sample` for a chunk of upcoming ticks at once, which costs
-  about as much as one scalar evaluation, and kept as plain Python lists. Uncontrolled
+  about as much as one scalar evaluation, and kept as one :class:`Target` per chamber and
+  tick, built with the chunk. Chambers and ticks with the same setpoints share one (it is
+  immutable): a group's chambers follow one program, and a hold repeats itself. Uncontrolled
   variables (NaN in samples) become ``None``.
 - The chunk is a grid of protocol times ``origin + j·period``. Without holds or skips tick k
   is due at protocol time k·period (:meth:`SetpointTable.at`); a hold, a skip or a resumed
@@ -67,7 +69,7 @@ class SetpointTable:
         self._k0 = -(2**62)  # no chunk loaded yet
         self._origin_s = 0.0  # protocol time of grid point 0, s
         self._phases: list[str] = []
-        self._columns: dict[str, tuple[list[float | None], ...]] = {}
+        self._targets: list[tuple[Target, ...]] = []  # per tick of the chunk, per chamber
 
     def _load(self, k: int, origin_s: float = 0.0) -> None:
         k0 = k - k % self._chunk
@@ -75,14 +77,30 @@ class SetpointTable:
         names = [p.name for p in self._compiled.phases]
         self._phases = [names[i] for i in phase_index_at(self._compiled, times).tolist()]
         samples = sample(self._compiled, times)
-        self._columns = {
-            c: (
+        columns = [
+            zip(
                 _values(samples[c]["temperature_c"]),
                 _values(samples[c]["par"]),
                 _values(samples[c]["flow_cm_s"]),
+                strict=True,
             )
             for c in self._chambers
-        }
+        ]
+        made: dict[tuple[float | None, ...], Target] = {}
+        targets: list[tuple[Target, ...]] = []
+        for row in zip(*columns, strict=True):  # one tick: per chamber (°C, PAR, cm/s)
+            tick: list[Target] = []
+            for values in row:
+                key: tuple[float | None, ...] = values
+                if 0.0 in values:  # 0.0 == -0.0: keep the sign of a zero apart
+                    key += tuple(None if v is None else math.copysign(1.0, v) for v in values)
+                found = made.get(key)
+                if found is None:
+                    t, par, flow = values
+                    found = made[key] = Target(temperature_c=t, par=par, flow_cm_s=flow)
+                tick.append(found)
+            targets.append(tuple(tick))
+        self._targets = targets
         self._k0 = k0
         self._origin_s = origin_s
 
@@ -130,11 +148,7 @@ class SetpointTable:
 
     def _row(self, k: int) -> tuple[str, Mapping[str, Target]]:
         i = k - self._k0
-        targets = {
-            c: Target(temperature_c=cols[0][i], par=cols[1][i], flow_cm_s=cols[2][i])
-            for c, cols in self._columns.items()
-        }
-        return self._phases[i], targets
+        return self._phases[i], dict(zip(self._chambers, self._targets[i], strict=True))
 
 
 class Lookahead:
