@@ -34,10 +34,6 @@ __all__ = ["Lookahead", "SetpointTable"]
 _ON_GRID_S = 1e-6
 
 
-def _values(array: np.ndarray) -> list[float | None]:
-    return [None if math.isnan(v) else v for v in array.tolist()]
-
-
 class SetpointTable:
     """Setpoints and phase of every protocol chamber at tick k.
 
@@ -77,30 +73,38 @@ class SetpointTable:
         names = [p.name for p in self._compiled.phases]
         self._phases = [names[i] for i in phase_index_at(self._compiled, times).tolist()]
         samples = sample(self._compiled, times)
-        columns = [
-            zip(
-                _values(samples[c]["temperature_c"]),
-                _values(samples[c]["par"]),
-                _values(samples[c]["flow_cm_s"]),
-                strict=True,
-            )
-            for c in self._chambers
-        ]
-        made: dict[tuple[float | None, ...], Target] = {}
-        targets: list[tuple[Target, ...]] = []
-        for row in zip(*columns, strict=True):  # one tick: per chamber (°C, PAR, cm/s)
-            tick: list[Target] = []
-            for values in row:
-                key: tuple[float | None, ...] = values
-                if 0.0 in values:  # 0.0 == -0.0: keep the sign of a zero apart
-                    key += tuple(None if v is None else math.copysign(1.0, v) for v in values)
-                found = made.get(key)
-                if found is None:
-                    t, par, flow = values
-                    found = made[key] = Target(temperature_c=t, par=par, flow_cm_s=flow)
-                tick.append(found)
-            targets.append(tuple(tick))
-        self._targets = targets
+        n = len(self._chambers)
+        if n == 0:
+            self._targets = [()] * self._chunk
+        else:
+            # (chamber, tick, [°C, PAR, cm/s]); equal bit patterns share one Target (so 0.0
+            # and -0.0 stay apart), NaN (uncontrolled) becomes None
+            grid = np.stack(
+                [
+                    np.stack([samples[c][q] for q in ("temperature_c", "par", "flow_cm_s")], -1)
+                    for c in self._chambers
+                ]
+            ).astype(np.float64, copy=False)
+            bits = grid.reshape(-1, 3).view(np.int64)
+            order = np.lexsort(bits.T[::-1])
+            ordered = bits[order]
+            first = np.empty(len(order), dtype=bool)  # the first of each run of equal rows
+            first[0] = True
+            np.any(ordered[1:] != ordered[:-1], axis=1, out=first[1:])
+            index = np.empty(len(order), dtype=np.int64)
+            index[order] = np.cumsum(first) - 1
+            unique = ordered[first]
+            made = []
+            for t, par, flow in unique.view(np.float64).tolist():
+                made.append(
+                    Target(
+                        temperature_c=None if math.isnan(t) else t,
+                        par=None if math.isnan(par) else par,
+                        flow_cm_s=None if math.isnan(flow) else flow,
+                    )
+                )
+            by_tick = index.reshape(n, self._chunk).T.tolist()
+            self._targets = [tuple(map(made.__getitem__, row)) for row in by_tick]
         self._k0 = k0
         self._origin_s = origin_s
 
