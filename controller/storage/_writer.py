@@ -30,7 +30,7 @@ import sqlite3
 from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from types import TracebackType
-from typing import Any, Self
+from typing import Any, NoReturn, Self
 
 from controller import __version__
 from controller.errors import RuntimeFailure, SquallError
@@ -321,10 +321,12 @@ class RunLogWriter:
                     f"({self._not_after_utc_s} s): it would log that time twice"
                 )
             self._not_after_utc_s = None
-        with self._io(f"append {n} sample row(s)", n):
+        try:  # as self._io, without a context manager on the every-tick path
             if not conn.in_transaction:
                 conn.execute("BEGIN")
             conn.executemany(_SAMPLE_SQL, params)
+        except sqlite3.Error as exc:
+            self._fail(exc, f"append {n} sample row(s)", n)
         self._pending += n
         self._after_write(last_t_s)
 
@@ -501,21 +503,28 @@ class RunLogWriter:
         """Turn SQLite failures into RuntimeFailure after rolling back uncommitted rows."""
         try:
             yield
-        except (sqlite3.IntegrityError, sqlite3.ProgrammingError, sqlite3.InterfaceError):
-            self._abandon()  # a malformed record is a bug: re-raise it unchanged
-            raise
         except sqlite3.Error as exc:
-            lost = self._pending + batch
+            self._fail(exc, what, batch)
+
+    def _fail(self, exc: sqlite3.Error, what: str, batch: int) -> NoReturn:
+        """Roll back uncommitted rows, then raise: a malformed record is a bug (re-raised
+        unchanged), anything else a :class:`RuntimeFailure` saying what was lost."""
+        if isinstance(
+            exc, sqlite3.IntegrityError | sqlite3.ProgrammingError | sqlite3.InterfaceError
+        ):
             self._abandon()
-            upto = (
-                f" (up to clock time {self._last_commit_t_s:g} s)"
-                if self._last_commit_t_s is not None
-                else ""
-            )
-            raise RuntimeFailure(
-                f"run log {self._path}: could not {what}: {exc}. The {lost} row(s) not yet "
-                f"committed were dropped; everything committed earlier{upto} is intact."
-            ) from exc
+            raise exc
+        lost = self._pending + batch
+        self._abandon()
+        upto = (
+            f" (up to clock time {self._last_commit_t_s:g} s)"
+            if self._last_commit_t_s is not None
+            else ""
+        )
+        raise RuntimeFailure(
+            f"run log {self._path}: could not {what}: {exc}. The {lost} row(s) not yet "
+            f"committed were dropped; everything committed earlier{upto} is intact."
+        ) from exc
 
     def _abandon(self) -> None:
         """Roll back the open transaction, if SQLite has not already done so."""
