@@ -49,8 +49,8 @@ from typing import Any
 import tomlkit
 
 from controller.cli import main as squall
-from controller.runtime import Decider, LogSink, RunSettings, SimulatedRun
-from controller.storage import RunLogReader
+from controller.runtime import Decider, RunSettings, SimulatedRun
+from controller.storage import RunLogReader, RunLogWriter
 
 ROOT = Path(__file__).resolve().parent.parent
 RIG = ROOT / "rigs" / "saltmarrow-rack8.toml"
@@ -168,18 +168,24 @@ def run_cli(protocol: Path, log: Path, period_s: float, rig: Path = RIG) -> floa
 
 
 class _Timer:
-    """Accumulates the wall time spent inside wrapped callables, s."""
+    """Accumulates the wall time spent inside wrapped callables, s (a call made from inside
+    another wrapped call of the same name counts once, with its caller)."""
 
     def __init__(self) -> None:
         self.spent: dict[str, float] = {}
+        self._depth: dict[str, int] = {}
 
     def wrap(self, name: str, fn: Callable[..., Any]) -> Callable[..., Any]:
         def timed(*args: Any, **kwargs: Any) -> Any:
+            depth = self._depth.get(name, 0)
+            self._depth[name] = depth + 1
             t0 = time.perf_counter()
             try:
                 return fn(*args, **kwargs)
             finally:
-                self.spent[name] = self.spent.get(name, 0.0) + time.perf_counter() - t0
+                if depth == 0:
+                    self.spent[name] = self.spent.get(name, 0.0) + time.perf_counter() - t0
+                self._depth[name] = depth
 
         return timed
 
@@ -213,15 +219,31 @@ def breakdown(protocol: Path, log: Path, period_s: float) -> None:
     for label, names in parts.items():
         for name in names:
             setattr(rack, name, timer.wrap(label, getattr(rack, name)))
-    original_decide, original_drain = Decider.decide, LogSink.drain
+    original_decide = Decider.decide
     Decider.decide = timer.wrap("decide: interlocks, PID, lamps, pumps", original_decide)  # type: ignore[method-assign]
-    LogSink.drain = timer.wrap("run log writes", original_drain)  # type: ignore[method-assign]
+    # the loop hands each tick's rows to the writer itself (LogSink.put_samples) and the
+    # logger task only commits: time the writer's calls, wherever they come from
+    writes = (
+        "append_samples",
+        "append_sample_values",
+        "record_alarm",
+        "record_event",
+        "record_window",
+        "record_audit",
+        "flush",
+        "finish",
+    )
+    originals = {name: getattr(RunLogWriter, name) for name in writes}
+    for name, method in originals.items():
+        setattr(RunLogWriter, name, timer.wrap("run log writes", method))
     try:
         start = time.perf_counter()
         summary = run.run()
         wall_s = time.perf_counter() - start
     finally:
-        Decider.decide, LogSink.drain = original_decide, original_drain  # type: ignore[method-assign]
+        Decider.decide = original_decide  # type: ignore[method-assign]
+        for name, method in originals.items():
+            setattr(RunLogWriter, name, method)
     ticks = summary.ticks.ticks
     print(f"\nbreakdown at a {period_s:g} s tick ({ticks} ticks, instrumented: {wall_s:.1f} s)")
     rest = wall_s - sum(timer.spent.values())
