@@ -240,7 +240,8 @@ class ControlLoop(OperatorHooks):
     @property
     def _latest(self) -> dict[str, SampleRow]:
         """Each protocol chamber's row of the latest tick (built when asked: status)."""
-        return {v[3]: SampleRow.from_values(v) for v in self._latest_values}
+        rows = map(SampleRow.from_values, self._latest_values)
+        return {row.chamber: row for row in rows}
 
     def _summary(self, reason: RunEndReason, detail: str) -> RunSummary:
         end_s = self.clock.now_s()
