@@ -65,7 +65,9 @@ class SetpointTable:
         self._k0 = -(2**62)  # no chunk loaded yet
         self._origin_s = 0.0  # protocol time of grid point 0, s
         self._phases: list[str] = []
-        self._targets: list[tuple[Target, ...]] = []  # per tick of the chunk, per chamber
+        # per tick of the chunk, per chamber; rebuilt with the chunk (the next chunk, or a
+        # hold, skip or resume moving protocol time off the grid), never kept past it
+        self._targets: list[tuple[Target, ...]] = []
 
     def _load(self, k: int, origin_s: float = 0.0) -> None:
         k0 = k - k % self._chunk
