@@ -10,8 +10,9 @@ included, once per control tick period asked for (default 60 s and 10 s).
 Printed per tick period: wall seconds, simulated seconds per wall second, wall time per
 tick, and whether the goal (7 days in at most 30 s of wall time) is met. With
 ``--breakdown`` a second, instrumented run of the first period splits the wall time into the
-simulated rack (physics and sensor reads), the loop's decisions (interlocks, PID, lamps,
-pumps), the run-log writes, and the rest (asyncio scheduling, building log rows).
+simulated rack (physics; the sensor sweep with the devices' answers), the loop's decisions
+(interlocks, PID, lamps, pumps), the run-log writes, and the rest (asyncio scheduling,
+building log rows, setpoints, the simulated I/O's glue).
 
 Scaling to 64 chambers: the example rig copied eight times (eight baths of four chambers and
 32 chambers with their own water; the facility tables left out, they do not act on the
@@ -48,8 +49,8 @@ from typing import Any
 import tomlkit
 
 from controller.cli import main as squall
-from controller.runtime import Decider, LogSink, RunSettings, SimulatedRun
-from controller.storage import RunLogReader
+from controller.runtime import Decider, RunSettings, SimulatedRun
+from controller.storage import RunLogReader, RunLogWriter
 
 ROOT = Path(__file__).resolve().parent.parent
 RIG = ROOT / "rigs" / "saltmarrow-rack8.toml"
@@ -167,18 +168,24 @@ def run_cli(protocol: Path, log: Path, period_s: float, rig: Path = RIG) -> floa
 
 
 class _Timer:
-    """Accumulates the wall time spent inside wrapped callables, s."""
+    """Accumulates the wall time spent inside wrapped callables, s (a call made from inside
+    another wrapped call of the same name counts once, with its caller)."""
 
     def __init__(self) -> None:
         self.spent: dict[str, float] = {}
+        self._depth: dict[str, int] = {}
 
     def wrap(self, name: str, fn: Callable[..., Any]) -> Callable[..., Any]:
         def timed(*args: Any, **kwargs: Any) -> Any:
+            depth = self._depth.get(name, 0)
+            self._depth[name] = depth + 1
             t0 = time.perf_counter()
             try:
                 return fn(*args, **kwargs)
             finally:
-                self.spent[name] = self.spent.get(name, 0.0) + time.perf_counter() - t0
+                if depth == 0:
+                    self.spent[name] = self.spent.get(name, 0.0) + time.perf_counter() - t0
+                self._depth[name] = depth
 
         return timed
 
@@ -194,23 +201,58 @@ def breakdown(protocol: Path, log: Path, period_s: float) -> None:
         settings=RunSettings(period_s=period_s),
     )
     rack = run.rack
-    for name in ("advance", "read_temperature", "read_optode", "read_par", "read_flow"):
-        label = "rack: physics" if name == "advance" else "rack: sensor reads"
-        setattr(rack, name, timer.wrap(label, getattr(rack, name)))
-    rack.set_outputs = timer.wrap("rack: physics", rack.set_outputs)  # type: ignore[method-assign]
-    original_decide, original_drain = Decider.decide, LogSink.drain
+    # the loop reads every chamber at once through Rack.sweep (SimulatedIO.read_now) and
+    # asks who answers through Rack.comm_ok_all; the per-sensor reads serve the
+    # chamber-by-chamber path (a silent device)
+    parts = {
+        "rack: physics": ("advance", "set_outputs"),
+        "rack: sensor sweep": (
+            "sweep",
+            "comm_ok_all",
+            "read_temperature",
+            "read_optode",
+            "read_par",
+            "read_flow",
+            "read_level_ok",
+        ),
+    }
+    for label, names in parts.items():
+        for name in names:
+            setattr(rack, name, timer.wrap(label, getattr(rack, name)))
+    original_decide = Decider.decide
     Decider.decide = timer.wrap("decide: interlocks, PID, lamps, pumps", original_decide)  # type: ignore[method-assign]
-    LogSink.drain = timer.wrap("run log writes", original_drain)  # type: ignore[method-assign]
+    # the loop hands each tick's rows to the writer itself (LogSink.put_samples) and the
+    # logger task only commits: time the writer's calls, wherever they come from
+    writes = (
+        "append_samples",
+        "append_sample_values",
+        "record_alarm",
+        "record_event",
+        "record_window",
+        "record_audit",
+        "flush",
+        "finish",
+    )
+    originals = {name: getattr(RunLogWriter, name) for name in writes}
+    for name, method in originals.items():
+        setattr(RunLogWriter, name, timer.wrap("run log writes", method))
     try:
         start = time.perf_counter()
         summary = run.run()
         wall_s = time.perf_counter() - start
     finally:
-        Decider.decide, LogSink.drain = original_decide, original_drain  # type: ignore[method-assign]
+        Decider.decide = original_decide  # type: ignore[method-assign]
+        for name, method in originals.items():
+            setattr(RunLogWriter, name, method)
     ticks = summary.ticks.ticks
     print(f"\nbreakdown at a {period_s:g} s tick ({ticks} ticks, instrumented: {wall_s:.1f} s)")
     rest = wall_s - sum(timer.spent.values())
-    for name, spent in [*sorted(timer.spent.items()), ("rest: asyncio, log rows, setpoints", rest)]:
+    loop_s = rest + timer.spent.get("run log writes", 0.0)
+    for name, spent in [
+        *sorted(timer.spent.items()),
+        ("rest: asyncio, log rows, setpoints", rest),
+        ("loop's part: rest + run log writes", loop_s),
+    ]:
         print(f"  {name:<40} {spent:7.2f} s  {1000 * spent / ticks:6.3f} ms/tick")
 
 

@@ -292,6 +292,28 @@ class VirtualClock:
         self._own_loop()
         await asyncio.sleep(dt_s)
 
+    def call_at(
+        self, t_s: float, callback: Callable[..., object], *args: Any
+    ) -> asyncio.TimerHandle:
+        """Call ``callback(*args)`` at virtual time ``t_s``, exactly as :meth:`sleep_until`
+        wakes, without a task (the callback must not block; it runs in the clock's loop).
+
+        Parameters
+        ----------
+        t_s
+            Virtual clock time, s; a past time calls at the next loop turn.
+        callback
+            The function to call; its return value is ignored.
+        *args
+            Its arguments.
+
+        Returns
+        -------
+        asyncio.TimerHandle
+            Cancel it to call nothing.
+        """
+        return self._own_loop().call_at(_check_time(t_s, "t_s"), callback, *args)
+
     def new_event_loop(self) -> VirtualTimeEventLoop:
         """Return a new event loop running on this clock's virtual time."""
         return VirtualTimeEventLoop(self)
@@ -399,6 +421,24 @@ class VirtualTimeEventLoop(asyncio.SelectorEventLoop):
 
     def _executor_job_done(self, _future: asyncio.Future[Any]) -> None:
         self._executor_jobs -= 1
+
+    def nothing_due_now(self) -> bool:
+        """Whether nothing else would run if the calling task yielded now: no callback is
+        ready (another task woken, a future's callbacks) and no timer falls due at the
+        present virtual time. A task may then go on at once instead of ``await
+        asyncio.sleep(0)`` and let nothing due at this instant happen after it. (Sockets
+        are not polled: at virtual time their data has no instant of its own.)
+
+        Returns
+        -------
+        bool
+            True when a yield would only come straight back, dimensionless.
+        """
+        if self._ready:  # type: ignore[attr-defined]
+            return False
+        scheduled = self._scheduled  # type: ignore[attr-defined]
+        # the loop runs every timer whose deadline is before now + its clock resolution
+        return not scheduled or scheduled[0].when() >= self.time() + self._clock_resolution
 
     def _next_deadline(self) -> float | None:
         """Virtual time of the earliest pending timer, s, or None."""

@@ -379,3 +379,48 @@ def test_one_clock_drives_one_open_loop() -> None:
     finally:
         loop.close()
     clock.new_event_loop().close()  # free again once closed
+
+
+def test_call_at_calls_back_at_exactly_the_deadline_without_a_task() -> None:
+    clock = VirtualClock(START)
+    calls: list[tuple[str, float]] = []
+
+    async def main(c: Clock) -> None:
+        deadline = 0.1 + 0.2  # not a sum the jumps would land on by themselves
+        clock.call_at(deadline, lambda tag: calls.append((tag, c.now_s())), "due")
+        clock.call_at(5.0, calls.append, ("cancelled", 5.0)).cancel()
+        clock.call_at(-1.0, lambda: calls.append(("past", c.now_s())))
+        await c.sleep(10.0)
+
+    run_with_clock(clock, main)
+    assert calls == [("past", 0.0), ("due", 0.1 + 0.2)]
+
+
+def test_nothing_due_now_sees_ready_tasks_and_timers_due_at_this_instant() -> None:
+    clock = VirtualClock(START)
+    seen: dict[str, bool] = {}
+
+    async def main(c: Clock) -> None:
+        loop = asyncio.get_running_loop()
+        assert isinstance(loop, VirtualTimeEventLoop)
+        seen["alone"] = loop.nothing_due_now()
+        task = asyncio.ensure_future(asyncio.sleep(0))  # another task ready to run
+        seen["task ready"] = loop.nothing_due_now()
+        await task
+        seen["task done"] = loop.nothing_due_now()
+        handle = loop.call_at(c.now_s(), lambda: None)  # a timer due at this very instant
+        seen["timer due now"] = loop.nothing_due_now()
+        handle.cancel()
+        await asyncio.sleep(0)  # the loop drops the cancelled timer
+        later = loop.call_at(c.now_s() + 1.0, lambda: None)  # due later: not now
+        seen["timer due later"] = loop.nothing_due_now()
+        later.cancel()
+
+    run_with_clock(clock, main)
+    assert seen == {
+        "alone": True,
+        "task ready": False,
+        "task done": True,
+        "timer due now": False,
+        "timer due later": True,
+    }

@@ -48,7 +48,7 @@ from controller.errors import RuntimeFailure, SquallError
 from controller.protocol import format_duration
 
 if TYPE_CHECKING:
-    from collections.abc import Awaitable
+    from collections.abc import Awaitable, Callable
 
     from controller.runtime import (
         ControlLoop,
@@ -187,7 +187,15 @@ def _settings(period_s: float) -> RunSettings:
 
 
 class _Bar:
-    """Rich progress bar fed by tick statuses (phase, simulated time, alarms)."""
+    """Rich progress bar fed by tick statuses (phase, simulated time, alarms).
+
+    At full simulated speed ticks come thousands a second while the bar is redrawn ten
+    times a second, so a tick within :attr:`every_s` of wall time after the last update is
+    skipped unless its alarms or phase differ (the last tick is always shown).
+    """
+
+    every_s = 0.05
+    """Wall time between bar updates, s."""
 
     def __init__(self, console: Console) -> None:
         self.progress = Progress(
@@ -200,8 +208,18 @@ class _Bar:
             transient=False,
         )
         self.task: TaskID | None = None
+        #: Real time source, s; an attribute so tests can pin it.
+        self._monotonic: Callable[[], float] = time.monotonic
+        self._shown: tuple[float, str, dict[str, str]] = (-math.inf, "", {})
 
     def __call__(self, status: TickStatus) -> None:
+        now = self._monotonic()
+        last_s, phase, held = self._shown
+        final = status.tick + 1 >= status.ticks_total
+        if now - last_s < self.every_s and not final:
+            if status.phase == phase and status.alarms == held:
+                return
+        self._shown = (now, status.phase, dict(status.alarms))
         alarms = ", ".join(f"{c}: {code}" for c, code in sorted(status.alarms.items()))
         fields = {
             "phase": status.phase,

@@ -4,10 +4,15 @@ Rules of this module
 --------------------
 - The control loop never waits for the disk: it queues each tick's sample rows and any
   alarms, events, closed incubation windows and operator (audit) records with
-  :meth:`LogSink.put`, and the sink's task writes them in the order
-  they were queued (consecutive sample batches go down in one ``executemany``). The run log's
-  writer commits alarms, events, windows and audit records at once and samples at its commit
-  interval.
+  :meth:`LogSink.put` (the loop's rows as value tuples with :meth:`LogSink.put_samples`), and
+  the sink's task writes them in the order they were queued (consecutive sample batches go
+  down in one ``executemany``). The run log's writer commits alarms, events, windows and
+  audit records at once and samples at its commit interval.
+- Samples that the writer would not commit yet, with nothing queued before them, go into its
+  open transaction at once (an insert that waits for no disk: only a commit writes) instead of
+  waking the task; the task is woken for every record and for samples whose commit is due.
+  The rows, their order and the commits are the same as through the task, and a simulated
+  run at full speed does not turn the event loop once a tick to log it.
 - A failed write (disk full, I/O error) is logged and counted, never raised into the loop:
   controlling the chambers matters more than recording them, and the writer stays usable
   for the next batch.
@@ -26,29 +31,35 @@ from __future__ import annotations
 import asyncio
 import logging
 from collections import deque
-from collections.abc import Sequence
-from typing import Protocol
+from collections.abc import Mapping, Sequence
+from typing import Any, Protocol
 
 from controller.control import EventKind as InterlockEventKind
 from controller.control import InterlockEvent
 from controller.errors import RuntimeFailure
+from controller.runtime._decide import Decision, Target
+from controller.runtime._io import ChamberReadings
 from controller.storage import (
     AlarmAction,
     AlarmLevel,
     AlarmRecord,
     AuditRecord,
     EventRecord,
+    IncubationState,
     RunLogWriter,
     SampleRow,
     WindowRecord,
 )
 
-__all__ = ["LogSink", "TelemetryFeed", "alarm_record"]
+__all__ = ["LogSink", "TelemetryFeed", "alarm_record", "tick_values"]
 
 _log = logging.getLogger(__name__)
 
+Values = list[tuple[Any, ...]]
+"""Sample rows as value tuples in :class:`SampleRow` field order."""
 Item = list[SampleRow] | AlarmRecord | EventRecord | WindowRecord | AuditRecord
 Record = AlarmRecord | EventRecord | WindowRecord | AuditRecord
+_T_S = 0  # index of t_s in a sample's values (the first field of SampleRow)
 
 _ACTIONS = {
     InterlockEventKind.RAISED: AlarmAction.RAISE,
@@ -90,6 +101,83 @@ def alarm_record(chamber: str, event: InterlockEvent, utc_s: float) -> AlarmReco
     )
 
 
+# a row's incubation as the state's plain text value (SampleRow.from_values takes it)
+_INCUBATION = {state.value: state.value for state in IncubationState}
+_OPEN, _CLOSED = _INCUBATION["open"], _INCUBATION["closed"]
+
+
+def tick_values(
+    when: tuple[float, float, float, str],
+    chambers: Sequence[str],
+    readings: Mapping[str, ChamberReadings],
+    targets: Mapping[str, Target],
+    decision: Decision,
+    holding: dict[str, str],
+) -> list[tuple[Any, ...]]:
+    """One tick's sample rows as value tuples (:meth:`SampleRow.values`), one per chamber.
+
+    Parameters
+    ----------
+    when
+        The tick's clock time (s), UTC (POSIX s), protocol time (s) and phase.
+    chambers
+        Protocol chambers, in log order.
+    readings
+        Readings as read, by chamber (°C, µmol photons m⁻² s⁻¹, cm s⁻¹, µmol L⁻¹, %).
+    targets
+        The protocol's setpoints, by chamber (same units).
+    decision
+        What was decided (outputs in %, alarm, incubation status).
+    holding
+        Active alarm code by chamber; brought up to date with this tick's decision.
+
+    Returns
+    -------
+    list of tuple
+        Per chamber its row's values in :class:`SampleRow` field order. The incubation is
+        the cycle's status, else open while the pump runs.
+    """
+    now, utc_s, elapsed, phase = when
+    chosen_of = decision.chambers
+    rows = []
+    for chamber in chambers:
+        reading, target, chosen = readings[chamber], targets[chamber], chosen_of[chamber]
+        out = chosen.outputs
+        alarm = None if chosen.alarm is None else chosen.alarm.value
+        if alarm is not None:
+            holding[chamber] = alarm
+        elif holding:
+            holding.pop(chamber, None)
+        if chosen.incubation is not None:
+            incubation = _INCUBATION[chosen.incubation.value]
+        else:
+            incubation = _OPEN if out.pump_pct > 0 else _CLOSED
+        rows.append(
+            (
+                now,
+                utc_s,
+                elapsed,
+                chamber,
+                phase,
+                reading.temperature_c,
+                target.temperature_c,
+                reading.par,
+                target.par,
+                reading.flow_cm_s,
+                target.flow_cm_s,
+                reading.o2_umol_l,
+                reading.o2_sat_pct,
+                out.heater_pct,
+                out.chiller_pct,
+                out.lamp_pct,
+                out.pump_pct,
+                incubation,
+                alarm,
+            )
+        )
+    return rows
+
+
 class TelemetryFeed(Protocol):
     """What a log sink hands telemetry to (``controller.telemetry.TelemetryPublisher`` fits)."""
 
@@ -109,7 +197,7 @@ class LogSink:
 
     def __init__(self, writer: RunLogWriter) -> None:
         self.writer = writer
-        self._queue: deque[Item] = deque()
+        self._queue: deque[Values | Record] = deque()
         self._wake = asyncio.Event()
         self.rows_written = 0
         """Sample rows in the log (or pending in its open transaction), dimensionless."""
@@ -140,16 +228,45 @@ class LogSink:
         item
             One tick's sample rows, or an alarm, event, window or audit record.
         """
-        self._queue.append(item)
+        if isinstance(item, list):
+            self._enqueue_samples([row.values() for row in item])
+        else:
+            self._queue.append(item)
+            self._wake.set()
+        if self.telemetry is not None and isinstance(item, list | AlarmRecord | EventRecord):
+            self._offer(item)
+
+    def put_samples(self, values: Values) -> None:
+        """Queue one tick's sample rows given as value tuples (:meth:`SampleRow.values`).
+
+        Parameters
+        ----------
+        values
+            Per chamber the row's values in :class:`SampleRow` field order (units as the
+            fields name them); not to be changed afterwards.
+        """
+        self._enqueue_samples(values)
+        if self.telemetry is not None:  # telemetry takes rows: build them only for it
+            self._offer([SampleRow.from_values(v) for v in values])
+
+    def _enqueue_samples(self, values: Values) -> None:
+        if not values:
+            return
+        if not self._queue and not self.writer.commit_due(values[-1][_T_S]):
+            self._samples(values)  # into the open transaction: no commit, no disk write
+            return
+        self._queue.append(values)
         self._wake.set()
+
+    def _offer(self, item: Sequence[SampleRow] | AlarmRecord | EventRecord) -> None:
         telemetry = self.telemetry
-        if telemetry is not None and isinstance(item, list | AlarmRecord | EventRecord):
-            try:
-                telemetry.offer(item)
-            except Exception:  # telemetry must never cost a tick, nor the log its record
-                self.telemetry_failures += 1
-                if self.telemetry_failures == 1:
-                    _log.exception("telemetry: offering a record failed (later failures quiet)")
+        assert telemetry is not None
+        try:
+            telemetry.offer(item)
+        except Exception:  # telemetry must never cost a tick, nor the log its record
+            self.telemetry_failures += 1
+            if self.telemetry_failures == 1:
+                _log.exception("telemetry: offering a record failed (later failures quiet)")
 
     @property
     def pending(self) -> int:
@@ -170,16 +287,18 @@ class LogSink:
             item = queue.popleft()
             if isinstance(item, list):
                 rows = item
-                while queue and isinstance(queue[0], list):
-                    rows = rows + queue.popleft()  # type: ignore[operator]
+                if queue and isinstance(queue[0], list):
+                    rows = list(rows)  # the caller may keep its list: gather into a new one
+                    while queue and isinstance(queue[0], list):
+                        rows.extend(queue.popleft())  # type: ignore[arg-type]
                 self._samples(rows)
             else:
                 self._record(item)
 
-    def _samples(self, rows: list[SampleRow]) -> None:
+    def _samples(self, rows: Values) -> None:
         uncommitted = self.writer.pending_rows
         try:
-            self.writer.append_samples(rows)
+            self.writer.append_sample_values(rows)
         except RuntimeFailure as exc:
             # the writer rolled back this batch and the rows not yet committed before it
             self.rows_lost += len(rows) + uncommitted

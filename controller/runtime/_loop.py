@@ -22,7 +22,8 @@ Rules of this module
   so one slow device does not hold up the others; what has not answered by then is stale;
   I/O that can answer every chamber at once without waiting, :class:`ImmediateIO` such as
   the in-process simulation, is asked so first, with the same results and no task per
-  chamber),
+  chamber, after a turn of the event loop unless the virtual clock's loop has nothing else
+  due at that instant),
   decide (:class:`~controller.runtime._decide.Decider`: interlocks, incubation cycles,
   setpoints, PID, lamps, pumps), write every chamber concurrently, queue one log row per
   protocol chamber, the alarms and the windows that ended, then report progress. Log rows
@@ -42,13 +43,13 @@ import math
 from collections.abc import Callable, Coroutine, Mapping, Sequence
 from typing import Any, Protocol, TypeVar, runtime_checkable
 
-from controller.clock import Clock
+from controller.clock import Clock, VirtualTimeEventLoop
 from controller.control import Outputs, WindowEnd
 from controller.errors import RuntimeFailure
 from controller.protocol import CompiledProtocol, format_duration
 from controller.runtime._decide import OFF, Decider, Schedule
 from controller.runtime._io import ChamberIO, ChamberReadings, stale_readings
-from controller.runtime._logsink import LogSink, alarm_record
+from controller.runtime._logsink import LogSink, alarm_record, tick_values
 from controller.runtime._operator import OperatorHooks, RunState
 from controller.runtime._protocol_clock import ProtocolClock, StartPoint
 from controller.runtime._setpoints import Lookahead, SetpointTable
@@ -57,7 +58,6 @@ from controller.runtime._summary import RunSummary, TickCounter, TickStats, Tick
 from controller.storage import (
     EventKind,
     EventRecord,
-    IncubationState,
     RunEnd,
     RunEndReason,
     RunLogWriter,
@@ -174,12 +174,13 @@ class ControlLoop(OperatorHooks):
         self._utc0_s = 0.0
         self._pclock: ProtocolClock | None = None
         self._state = RunState.STARTING
-        self._latest: dict[str, SampleRow] = {}
+        self._latest_values: tuple[tuple[Any, ...], ...] = ()
         self._abort_by: str | None = None
         self._windows = 0
         self._sleeping = False
         self._control_task: asyncio.Task[None] | None = None
         self._now_io: ImmediateIO | None = io if isinstance(io, ImmediateIO) else None
+        self._quiet: Callable[[], bool] | None = None  # the loop has nothing else due now
         self.done = asyncio.Event()
         """Set once the run has ended: outputs safe, log finished (or closed)."""
 
@@ -194,6 +195,8 @@ class ControlLoop(OperatorHooks):
             the shutdown path has made every chamber safe and closed the log).
         """
         clock = self.clock
+        loop = asyncio.get_running_loop()
+        self._quiet = loop.nothing_due_now if isinstance(loop, VirtualTimeEventLoop) else None
         self._t0_s = clock.now_s()
         self._utc0_s = clock.utc(self._t0_s).timestamp()
         self._pclock = ProtocolClock(
@@ -233,6 +236,12 @@ class ControlLoop(OperatorHooks):
             self._state = RunState.FINISHED
             self.done.set()
         return self._summary(reason, detail)
+
+    @property
+    def _latest(self) -> dict[str, SampleRow]:
+        """Each protocol chamber's row of the latest tick (built when asked: status)."""
+        rows = map(SampleRow.from_values, self._latest_values)
+        return {row.chamber: row for row in rows}
 
     def _summary(self, reason: RunEndReason, detail: str) -> RunSummary:
         end_s = self.clock.now_s()
@@ -423,7 +432,7 @@ class ControlLoop(OperatorHooks):
             if chamber not in found:
                 self._failure(chamber, "read", None)
                 found[chamber] = stale_readings(chamber, now)
-            else:
+            elif self._failing:  # (a success only ends a streak)
                 self._failure(chamber, "read", False)
         return found
 
@@ -456,8 +465,10 @@ class ControlLoop(OperatorHooks):
             except TimeoutError:
                 pass
         for chamber in outputs:
-            ok = done.setdefault(chamber, False)
-            self._failure(chamber, "write", None if not ok else False)
+            if not done.setdefault(chamber, False):
+                self._failure(chamber, "write", None)
+            elif self._failing:  # (a success only ends a streak)
+                self._failure(chamber, "write", False)
         return done
 
     async def _at_once(
@@ -468,11 +479,15 @@ class ControlLoop(OperatorHooks):
 
         It lets the event loop turn once first, as starting a task per chamber did, so that
         what else falls due at this very instant (an operator's E-stop, a fault a test
-        injects) still happens before the reads or writes."""
-        now_io = self._now_io
-        if now_io is None:
+        injects) still happens before the reads or writes; on the virtual clock's loop with
+        nothing else due at this instant the turn would change nothing and is skipped."""
+        if self._now_io is None:
             return None
-        await asyncio.sleep(0)
+        if self._quiet is None or not self._quiet():
+            await asyncio.sleep(0)
+        now_io = self._now_io
+        if now_io is None:  # the fast path failed meanwhile
+            return None
         try:
             got = ask(now_io)
         except Exception:  # a bug in the fast path: the chamber-by-chamber path still works
@@ -544,48 +559,12 @@ class ControlLoop(OperatorHooks):
                 if record.action.value == "raise":
                     self._alarms.append((chamber, record.code))
         self._record_windows(decision.windows)
-        rows: list[SampleRow] = []
         holding = self._holding
-        for chamber in self._chambers:
-            reading, target, chosen = (
-                readings[chamber],
-                targets[chamber],
-                decision.chambers[chamber],
-            )
-            out = chosen.outputs
-            alarm = None if chosen.alarm is None else chosen.alarm.value
-            if alarm is None:
-                holding.pop(chamber, None)
-            else:
-                holding[chamber] = alarm
-            if chosen.incubation is not None:
-                incubation = IncubationState(chosen.incubation.value)
-            else:
-                incubation = IncubationState.OPEN if out.pump_pct > 0 else IncubationState.CLOSED
-            row = SampleRow(
-                t_s=now,
-                utc_s=utc_s,
-                elapsed_s=elapsed,
-                chamber=chamber,
-                phase=phase,
-                temperature_c=reading.temperature_c,
-                temperature_setpoint_c=target.temperature_c,
-                par=reading.par,
-                par_setpoint=target.par,
-                flow_cm_s=reading.flow_cm_s,
-                flow_setpoint_cm_s=target.flow_cm_s,
-                o2_umol_l=reading.o2_umol_l,
-                o2_sat_pct=reading.o2_sat_pct,
-                heater_pct=out.heater_pct,
-                chiller_pct=out.chiller_pct,
-                lamp_pct=out.lamp_pct,
-                pump_pct=out.pump_pct,
-                incubation=incubation,
-                alarm=alarm,
-            )
-            rows.append(row)
-            self._latest[chamber] = row
-        sink.put(rows)
+        rows = tick_values(
+            (now, utc_s, elapsed, phase), self._chambers, readings, targets, decision, holding
+        )
+        self._latest_values = tuple(rows)
+        sink.put_samples(rows)
         if self.progress is not None:
             self.progress(
                 TickStatus(

@@ -4,7 +4,9 @@ Rules of this module
 --------------------
 - Setpoints are evaluated with the compiled protocol's vectorised
   :func:`~controller.protocol.sample` for a chunk of upcoming ticks at once, which costs
-  about as much as one scalar evaluation, and kept as plain Python lists. Uncontrolled
+  about as much as one scalar evaluation, and kept as one :class:`Target` per chamber and
+  tick, built with the chunk. Chambers and ticks with the same setpoints share one (it is
+  immutable): a group's chambers follow one program, and a hold repeats itself. Uncontrolled
   variables (NaN in samples) become ``None``.
 - The chunk is a grid of protocol times ``origin + j·period``. Without holds or skips tick k
   is due at protocol time k·period (:meth:`SetpointTable.at`); a hold, a skip or a resumed
@@ -30,10 +32,6 @@ __all__ = ["Lookahead", "SetpointTable"]
 
 #: Largest distance of a protocol time from a grid point that still counts as on it, s.
 _ON_GRID_S = 1e-6
-
-
-def _values(array: np.ndarray) -> list[float | None]:
-    return [None if math.isnan(v) else v for v in array.tolist()]
 
 
 class SetpointTable:
@@ -67,7 +65,9 @@ class SetpointTable:
         self._k0 = -(2**62)  # no chunk loaded yet
         self._origin_s = 0.0  # protocol time of grid point 0, s
         self._phases: list[str] = []
-        self._columns: dict[str, tuple[list[float | None], ...]] = {}
+        # per tick of the chunk, per chamber; rebuilt with the chunk (the next chunk, or a
+        # hold, skip or resume moving protocol time off the grid), never kept past it
+        self._targets: list[tuple[Target, ...]] = []
 
     def _load(self, k: int, origin_s: float = 0.0) -> None:
         k0 = k - k % self._chunk
@@ -75,14 +75,38 @@ class SetpointTable:
         names = [p.name for p in self._compiled.phases]
         self._phases = [names[i] for i in phase_index_at(self._compiled, times).tolist()]
         samples = sample(self._compiled, times)
-        self._columns = {
-            c: (
-                _values(samples[c]["temperature_c"]),
-                _values(samples[c]["par"]),
-                _values(samples[c]["flow_cm_s"]),
-            )
-            for c in self._chambers
-        }
+        n = len(self._chambers)
+        if n == 0:
+            self._targets = [()] * self._chunk
+        else:
+            # (chamber, tick, [°C, PAR, cm/s]); equal bit patterns share one Target (so 0.0
+            # and -0.0 stay apart), NaN (uncontrolled) becomes None
+            grid = np.stack(
+                [
+                    np.stack([samples[c][q] for q in ("temperature_c", "par", "flow_cm_s")], -1)
+                    for c in self._chambers
+                ]
+            ).astype(np.float64, copy=False)
+            bits = grid.reshape(-1, 3).view(np.int64)
+            order = np.lexsort(bits.T[::-1])
+            ordered = bits[order]
+            first = np.empty(len(order), dtype=bool)  # the first of each run of equal rows
+            first[0] = True
+            np.any(ordered[1:] != ordered[:-1], axis=1, out=first[1:])
+            index = np.empty(len(order), dtype=np.int64)
+            index[order] = np.cumsum(first) - 1
+            unique = ordered[first]
+            made = []
+            for t, par, flow in unique.view(np.float64).tolist():
+                made.append(
+                    Target(
+                        temperature_c=None if math.isnan(t) else t,
+                        par=None if math.isnan(par) else par,
+                        flow_cm_s=None if math.isnan(flow) else flow,
+                    )
+                )
+            by_tick = index.reshape(n, self._chunk).T.tolist()
+            self._targets = [tuple(map(made.__getitem__, row)) for row in by_tick]
         self._k0 = k0
         self._origin_s = origin_s
 
@@ -130,11 +154,7 @@ class SetpointTable:
 
     def _row(self, k: int) -> tuple[str, Mapping[str, Target]]:
         i = k - self._k0
-        targets = {
-            c: Target(temperature_c=cols[0][i], par=cols[1][i], flow_cm_s=cols[2][i])
-            for c, cols in self._columns.items()
-        }
-        return self._phases[i], targets
+        return self._phases[i], dict(zip(self._chambers, self._targets[i], strict=True))
 
 
 class Lookahead:

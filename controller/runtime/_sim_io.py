@@ -13,6 +13,10 @@ Rules of this module
 - The optode is polled every ``optode_period_s`` (optodes measure every few tens of
   seconds); between polls its latest measurement is reported. The E-stop contact belongs to
   the I/O module, so it lives here (:meth:`SimulatedIO.press_e_stop`), not in the rack.
+- The background advance on the grid is a timer callback on the clock, not a task that wakes:
+  at a grid point that is also a tick it runs before the control task resumes, so the tick
+  finds nothing else due at its instant and needs no extra turn of the event loop. A failure
+  in it fails :meth:`SimulatedIO.run`, as it did when the advance ran inside that task.
 - :meth:`SimulatedIO.read_now` and :meth:`SimulatedIO.write_now` serve a whole tick's reads
   or writes at once when every device addressed answers (nothing to wait for): the same
   readings, noise draws and commands as :meth:`~SimulatedIO.read` and
@@ -29,9 +33,9 @@ from __future__ import annotations
 
 import asyncio
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from types import TracebackType
-from typing import Self
+from typing import Any, Self
 
 from controller.clock import Clock
 from controller.control import Outputs
@@ -45,6 +49,7 @@ _OPTODE = "optode"
 _MODBUS_QUANTITIES = frozenset(
     {Quantity.TEMPERATURE, Quantity.PAR, Quantity.FLOW, Quantity.LEVEL, Quantity.E_STOP}
 )
+_NONE_FAILED: frozenset[Quantity] = frozenset()
 
 
 def _positive(value: float, name: str) -> float:
@@ -100,6 +105,8 @@ class SimulatedIO:
         self._optode: dict[str, tuple[float, float | None, float | None]] = {}
         self._comm_at_s: float | None = None
         self._comm: dict[tuple[str, str], bool] = {}
+        self._comm_of: dict[str, tuple[bool, ...]] = {}  # by device, in rig order
+        self._all_up = (False, False)  # every module, every optode answered at _comm_at_s
         self._watchdog_s = None if watchdog_s is None else _positive(watchdog_s, "watchdog_s")
         off = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
         self._safe = {c: (safe or {}).get(c, off) for c in rack.chamber_ids}
@@ -142,22 +149,56 @@ class SimulatedIO:
         ----------
         ready
             Set at once: the in-process rack answers from the start.
+
+        Raises
+        ------
+        Exception
+            Whatever advancing the rack on the grid raised (the run then fails).
         """
         ready.set()
-        start_s = self._clock.now_s()
-        k = 1
-        while True:
-            await self._clock.sleep_until(start_s + k * self._step_s)
-            self.sync()
+        clock = self._clock
+        failed: asyncio.Future[None] = asyncio.get_running_loop().create_future()
+        start_s = clock.now_s()
+        handle: asyncio.TimerHandle
+
+        def step(k: int) -> None:
+            nonlocal handle
+            try:
+                self.sync()
+            except Exception as error:  # fail run(), as the advance inside its task did
+                if not failed.done():
+                    failed.set_exception(error)
+                return
             # A late wake-up (real time) skips grid points instead of catching up on them.
-            k = max(k + 1, math.floor((self._clock.now_s() - start_s) / self._step_s) + 1)
+            k = max(k + 1, math.floor((clock.now_s() - start_s) / self._step_s) + 1)
+            handle = self._call_at(start_s + k * self._step_s, step, k)
+
+        handle = self._call_at(start_s + self._step_s, step, 1)
+        try:
+            await failed
+        finally:
+            handle.cancel()
+
+    def _call_at(
+        self, t_s: float, callback: Callable[..., object], *args: Any
+    ) -> asyncio.TimerHandle:
+        """A timer calling ``callback(*args)`` at clock time ``t_s`` (exactly, on a clock that
+        can; otherwise after the clock time still to go)."""
+        exact = getattr(self._clock, "call_at", None)
+        if exact is not None:
+            return exact(t_s, callback, *args)  # type: ignore[no-any-return]
+        delay_s = max(0.0, t_s - self._clock.now_s())
+        return asyncio.get_running_loop().call_later(delay_s, callback, *args)
 
     def sync(self) -> None:
         """Advance the rack to the clock's present, firing module watchdogs on the way."""
         rack = self._rack
         target = self._clock.now_s() - self._origin_s
-        while self._fed_at and self._watchdog_s is not None:
-            chamber, fed = min(self._fed_at.items(), key=lambda item: item[1])
+        fed_at, watchdog_s = self._fed_at, self._watchdog_s
+        while fed_at and watchdog_s is not None:
+            if min(fed_at.values()) + watchdog_s > target:  # quick: none due yet
+                break
+            chamber, fed = min(fed_at.items(), key=lambda item: item[1])
             due = fed + self._watchdog_s
             if due > target:
                 break
@@ -206,17 +247,30 @@ class SimulatedIO:
         return (chamber,)
 
     # ------------------------------------------------------------------ device calls
-    def _answers(self, chamber: str, device: str) -> bool:
-        """Whether a device answers now; asked of the rack once per simulated instant (the
-        rack brings pending commands into effect on every question, which is costly)."""
+    def _all_answer(self) -> tuple[bool, bool]:
+        """Whether every module, and every optode, answers now; asked of the rack once per
+        simulated instant (the rack brings pending commands into effect on every question,
+        which is costly). What a device answers changes only with the rack's time (faults
+        begin and end as it advances; an injected fault starts at the present instant, so
+        the rack answers for it once its time has moved on), which keys this cache."""
         rack = self._rack
         if self._comm_at_s != rack.t_s:
-            ids = rack.chamber_ids
             modbus, optode = rack.comm_ok_all(_MODBUS), rack.comm_ok_all(_OPTODE)
-            self._comm = {(c, _MODBUS): up for c, up in zip(ids, modbus, strict=True)}
-            self._comm.update(((c, _OPTODE), up) for c, up in zip(ids, optode, strict=True))
+            self._comm_of = {_MODBUS: modbus, _OPTODE: optode}
+            self._comm.clear()  # filled as asked (_answers)
+            self._all_up = (all(modbus), all(optode))
             self._comm_at_s = rack.t_s
-        return self._comm[(chamber, device)]
+        return self._all_up
+
+    def _answers(self, chamber: str, device: str) -> bool:
+        """Whether a device answers now (see :meth:`_all_answer`)."""
+        self._all_answer()
+        comm = self._comm
+        if not comm:
+            ids = self._rack.chamber_ids
+            for kind, ups in self._comm_of.items():
+                comm.update(((c, kind), up) for c, up in zip(ids, ups, strict=True))
+        return comm[(chamber, device)]
 
     async def _silence(self) -> None:
         """Wait for a device that will not answer, as a transport's reply timeout does."""
@@ -307,35 +361,44 @@ class SimulatedIO:
         """
         if type(self).read is not SimulatedIO.read:
             return None
+        safe = self._safe
+        if not all(map(safe.__contains__, chambers)):
+            return None
         self.sync()
         now = self._clock.now_s()
-        safe = self._safe
-        polls = [c in safe and self._optode_due(c, now) for c in chambers]
-        for chamber, poll in zip(chambers, polls, strict=True):
-            if chamber not in safe or not self._answers(chamber, _MODBUS):
-                return None
-            if poll and not self._answers(chamber, _OPTODE):
-                return None
+        latest, age_s = self._optode, self._optode_period_s - 1e-9  # as _optode_due
+        polls = [c not in latest or now - latest[c][0] >= age_s for c in chambers]
+        modbus_up, optode_up = self._all_answer()
+        if not modbus_up and not all(self._answers(c, _MODBUS) for c in chambers):
+            return None
+        if not optode_up and not all(
+            self._answers(c, _OPTODE) for c, poll in zip(chambers, polls, strict=True) if poll
+        ):
+            return None
         sweep = self._rack.sweep(chambers, polls)
         found: dict[str, ChamberReadings | Exception] = {}
+        e_stop = self._e_stop
         for k, chamber in enumerate(chambers):
             error = sweep.errors[k]
             if error is not None:
                 found[chamber] = error
                 continue
             if polls[k]:
-                self._optode[chamber] = (now, sweep.o2_umol_l[k], sweep.o2_sat_pct[k])
-            _, o2_umol_l, o2_sat_pct = self._optode[chamber]
+                latest[chamber] = (now, sweep.o2_umol_l[k], sweep.o2_sat_pct[k])
+            _, o2_umol_l, o2_sat_pct = latest[chamber]
             temperature, par, flow = sweep.temperature_c[k], sweep.par[k], sweep.flow_cm_s[k]
-            failed: set[Quantity] = set()
-            if temperature is None:
-                failed.add(Quantity.TEMPERATURE)
-            if par is None:
-                failed.add(Quantity.PAR)
-            if flow is None:
-                failed.add(Quantity.FLOW)
-            if o2_umol_l is None:
-                failed.add(Quantity.OXYGEN)
+            failed = _NONE_FAILED
+            if temperature is None or par is None or flow is None or o2_umol_l is None:
+                failed = frozenset(
+                    q
+                    for q, value in (
+                        (Quantity.TEMPERATURE, temperature),
+                        (Quantity.PAR, par),
+                        (Quantity.FLOW, flow),
+                        (Quantity.OXYGEN, o2_umol_l),
+                    )
+                    if value is None
+                )
             found[chamber] = ChamberReadings(
                 chamber=chamber,
                 t_s=now,
@@ -343,11 +406,11 @@ class SimulatedIO:
                 par=par,
                 flow_cm_s=flow,
                 level_ok=sweep.level_ok[k],
-                e_stop=chamber in self._e_stop,
+                e_stop=chamber in e_stop,
                 o2_umol_l=o2_umol_l,
                 o2_sat_pct=o2_sat_pct,
                 comm_ok=True,
-                failed=frozenset(failed),
+                failed=failed,
             )
         return found
 
@@ -380,10 +443,11 @@ class SimulatedIO:
         """
         if type(self).write is not SimulatedIO.write:
             return None
+        if not all(map(self._safe.__contains__, outputs)):
+            return None
         self.sync()
-        for chamber in outputs:
-            if chamber not in self._safe or not self._answers(chamber, _MODBUS):
-                return None
+        if not self._all_answer()[0] and not all(self._answers(c, _MODBUS) for c in outputs):
+            return None
         rack = self._rack
         done: dict[str, bool | Exception] = {}
         for chamber, value in outputs.items():

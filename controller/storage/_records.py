@@ -16,7 +16,9 @@ Rules of this module
   (monotonic real time, or simulated time), which restarts when a run is resumed.
 - Sample rows are dataclasses rather than pydantic models on purpose: the control loop builds
   one per chamber per tick, and validation would cost as much as the insert itself. Rows come
-  from the program, not from people; a wrong value there is a bug, not user input.
+  from the program, not from people; a wrong value there is a bug, not user input. The loop
+  goes further and hands the run log each row as the plain tuple of its values in field order
+  (:meth:`SampleRow.values`, :meth:`SampleRow.from_values`), building no object at all.
 - Enums may gain members but never rename them: their values are stored as text.
 """
 
@@ -24,7 +26,9 @@ from __future__ import annotations
 
 import hashlib
 import math
-from dataclasses import dataclass, field
+import operator
+from collections.abc import Sequence
+from dataclasses import dataclass, field, fields
 from datetime import UTC, datetime
 from enum import StrEnum
 from typing import Any
@@ -32,6 +36,7 @@ from typing import Any
 from controller import __version__
 
 __all__ = [
+    "SAMPLE_FIELDS",
     "AlarmAction",
     "AlarmLevel",
     "AlarmRecord",
@@ -180,6 +185,41 @@ class SampleRow:
     alarm: str | None = field(
         default=None, metadata=_doc("Code of the active alarm, None when none.")
     )
+
+    def values(self) -> tuple[Any, ...]:
+        """The row's values in field order (the order :meth:`from_values` takes).
+
+        Returns
+        -------
+        tuple
+            ``t_s`` (s), ``utc_s`` (POSIX s), ``elapsed_s`` (s), ``chamber``, ``phase``, …,
+            ``incubation``, ``alarm``: every field in declaration order, each in its unit.
+        """
+        return _sample_values(self)
+
+    @classmethod
+    def from_values(cls, values: Sequence[Any]) -> SampleRow:
+        """The row whose values, in field order, are ``values``.
+
+        Parameters
+        ----------
+        values
+            One value per field in declaration order (as :meth:`values` gives them), each
+            in the unit its field names; ``incubation`` may be the state's text value.
+
+        Returns
+        -------
+        SampleRow
+            The row.
+        """
+        named = dict(zip(SAMPLE_FIELDS, values, strict=True))
+        named["incubation"] = IncubationState(named["incubation"])
+        return cls(**named)
+
+
+SAMPLE_FIELDS: tuple[str, ...] = tuple(f.name for f in fields(SampleRow))
+"""Field names of :class:`SampleRow` in declaration order: the order of its values tuple."""
+_sample_values = operator.attrgetter(*SAMPLE_FIELDS)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

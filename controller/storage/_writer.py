@@ -27,10 +27,10 @@ from __future__ import annotations
 import contextlib
 import math
 import sqlite3
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from types import TracebackType
-from typing import Any, Self
+from typing import Any, NoReturn, Self
 
 from controller import __version__
 from controller.errors import RuntimeFailure, SquallError
@@ -38,6 +38,7 @@ from controller.errors import RuntimeFailure, SquallError
 from ._columns import columns_of, insert_sql, row_getter
 from ._opening import WriterLock, configure, create_log, refuse_existing, resume_point
 from ._records import (
+    SAMPLE_FIELDS,
     AlarmRecord,
     AuditRecord,
     ClockKind,
@@ -56,6 +57,9 @@ __all__ = ["RunLogWriter"]
 _SAMPLE_COLS = columns_of(SampleRow)
 _SAMPLE_SQL = insert_sql("samples", _SAMPLE_COLS)
 _SAMPLE_ROW = row_getter(_SAMPLE_COLS)
+if tuple(c.name for c in _SAMPLE_COLS) != SAMPLE_FIELDS:  # append_sample_values relies on it
+    raise TypeError("every SampleRow field must be a samples column, in field order")
+_T_S, _UTC_S = SAMPLE_FIELDS.index("t_s"), SAMPLE_FIELDS.index("utc_s")
 
 _RARE_TABLES: dict[type, str] = {
     AlarmRecord: "alarms",
@@ -259,23 +263,72 @@ class RunLogWriter:
         ValueError
             After a resume: a row is not later (UTC) than the log's last sample.
         """
-        if not rows:
-            return
+        if rows:
+            self._append(map(_SAMPLE_ROW, rows), len(rows), rows[0].utc_s, rows[-1].t_s)
+
+    def append_sample_values(self, rows: Sequence[tuple[Any, ...]]) -> None:
+        """As :meth:`append_samples`, each row given as the tuple of its values in
+        :class:`SampleRow` field order (:meth:`SampleRow.values`): the control loop's rows,
+        written without building an object per row.
+
+        Parameters
+        ----------
+        rows
+            Sample rows in time order, each a tuple of every field's value in declaration
+            order (``t_s`` in s, ``utc_s`` in POSIX s, …; units as the fields name them);
+            ``incubation`` may be the state's text value (SQLite binds a plain ``str``
+            faster than an enum member).
+
+        Raises
+        ------
+        RuntimeFailure
+            The rows could not be written; uncommitted rows were dropped.
+        ValueError
+            After a resume: a row is not later (UTC) than the log's last sample.
+        """
+        if rows:
+            self._append(rows, len(rows), rows[0][_UTC_S], rows[-1][_T_S])
+
+    def commit_due(self, t_s: float) -> bool:
+        """Whether sample rows up to clock time ``t_s`` would be committed when handed in now:
+        a session's first rows, ``commit_interval_s`` past the last commit, or a clock that
+        went back.
+
+        Parameters
+        ----------
+        t_s
+            Clock time of the latest row, s.
+
+        Returns
+        -------
+        bool
+            True when :meth:`append_samples` would commit them at once, dimensionless.
+        """
+        if self._last_commit_t_s is None:
+            return True
+        dt_s = t_s - self._last_commit_t_s
+        return dt_s >= self._interval_s or dt_s < 0
+
+    def _append(
+        self, params: Iterable[tuple[Any, ...]], n: int, first_utc_s: float, last_t_s: float
+    ) -> None:
+        """Insert ``n`` sample rows' column values; commit if the interval passed."""
         conn = self._open_conn()
         if self._not_after_utc_s is not None:
-            first = rows[0].utc_s
-            if not first > self._not_after_utc_s:
+            if not first_utc_s > self._not_after_utc_s:
                 raise ValueError(
-                    f"sample at UTC {first} s is not after the last logged sample "
+                    f"sample at UTC {first_utc_s} s is not after the last logged sample "
                     f"({self._not_after_utc_s} s): it would log that time twice"
                 )
             self._not_after_utc_s = None
-        with self._io(f"append {len(rows)} sample row(s)", len(rows)):
+        try:  # as self._io, without a context manager on the every-tick path
             if not conn.in_transaction:
                 conn.execute("BEGIN")
-            conn.executemany(_SAMPLE_SQL, map(_SAMPLE_ROW, rows))
-        self._pending += len(rows)
-        self._after_write(rows[-1].t_s)
+            conn.executemany(_SAMPLE_SQL, params)
+        except sqlite3.Error as exc:
+            self._fail(exc, f"append {n} sample row(s)", n)
+        self._pending += n
+        self._after_write(last_t_s)
 
     def record_alarm(self, alarm: AlarmRecord) -> None:
         """Write an alarm raise, clear or acknowledgement and commit at once.
@@ -439,15 +492,10 @@ class RunLogWriter:
         """Commit a session's first rows at once, then whenever the clock time moved
         ``commit_interval_s`` past the last commit."""
         self._see(t_s)
-        if self._last_commit_t_s is None:
-            # The first rows of a session (a start or a resume) go to disk at once: waiting
-            # for the next batch would put a whole tick at risk when the tick is longer
-            # than the interval.
-            self.flush()
-            return
-        dt_s = t_s - self._last_commit_t_s
-        # dt_s < 0: the clock went back (a bug or a new clock); commit rather than wait.
-        if dt_s >= self._interval_s or dt_s < 0:
+        # The first rows of a session (a start or a resume) go to disk at once: waiting for
+        # the next batch would put a whole tick at risk when the tick is longer than the
+        # interval. A clock that went back (a bug or a new clock) commits rather than waits.
+        if self.commit_due(t_s):
             self.flush()
 
     @contextlib.contextmanager
@@ -455,21 +503,28 @@ class RunLogWriter:
         """Turn SQLite failures into RuntimeFailure after rolling back uncommitted rows."""
         try:
             yield
-        except (sqlite3.IntegrityError, sqlite3.ProgrammingError, sqlite3.InterfaceError):
-            self._abandon()  # a malformed record is a bug: re-raise it unchanged
-            raise
         except sqlite3.Error as exc:
-            lost = self._pending + batch
+            self._fail(exc, what, batch)
+
+    def _fail(self, exc: sqlite3.Error, what: str, batch: int) -> NoReturn:
+        """Roll back uncommitted rows, then raise: a malformed record is a bug (re-raised
+        unchanged), anything else a :class:`RuntimeFailure` saying what was lost."""
+        if isinstance(
+            exc, sqlite3.IntegrityError | sqlite3.ProgrammingError | sqlite3.InterfaceError
+        ):
             self._abandon()
-            upto = (
-                f" (up to clock time {self._last_commit_t_s:g} s)"
-                if self._last_commit_t_s is not None
-                else ""
-            )
-            raise RuntimeFailure(
-                f"run log {self._path}: could not {what}: {exc}. The {lost} row(s) not yet "
-                f"committed were dropped; everything committed earlier{upto} is intact."
-            ) from exc
+            raise exc
+        lost = self._pending + batch
+        self._abandon()
+        upto = (
+            f" (up to clock time {self._last_commit_t_s:g} s)"
+            if self._last_commit_t_s is not None
+            else ""
+        )
+        raise RuntimeFailure(
+            f"run log {self._path}: could not {what}: {exc}. The {lost} row(s) not yet "
+            f"committed were dropped; everything committed earlier{upto} is intact."
+        ) from exc
 
     def _abandon(self) -> None:
         """Roll back the open transaction, if SQLite has not already done so."""

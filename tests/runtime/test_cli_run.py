@@ -136,3 +136,35 @@ def test_the_progress_bar_shows_phase_simulated_time_and_alarms() -> None:
     assert "2027-08-20 05:00 UTC" in text and f"+{format_duration(3600.0)}" in text
     assert "C6: sensor-stale" in text
     assert "━" in text  # the bar itself
+
+
+def test_the_progress_bar_skips_ticks_between_redraws_but_never_a_change() -> None:
+    console = Console(record=True, force_terminal=True, width=160)
+    bar = _Bar(console)
+    wall = [100.0]
+    bar._monotonic = lambda: wall[0]
+
+    def tick(k: int, phase: str = "acclimation", alarms: dict[str, str] | None = None) -> float:
+        bar(
+            TickStatus(
+                tick=k,
+                ticks_total=10,
+                elapsed_s=10.0 * k,
+                duration_s=100.0,
+                phase=phase,
+                utc=datetime(2027, 8, 20, 5, 0, tzinfo=UTC),
+                alarms=alarms or {},
+            )
+        )
+        assert bar.task is not None
+        return bar.progress.tasks[0].completed
+
+    with bar.progress:
+        assert tick(0) == 0.0
+        assert tick(1) == 0.0  # the same wall-clock instant, nothing new: skipped
+        assert tick(2, alarms={"C6": "e-stop"}) == 20.0  # an alarm is shown at once
+        assert tick(3, alarms={"C6": "e-stop"}) == 20.0
+        assert tick(4, phase="storm", alarms={"C6": "e-stop"}) == 40.0  # so is a new phase
+        wall[0] += 2 * bar.every_s
+        assert tick(5, phase="storm", alarms={"C6": "e-stop"}) == 50.0  # time to redraw
+        assert tick(9, phase="storm", alarms={"C6": "e-stop"}) == 90.0  # the last tick
