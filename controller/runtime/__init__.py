@@ -40,7 +40,7 @@ if TYPE_CHECKING:
     from controller.runtime._io import ChamberIO, ChamberReadings, Quantity, stale_readings
     from controller.runtime._launch import LaunchRecord, RigLock
     from controller.runtime._logsink import LogSink, alarm_record
-    from controller.runtime._loop import ControlLoop
+    from controller.runtime._loop import ControlLoop, ImmediateIO
     from controller.runtime._operator import OperatorError, RunState
     from controller.runtime._protocol_clock import ProtocolClock, StartPoint
     from controller.runtime._setpoints import Lookahead, SetpointTable
@@ -71,6 +71,7 @@ _NAMES = {
     "ChamberReadings": "_io",
     "ChamberSettings": "_settings",
     "ControlLoop": "_loop",
+    "ImmediateIO": "_loop",
     "ControlPlan": "_settings",
     "Decider": "_decide",
     "Decision": "_decide",
@@ -128,6 +129,7 @@ __all__ = [
     "GainSource",
     "HardwareIO",
     "HardwareRun",
+    "ImmediateIO",
     "LaunchRecord",
     "LogSink",
     "Lookahead",
