@@ -108,7 +108,7 @@ class Rack:
         self._volume = p.volume_l.copy()
         self._volume_version = 0
         # Lamp hours: lit time up to _lamp_since_s, plus the lit pattern since then.
-        self._lamp_base_s = p.lamp_hours0_h * 3600.0
+        self._lamp_base_s: list[float] = (p.lamp_hours0_h * 3600.0).tolist()
         self._lamp_since_s = 0.0
         self._lamp_lit = np.zeros(len(temps))
         self._lamp_version = -1
@@ -211,6 +211,47 @@ class Rack:
             None if pump_pct is None else _drive(pump_pct, "pump_pct"),
         )
 
+    def set_outputs_all(
+        self, commands: Sequence[tuple[str, float, float, float, float]]
+    ) -> list[Exception | None]:
+        """Command several chambers at once, as :meth:`set_outputs` on each row in turn.
+
+        Parameters
+        ----------
+        commands
+            Per row: chamber identifier, then heater, chiller, lamp and pump drive, % each
+            (0–100).
+
+        Returns
+        -------
+        list
+            Per row None, or the error :meth:`set_outputs` would raise for it (that chamber is
+            then left as it was; the other rows still take effect).
+        """
+        index = self._index
+        rows: list[tuple[int, float, float, float, float]] = []
+        errors: list[Exception | None] = []
+        for cid, heater, chiller, lamp, pump in commands:
+            i = index.get(cid)
+            try:
+                if i is None:
+                    raise KeyError(f"no chamber {cid!r} in this rack")
+                rows.append(
+                    (
+                        i,
+                        _drive(heater, "heater_pct"),
+                        _drive(chiller, "chiller_pct"),
+                        _drive(lamp, "lamp_pct"),
+                        _drive(pump, "pump_pct"),
+                    )
+                )
+            except (KeyError, TypeError, ValueError) as error:
+                errors.append(error)
+                continue
+            errors.append(None)
+        self._act.command_all(rows)
+        return errors
+
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
         i = self._chamber(chamber_id)
@@ -219,8 +260,8 @@ class Rack:
         return Outputs(
             heater_pct=float(act.heater_pct[node]),
             chiller_pct=float(act.chiller_pct[node]),
-            lamp_pct=float(act.lamp_pct[i]),
-            pump_pct=float(act.pump_pct[i]),
+            lamp_pct=act.lamp_pct[i],
+            pump_pct=act.pump_pct[i],
         )
 
     @property
@@ -318,14 +359,14 @@ class Rack:
             o2_sat_pct=100.0 * o2 / sat,
             o2_saturation_umol_l=sat,
             par=float(par[i]),
-            flow_cm_s=float(self._act.flow_cm_s[i]),
-            incubation_open=bool(self._act.flush_l_s[i] > 0.0),
+            flow_cm_s=self._act.flow_cm_s[i],
+            incubation_open=self._act.flush_l_s[i] > 0.0,
             water_volume_l=float(self._volume[i]),
             gpp_umol_m2_h=float(gpp[i]),
             resp_umol_m2_h=float(resp[i]),
             net_umol_m2_h=float(gpp[i] - resp[i]),
-            heater_w=float(self._act.water_w[0, node]),
-            chiller_w=float(self._act.water_w[1, node]),
+            heater_w=self._act.water[0][node],
+            chiller_w=self._act.water[1][node],
             heat_capacity_j_k=float(self._capacity()[node]),
             heater_energy_j=float(heat[0, node]),
             chiller_energy_j=float(heat[1, node]),
@@ -394,7 +435,7 @@ class Rack:
             since = self._t - self._lamp_since_s
             lamps = (self._lamp_base_s, self._lamp_lit, act.new_lamp_par)
             base, par = aged_lamps(*lamps, since, self._lamp_keep)
-            self._lamp_base_s = np.array(base)
+            self._lamp_base_s = base
             self._lamp_since_s = self._t
             self._lamp_lit = act.lit
             self._lamp_version = act.lamp_version
@@ -433,9 +474,8 @@ class Rack:
 
     def _lamp_s(self) -> F:
         """Seconds each lamp has been lit, s."""
-        return np.asarray(
-            self._lamp_base_s + self._lamp_lit * (self._t - self._lamp_since_s), dtype=float
-        )
+        base = np.array(self._lamp_base_s, dtype=float)
+        return np.asarray(base + self._lamp_lit * (self._t - self._lamp_since_s), dtype=float)
 
     def _par_now(self) -> F:
         cold = self._p.cold_output_frac
@@ -477,7 +517,7 @@ class Rack:
         if key != self._water_key:
             self._new_water(key)
         drive = Drive(
-            act.water_w,
+            act.water,
             arrivals,
             act.lit,
             self._par_warm,
@@ -542,13 +582,13 @@ class Rack:
         if np.array_equal(water.warmth, act.lit):
             water = water._replace(warmth=act.lit)
         self._water = water
-        self._lamp_base_s = done.lamp_s
+        self._lamp_base_s = np.asarray(done.lamp_s, dtype=float).tolist()
         self._lamp_since_s = t_s
         self._lamp_lit = act.lit
         self._lamp_version = act.lamp_version
         self._age_steps.clear()
         age = ageing_factor(done.lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
-        self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
+        self._par_warm = np.asarray(np.array(act.new_lamp_par) * age, dtype=float)
         self._configure_water((act.flow_version, self._volume_version))
         self._settle()
 
@@ -595,6 +635,6 @@ class Rack:
         return max(value, 0.0)
 
     def _measure_flow(self, i: int) -> float:
-        value = noisy(float(self._act.flow_cm_s[i]), float(self._p.flow_noise_cm_s[i]), self._rng)
+        value = noisy(self._act.flow_cm_s[i], float(self._p.flow_noise_cm_s[i]), self._rng)
         value += fault_offset(self._book.sensor_faults(i, "flow"), self._t, self._rng)
         return max(value, 0.0)

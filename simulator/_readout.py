@@ -166,7 +166,7 @@ def _group(rack: Rack, indices: list[int], ask: list[bool], out: Sweep, slots: l
     optode_c = water.optode_umol_l.tolist()
     warmth = water.warmth.tolist()
     par_warm = rack._par_warm.tolist()
-    flow_cm_s = rack._act.flow_cm_s.tolist()
+    flow_cm_s = rack._act.flow_cm_s
     volume = rack._volume.tolist()
     t_s = rack._t
     temp_sd, flow_sd, o2_sd, par_frac, cold = c.temp_sd, c.flow_sd, c.o2_sd, c.par_frac, c.cold

@@ -79,7 +79,8 @@ class Drive(NamedTuple):
     Attributes
     ----------
     water_w
-        Heater and chiller power reaching each node at the segment start, W, shape ``(2, M)``.
+        Heater and chiller power reaching each node at the segment start, W, two lists of M
+        values.
     arrivals
         Power changes reaching the water at sub-step boundaries inside the segment.
     lit
@@ -99,7 +100,7 @@ class Drive(NamedTuple):
         equal keys promise equal arrays, dimensionless.
     """
 
-    water_w: F
+    water_w: tuple[list[float], list[float]]
     arrivals: Arrivals
     lit: F
     par_warm: F
@@ -248,7 +249,7 @@ class Stepper:
         """
         room = self._room_c
         span = n * h
-        heater, chiller = drive.water_w.tolist()
+        heater, chiller = drive.water_w
         inv_g, settle = water.inv_g, water.settle_k_s
         t_inf = [
             (w - c) * g + base

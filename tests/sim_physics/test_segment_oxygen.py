@@ -41,7 +41,7 @@ def segment(r: Rack, exchange: np.ndarray, n: int, h: float, key: int):  # type:
     stepper = r._stepper
     act = r._act
     drive = Drive(
-        act.water_w,
+        act.water,
         [],
         act.lit,
         r._par_warm,
