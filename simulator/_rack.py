@@ -34,6 +34,7 @@ from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._actuators import Actuators, Arrivals, substeps
 from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
+from simulator._heat import HeatLedger
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
@@ -124,18 +125,12 @@ class Rack:
         )
         self._age_steps: dict[float, F] = {}
         self._par_warm = np.zeros(len(temps))
-        # Heat bookkeeping (heater and chiller energy live with the actuators): ∫(T − T_room)dt,
-        # and the flushing loss folded per stretch of constant flow ("epoch"), G being
-        # constant within one.
-        self._excess = np.zeros(self._m)
-        self._span_s = 0.0
-        self._flush_done = np.zeros(self._m)
-        self._epoch_excess = np.zeros(self._m)
-        self._epoch_span_s = 0.0
+        # Heat bookkeeping (heater and chiller energy live with the actuators).
+        self._heat = HeatLedger(self._m, p.room_temperature_c, p.inflow_temperature_c)
         self._water_key: tuple[int, int] = (-1, -1)
         self._water_id = 0
-        self._flush_w_k = np.zeros(self._m)
-        self._exchange = np.zeros(len(temps))
+        self._flush_w_k: list[float] = [0.0] * self._m
+        self._exchange: list[float] = [0.0] * len(temps)
         self._node_capacity = self._capacity()
         self._capacity_version = self._volume_version  # the volumes _node_capacity is for
         self._node_list: list[int] = p.node_of_chamber.tolist()
@@ -370,8 +365,8 @@ class Rack:
             heat_capacity_j_k=float(self._capacity()[node]),
             heater_energy_j=float(heat[0, node]),
             chiller_energy_j=float(heat[1, node]),
-            room_loss_j=float(p.ua_w_k[node] * self._excess[node]),
-            flush_loss_j=float(self._flush_loss()[node]),
+            room_loss_j=float(p.ua_w_k[node] * self._heat.excess_k_s[node]),
+            flush_loss_j=self._heat.flush_loss_j()[node],
             probe_temperature_c=float(water.probe_c[i]),
             optode_o2_umol_l=float(water.optode_umol_l[i]),
             lamp_hours_h=float(self._lamp_s()[i] / 3600.0),
@@ -481,19 +476,9 @@ class Rack:
         cold = self._p.cold_output_frac
         return np.asarray(self._par_warm * (cold + (1.0 - cold) * self._water.warmth))
 
-    def _flush_loss(self) -> F:
-        """Heat carried out by flushing since start, J, shape ``(M,)``."""
-        p = self._p
-        excess = self._excess - self._epoch_excess
-        span = self._span_s - self._epoch_span_s
-        inflow = excess + (p.room_temperature_c - p.inflow_temperature_c) * span
-        return np.asarray(self._flush_done + self._flush_w_k * inflow, dtype=float)
-
     def _new_water(self, key: tuple[int, int]) -> None:
         """Flows or volumes changed: close the flushing epoch and recompute what follows."""
-        self._flush_done = self._flush_loss()
-        self._epoch_excess = self._excess.copy()
-        self._epoch_span_s = self._span_s
+        self._heat.close(self._heat.flush_loss_j(), self._heat.excess_k_s, self._heat.span_s)
         self._configure_water(key)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
@@ -504,8 +489,9 @@ class Rack:
         flush_w_k, exchange = water_exchange(
             *flows, self._node_list, self._rho_cp, self._reaeration
         )
-        self._flush_w_k = np.array(flush_w_k)
-        self._exchange = np.array(exchange)
+        self._flush_w_k = flush_w_k
+        self._exchange = exchange
+        self._heat.set_flow(flush_w_k)
         if self._capacity_version != self._volume_version:
             self._node_capacity = self._capacity()
             self._capacity_version = self._volume_version
@@ -535,8 +521,7 @@ class Rack:
                 exponent = np.where(act.lit > 0.0, self._age_rate * span, 0.0)
                 factor = self._age_steps[span] = np.exp(exponent)
             self._par_warm = self._par_warm * factor
-        self._excess += excess
-        self._span_s += span
+        self._heat.add(excess, span)
         masks = self._book.masks
         if masks.leaking:
             p = self._p
@@ -571,11 +556,12 @@ class Rack:
         """Take over the state the open-loop integrator reached at ``t_s`` (s), then settle."""
         act = self._act
         energy = act.energy_j(self._t) + done.heat_j
-        self._flush_done = self._flush_loss() + done.flush_loss_j
-        self._excess = self._excess + done.excess_k_s
-        self._span_s += done.span_s
-        self._epoch_excess = self._excess.copy()
-        self._epoch_span_s = self._span_s
+        heat = self._heat
+        heat.close(
+            (np.array(heat.flush_loss_j()) + done.flush_loss_j).tolist(),
+            (np.array(heat.excess_k_s) + done.excess_k_s).tolist(),
+            heat.span_s + done.span_s,
+        )
         act.load(cmd, done.water_w, done.lines, self._book, energy, t_s)
         self._t = t_s
         water = done.water

@@ -88,9 +88,9 @@ class Drive(NamedTuple):
     par_warm
         PAR the lamp gives when warm (drive and age applied), µmol m⁻² s⁻¹, shape ``(N,)``.
     flush_w_k
-        Flushing heat flow q·ρ·cp of each node, W K⁻¹, shape ``(M,)``.
+        Flushing heat flow q·ρ·cp of each node, W K⁻¹, M values.
     exchange_per_s
-        O2 exchange with air-saturated water (flushing plus re-aeration), s⁻¹, ``(N,)``.
+        O2 exchange with air-saturated water (flushing plus re-aeration), s⁻¹, N values.
     capacity_j_k
         Heat capacity of each node, J K⁻¹, shape ``(M,)``.
     volume_l
@@ -104,8 +104,8 @@ class Drive(NamedTuple):
     arrivals: Arrivals
     lit: F
     par_warm: F
-    flush_w_k: F
-    exchange_per_s: F
+    flush_w_k: list[float]
+    exchange_per_s: list[float]
     capacity_j_k: F
     volume_l: F
     water_key: int
@@ -126,9 +126,9 @@ class _Grid:
     lags: dict[tuple[int, ...], F]  # arrival pattern → max(m − k_j, 0), (M, n + 1)
 
 
-@dataclass(frozen=True, slots=True)
-class _Water:
-    """Coefficients of one grid and water configuration (flows, volumes)."""
+class _Water(NamedTuple):
+    """Coefficients of one grid and water configuration (flows, volumes); a NamedTuple, as
+    pumps change every control tick and a frozen dataclass costs more to build."""
 
     rate: list[float]  # h/τ of each node, M values
     tau_s: list[float]  # τ = C/(UA + G), s
@@ -136,7 +136,6 @@ class _Water:
     t_base_c: list[float]  # (UA·T_room + G·T_in)/(UA + G), °C
     settle_k_s: list[float]  # τ(1 − a^n): ∫ of the transient per K of T_0 − T∞, s
     powers: F  # a^m for m = 0..n, (M, n + 1)
-    neg_rate: F  # −h/τ of each node, (M, 1)
     o2_powers: F  # a_o^m = e^(−k·h·m) for m = 0..n, (N, n + 1)
     o2_scaled: F  # [φ, 1 − a_o]·a_o^(−m) for m = 1..n, (N, 2, n)
     o2_keep: F  # a_o = e^(−k·h), (N,)
@@ -191,7 +190,9 @@ class Stepper:
         self._log_scale: F = np.zeros((len(node_of), 2, 1))
 
     # ------------------------------------------------------------------ segment
-    def step(self, state: WaterState, drive: Drive, n: int, h: float) -> tuple[WaterState, F]:
+    def step(
+        self, state: WaterState, drive: Drive, n: int, h: float
+    ) -> tuple[WaterState, list[float]]:
         """Advance every chamber through ``n`` sub-steps of ``h`` seconds.
 
         Parameters
@@ -209,7 +210,7 @@ class Stepper:
         -------
         tuple
             The state at the segment end, and ∫(T − T_room)dt of each node over the
-            segment, K s, shape ``(M,)``.
+            segment, K s, M values.
         """
         grid = self._grid(n, h)
         water = self._water(n, h, drive)
@@ -240,9 +241,9 @@ class Stepper:
     # ------------------------------------------------------------------ pieces
     def _thermal(
         self, temp_c: F, drive: Drive, grid: _Grid, water: _Water, n: int, h: float
-    ) -> tuple[F, F]:
+    ) -> tuple[F, list[float]]:
         """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``) and ∫(T − T_room)dt
-        of each node (K s, ``(M,)``).
+        of each node (K s, M values).
 
         T_m = T∞ + (T_0 − T∞)·a^m, plus Δ·(1 − a^(m−k)) for m > k for each power change
         arriving at boundary k that moves T∞ by Δ.
@@ -260,6 +261,8 @@ class Stepper:
         ends = np.array((lead, t_inf))[:, :, None]
         path = np.multiply(ends[0], water.powers)
         path += ends[1]
+        if drive.arrivals:
+            neg_rate = np.negative(np.array(water.rate)[:, None])
         for ks, delta in drive.arrivals:
             change = [d * g for d, g in zip(delta, inv_g, strict=True)]
             for j, k in enumerate(ks):
@@ -268,11 +271,11 @@ class Stepper:
                     integral = left * h + water.tau_s[j] * math.expm1(-left * water.rate[j])
                     excess[j] += change[j] * integral
             # Δ·(1 − a^(m−k)) = −Δ·expm1(−(m − k)·h/τ) for m > k, 0 before
-            rise = np.multiply(self._lags(grid, ks, n), water.neg_rate)
+            rise = np.multiply(self._lags(grid, ks, n), neg_rate)
             np.expm1(rise, out=rise)
             rise *= np.array(change)[:, None]
             path -= rise
-        return path, np.array(excess)
+        return path, excess
 
     def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water) -> F:
         """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)``.
@@ -390,28 +393,33 @@ class Stepper:
     def _make_water(self, n: int, h: float, drive: Drive) -> _Water:
         grid = self._grid(n, h)
         inflow = self._p.inflow_temperature_c
-        g_tot = [ua + flush for ua, flush in zip(self._ua, drive.flush_w_k.tolist(), strict=True)]
-        tau = [c / g for c, g in zip(drive.capacity_j_k.tolist(), g_tot, strict=True)]
-        rate = [h / t for t in tau]
-        inv_g = [1.0 / g for g in g_tot]
-        t_base = [
-            (ua_room + flush * inflow) * inv
-            for ua_room, flush, inv in zip(
-                self._ua_room, drive.flush_w_k.tolist(), inv_g, strict=True
-            )
-        ]
-        settle = [-t * math.expm1(-n * r) for t, r in zip(tau, rate, strict=True)]
-        exchange = drive.exchange_per_s.tolist()
-        kh = [k * h for k in exchange]
-        fresh = [-math.expm1(-x) for x in kh]
-        phi = [f / k if x > 0.0 else h for f, k, x in zip(fresh, exchange, kh, strict=True)]
+        rate, tau, inv_g, t_base, settle = [], [], [], [], []
+        for ua, ua_room, flush, capacity in zip(
+            self._ua, self._ua_room, drive.flush_w_k, drive.capacity_j_k.tolist(), strict=True
+        ):
+            g_tot = ua + flush
+            t = capacity / g_tot
+            r = h / t
+            inv = 1.0 / g_tot
+            rate.append(r)
+            tau.append(t)
+            inv_g.append(inv)
+            t_base.append((ua_room + flush * inflow) * inv)
+            settle.append(-t * math.expm1(-n * r))
+        kh, phi, fresh = [], [], []
+        for k in drive.exchange_per_s:
+            x = k * h
+            f = -math.expm1(-x)
+            kh.append(x)
+            phi.append(f / k if x > 0.0 else h)
+            fresh.append(f)
         # a^m and a_o^m for m = 0..n, both as e^(−m·h/τ) and e^(−m·k·h), in one exp
-        exponents = np.array(rate + kh)
-        powers = np.exp(np.multiply.outer(exponents, grid.back))
+        powers = np.exp(np.multiply.outer(rate + kh, grid.back))
         m = len(rate)
         o2_powers = powers[m:]
         gains = np.array((phi, fresh)).T[:, :, None]
-        scaled = max(kh, default=0.0) * n <= _MAX_SCALED_EXPONENT
+        fastest = max(kh, default=0.0)
+        scaled = fastest * n <= _MAX_SCALED_EXPONENT
         o2_scaled = gains / o2_powers[:, None, 1:] if scaled else gains
         return _Water(
             rate=rate,
@@ -420,11 +428,10 @@ class Stepper:
             t_base_c=t_base,
             settle_k_s=settle,
             powers=powers[:m],
-            neg_rate=np.negative(exponents[:m, None]),
             o2_powers=o2_powers,
             o2_scaled=o2_scaled,
             o2_keep=o2_powers[:, 1],
             o2_gain=gains,
             scaled=scaled,
-            exchanging=max(kh, default=0.0) > 0.0,
+            exchanging=fastest > 0.0,
         )
