@@ -278,7 +278,9 @@ class Actuators:
         for drive, k, norm, full in zip(
             lamp_pct, self._lamp_k, self._lamp_norm, self._par_at_full, strict=True
         ):
-            frac = min(max(drive, 0.0), 100.0) / 100.0
+            # min(max(drive, 0), 100) as the builtins decide it (NaN and −0.0 included)
+            drive = 0.0 if 0.0 > drive else drive
+            frac = (100.0 if 100.0 < drive else drive) / 100.0
             par.append(full * (frac if k is None else math.expm1(-k * frac) / norm))
         lit = [1.0 if drive > 0.0 else 0.0 for drive in lamp_pct]
         self.lamp_pct = list(lamp_pct)  # a copy: the caller's list may be the commands
@@ -296,7 +298,10 @@ class Actuators:
         for drive, dead, flow_full, flush_full in zip(
             pump_pct, self._dead_band, self._flow_full, self._flush_full, strict=True
         ):
-            share = max(min(max(drive, 0.0), 100.0) - dead, 0.0) / (100.0 - dead)
+            # max(min(max(drive, 0), 100) − dead, 0) as the builtins decide it
+            drive = 0.0 if 0.0 > drive else drive
+            above = (100.0 if 100.0 < drive else drive) - dead
+            share = (0.0 if 0.0 > above else above) / (100.0 - dead)
             flow.append(share * flow_full)
             flush.append(share * flush_full)
         self.pump_pct = list(pump_pct)  # a copy: the caller's list may be the commands

@@ -114,7 +114,8 @@ class Rack:
         self._lamp_lit = np.zeros(len(temps))
         self._lamp_version = -1
         # PAR of the warm lamps at their drive and present age; while lit it ages by the
-        # factor (1 − loss)^(Δh/1000) = e^(λ·lit·span) per segment, cached per span.
+        # factor (1 − loss)^(Δh/1000) = e^(λ·lit·span) per segment, cached per span for the
+        # present lit pattern (cleared when the pattern, i.e. the act.lit array, changes).
         self._age_rate = (
             np.log1p(
                 -p.ageing_frac_per_1000_h,
@@ -432,9 +433,10 @@ class Rack:
             base, par = aged_lamps(*lamps, since, self._lamp_keep)
             self._lamp_base_s = base
             self._lamp_since_s = self._t
+            if act.lit is not self._lamp_lit:  # the ageing steps depend on the lit pattern
+                self._age_steps.clear()
             self._lamp_lit = act.lit
             self._lamp_version = act.lamp_version
-            self._age_steps.clear()
             self._par_warm = np.array(par)
         if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
             tau = self._p.warmup_tau_s

@@ -47,6 +47,7 @@ F = NDArray[np.float64]
 _CACHE_SIZE = 64
 _SETTLED = 1e-9  # a lamp within this of fully warm (or cold) counts as settled
 _MAX_SCALED_EXPONENT = 500.0  # k·h·n up to this: the O2 sums scaled by a_o^(−m) stay finite
+_BOUND_MARGIN_C = 1e-6  # rounding of a path against its bound (°C): far above 1 ulp
 
 
 class WaterState(NamedTuple):
@@ -212,9 +213,9 @@ class Stepper:
             The state at the segment end, and ∫(T − T_room)dt of each node over the
             segment, K s, M values.
         """
-        grid = self._grid(n, h)
-        water = self._water(n, h, drive)
-        path, excess = self._thermal(state.temp_c, drive, grid, water, n, h)
+        grid = self._grids.get((n, h)) or self._grid(n, h)
+        water = self._waters.get((n, h, drive.water_key)) or self._water(n, h, drive)
+        path, excess, bound = self._thermal(state.temp_c, drive, grid, water, n, h)
 
         chambers = path if self._own_water else path.take(self._node_of, axis=0)
         starts = chambers[:, :-1]
@@ -227,7 +228,8 @@ class Stepper:
             self._log_scale = bio.log_scale(drive.volume_l)
             self._scale_key = drive.volume_l
         bio.factors(inv, self._log_scale, light, terms)
-        if bio.stressed:
+        # the bound says "nowhere near the threshold" without a reduction over the path
+        if bio.stressed and bound + _BOUND_MARGIN_C > bio.lowest_threshold_c:
             hottest = float(path.max())
             if hottest > bio.lowest_threshold_c:
                 bio.stress(starts, terms, hottest)
@@ -241,23 +243,30 @@ class Stepper:
     # ------------------------------------------------------------------ pieces
     def _thermal(
         self, temp_c: F, drive: Drive, grid: _Grid, water: _Water, n: int, h: float
-    ) -> tuple[F, list[float]]:
-        """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``) and ∫(T − T_room)dt
-        of each node (K s, M values).
+    ) -> tuple[F, list[float], float]:
+        """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``), ∫(T − T_room)dt
+        of each node (K s, M values) and an upper bound of the path (°C; ``inf`` when power
+        arrives inside the segment).
 
         T_m = T∞ + (T_0 − T∞)·a^m, plus Δ·(1 − a^(m−k)) for m > k for each power change
-        arriving at boundary k that moves T∞ by Δ.
+        arriving at boundary k that moves T∞ by Δ. Without such a change each node's path
+        runs from T_0 towards T∞, so it stays between the two.
         """
         room = self._room_c
         span = n * h
         heater, chiller = drive.water_w
-        inv_g, settle = water.inv_g, water.settle_k_s
-        t_inf = [
-            (w - c) * g + base
-            for w, c, g, base in zip(heater, chiller, inv_g, water.t_base_c, strict=True)
-        ]
-        lead = [t - ti for t, ti in zip(temp_c.tolist(), t_inf, strict=True)]
-        excess = [(ti - room) * span + d * k for ti, d, k in zip(t_inf, lead, settle, strict=True)]
+        inv_g = water.inv_g
+        starts = temp_c.tolist()
+        t_inf, lead, excess = [], [], []
+        for w, c, g, base, t, k in zip(
+            heater, chiller, inv_g, water.t_base_c, starts, water.settle_k_s, strict=True
+        ):
+            ti = (w - c) * g + base
+            d = t - ti
+            t_inf.append(ti)
+            lead.append(d)
+            excess.append((ti - room) * span + d * k)
+        bound = math.inf if drive.arrivals else max(max(starts), max(t_inf))
         ends = np.array((lead, t_inf))[:, :, None]
         path = np.multiply(ends[0], water.powers)
         path += ends[1]
@@ -275,7 +284,7 @@ class Stepper:
             np.expm1(rise, out=rise)
             rise *= np.array(change)[:, None]
             path -= rise
-        return path, excess
+        return path, excess, bound
 
     def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water) -> F:
         """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)``.
