@@ -32,13 +32,12 @@ from numpy.typing import NDArray
 from controller.rig import Fault, FaultKind, Rig
 from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._actuators import Actuators, Arrivals, substeps
-from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
 from simulator._heat import HeatLedger
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
-from simulator._physics import aged_lamps, ageing_factor, water_exchange
+from simulator._physics import aged_lamps, water_exchange
 from simulator._readout import Sweep, sweep
 from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
@@ -537,48 +536,6 @@ class Rack:
         w = self._water
         temps = w.temp_c[self._p.node_of_chamber]
         return np.stack((temps, w.o2_umol_l, self._par_now(), w.probe_c, w.optode_umol_l))
-
-    def _block_start(self) -> BlockStart:
-        """The state the open-loop integrator starts a block from (now)."""
-        act = self._act
-        key = (act.flow_version, self._volume_version)
-        if key != self._water_key:  # e.g. volumes changed by a leak that just ended
-            self._new_water(key)
-        return BlockStart(
-            water=self._water,
-            water_w=act.water_w,
-            lines=act.pending(),
-            sent_w=act.sent_w(),
-            lamp_s=self._lamp_s(),
-            volume_l=self._volume,
-            capacity_j_k=self._node_capacity,
-        )
-
-    def _block_end(self, done: BlockEnd, cmd: F, t_s: float) -> None:
-        """Take over the state the open-loop integrator reached at ``t_s`` (s), then settle."""
-        act = self._act
-        energy = act.energy_j(self._t) + done.heat_j
-        heat = self._heat
-        heat.close(
-            (np.array(heat.flush_loss_j()) + done.flush_loss_j).tolist(),
-            (np.array(heat.excess_k_s) + done.excess_k_s).tolist(),
-            heat.span_s + done.span_s,
-        )
-        act.load(cmd, done.water_w, done.lines, self._book, energy, t_s)
-        self._t = t_s
-        water = done.water
-        if np.array_equal(water.warmth, act.lit):
-            water = water._replace(warmth=act.lit)
-        self._water = water
-        self._lamp_base_s = np.asarray(done.lamp_s, dtype=float).tolist()
-        self._lamp_since_s = t_s
-        self._lamp_lit = act.lit
-        self._lamp_version = act.lamp_version
-        self._age_steps.clear()
-        age = ageing_factor(done.lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
-        self._par_warm = np.asarray(np.array(act.new_lamp_par) * age, dtype=float)
-        self._configure_water((act.flow_version, self._volume_version))
-        self._settle()
 
     def _reachable(self, i: int, sensor: str) -> object | None:
         """Raise SensorNoReply if the sensor is silent; return a stuck value if frozen."""
