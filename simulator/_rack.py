@@ -231,18 +231,20 @@ class Rack:
             try:
                 if i is None:
                     raise KeyError(f"no chamber {cid!r} in this rack")
-                rows.append(
-                    (
-                        i,
-                        _drive(heater, "heater_pct"),
-                        _drive(chiller, "chiller_pct"),
-                        _drive(lamp, "lamp_pct"),
-                        _drive(pump, "pump_pct"),
-                    )
-                )
+                if not (
+                    0.0 <= heater <= 100.0
+                    and 0.0 <= chiller <= 100.0
+                    and 0.0 <= lamp <= 100.0
+                    and 0.0 <= pump <= 100.0
+                ):  # the checks of _drive without a call per drive; _drive names the culprit
+                    _drive(heater, "heater_pct")
+                    _drive(chiller, "chiller_pct")
+                    _drive(lamp, "lamp_pct")
+                    _drive(pump, "pump_pct")
             except (KeyError, TypeError, ValueError) as error:
                 errors.append(error)
                 continue
+            rows.append((i, float(heater), float(chiller), float(lamp), float(pump)))
             errors.append(None)
         self._act.command_all(rows)
         return errors

@@ -245,12 +245,12 @@ class Stepper:
         self, temp_c: F, drive: Drive, grid: _Grid, water: _Water, n: int, h: float
     ) -> tuple[F, list[float], float]:
         """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``), ∫(T − T_room)dt
-        of each node (K s, M values) and an upper bound of the path (°C; ``inf`` when power
-        arrives inside the segment).
+        of each node (K s, M values) and an upper bound of the path (°C).
 
         T_m = T∞ + (T_0 − T∞)·a^m, plus Δ·(1 − a^(m−k)) for m > k for each power change
-        arriving at boundary k that moves T∞ by Δ. Without such a change each node's path
-        runs from T_0 towards T∞, so it stays between the two.
+        arriving at boundary k that moves T∞ by Δ. Between changes each node's path runs
+        monotonically from where it is towards the T∞ then in force: without a change the
+        higher of its ends bounds it, with changes the highest of its start and those T∞.
         """
         room = self._room_c
         span = n * h
@@ -266,14 +266,18 @@ class Stepper:
             t_inf.append(ti)
             lead.append(d)
             excess.append((ti - room) * span + d * k)
-        bound = math.inf if drive.arrivals else max(max(starts), max(t_inf))
         ends = np.array((lead, t_inf))[:, :, None]
         path = np.multiply(ends[0], water.powers)
         path += ends[1]
-        if drive.arrivals:
-            neg_rate = np.negative(np.array(water.rate)[:, None])
+        if not drive.arrivals:
+            return path, excess, max(max(starts), max(path[:, -1].tolist()))
+        bound = max(max(starts), max(t_inf))
+        neg_rate = np.array([-r for r in water.rate])[:, None]
+        settling = t_inf
         for ks, delta in drive.arrivals:
             change = [d * g for d, g in zip(delta, inv_g, strict=True)]
+            settling = [ti + c for ti, c in zip(settling, change, strict=True)]
+            bound = max(bound, max(settling))
             for j, k in enumerate(ks):
                 if k < n:
                     left = n - k
