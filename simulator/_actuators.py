@@ -126,13 +126,13 @@ class Actuators:
     water
         Heater and chiller power reaching each node's water now, W, two lists of M values
         (updated in place as queued power arrives; :attr:`water_w` is an array copy).
+    flow_version, lamp_version
+        Counters raised whenever pump flow or lamp output changes, dimensionless.
 
     Notes
     -----
     Per-chamber values are plain lists: a control tick changes them all and reads them one
     by one (8 chambers are too few for numpy to pay).
-    flow_version, lamp_version
-        Counters raised whenever pump flow or lamp output changes, dimensionless.
     """
 
     def __init__(self, p: RackParams) -> None:
