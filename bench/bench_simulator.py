@@ -30,11 +30,16 @@ Run: ``/work/venv/bin/python bench/bench_simulator.py [--ticks 1,10,60,600] [--d
 rack at a 10 s tick on the example rig, with every drive changing every tick as a controller
 changes them (heaters, sun-like lamps, flow-controlled pumps): ``set_outputs`` on all 8
 chambers, ``advance(10)``, ``comm_ok_all`` for both devices and one ``sweep`` of every
-chamber (optodes every third tick). Best of ``--repeats`` runs, ms per tick. With
+chamber (optodes every third tick). With ``--through-io`` the same program goes through the
+simulated I/O as the loop drives it at ``--speed max`` (``SimulatedIO.sync`` at the tick,
+then ``read_now`` of every chamber and ``write_now`` of the drives; optodes polled every
+30 s): the simulator's whole share of a tick, readings built included. Best of
+``--repeats`` runs, ms per tick of the thread's CPU time (other processes on the shared
+machine count less than in wall time). With
 ``--against TREE`` the same program runs, alternately in fresh processes, on the simulator of
 another checkout (e.g. the base commit's) and the ratio is printed: measured side by side
 in one run of this bench. ``/work/venv/bin/python bench/bench_simulator.py --tick-cost
-[--against /work/main] [--tick-count 4000] [--repeats 5]``.
+[--through-io] [--against /work/main] [--tick-count 4000] [--repeats 5]``.
 """
 
 from __future__ import annotations
@@ -199,15 +204,55 @@ def tick_program(rig: Rig, ticks: int) -> list[list[tuple[float, float, float, f
     return np.stack((heater, chiller, lamp, pump), axis=2).tolist()  # type: ignore[no-any-return]
 
 
+class _TickClock:
+    """The clock of ``--through-io``: moved by hand, one tick at a time, s."""
+
+    def __init__(self) -> None:
+        self.t_s = 0.0
+
+    def now_s(self) -> float:
+        return self.t_s
+
+
+def tick_cost_through_io(ticks: int, repeats: int) -> float:
+    """Best CPU time per tick of the simulator's share of a 10 s control tick, through the
+    simulated I/O as the loop drives it at full speed, ms."""
+    from controller.control import Outputs
+    from controller.runtime import SimulatedIO
+
+    rig = load_model(RIG, Rig)
+    program = tick_program(rig, ticks)
+    best = float("inf")
+    for _ in range(repeats):
+        clock = _TickClock()
+        io = SimulatedIO(Rack(rig, seed=1), clock, step_s=10.0, watchdog_s=30.0)  # type: ignore[arg-type]
+        ids = list(io.chambers)
+        commands = [
+            {
+                cid: Outputs(heater_pct=heat, chiller_pct=cool, lamp_pct=lamp, pump_pct=pump)
+                for cid, (heat, cool, lamp, pump) in zip(ids, row, strict=True)
+            }
+            for row in program
+        ]
+        begin = time.thread_time()
+        for outputs in commands:
+            clock.t_s += 10.0
+            io.sync()
+            io.read_now(ids)
+            io.write_now(outputs)
+        best = min(best, time.thread_time() - begin)
+    return 1000.0 * best / ticks
+
+
 def tick_cost(ticks: int, repeats: int) -> float:
-    """Best wall time per tick of the rack's work in a 10 s control tick, ms."""
+    """Best CPU time per tick of the rack's work in a 10 s control tick, ms."""
     rig = load_model(RIG, Rig)
     program = tick_program(rig, ticks)
     best = float("inf")
     for _ in range(repeats):
         rack = Rack(rig, seed=1)
         ids = list(rack.chamber_ids)
-        begin = time.perf_counter()
+        begin = time.thread_time()
         for k, row in enumerate(program):
             for cid, (heat, cool, lamp, pump) in zip(ids, row, strict=True):
                 rack.set_outputs(
@@ -217,24 +262,26 @@ def tick_cost(ticks: int, repeats: int) -> float:
             rack.comm_ok_all("modbus")
             rack.comm_ok_all("optode")
             rack.sweep(ids, [k % 3 == 0] * len(ids))
-        best = min(best, time.perf_counter() - begin)
+        best = min(best, time.thread_time() - begin)
     return 1000.0 * best / ticks
 
 
-def tick_cost_side_by_side(against: str, ticks: int, repeats: int) -> None:
+def tick_cost_side_by_side(against: str, ticks: int, repeats: int, through_io: bool) -> None:
     """This tree's tick cost against another checkout's, alternating fresh processes."""
     here = str(Path(__file__).resolve().parent.parent)
     found: dict[str, list[float]] = {here: [], against: []}
+    mode = ["--through-io"] if through_io else []
     for _ in range(repeats):
         for tree in (against, here):
             env = {**os.environ, "PYTHONPATH": tree}
-            args = [sys.executable, __file__, "--tick-cost", "--tick-count", str(ticks)]
+            args = [sys.executable, __file__, "--tick-cost", *mode, "--tick-count", str(ticks)]
             out = subprocess.run(
                 [*args, "--repeats", "1"], env=env, capture_output=True, text=True, check=True
             )
             found[tree].append(float(out.stdout.split()[-2]))
     base, mine = min(found[against]), min(found[here])
-    print(f"rack work per 10 s tick, 8 chambers, best of {repeats} alternating processes:")
+    what = "simulator's share (through the simulated I/O)" if through_io else "rack work"
+    print(f"{what} per 10 s tick, 8 chambers, best of {repeats} alternating processes:")
     print(f"  {against}: {base:.4f} ms/tick")
     print(f"  {here}: {mine:.4f} ms/tick")
     print(f"  ratio this/other: {mine / base:.3f}")
@@ -251,15 +298,19 @@ def main() -> None:
         help="most ticks stepped one by one per interval (the rate is extrapolated)",
     )
     parser.add_argument("--tick-cost", action="store_true", help="rack work per control tick")
+    parser.add_argument(
+        "--through-io", action="store_true", help="--tick-cost through SimulatedIO, as the loop"
+    )
     parser.add_argument("--against", help="another checkout to compare the tick cost with")
     parser.add_argument("--tick-count", type=int, default=4000, help="ticks of --tick-cost")
     parser.add_argument("--repeats", type=int, default=5, help="best of this many runs")
     args = parser.parse_args()
     if args.tick_cost and args.against:
-        tick_cost_side_by_side(args.against, args.tick_count, args.repeats)
+        tick_cost_side_by_side(args.against, args.tick_count, args.repeats, args.through_io)
         return
     if args.tick_cost:
-        print(f"rack work per 10 s tick: {tick_cost(args.tick_count, args.repeats):.4f} ms/tick")
+        cost = tick_cost_through_io if args.through_io else tick_cost
+        print(f"work per 10 s tick: {cost(args.tick_count, args.repeats):.4f} ms/tick")
         return
     rig = load_model(RIG, Rig)
     span = args.days * DAY_S

@@ -112,21 +112,27 @@ class Actuators:
     heater_pct, chiller_pct
         Effective heater and chiller drive of each thermal node, %, M values.
     lamp_pct, pump_pct
-        Effective lamp and pump drive of each chamber, %, shape ``(N,)``.
+        Effective lamp and pump drive of each chamber, %, N values.
     lit
         1 where a lamp is on, else 0, shape ``(N,)``.
     any_lit
         Whether any lamp is on.
     new_lamp_par
-        PAR of each lamp when new and warm at its drive, µmol m⁻² s⁻¹, shape ``(N,)``.
+        PAR of each lamp when new and warm at its drive, µmol m⁻² s⁻¹, N values.
     flow_cm_s
-        Flow over each community, cm s⁻¹, shape ``(N,)``.
+        Flow over each community, cm s⁻¹, N values.
     flush_l_s
-        Fresh inflow into each chamber, L s⁻¹, shape ``(N,)``.
-    water_w
-        Heater and chiller power reaching each node's water now, W, shape ``(2, M)``.
+        Fresh inflow into each chamber, L s⁻¹, N values.
+    water
+        Heater and chiller power reaching each node's water now, W, two lists of M values
+        (updated in place as queued power arrives; :attr:`water_w` is an array copy).
     flow_version, lamp_version
         Counters raised whenever pump flow or lamp output changes, dimensionless.
+
+    Notes
+    -----
+    Per-chamber values are plain lists: a control tick changes them all and reads them one
+    by one (8 chambers are too few for numpy to pay).
     """
 
     def __init__(self, p: RackParams) -> None:
@@ -154,17 +160,16 @@ class Actuators:
         self._faulted = False
         self._energy_j = [[0.0] * m, [0.0] * m]  # heater, chiller, up to _since_s
         self._since_s = [0.0] * m  # when each node's present power began, s
-        self._water = ([0.0] * m, [0.0] * m)  # heater, chiller power reaching the water, W
-        self.water_w = np.zeros((2, m))
+        self.water: tuple[list[float], list[float]] = ([0.0] * m, [0.0] * m)
         self.heater_pct: list[float] = [0.0] * m
         self.chiller_pct: list[float] = [0.0] * m
-        self.lamp_pct = np.zeros(n)
-        self.pump_pct = np.zeros(n)
+        self.lamp_pct: list[float] = [0.0] * n
+        self.pump_pct: list[float] = [0.0] * n
         self.lit = np.zeros(n)
         self.any_lit = False
-        self.new_lamp_par = np.zeros(n)
-        self.flow_cm_s = np.zeros(n)
-        self.flush_l_s = np.zeros(n)
+        self.new_lamp_par: list[float] = [0.0] * n
+        self.flow_cm_s: list[float] = [0.0] * n
+        self.flush_l_s: list[float] = [0.0] * n
         self.flow_version = 0
         self.lamp_version = 0
         self._dirty = _POWER | _LAMP | _PUMP
@@ -197,6 +202,26 @@ class Actuators:
             cmd[3][chamber] = pump
             self._dirty |= _PUMP
 
+    def command_all(self, rows: list[tuple[int, float, float, float, float]]) -> None:
+        """Store drives (%) for several chambers: per row (chamber, heater, chiller, lamp,
+        pump), as :meth:`command` on each row in turn."""
+        heater_c, chiller_c, lamp_c, pump_c = self._cmd
+        dirty = self._dirty
+        for i, heater, chiller, lamp, pump in rows:
+            if heater_c[i] != heater:
+                heater_c[i] = heater
+                dirty |= _POWER
+            if chiller_c[i] != chiller:
+                chiller_c[i] = chiller
+                dirty |= _POWER
+            if lamp_c[i] != lamp:
+                lamp_c[i] = lamp
+                dirty |= _LAMP
+            if pump_c[i] != pump:
+                pump_c[i] = pump
+                dirty |= _PUMP
+        self._dirty = dirty
+
     def commands(self) -> F:
         """Commanded drives, %, shape ``(4, N)`` (heater, chiller, lamp, pump)."""
         return np.array(self._cmd)
@@ -227,10 +252,11 @@ class Actuators:
                 np.array(cmd[3]),
                 masks,
             )
-            if not np.array_equal(eff.lamp_pct, self.lamp_pct):
-                self._set_lamp(eff.lamp_pct.tolist())
-            if not np.array_equal(eff.pump_pct, self.pump_pct):
-                self._set_pump(eff.pump_pct.tolist())
+            lamp, pump = eff.lamp_pct.tolist(), eff.pump_pct.tolist()
+            if lamp != self.lamp_pct:
+                self._set_lamp(lamp)
+            if pump != self.pump_pct:
+                self._set_pump(pump)
             self.heater_pct = eff.heater_pct.tolist()
             self.chiller_pct = eff.chiller_pct.tolist()
             self._queue(t_s)
@@ -252,11 +278,13 @@ class Actuators:
         for drive, k, norm, full in zip(
             lamp_pct, self._lamp_k, self._lamp_norm, self._par_at_full, strict=True
         ):
-            frac = min(max(drive, 0.0), 100.0) / 100.0
+            # min(max(drive, 0), 100) as the builtins decide it (NaN and −0.0 included)
+            drive = 0.0 if 0.0 > drive else drive
+            frac = (100.0 if 100.0 < drive else drive) / 100.0
             par.append(full * (frac if k is None else math.expm1(-k * frac) / norm))
         lit = [1.0 if drive > 0.0 else 0.0 for drive in lamp_pct]
-        self.lamp_pct = np.array(lamp_pct, dtype=float)
-        self.new_lamp_par = np.array(par)
+        self.lamp_pct = list(lamp_pct)  # a copy: the caller's list may be the commands
+        self.new_lamp_par = par
         if lit != self._lit_list:  # the same pattern keeps its array: consumers test identity
             self._lit_list = lit
             self.lit = np.array(lit)
@@ -270,12 +298,15 @@ class Actuators:
         for drive, dead, flow_full, flush_full in zip(
             pump_pct, self._dead_band, self._flow_full, self._flush_full, strict=True
         ):
-            share = max(min(max(drive, 0.0), 100.0) - dead, 0.0) / (100.0 - dead)
+            # max(min(max(drive, 0), 100) − dead, 0) as the builtins decide it
+            drive = 0.0 if 0.0 > drive else drive
+            above = (100.0 if 100.0 < drive else drive) - dead
+            share = (0.0 if 0.0 > above else above) / (100.0 - dead)
             flow.append(share * flow_full)
             flush.append(share * flush_full)
-        self.pump_pct = np.array(pump_pct, dtype=float)
-        self.flow_cm_s = np.array(flow)
-        self.flush_l_s = np.array(flush)
+        self.pump_pct = list(pump_pct)  # a copy: the caller's list may be the commands
+        self.flow_cm_s = flow
+        self.flush_l_s = flush
         self.flow_version += 1
 
     def _queue(self, t_s: float) -> None:
@@ -299,7 +330,7 @@ class Actuators:
         """Let queued power changes that have arrived by ``t_s`` (s) reach the water."""
         if t_s + _EPS_S < self._next_arrival_s:
             return
-        heater, chiller = self._water
+        heater, chiller = self.water
         heater_j, chiller_j = self._energy_j
         since = self._since_s
         best = math.inf
@@ -314,7 +345,11 @@ class Actuators:
             if line and line[0][0] < best:
                 best = line[0][0]
         self._next_arrival_s = best
-        self.water_w = np.array(self._water)
+
+    @property
+    def water_w(self) -> F:
+        """Heater and chiller power reaching each node's water now, W, shape ``(2, M)``."""
+        return np.array(self.water, dtype=float)
 
     def energy_j(self, t_s: float) -> F:
         """Heat delivered by each node's heater and removed by its chiller since start.
@@ -347,7 +382,7 @@ class Actuators:
         m = self._m
         rounds: list[tuple[list[int], list[float]]] = []
         snaps: list[tuple[deque[tuple[float, float, float]], int, tuple[float, float, float]]] = []
-        heater, chiller = self._water
+        heater, chiller = self.water
         for j, line in enumerate(self._line):
             net = heater[j] - chiller[j]
             for index, (arrive, heater_w, chiller_w) in enumerate(line):
@@ -421,10 +456,12 @@ class Actuators:
         self._since_s = [t_s] * self._m
         self._cmd = [[float(v) for v in row] for row in cmd]
         eff = effective_drives(self._p, cmd[0], cmd[1], cmd[2], cmd[3], book.masks)
-        if not np.array_equal(eff.lamp_pct, self.lamp_pct):
-            self._set_lamp(np.asarray(eff.lamp_pct, dtype=float).tolist())
-        if not np.array_equal(eff.pump_pct, self.pump_pct):
-            self._set_pump(np.asarray(eff.pump_pct, dtype=float).tolist())
+        lamp = np.asarray(eff.lamp_pct, dtype=float).tolist()
+        pump = np.asarray(eff.pump_pct, dtype=float).tolist()
+        if lamp != self.lamp_pct:
+            self._set_lamp(lamp)
+        if pump != self.pump_pct:
+            self._set_pump(pump)
         self.heater_pct = np.asarray(eff.heater_pct, dtype=float).tolist()
         self.chiller_pct = np.asarray(eff.chiller_pct, dtype=float).tolist()
         self._faulted = book.masks.actuators_hit
@@ -434,8 +471,8 @@ class Actuators:
             (heater[j] * self._heater_w_pct[j], chiller[j] * self._chiller_w_pct[j])
             for j in range(self._m)
         ]
-        self.water_w = np.array(water_w, dtype=float)
-        self._water = (self.water_w[0].tolist(), self.water_w[1].tolist())
+        power = np.asarray(water_w, dtype=float)
+        self.water = (power[0].tolist(), power[1].tolist())
         self._line = [deque(line) for line in lines]
         heads = [line[0][0] for line in self._line if line]
         self._next_arrival_s = min(heads) if heads else math.inf

@@ -1,4 +1,5 @@
-"""Open-loop programs: a whole schedule of drives integrated at once.
+"""Open-loop programs: a whole schedule of drives integrated at once (and the hand-over of
+the rack's state to and from the block integrator).
 
 Rule: running a schedule gives the same trajectories (to rounding) as doing, for every row,
 ``set_outputs`` on every chamber and ``advance`` to the next switch: the same sub-step grid,
@@ -21,7 +22,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from simulator._actuators import effective_drives
-from simulator._batch import integrate_block
+from simulator._batch import BlockEnd, BlockStart, integrate_block
+from simulator._physics import ageing_factor
 
 if TYPE_CHECKING:
     from simulator._rack import Rack
@@ -209,10 +211,10 @@ def run_open_loop(rack: Rack, schedule: OpenLoopSchedule) -> OpenLoopRun:
             continue
         eff = effective_drives(rack._p, *(d[rows] for d in drives), rack._book.masks)
         done = integrate_block(
-            rack._p, rack._table, rack._bio, rack._block_start(), piece_t, eff, queued,
+            rack._p, rack._table, rack._bio, _block_start(rack), piece_t, eff, queued,
             sample_to, out,
         )  # fmt: skip
-        rack._block_end(done, np.stack([d[last - 1] for d in drives]), b1)
+        _block_end(rack, done, np.stack([d[last - 1] for d in drives]), b1)
     return OpenLoopRun(
         t_s=ends,
         temperature_c=out[0].T,
@@ -248,3 +250,47 @@ def _step_through(
         rack.advance(float(piece_t[q + 1]) - rack.t_s)
         if sample_to[q] >= 0:
             out[:, :, sample_to[q]] = rack._sample()
+
+
+def _block_start(rack: Rack) -> BlockStart:
+    """The state the open-loop integrator starts a block from (now)."""
+    act = rack._act
+    key = (act.flow_version, rack._volume_version)
+    if key != rack._water_key:  # e.g. volumes changed by a leak that just ended
+        rack._new_water(key)
+    return BlockStart(
+        water=rack._water,
+        water_w=act.water_w,
+        lines=act.pending(),
+        sent_w=act.sent_w(),
+        lamp_s=rack._lamp_s(),
+        volume_l=rack._volume,
+        capacity_j_k=rack._node_capacity,
+    )
+
+
+def _block_end(rack: Rack, done: BlockEnd, cmd: F, t_s: float) -> None:
+    """Take over the state the open-loop integrator reached at ``t_s`` (s), then settle."""
+    act = rack._act
+    energy = act.energy_j(rack._t) + done.heat_j
+    heat = rack._heat
+    heat.close(
+        (np.array(heat.flush_loss_j()) + done.flush_loss_j).tolist(),
+        (np.array(heat.excess_k_s) + done.excess_k_s).tolist(),
+        heat.span_s + done.span_s,
+    )
+    act.load(cmd, done.water_w, done.lines, rack._book, energy, t_s)
+    rack._t = t_s
+    water = done.water
+    if np.array_equal(water.warmth, act.lit):
+        water = water._replace(warmth=act.lit)
+    rack._water = water
+    rack._lamp_base_s = np.asarray(done.lamp_s, dtype=float).tolist()
+    rack._lamp_since_s = t_s
+    rack._lamp_lit = act.lit
+    rack._lamp_version = act.lamp_version
+    rack._age_steps.clear()
+    age = ageing_factor(done.lamp_s / 3600.0, rack._p.ageing_frac_per_1000_h)
+    rack._par_warm = np.asarray(np.array(act.new_lamp_par) * age, dtype=float)
+    rack._configure_water((act.flow_version, rack._volume_version))
+    rack._settle()

@@ -381,18 +381,22 @@ def pump_fraction(drive_pct: F, dead_band_pct: F) -> F:
 
 
 def aged_lamps(
-    lit_before_s: F, lit: F, new_par: F, since_s: float, keep_per_1000_h: list[float]
+    lit_before_s: list[float],
+    lit: F,
+    new_par: list[float],
+    since_s: float,
+    keep_per_1000_h: list[float],
 ) -> tuple[list[float], list[float]]:
     """Lamp hours and aged warm PAR of every lamp when the lamps change, in plain floats.
 
     Parameters
     ----------
     lit_before_s
-        Seconds each lamp had been lit at the previous change, s, shape ``(N,)``.
+        Seconds each lamp had been lit at the previous change, s, N values.
     lit
         1 where the lamp was on since then, else 0, dimensionless, shape ``(N,)``.
     new_par
-        PAR of each lamp when new and warm at its new drive, µmol photons m⁻² s⁻¹, ``(N,)``.
+        PAR of each lamp when new and warm at its new drive, µmol photons m⁻² s⁻¹, N values.
     since_s
         Time since the previous change, s.
     keep_per_1000_h
@@ -404,17 +408,16 @@ def aged_lamps(
         Seconds lit now (s), and PAR at the new drive and present age (µmol photons m⁻² s⁻¹):
         :func:`ageing_factor` applied with the same operations, one lamp at a time.
     """
-    before, on_off = lit_before_s.tolist(), lit.tolist()
-    seconds = [done + on * since_s for done, on in zip(before, on_off, strict=True)]
+    seconds = [done + on * since_s for done, on in zip(lit_before_s, lit.tolist(), strict=True)]
     par = [
         new * keep ** (s / 3600.0 / 1000.0)
-        for new, keep, s in zip(new_par.tolist(), keep_per_1000_h, seconds, strict=True)
+        for new, keep, s in zip(new_par, keep_per_1000_h, seconds, strict=True)
     ]
     return seconds, par
 
 
 def water_exchange(
-    flush_l_s: F,
+    flush_l_s: list[float],
     volume_l: F,
     node_of: list[int],
     rho_cp_j_l_k: list[float],
@@ -425,7 +428,7 @@ def water_exchange(
     Parameters
     ----------
     flush_l_s
-        Fresh inflow into each chamber, L s⁻¹, shape ``(N,)``.
+        Fresh inflow into each chamber, L s⁻¹, N values.
     volume_l
         Water in each chamber, L, shape ``(N,)``.
     node_of
@@ -445,7 +448,7 @@ def water_exchange(
     flush_w_k = [0.0] * (max(node_of, default=-1) + 1)
     exchange = []
     for node, flush, rho_cp, volume, aeration in zip(
-        node_of, flush_l_s.tolist(), rho_cp_j_l_k, volume_l.tolist(), reaeration_per_s, strict=True
+        node_of, flush_l_s, rho_cp_j_l_k, volume_l.tolist(), reaeration_per_s, strict=True
     ):
         flush_w_k[node] += flush * rho_cp
         exchange.append(flush / volume + (aeration if flush > 0.0 else 0.0))

@@ -32,12 +32,12 @@ from numpy.typing import NDArray
 from controller.rig import Fault, FaultKind, Rig
 from controller.science.oxygen import solubility_umol_l_scalar
 from simulator._actuators import Actuators, Arrivals, substeps
-from simulator._batch import BlockEnd, BlockStart
 from simulator._faults import FaultBook, ScheduledFault
+from simulator._heat import HeatLedger
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
 from simulator._oxygen import Metabolism, metabolism
 from simulator._params import resolve
-from simulator._physics import aged_lamps, ageing_factor, water_exchange
+from simulator._physics import aged_lamps, water_exchange
 from simulator._readout import Sweep, sweep
 from simulator._science import SaturationTable, saturation_umol_l
 from simulator._sensors import fault_offset, noisy, optode_reading
@@ -108,12 +108,13 @@ class Rack:
         self._volume = p.volume_l.copy()
         self._volume_version = 0
         # Lamp hours: lit time up to _lamp_since_s, plus the lit pattern since then.
-        self._lamp_base_s = p.lamp_hours0_h * 3600.0
+        self._lamp_base_s: list[float] = (p.lamp_hours0_h * 3600.0).tolist()
         self._lamp_since_s = 0.0
         self._lamp_lit = np.zeros(len(temps))
         self._lamp_version = -1
         # PAR of the warm lamps at their drive and present age; while lit it ages by the
-        # factor (1 − loss)^(Δh/1000) = e^(λ·lit·span) per segment, cached per span.
+        # factor (1 − loss)^(Δh/1000) = e^(λ·lit·span) per segment, cached per span for the
+        # present lit pattern (cleared when the pattern, i.e. the act.lit array, changes).
         self._age_rate = (
             np.log1p(
                 -p.ageing_frac_per_1000_h,
@@ -124,18 +125,12 @@ class Rack:
         )
         self._age_steps: dict[float, F] = {}
         self._par_warm = np.zeros(len(temps))
-        # Heat bookkeeping (heater and chiller energy live with the actuators): ∫(T − T_room)dt,
-        # and the flushing loss folded per stretch of constant flow ("epoch"), G being
-        # constant within one.
-        self._excess = np.zeros(self._m)
-        self._span_s = 0.0
-        self._flush_done = np.zeros(self._m)
-        self._epoch_excess = np.zeros(self._m)
-        self._epoch_span_s = 0.0
+        # Heat bookkeeping (heater and chiller energy live with the actuators).
+        self._heat = HeatLedger(self._m, p.room_temperature_c, p.inflow_temperature_c)
         self._water_key: tuple[int, int] = (-1, -1)
         self._water_id = 0
-        self._flush_w_k = np.zeros(self._m)
-        self._exchange = np.zeros(len(temps))
+        self._flush_w_k: list[float] = [0.0] * self._m
+        self._exchange: list[float] = [0.0] * len(temps)
         self._node_capacity = self._capacity()
         self._capacity_version = self._volume_version  # the volumes _node_capacity is for
         self._node_list: list[int] = p.node_of_chamber.tolist()
@@ -211,6 +206,49 @@ class Rack:
             None if pump_pct is None else _drive(pump_pct, "pump_pct"),
         )
 
+    def set_outputs_all(
+        self, commands: Sequence[tuple[str, float, float, float, float]]
+    ) -> list[Exception | None]:
+        """Command several chambers at once, as :meth:`set_outputs` on each row in turn.
+
+        Parameters
+        ----------
+        commands
+            Per row: chamber identifier, then heater, chiller, lamp and pump drive, % each
+            (0–100).
+
+        Returns
+        -------
+        list
+            Per row None, or the error :meth:`set_outputs` would raise for it (that chamber is
+            then left as it was; the other rows still take effect).
+        """
+        index = self._index
+        rows: list[tuple[int, float, float, float, float]] = []
+        errors: list[Exception | None] = []
+        for cid, heater, chiller, lamp, pump in commands:
+            i = index.get(cid)
+            try:
+                if i is None:
+                    raise KeyError(f"no chamber {cid!r} in this rack")
+                if not (
+                    0.0 <= heater <= 100.0
+                    and 0.0 <= chiller <= 100.0
+                    and 0.0 <= lamp <= 100.0
+                    and 0.0 <= pump <= 100.0
+                ):  # the checks of _drive without a call per drive; _drive names the culprit
+                    _drive(heater, "heater_pct")
+                    _drive(chiller, "chiller_pct")
+                    _drive(lamp, "lamp_pct")
+                    _drive(pump, "pump_pct")
+            except (KeyError, TypeError, ValueError) as error:
+                errors.append(error)
+                continue
+            rows.append((i, float(heater), float(chiller), float(lamp), float(pump)))
+            errors.append(None)
+        self._act.command_all(rows)
+        return errors
+
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
         i = self._chamber(chamber_id)
@@ -219,8 +257,8 @@ class Rack:
         return Outputs(
             heater_pct=float(act.heater_pct[node]),
             chiller_pct=float(act.chiller_pct[node]),
-            lamp_pct=float(act.lamp_pct[i]),
-            pump_pct=float(act.pump_pct[i]),
+            lamp_pct=act.lamp_pct[i],
+            pump_pct=act.pump_pct[i],
         )
 
     @property
@@ -318,19 +356,19 @@ class Rack:
             o2_sat_pct=100.0 * o2 / sat,
             o2_saturation_umol_l=sat,
             par=float(par[i]),
-            flow_cm_s=float(self._act.flow_cm_s[i]),
-            incubation_open=bool(self._act.flush_l_s[i] > 0.0),
+            flow_cm_s=self._act.flow_cm_s[i],
+            incubation_open=self._act.flush_l_s[i] > 0.0,
             water_volume_l=float(self._volume[i]),
             gpp_umol_m2_h=float(gpp[i]),
             resp_umol_m2_h=float(resp[i]),
             net_umol_m2_h=float(gpp[i] - resp[i]),
-            heater_w=float(self._act.water_w[0, node]),
-            chiller_w=float(self._act.water_w[1, node]),
+            heater_w=self._act.water[0][node],
+            chiller_w=self._act.water[1][node],
             heat_capacity_j_k=float(self._capacity()[node]),
             heater_energy_j=float(heat[0, node]),
             chiller_energy_j=float(heat[1, node]),
-            room_loss_j=float(p.ua_w_k[node] * self._excess[node]),
-            flush_loss_j=float(self._flush_loss()[node]),
+            room_loss_j=float(p.ua_w_k[node] * self._heat.excess_k_s[node]),
+            flush_loss_j=self._heat.flush_loss_j()[node],
             probe_temperature_c=float(water.probe_c[i]),
             optode_o2_umol_l=float(water.optode_umol_l[i]),
             lamp_hours_h=float(self._lamp_s()[i] / 3600.0),
@@ -394,11 +432,12 @@ class Rack:
             since = self._t - self._lamp_since_s
             lamps = (self._lamp_base_s, self._lamp_lit, act.new_lamp_par)
             base, par = aged_lamps(*lamps, since, self._lamp_keep)
-            self._lamp_base_s = np.array(base)
+            self._lamp_base_s = base
             self._lamp_since_s = self._t
+            if act.lit is not self._lamp_lit:  # the ageing steps depend on the lit pattern
+                self._age_steps.clear()
             self._lamp_lit = act.lit
             self._lamp_version = act.lamp_version
-            self._age_steps.clear()
             self._par_warm = np.array(par)
         if self._instant_lamps:  # lamps without warm-up are warm (or cold) at once
             tau = self._p.warmup_tau_s
@@ -433,27 +472,16 @@ class Rack:
 
     def _lamp_s(self) -> F:
         """Seconds each lamp has been lit, s."""
-        return np.asarray(
-            self._lamp_base_s + self._lamp_lit * (self._t - self._lamp_since_s), dtype=float
-        )
+        base = np.array(self._lamp_base_s, dtype=float)
+        return np.asarray(base + self._lamp_lit * (self._t - self._lamp_since_s), dtype=float)
 
     def _par_now(self) -> F:
         cold = self._p.cold_output_frac
         return np.asarray(self._par_warm * (cold + (1.0 - cold) * self._water.warmth))
 
-    def _flush_loss(self) -> F:
-        """Heat carried out by flushing since start, J, shape ``(M,)``."""
-        p = self._p
-        excess = self._excess - self._epoch_excess
-        span = self._span_s - self._epoch_span_s
-        inflow = excess + (p.room_temperature_c - p.inflow_temperature_c) * span
-        return np.asarray(self._flush_done + self._flush_w_k * inflow, dtype=float)
-
     def _new_water(self, key: tuple[int, int]) -> None:
         """Flows or volumes changed: close the flushing epoch and recompute what follows."""
-        self._flush_done = self._flush_loss()
-        self._epoch_excess = self._excess.copy()
-        self._epoch_span_s = self._span_s
+        self._heat.close(self._heat.flush_loss_j(), self._heat.excess_k_s, self._heat.span_s)
         self._configure_water(key)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
@@ -464,8 +492,9 @@ class Rack:
         flush_w_k, exchange = water_exchange(
             *flows, self._node_list, self._rho_cp, self._reaeration
         )
-        self._flush_w_k = np.array(flush_w_k)
-        self._exchange = np.array(exchange)
+        self._flush_w_k = flush_w_k
+        self._exchange = exchange
+        self._heat.set_flow(flush_w_k)
         if self._capacity_version != self._volume_version:
             self._node_capacity = self._capacity()
             self._capacity_version = self._volume_version
@@ -477,7 +506,7 @@ class Rack:
         if key != self._water_key:
             self._new_water(key)
         drive = Drive(
-            act.water_w,
+            act.water,
             arrivals,
             act.lit,
             self._par_warm,
@@ -495,8 +524,7 @@ class Rack:
                 exponent = np.where(act.lit > 0.0, self._age_rate * span, 0.0)
                 factor = self._age_steps[span] = np.exp(exponent)
             self._par_warm = self._par_warm * factor
-        self._excess += excess
-        self._span_s += span
+        self._heat.add(excess, span)
         masks = self._book.masks
         if masks.leaking:
             p = self._p
@@ -510,47 +538,6 @@ class Rack:
         w = self._water
         temps = w.temp_c[self._p.node_of_chamber]
         return np.stack((temps, w.o2_umol_l, self._par_now(), w.probe_c, w.optode_umol_l))
-
-    def _block_start(self) -> BlockStart:
-        """The state the open-loop integrator starts a block from (now)."""
-        act = self._act
-        key = (act.flow_version, self._volume_version)
-        if key != self._water_key:  # e.g. volumes changed by a leak that just ended
-            self._new_water(key)
-        return BlockStart(
-            water=self._water,
-            water_w=act.water_w,
-            lines=act.pending(),
-            sent_w=act.sent_w(),
-            lamp_s=self._lamp_s(),
-            volume_l=self._volume,
-            capacity_j_k=self._node_capacity,
-        )
-
-    def _block_end(self, done: BlockEnd, cmd: F, t_s: float) -> None:
-        """Take over the state the open-loop integrator reached at ``t_s`` (s), then settle."""
-        act = self._act
-        energy = act.energy_j(self._t) + done.heat_j
-        self._flush_done = self._flush_loss() + done.flush_loss_j
-        self._excess = self._excess + done.excess_k_s
-        self._span_s += done.span_s
-        self._epoch_excess = self._excess.copy()
-        self._epoch_span_s = self._span_s
-        act.load(cmd, done.water_w, done.lines, self._book, energy, t_s)
-        self._t = t_s
-        water = done.water
-        if np.array_equal(water.warmth, act.lit):
-            water = water._replace(warmth=act.lit)
-        self._water = water
-        self._lamp_base_s = done.lamp_s
-        self._lamp_since_s = t_s
-        self._lamp_lit = act.lit
-        self._lamp_version = act.lamp_version
-        self._age_steps.clear()
-        age = ageing_factor(done.lamp_s / 3600.0, self._p.ageing_frac_per_1000_h)
-        self._par_warm = np.asarray(act.new_lamp_par * age, dtype=float)
-        self._configure_water((act.flow_version, self._volume_version))
-        self._settle()
 
     def _reachable(self, i: int, sensor: str) -> object | None:
         """Raise SensorNoReply if the sensor is silent; return a stuck value if frozen."""
@@ -595,6 +582,6 @@ class Rack:
         return max(value, 0.0)
 
     def _measure_flow(self, i: int) -> float:
-        value = noisy(float(self._act.flow_cm_s[i]), float(self._p.flow_noise_cm_s[i]), self._rng)
+        value = noisy(self._act.flow_cm_s[i], float(self._p.flow_noise_cm_s[i]), self._rng)
         value += fault_offset(self._book.sensor_faults(i, "flow"), self._t, self._rng)
         return max(value, 0.0)

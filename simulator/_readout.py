@@ -25,7 +25,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, NamedTuple
 
 from controller.rig import FaultKind
 from controller.science.oxygen import solubility_umol_l_scalar
@@ -109,24 +109,34 @@ def _one(rack: Rack, cid: str, ask_optode: bool, out: Sweep, k: int) -> None:
         out.errors[k] = error
 
 
+class _Sensors(NamedTuple):
+    """One chamber's sensor constants as plain floats."""
+
+    temp_sd: float  # probe noise, °C
+    flow_sd: float  # flow noise, cm s⁻¹
+    o2_sd: float  # optode noise, µmol L⁻¹
+    temp_off: float  # probe offset, °C
+    o2_off: float  # optode offset, µmol L⁻¹
+    drift: float  # optode drift, µmol L⁻¹ s⁻¹
+    par_frac: float  # PAR noise, fraction of the reading
+    cold: float  # output share of a cold lamp
+    warm_gain: float  # 1 − cold
+    salinity: float  # PSS-78
+    volume_l: float  # full water volume, L
+    draws: int  # Gaussian draws of temperature and flow (PAR's depend on the reading)
+    optode_draws: int  # Gaussian draws of an optode read (O2, then its temperature)
+
+
 @dataclass(frozen=True, slots=True)
 class _Consts:
-    """Per-chamber sensor constants of a rack as plain floats (rig order).
+    """Sensor constants of a rack as plain floats, one :class:`_Sensors` per chamber in rig
+    order.
 
     Built once per rack from its resolved parameters, which never change after the rack is
     built: nothing invalidates it.
     """
 
-    temp_sd: list[float]  # probe noise, °C
-    flow_sd: list[float]  # flow noise, cm s⁻¹
-    o2_sd: list[float]  # optode noise, µmol L⁻¹
-    temp_off: list[float]  # probe offset, °C
-    o2_off: list[float]  # optode offset, µmol L⁻¹
-    drift: list[float]  # optode drift, µmol L⁻¹ s⁻¹
-    par_frac: list[float]  # PAR noise, fraction of the reading
-    cold: list[float]  # output share of a cold lamp
-    salinity: list[float]  # PSS-78
-    volume_l: list[float]  # full water volume, L
+    chambers: list[_Sensors]
     level_alarm_frac: float  # level switch trips above this share lost
     pressure_kpa: float
 
@@ -136,17 +146,33 @@ def _consts(rack: Rack) -> _Consts:
     found = rack._sweep_consts
     if not isinstance(found, _Consts):
         p = rack._p
+        columns = zip(
+            p.temperature_noise_c.tolist(),
+            p.flow_noise_cm_s.tolist(),
+            p.optode_noise_umol_l.tolist(),
+            p.temperature_offset_c.tolist(),
+            p.optode_offset_umol_l.tolist(),
+            p.optode_drift_umol_l_per_s.tolist(),
+            p.par_noise_frac.tolist(),
+            p.cold_output_frac.tolist(),  # [7]
+            p.salinity.tolist(),
+            p.volume_l.tolist(),
+            strict=True,
+        )
+        chambers = []
+        for values in columns:
+            temp_sd, flow_sd, o2_sd = values[:3]
+            chambers.append(
+                _Sensors(
+                    *values[:8],
+                    1.0 - values[7],
+                    *values[8:],
+                    (temp_sd > 0.0) + (flow_sd > 0.0),
+                    (o2_sd > 0.0) + (temp_sd > 0.0),
+                )
+            )
         found = rack._sweep_consts = _Consts(
-            temp_sd=p.temperature_noise_c.tolist(),
-            flow_sd=p.flow_noise_cm_s.tolist(),
-            o2_sd=p.optode_noise_umol_l.tolist(),
-            temp_off=p.temperature_offset_c.tolist(),
-            o2_off=p.optode_offset_umol_l.tolist(),
-            drift=p.optode_drift_umol_l_per_s.tolist(),
-            par_frac=p.par_noise_frac.tolist(),
-            cold=p.cold_output_frac.tolist(),
-            salinity=p.salinity.tolist(),
-            volume_l=p.volume_l.tolist(),
+            chambers=chambers,
             level_alarm_frac=float(p.level_alarm_frac),
             pressure_kpa=float(p.pressure_kpa),
         )
@@ -161,35 +187,33 @@ def _group(rack: Rack, indices: list[int], ask: list[bool], out: Sweep, slots: l
     are taken at once, in the order those reads take them.
     """
     c = _consts(rack)
+    sensors = c.chambers
     water = rack._water
     probe_c = water.probe_c.tolist()
-    optode_c = water.optode_umol_l.tolist()
     warmth = water.warmth.tolist()
     par_warm = rack._par_warm.tolist()
-    flow_cm_s = rack._act.flow_cm_s.tolist()
-    volume = rack._volume.tolist()
     t_s = rack._t
-    temp_sd, flow_sd, o2_sd, par_frac, cold = c.temp_sd, c.flow_sd, c.o2_sd, c.par_frac, c.cold
     # Pass 1: the true values and how many draws each chamber takes.
-    trues: list[tuple[float, float, float]] = []
+    trues: list[tuple[_Sensors, float, float, float]] = []
     count = 0
     for i, asked in zip(indices, ask, strict=True):
-        lamp_cold = cold[i]
-        par = par_warm[i] * (lamp_cold + (1.0 - lamp_cold) * warmth[i])  # Rack._par_now
-        par_sd = par_frac[i] * par
-        trues.append((probe_c[i] + c.temp_off[i], par, par_sd))
-        draws = [temp_sd[i] > 0.0, par_sd > 0.0, flow_sd[i] > 0.0]
-        if asked:
-            draws += [o2_sd[i] > 0.0, temp_sd[i] > 0.0]
-        count += sum(draws)
+        one = sensors[i]
+        par = par_warm[i] * (one.cold + one.warm_gain * warmth[i])  # Rack._par_now
+        par_sd = one.par_frac * par
+        trues.append((one, probe_c[i] + one.temp_off, par, par_sd))
+        count += one.draws + (par_sd > 0.0) + (one.optode_draws if asked else 0)
     z = rack._rng.standard_normal(count).tolist() if count else []
     # Pass 2: the readings, taking the draws in order.
     k = 0
     alarm = c.level_alarm_frac
+    flow_cm_s = rack._act.flow_cm_s
+    volume = rack._volume.tolist()
+    optode_c = water.optode_umol_l.tolist() if any(ask) else []
+    temperatures, pars, flows, levels = out.temperature_c, out.par, out.flow_cm_s, out.level_ok
     for j, i in enumerate(indices):
         slot = slots[j]
-        probe, par, par_sd = trues[j]
-        sd = temp_sd[i]
+        one, probe, par, par_sd = trues[j]
+        sd = one.temp_sd
         if sd > 0.0:
             temperature = probe + sd * z[k]
             k += 1
@@ -199,27 +223,30 @@ def _group(rack: Rack, indices: list[int], ask: list[bool], out: Sweep, slots: l
             par = par + par_sd * z[k]
             k += 1
         flow = flow_cm_s[i]
-        if flow_sd[i] > 0.0:
-            flow = flow + flow_sd[i] * z[k]
+        if one.flow_sd > 0.0:
+            flow = flow + one.flow_sd * z[k]
             k += 1
-        out.temperature_c[slot] = temperature + 0.0
-        out.par[slot] = max(par + 0.0, 0.0)
-        out.flow_cm_s[slot] = max(flow + 0.0, 0.0)
-        out.level_ok[slot] = 1.0 - volume[i] / c.volume_l[i] < alarm
+        temperatures[slot] = temperature + 0.0
+        par += 0.0
+        pars[slot] = 0.0 if 0.0 > par else par  # max(par, 0.0) as the builtin decides it
+        flow += 0.0
+        flows[slot] = 0.0 if 0.0 > flow else flow
+        levels[slot] = 1.0 - volume[i] / one.volume_l < alarm
         if not ask[j]:
             continue
-        o2 = optode_c[i] + c.o2_off[i]
-        o2 += c.drift[i] * t_s
-        if o2_sd[i] > 0.0:
-            o2 = o2 + o2_sd[i] * z[k]
+        o2 = optode_c[i] + one.o2_off
+        o2 += one.drift * t_s
+        if one.o2_sd > 0.0:
+            o2 = o2 + one.o2_sd * z[k]
             k += 1
-        o2 = max(o2 + 0.0, 0.0)
+        o2 += 0.0
+        o2 = 0.0 if 0.0 > o2 else o2
         optode_temp = probe
         if sd > 0.0:
             optode_temp = probe + sd * z[k]
             k += 1
         try:
-            sat = solubility_umol_l_scalar(optode_temp, c.salinity[i], c.pressure_kpa)
+            sat = solubility_umol_l_scalar(optode_temp, one.salinity, c.pressure_kpa)
         except Exception as error:  # ends this chamber's reading, as a one-by-one read would
             out.errors[slot] = error
             continue

@@ -47,6 +47,7 @@ F = NDArray[np.float64]
 _CACHE_SIZE = 64
 _SETTLED = 1e-9  # a lamp within this of fully warm (or cold) counts as settled
 _MAX_SCALED_EXPONENT = 500.0  # k·h·n up to this: the O2 sums scaled by a_o^(−m) stay finite
+_BOUND_MARGIN_C = 1e-6  # rounding of a path against its bound (°C): far above 1 ulp
 
 
 class WaterState(NamedTuple):
@@ -79,7 +80,8 @@ class Drive(NamedTuple):
     Attributes
     ----------
     water_w
-        Heater and chiller power reaching each node at the segment start, W, shape ``(2, M)``.
+        Heater and chiller power reaching each node at the segment start, W, two lists of M
+        values.
     arrivals
         Power changes reaching the water at sub-step boundaries inside the segment.
     lit
@@ -87,9 +89,9 @@ class Drive(NamedTuple):
     par_warm
         PAR the lamp gives when warm (drive and age applied), µmol m⁻² s⁻¹, shape ``(N,)``.
     flush_w_k
-        Flushing heat flow q·ρ·cp of each node, W K⁻¹, shape ``(M,)``.
+        Flushing heat flow q·ρ·cp of each node, W K⁻¹, M values.
     exchange_per_s
-        O2 exchange with air-saturated water (flushing plus re-aeration), s⁻¹, ``(N,)``.
+        O2 exchange with air-saturated water (flushing plus re-aeration), s⁻¹, N values.
     capacity_j_k
         Heat capacity of each node, J K⁻¹, shape ``(M,)``.
     volume_l
@@ -99,12 +101,12 @@ class Drive(NamedTuple):
         equal keys promise equal arrays, dimensionless.
     """
 
-    water_w: F
+    water_w: tuple[list[float], list[float]]
     arrivals: Arrivals
     lit: F
     par_warm: F
-    flush_w_k: F
-    exchange_per_s: F
+    flush_w_k: list[float]
+    exchange_per_s: list[float]
     capacity_j_k: F
     volume_l: F
     water_key: int
@@ -125,9 +127,9 @@ class _Grid:
     lags: dict[tuple[int, ...], F]  # arrival pattern → max(m − k_j, 0), (M, n + 1)
 
 
-@dataclass(frozen=True, slots=True)
-class _Water:
-    """Coefficients of one grid and water configuration (flows, volumes)."""
+class _Water(NamedTuple):
+    """Coefficients of one grid and water configuration (flows, volumes); a NamedTuple, as
+    pumps change every control tick and a frozen dataclass costs more to build."""
 
     rate: list[float]  # h/τ of each node, M values
     tau_s: list[float]  # τ = C/(UA + G), s
@@ -135,7 +137,6 @@ class _Water:
     t_base_c: list[float]  # (UA·T_room + G·T_in)/(UA + G), °C
     settle_k_s: list[float]  # τ(1 − a^n): ∫ of the transient per K of T_0 − T∞, s
     powers: F  # a^m for m = 0..n, (M, n + 1)
-    neg_rate: F  # −h/τ of each node, (M, 1)
     o2_powers: F  # a_o^m = e^(−k·h·m) for m = 0..n, (N, n + 1)
     o2_scaled: F  # [φ, 1 − a_o]·a_o^(−m) for m = 1..n, (N, 2, n)
     o2_keep: F  # a_o = e^(−k·h), (N,)
@@ -190,7 +191,9 @@ class Stepper:
         self._log_scale: F = np.zeros((len(node_of), 2, 1))
 
     # ------------------------------------------------------------------ segment
-    def step(self, state: WaterState, drive: Drive, n: int, h: float) -> tuple[WaterState, F]:
+    def step(
+        self, state: WaterState, drive: Drive, n: int, h: float
+    ) -> tuple[WaterState, list[float]]:
         """Advance every chamber through ``n`` sub-steps of ``h`` seconds.
 
         Parameters
@@ -208,11 +211,11 @@ class Stepper:
         -------
         tuple
             The state at the segment end, and ∫(T − T_room)dt of each node over the
-            segment, K s, shape ``(M,)``.
+            segment, K s, M values.
         """
-        grid = self._grid(n, h)
-        water = self._water(n, h, drive)
-        path, excess = self._thermal(state.temp_c, drive, grid, water, n, h)
+        grid = self._grids.get((n, h)) or self._grid(n, h)
+        water = self._waters.get((n, h, drive.water_key)) or self._water(n, h, drive)
+        path, excess, bound = self._thermal(state.temp_c, drive, grid, water, n, h)
 
         chambers = path if self._own_water else path.take(self._node_of, axis=0)
         starts = chambers[:, :-1]
@@ -225,7 +228,8 @@ class Stepper:
             self._log_scale = bio.log_scale(drive.volume_l)
             self._scale_key = drive.volume_l
         bio.factors(inv, self._log_scale, light, terms)
-        if bio.stressed:
+        # the bound says "nowhere near the threshold" without a reduction over the path
+        if bio.stressed and bound + _BOUND_MARGIN_C > bio.lowest_threshold_c:
             hottest = float(path.max())
             if hottest > bio.lowest_threshold_c:
                 bio.stress(starts, terms, hottest)
@@ -239,39 +243,52 @@ class Stepper:
     # ------------------------------------------------------------------ pieces
     def _thermal(
         self, temp_c: F, drive: Drive, grid: _Grid, water: _Water, n: int, h: float
-    ) -> tuple[F, F]:
-        """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``) and ∫(T − T_room)dt
-        of each node (K s, ``(M,)``).
+    ) -> tuple[F, list[float], float]:
+        """Temperature path of every node at t = 0..n·h (°C, ``(M, n + 1)``), ∫(T − T_room)dt
+        of each node (K s, M values) and an upper bound of the path (°C).
 
         T_m = T∞ + (T_0 − T∞)·a^m, plus Δ·(1 − a^(m−k)) for m > k for each power change
-        arriving at boundary k that moves T∞ by Δ.
+        arriving at boundary k that moves T∞ by Δ. Between changes each node's path runs
+        monotonically from where it is towards the T∞ then in force: without a change the
+        higher of its ends bounds it, with changes the highest of its start and those T∞.
         """
         room = self._room_c
         span = n * h
-        heater, chiller = drive.water_w.tolist()
-        inv_g, settle = water.inv_g, water.settle_k_s
-        t_inf = [
-            (w - c) * g + base
-            for w, c, g, base in zip(heater, chiller, inv_g, water.t_base_c, strict=True)
-        ]
-        lead = [t - ti for t, ti in zip(temp_c.tolist(), t_inf, strict=True)]
-        excess = [(ti - room) * span + d * k for ti, d, k in zip(t_inf, lead, settle, strict=True)]
+        heater, chiller = drive.water_w
+        inv_g = water.inv_g
+        starts = temp_c.tolist()
+        t_inf, lead, excess = [], [], []
+        for w, c, g, base, t, k in zip(
+            heater, chiller, inv_g, water.t_base_c, starts, water.settle_k_s, strict=True
+        ):
+            ti = (w - c) * g + base
+            d = t - ti
+            t_inf.append(ti)
+            lead.append(d)
+            excess.append((ti - room) * span + d * k)
         ends = np.array((lead, t_inf))[:, :, None]
         path = np.multiply(ends[0], water.powers)
         path += ends[1]
+        if not drive.arrivals:
+            return path, excess, max(max(starts), max(path[:, -1].tolist()))
+        bound = max(max(starts), max(t_inf))
+        neg_rate = np.array([-r for r in water.rate])[:, None]
+        settling = t_inf
         for ks, delta in drive.arrivals:
             change = [d * g for d, g in zip(delta, inv_g, strict=True)]
+            settling = [ti + c for ti, c in zip(settling, change, strict=True)]
+            bound = max(bound, max(settling))
             for j, k in enumerate(ks):
                 if k < n:
                     left = n - k
                     integral = left * h + water.tau_s[j] * math.expm1(-left * water.rate[j])
                     excess[j] += change[j] * integral
             # Δ·(1 − a^(m−k)) = −Δ·expm1(−(m − k)·h/τ) for m > k, 0 before
-            rise = np.multiply(self._lags(grid, ks, n), water.neg_rate)
+            rise = np.multiply(self._lags(grid, ks, n), neg_rate)
             np.expm1(rise, out=rise)
             rise *= np.array(change)[:, None]
             path -= rise
-        return path, np.array(excess)
+        return path, excess, bound
 
     def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water) -> F:
         """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)``.
@@ -389,28 +406,33 @@ class Stepper:
     def _make_water(self, n: int, h: float, drive: Drive) -> _Water:
         grid = self._grid(n, h)
         inflow = self._p.inflow_temperature_c
-        g_tot = [ua + flush for ua, flush in zip(self._ua, drive.flush_w_k.tolist(), strict=True)]
-        tau = [c / g for c, g in zip(drive.capacity_j_k.tolist(), g_tot, strict=True)]
-        rate = [h / t for t in tau]
-        inv_g = [1.0 / g for g in g_tot]
-        t_base = [
-            (ua_room + flush * inflow) * inv
-            for ua_room, flush, inv in zip(
-                self._ua_room, drive.flush_w_k.tolist(), inv_g, strict=True
-            )
-        ]
-        settle = [-t * math.expm1(-n * r) for t, r in zip(tau, rate, strict=True)]
-        exchange = drive.exchange_per_s.tolist()
-        kh = [k * h for k in exchange]
-        fresh = [-math.expm1(-x) for x in kh]
-        phi = [f / k if x > 0.0 else h for f, k, x in zip(fresh, exchange, kh, strict=True)]
+        rate, tau, inv_g, t_base, settle = [], [], [], [], []
+        for ua, ua_room, flush, capacity in zip(
+            self._ua, self._ua_room, drive.flush_w_k, drive.capacity_j_k.tolist(), strict=True
+        ):
+            g_tot = ua + flush
+            t = capacity / g_tot
+            r = h / t
+            inv = 1.0 / g_tot
+            rate.append(r)
+            tau.append(t)
+            inv_g.append(inv)
+            t_base.append((ua_room + flush * inflow) * inv)
+            settle.append(-t * math.expm1(-n * r))
+        kh, phi, fresh = [], [], []
+        for k in drive.exchange_per_s:
+            x = k * h
+            f = -math.expm1(-x)
+            kh.append(x)
+            phi.append(f / k if x > 0.0 else h)
+            fresh.append(f)
         # a^m and a_o^m for m = 0..n, both as e^(−m·h/τ) and e^(−m·k·h), in one exp
-        exponents = np.array(rate + kh)
-        powers = np.exp(np.multiply.outer(exponents, grid.back))
+        powers = np.exp(np.multiply.outer(rate + kh, grid.back))
         m = len(rate)
         o2_powers = powers[m:]
         gains = np.array((phi, fresh)).T[:, :, None]
-        scaled = max(kh, default=0.0) * n <= _MAX_SCALED_EXPONENT
+        fastest = max(kh, default=0.0)
+        scaled = fastest * n <= _MAX_SCALED_EXPONENT
         o2_scaled = gains / o2_powers[:, None, 1:] if scaled else gains
         return _Water(
             rate=rate,
@@ -419,11 +441,10 @@ class Stepper:
             t_base_c=t_base,
             settle_k_s=settle,
             powers=powers[:m],
-            neg_rate=np.negative(exponents[:m, None]),
             o2_powers=o2_powers,
             o2_scaled=o2_scaled,
             o2_keep=o2_powers[:, 1],
             o2_gain=gains,
             scaled=scaled,
-            exchanging=max(kh, default=0.0) > 0.0,
+            exchanging=fastest > 0.0,
         )

@@ -449,21 +449,20 @@ class SimulatedIO:
         if not self._all_answer()[0] and not all(self._answers(c, _MODBUS) for c in outputs):
             return None
         rack = self._rack
+        errors = rack.set_outputs_all(
+            [
+                (chamber, value.heater_pct, value.chiller_pct, value.lamp_pct, value.pump_pct)
+                for chamber, value in outputs.items()
+            ]
+        )
         done: dict[str, bool | Exception] = {}
-        for chamber, value in outputs.items():
-            try:
-                rack.set_outputs(
-                    chamber,
-                    heater_pct=value.heater_pct,
-                    chiller_pct=value.chiller_pct,
-                    lamp_pct=value.lamp_pct,
-                    pump_pct=value.pump_pct,
-                )
-            except Exception as error:
+        last_written, fed_at, t_s = self.last_written, self._fed_at, rack.t_s
+        for (chamber, value), error in zip(outputs.items(), errors, strict=True):
+            if error is not None:
                 done[chamber] = error
                 continue
-            self.last_written[chamber] = value
-            self._fed_at[chamber] = rack.t_s
+            last_written[chamber] = value
+            fed_at[chamber] = t_s
             done[chamber] = True
         return done
 

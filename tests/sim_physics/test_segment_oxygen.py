@@ -37,11 +37,11 @@ def reference(
     return out
 
 
-def segment(r: Rack, exchange: np.ndarray, n: int, h: float, key: int):  # type: ignore[no-untyped-def]
+def segment(r: Rack, exchange: list[float], n: int, h: float, key: int):  # type: ignore[no-untyped-def]
     stepper = r._stepper
     act = r._act
     drive = Drive(
-        act.water_w,
+        act.water,
         [],
         act.lit,
         r._par_warm,
@@ -60,7 +60,7 @@ def test_closed_form_agrees_with_the_sub_step_recurrence(n: int, h: float) -> No
     rng = np.random.default_rng(n)
     # none, slow and fast flushing, s⁻¹; the last so fast that k·h·n > 500 for n = 600
     exchange = np.array([0.0, 1e-6, 3e-4, 2e-3, 0.02, 0.2, 1.0, rng.uniform(0.0, 5e-3)])
-    stepper, grid, water = segment(r, exchange, n, h, key=-1)
+    stepper, grid, water = segment(r, exchange.tolist(), n, h, key=-1)
     grid.terms[:, 0] = rng.uniform(0.0, 0.05, (8, n))  # production, µmol L⁻¹ s⁻¹
     grid.terms[:, 1] = rng.uniform(0.0, 0.02, (8, n))  # respiration
     starts = rng.uniform(10.0, 25.0, (8, n))  # water temperature at sub-step starts, °C
@@ -77,7 +77,7 @@ def test_floor_at_zero_is_kept_where_respiration_empties_the_chamber() -> None:
     r = Rack(load_rig(EXAMPLE), seed=1)
     n, h = 60, 1.0
     exchange = np.array([0.0, 0.0, 1e-4, 1e-3, 0.0, 0.0, 0.0, 0.0])
-    stepper, grid, water = segment(r, exchange, n, h, key=-2)
+    stepper, grid, water = segment(r, exchange.tolist(), n, h, key=-2)
     grid.terms[:, 0] = 0.0
     grid.terms[:, 1] = 0.5  # strong respiration: 30 µmol L⁻¹ per minute
     starts = np.full((8, n), 20.0)

@@ -35,6 +35,7 @@ def forget(r: Rack) -> None:
     act = r._act
     act.lit = act.lit.copy()  # a new array object: the identity tests fail on purpose
     r._sweep_consts = None
+    r._age_steps.clear()
 
 
 def drive(r: Rack, t: int) -> None:
