@@ -34,6 +34,7 @@ from controller.control import (
     rate_limit,
     split_range,
 )
+from controller.control._interlocks import _ALL_CLEAR, _evaluate_full, _stays_quiet
 from controller.rig import DriveCurve
 
 LIMITS = InterlockLimits(
@@ -221,6 +222,104 @@ def test_a_chamber_quiet_again_after_an_acknowledged_trip_still_sees_the_next_fa
     assert [(e.kind, e.condition) for e in events if e.condition is not None] == [
         (EventKind.RAISED, Condition.UNDER_TEMPERATURE)
     ]
+
+
+# A mostly quiet chamber: slow drifts inside the limits, held readings (the frozen check),
+# jumps (the rate check) and now and then a fault of any kind, so the quiet chamber's short
+# way (_stays_quiet) is taken often and left at every kind of condition.
+quiet_readings = st.one_of(
+    st.builds(
+        Readings,
+        temperature_c=st.sampled_from([20.0, 20.0, 20.0, 20.05, 20.1, 19.95, 25.0, 10.05]),
+        level_ok=st.sampled_from([True, None]),
+        comm_ok=st.just(True),
+        e_stop=st.sampled_from([False, None]),
+    ),
+    readings_strategy,
+)
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            quiet_readings,
+            st.sampled_from([0.0, 10.0, 10.0, 30.0, 64.0, 120.0]),
+            st.one_of(st.none(), st.sampled_from(list(Condition))),
+        ),
+        min_size=1,
+        max_size=60,
+    )
+)
+def test_the_quiet_chambers_short_way_walks_the_same_states_as_the_full_way(
+    ticks: list[tuple[Readings, float, Condition | None]],
+) -> None:
+    a = b = InterlockState()
+    t_s = 0.0
+    for reading, step_s, ack in ticks:
+        t_s += step_s
+        values = (reading.temperature_c, reading.level_ok, reading.comm_ok, reading.e_stop)
+        a, actions_a, events_a = evaluate_values(a, *values, LIMITS, t_s)
+        b, actions_b, events_b = _evaluate_full(b, *values, LIMITS, t_s)
+        assert (a, actions_a, events_a) == (b, actions_b, events_b)
+        assert (a.conditions is _ALL_CLEAR) == (b.conditions is _ALL_CLEAR)
+        if ack is not None and LIMITS.policies[ack].latch and a.conditions[ack] in (
+            ConditionState.ACTIVE,
+            ConditionState.LATCHED,
+        ):
+            a = acknowledge(a, ack, LIMITS, t_s)[0]
+            b = acknowledge(b, ack, LIMITS, t_s)[0]
+
+
+def test_the_short_way_is_left_at_the_tick_a_quiet_chamber_gets_a_condition() -> None:
+    """Each way out of quiet: the full way raises the condition at the same tick."""
+
+    def walk(temps: list[float | None], step_s: float = 10.0, **other: bool | None) -> list:
+        state, t_s, shorts, raised = InterlockState(), 0.0, [], []
+        for k, temp in enumerate(temps):
+            last = k == len(temps) - 1
+            values = (
+                temp,
+                other.get("level_ok", True) if last else True,
+                other.get("comm_ok", True) if last else True,
+                other.get("e_stop", False) if last else False,
+            )
+            shorts.append(_stays_quiet(state, *values, LIMITS, t_s) is not None)
+            state, _, events = evaluate_values(state, *values, LIMITS, t_s)
+            raised += [(k, e.condition) for e in events if e.kind is EventKind.RAISED]
+            t_s += step_s
+        return [shorts[1:], raised]
+
+    quiet = [True] * 4
+    assert walk([20.0, 20.1, 20.0, 20.1, 20.0]) == [quiet, []]
+    assert walk([20.0, 20.1, 20.0, 20.1, 30.0]) == [
+        [True, True, True, False],
+        [(4, Condition.OVER_TEMPERATURE)],  # 40 s: the 64 s rate window is not over yet
+    ]
+    assert walk([20.0, 20.1, 20.0, 20.1, 10.0])[1][0] == (4, Condition.UNDER_TEMPERATURE)
+    assert walk([20.0, 20.1, 20.0, 20.1, None], step_s=40.0) == [
+        [True, True, True, False],
+        [(4, Condition.SENSOR_STALE)],
+    ]
+    for fault, condition in (
+        ({"level_ok": False}, Condition.LOW_LEVEL),
+        ({"e_stop": True}, Condition.E_STOP),
+    ):
+        assert walk([20.0, 20.1, 20.0, 20.1, 20.0], **fault) == [
+            [True, True, True, False],
+            [(4, condition)],
+        ]
+    # comm not ok goes the full way; the loss is raised once comm_loss_after_s has passed
+    assert walk([20.0, 20.1, 20.0, 20.1, 20.0], step_s=20.0, comm_ok=False)[1] == [
+        (4, Condition.COMM_LOSS)
+    ]
+    held = [20.0] * 100  # the frozen check: 900 s without a change
+    shorts, raised = walk(held)
+    assert raised == [(90, Condition.SENSOR_FROZEN)] and shorts[88:90] == [True, False]
+    # 0.125 °C in 64 s is exactly the rate limit (7.03125 °C/h): raised on reaching it
+    shorts, raised = walk([20.0, 20.0, 20.125], step_s=64.0)
+    assert raised == [(2, Condition.RATE_OF_CHANGE)] and shorts == [True, False]
+    assert walk([20.0, 20.0, 20.124], step_s=64.0) == [[True, True], []]
 
 
 # ---------------------------------------------------------------------------- outputs
