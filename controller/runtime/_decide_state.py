@@ -95,16 +95,40 @@ class Actuator:
     drive of the latest setpoint.
 
     That drive is kept with the setpoint it was computed for and recomputed whenever the
-    setpoint differs; the curve is frozen and never replaced, so it cannot go stale.
+    setpoint differs. A straight-line curve's segment (start, slope terms) is taken once for
+    the measured side; the curve is frozen and never replaced, so neither can go stale.
     """
 
-    __slots__ = ("_drive", "_setpoint", "curve", "trim")
+    __slots__ = ("_drive", "_dx", "_dy", "_line", "_setpoint", "_x0", "_y0", "curve", "trim")
 
     def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
         self.curve = curve
         self.trim = None if trim is None else PidLoop(trim)
         self._setpoint = math.nan  # equal to no setpoint: the first one computes its drive
         self._drive = 0.0
+        # a straight line: DriveCurve.equivalent_drive's one segment, y0 + (v − x0)·dy/dx,
+        # with its differences taken here (same floats, same order of operations)
+        xs, ys = curve.value, curve.drive_pct
+        self._line = len(xs) == 2
+        self._x0, self._y0 = xs[0], ys[0]  # quantity's unit, %
+        self._dx, self._dy = xs[-1] - xs[0], ys[-1] - ys[0]  # quantity's unit, %
+
+    def equivalent_drive(self, measured: float) -> float:
+        """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
+
+        Parameters
+        ----------
+        measured
+            Quantity (its unit).
+
+        Returns
+        -------
+        float
+            Drive, %, not clipped.
+        """
+        if self._line:
+            return self._y0 + (measured - self._x0) * self._dy / self._dx
+        return self.curve.equivalent_drive(measured)
 
     def drive(self, setpoint: float | None, measured: float | None, dt_s: float) -> float:
         """Drive, %: the curve's feed-forward for the setpoint plus the PI trim on the sensor,
@@ -132,7 +156,11 @@ class Actuator:
         elif measured is None:
             correction = trim.last_output or 0.0
         else:
-            correction = trim.step(self.curve.equivalent_drive(measured), drive, dt_s)
+            if self._line:  # self.equivalent_drive(measured), written out
+                equivalent = self._y0 + (measured - self._x0) * self._dy / self._dx
+            else:
+                equivalent = self.curve.equivalent_drive(measured)
+            correction = trim.step(equivalent, drive, dt_s)
         drive = 100.0 * (drive + correction) / 100.0
         drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
         return drive if drive < 100.0 else 100.0

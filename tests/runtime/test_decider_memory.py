@@ -11,12 +11,15 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from controller.control import Condition, SafetyState
+from controller.control import Condition, PidLoop, PidParams, SafetyState
 from controller.files import load_model
-from controller.rig import Rig
+from controller.rig import DriveCurve, Rig
 from controller.runtime import ChamberReadings, RunSettings, plan_control
 from controller.runtime._decide import Decider, Target
+from controller.runtime._decide_state import Actuator
 
 RIG = """name = "decider memory rack"
 [[chambers]]
@@ -104,3 +107,53 @@ def test_the_plan_the_decider_took_its_settings_from_cannot_be_replaced(
 ) -> None:
     with pytest.raises(AttributeError):
         decider.plan = decider.plan  # type: ignore[misc]
+
+
+CURVES = (
+    DriveCurve.linear(30.0),
+    DriveCurve(drive_pct=(0.0, 100.0), value=(5.0, 1500.0)),
+    DriveCurve(drive_pct=(8.0, 30.0, 60.0, 100.0), value=(0.0, 4.8, 11.3, 20.0)),
+)
+TRIM = PidParams(kc=0.3, ti_s=60.0, out_min=-50.0, out_max=50.0)
+
+
+def reference_drive(
+    curve: DriveCurve, trim: PidLoop, setpoint: float | None, measured: float | None, dt_s: float
+) -> float:
+    """Actuator.drive as written before its shortcuts: the curve's own methods every call."""
+    if setpoint is None:
+        return 0.0
+    drive = curve.drive_for(setpoint)
+    if drive <= 0.0:
+        return 0.0
+    if measured is None:
+        correction = trim.last_output or 0.0
+    else:
+        correction = trim.step(curve.equivalent_drive(measured), drive, dt_s)
+    return min(100.0, max(0.0, 100.0 * (drive + correction) / 100.0))
+
+
+@pytest.mark.parametrize("curve", CURVES)
+@settings(max_examples=40, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            st.one_of(st.none(), st.sampled_from([0.0, 3.0, 12.0, 700.0])),  # setpoint
+            st.one_of(st.none(), st.floats(-5.0, 2000.0)),  # measured
+        ),
+        min_size=1,
+        max_size=30,
+    )
+)
+def test_an_actuator_drives_as_its_curve_and_trim_say(
+    curve: DriveCurve, ticks: list[tuple[float | None, float | None]]
+) -> None:
+    """The kept feed-forward drive and the straight line's kept segment give the numbers the
+    curve's methods give, tick by tick, whatever the setpoint and the measurement do."""
+    actuator, trim = Actuator(curve, TRIM), PidLoop(TRIM)
+    for setpoint, measured in ticks:
+        if measured is not None:
+            assert actuator.equivalent_drive(measured) == curve.equivalent_drive(measured)
+        want = reference_drive(curve, trim, setpoint, measured, 10.0)
+        assert actuator.drive(setpoint, measured, 10.0) == want
+        assert actuator.trim is not None and actuator.trim.state == trim.state
