@@ -37,6 +37,9 @@ __all__ = [
 ]
 
 
+_INF = math.inf
+
+
 def _finite(value: float, name: str) -> float:
     value = float(value)
     if not math.isfinite(value):
@@ -286,26 +289,22 @@ class PidLoop:
         float
             Output after limiting, output unit.
         """
-        if not (
-            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
-        ):
+        # one test for the usual case (0·x is 0 exactly when x is finite); the checks name
+        # the bad input otherwise
+        if not (measured * 0.0 == 0.0 and setpoint * 0.0 == 0.0 and 0.0 < dt_s < _INF):
             _check_inputs(measured, setpoint, dt_s)
-        kc = self._kc
-        p = kc * (self._setpoint_weight * setpoint - measured)
-        last = self.last_measured
-        d = (
-            0.0
-            if self._td_s == 0.0 or last is None
-            else _derivative(self._params, self.derivative, last, measured, dt_s)
-        )
+        p = self._kc * (self._setpoint_weight * setpoint - measured)
+        if self._td_s == 0.0 or self.last_measured is None:
+            d = 0.0
+        else:
+            d = _derivative(self._params, self.derivative, self.last_measured, measured, dt_s)
         i = self.integral
         v = p + i + d
-        high, low = self._out_max, self._out_min
-        u = high if v > high else low if v < low else v
+        u = self._out_max if v > self._out_max else self._out_min if v < self._out_min else v
         if self._has_integral:
             if dt_s != self._dt_s:
                 self._dt_s = dt_s
-                self._gain_i = kc * dt_s / self._ti_s
+                self._gain_i = self._kc * dt_s / self._ti_s
                 self._back = math.expm1(-dt_s / self._tt_s)
             i = i + self._gain_i * (setpoint - measured) - self._back * (u - v)
         self.integral, self.derivative = i, d
