@@ -49,7 +49,6 @@ from controller.control import (
     cycle_step,
     end_window,
     evaluate_values,
-    rate_limit,
     time_proportion_step,
 )
 from controller.runtime._decide_state import ChamberMemory, NodeMemory
@@ -488,10 +487,16 @@ class Decider:
             return
         if measured is not None:
             previous = measured if node.setpoint_c is None else node.setpoint_c
-            node.setpoint_c = rate_limit(previous, target, node.ramp_per_s, dt_s)
+            # rate_limit(previous, target, node.ramp_per_s, dt_s) written out: both setpoints
+            # are finite floats (a probe mean or an earlier setpoint; the protocol's), dt_s > 0
+            step = node.ramp_per_s * dt_s
+            change = target - previous
+            change = change if change < step else step  # min(step, change)
+            change = change if change > -step else -step  # max(-step, change)
+            node.setpoint_c = previous + change
             node.output_pct = node.pid.step(measured, node.setpoint_c, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
-        if node.settings.heater_on_off:
+        if node.heater_on_off:
             settings = self._plan.settings
             node.cycle, on = time_proportion_step(
                 node.cycle,

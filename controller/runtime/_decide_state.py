@@ -63,6 +63,7 @@ class NodeMemory:
         "chiller",
         "cycle",
         "heater",
+        "heater_on_off",
         "members",
         "output_pct",
         "pid",
@@ -80,6 +81,7 @@ class NodeMemory:
             (c.name, c.limits.sensor_min_c, c.limits.sensor_max_c) for c in members
         )
         self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
+        self.heater_on_off = settings.heater_on_off
         self.pid = PidLoop(settings.pid)
         self.setpoint_c: float | None = None
         self.output_pct = 0.0
