@@ -8,6 +8,7 @@ them; an actuator computes its drive here (feed-forward on its curve plus its PI
 from __future__ import annotations
 
 import math
+from bisect import bisect_right
 
 from controller.control import (
     Condition,
@@ -97,23 +98,26 @@ class Actuator:
     drive of the latest setpoint.
 
     That drive is kept with the setpoint it was computed for and recomputed whenever the
-    setpoint differs. A straight-line curve's segment (start, slope terms) is taken once for
-    the measured side; the curve is frozen and never replaced, so neither can go stale.
+    setpoint differs. The curve's segments are taken once for the measured side (start and
+    differences, as :meth:`DriveCurve.equivalent_drive` computes them); the curve is frozen
+    and never replaced, so neither can go stale.
     """
 
-    __slots__ = ("_drive", "_dx", "_dy", "_line", "_setpoint", "_x0", "_y0", "curve", "trim")
+    __slots__ = ("_drive", "_last", "_segments", "_setpoint", "_values", "curve", "trim")
 
     def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
         self.curve = curve
         self.trim = None if trim is None else PidLoop(trim)
         self._setpoint = math.nan  # equal to no setpoint: the first one computes its drive
         self._drive = 0.0
-        # a straight line: DriveCurve.equivalent_drive's one segment, y0 + (v − x0)·dy/dx,
-        # with its differences taken here (same floats, same order of operations)
         xs, ys = curve.value, curve.drive_pct
-        self._line = len(xs) == 2
-        self._x0, self._y0 = xs[0], ys[0]  # quantity's unit, %
-        self._dx, self._dy = xs[-1] - xs[0], ys[-1] - ys[0]  # quantity's unit, %
+        self._values, self._last = xs, len(xs) - 1  # quantity's unit; index of the last point
+        # segment k (from point k − 1 to point k; 0 repeats 1): x0, y0, y1 − y0, x1 − x0
+        # (quantity's unit, %, %, quantity's unit)
+        segments = [
+            (xs[k - 1], ys[k - 1], ys[k] - ys[k - 1], xs[k] - xs[k - 1]) for k in range(1, len(xs))
+        ]
+        self._segments = (segments[0], *segments)
 
     def equivalent_drive(self, measured: float) -> float:
         """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
@@ -128,9 +132,14 @@ class Actuator:
         float
             Drive, %, not clipped.
         """
-        if self._line:
-            return self._y0 + (measured - self._x0) * self._dy / self._dx
-        return self.curve.equivalent_drive(measured)
+        last = self._last
+        if last == 1:  # a straight line: its one segment, whichever side the value is
+            k = 1
+        else:
+            k = bisect_right(self._values, measured)
+            k = 1 if k < 1 else last if k > last else k
+        x0, y0, dy, dx = self._segments[k]
+        return y0 + (measured - x0) * dy / dx
 
     def drive(self, setpoint: float | None, measured: float | None, dt_s: float) -> float:
         """Drive, %: the curve's feed-forward for the setpoint plus the PI trim on the sensor,
@@ -158,11 +167,15 @@ class Actuator:
         elif measured is None:
             correction = trim.last_output or 0.0
         else:
-            if self._line:  # self.equivalent_drive(measured), written out
-                equivalent = self._y0 + (measured - self._x0) * self._dy / self._dx
+            # self.equivalent_drive(measured), written out
+            last = self._last
+            if last == 1:
+                k = 1
             else:
-                equivalent = self.curve.equivalent_drive(measured)
-            correction = trim.step(equivalent, drive, dt_s)
+                k = bisect_right(self._values, measured)
+                k = 1 if k < 1 else last if k > last else k
+            x0, y0, dy, dx = self._segments[k]
+            correction = trim.step(y0 + (measured - x0) * dy / dx, drive, dt_s)
         drive = 100.0 * (drive + correction) / 100.0
         drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
         return drive if drive < 100.0 else 100.0

@@ -123,6 +123,10 @@ CURVES = (
     DriveCurve.linear(30.0),
     DriveCurve(drive_pct=(0.0, 100.0), value=(5.0, 1500.0)),
     DriveCurve(drive_pct=(8.0, 30.0, 60.0, 100.0), value=(0.0, 4.8, 11.3, 20.0)),
+    DriveCurve(
+        drive_pct=(0.0, 10.0, 20.0, 35.0, 50.0, 65.0, 80.0, 100.0),
+        value=(0.0, 187.0, 355.0, 575.0, 761.0, 919.0, 1053.0, 1200.0),
+    ),
 )
 TRIM = PidParams(kc=0.3, ti_s=60.0, out_min=-50.0, out_max=50.0)
 
@@ -149,7 +153,7 @@ def reference_drive(
     st.lists(
         st.tuples(
             st.one_of(st.none(), st.sampled_from([0.0, 3.0, 12.0, 700.0])),  # setpoint
-            st.one_of(st.none(), st.floats(-5.0, 2000.0)),  # measured
+            st.one_of(st.none(), st.floats(-5.0, 2000.0), st.sampled_from([0.0, 4.8, 355.0])),
         ),
         min_size=1,
         max_size=30,
