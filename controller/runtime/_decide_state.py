@@ -103,7 +103,7 @@ class Actuator:
     and never replaced, so neither can go stale.
     """
 
-    __slots__ = ("_drive", "_last", "_segments", "_setpoint", "_values", "curve", "trim")
+    __slots__ = ("_drive", "_edge", "_last", "_segments", "_setpoint", "_values", "curve", "trim")
 
     def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
         self.curve = curve
@@ -118,6 +118,7 @@ class Actuator:
             (xs[k - 1], ys[k - 1], ys[k] - ys[k - 1], xs[k] - xs[k - 1]) for k in range(1, len(xs))
         ]
         self._segments = (segments[0], *segments)
+        self._edge = ys[0]  # the dead band's edge: the least drive a setpoint above 0 gets, %
 
     def equivalent_drive(self, measured: float) -> float:
         """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
@@ -157,7 +158,10 @@ class Actuator:
         if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
             return 0.0
         if setpoint != self._setpoint:
-            self._setpoint, self._drive = setpoint, self.curve.drive_for(setpoint)
+            # self.curve.drive_for(setpoint) (the setpoint is above 0), on the kept segments
+            drive = self.equivalent_drive(setpoint)
+            drive = drive if drive > self._edge else self._edge  # min(100, max(edge, drive))
+            self._setpoint, self._drive = setpoint, drive if drive < 100.0 else 100.0
         drive = self._drive
         if drive <= 0.0:
             return 0.0
