@@ -102,6 +102,9 @@ def test_pid_loop_starts_from_a_given_state_and_its_gains_cannot_be_swapped() ->
         (1.0, math.inf, 10.0, "setpoint must be finite"),
         (1.0, 1.0, 0.0, "dt_s must be finite and above 0"),
         (1.0, 1.0, math.nan, "dt_s must be finite and above 0"),
+        (1.0, 1.0, math.inf, "dt_s must be finite and above 0"),
+        (1.0, 1.0, -10.0, "dt_s must be finite and above 0"),
+        (-math.inf, -math.inf, 10.0, "measured must be finite"),
     ],
 )
 def test_pid_loop_refuses_what_pid_step_refuses_and_keeps_its_state(
@@ -115,6 +118,16 @@ def test_pid_loop_refuses_what_pid_step_refuses_and_keeps_its_state(
     with pytest.raises(ValueError, match=message):
         loop.step(measured, setpoint, dt_s)
     assert loop.state == before
+
+
+def test_pid_loop_takes_finite_inputs_whose_error_overflows() -> None:
+    """The step's one-test check fails on an error times dt_s beyond the float range; the
+    named checks then find every input finite and the step goes on as pid_step's."""
+    params = PidParams(kc=1e-300, ti_s=100.0, out_min=-50.0, out_max=50.0)
+    loop = PidLoop(params)
+    result = pid_step(PidState(), params, -1e307, 1e307, 10.0)
+    assert loop.step(-1e307, 1e307, 10.0) == result.output == 50.0
+    assert loop.state == result.state and math.isfinite(loop.integral)
 
 
 def test_rate_limit_and_split_range_still_name_the_bad_input() -> None:
@@ -263,12 +276,13 @@ def test_the_quiet_chambers_short_way_walks_the_same_states_as_the_full_way(
         b, actions_b, events_b = _evaluate_full(b, *values, LIMITS, t_s)
         assert (a, actions_a, events_a) == (b, actions_b, events_b)
         assert (a.conditions is _ALL_CLEAR) == (b.conditions is _ALL_CLEAR)
-        if ack is not None and LIMITS.policies[ack].latch and a.conditions[ack] in (
-            ConditionState.ACTIVE,
-            ConditionState.LATCHED,
-        ):
+        pending = ack is not None and a.conditions[ack] in _ACKNOWLEDGEABLE
+        if ack is not None and pending and LIMITS.policies[ack].latch:
             a = acknowledge(a, ack, LIMITS, t_s)[0]
             b = acknowledge(b, ack, LIMITS, t_s)[0]
+
+
+_ACKNOWLEDGEABLE = (ConditionState.ACTIVE, ConditionState.LATCHED)
 
 
 def test_the_short_way_is_left_at_the_tick_a_quiet_chamber_gets_a_condition() -> None:
