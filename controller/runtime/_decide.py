@@ -377,9 +377,12 @@ class Decider:
                 ch.limits,
                 t_s,
             )
-            ch.force, ch.alarm = action.force, action.alarm
+            ch.alarm = action.alarm
             if action.force is not None:
+                ch.force = action.force
                 forcing = True
+            elif ch.force is not None:
+                ch.force = None
             if happened:
                 events.extend((ch.name, event) for event in happened)
         windows = self._cycles(readings, targets, t_s, schedule)
@@ -388,14 +391,15 @@ class Decider:
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
         unchecked = Outputs.unchecked  # every drive below is clipped or from checked outputs
+        closed = IncubationStatus.CLOSED
         for ch in self._order:
-            name, node, force, cycle = ch.name, ch.node, ch.force, ch.cycle
-            if force is not None:
-                lamp, pump = force.lamp_pct, force.pump_pct
+            name, node, cycle = ch.name, ch.node, ch.cycle
+            if forcing and ch.force is not None:
+                lamp, pump = ch.force.lamp_pct, ch.force.pump_pct
             else:
                 target, reading = targets[name], readings[name]
                 lamp = ch.lamp.drive(target.par, reading.par, dt_s)
-                if cycle is not None and cycle.status is IncubationStatus.CLOSED:
+                if cycle is not None and cycle.status is closed:
                     pump = 0.0  # flushing pump off; the flow trim waits for the window's end
                 else:
                     pump = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
