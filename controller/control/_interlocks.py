@@ -22,7 +22,7 @@ Rules of this module
 - A quiet tick is cheap (it runs for every chamber every tick): the per-tick path reads
   ``_NEXT``, the table re-indexed, and formats a reason text only when a signal changes a
   condition's state (:func:`reason_text`, in ``_interlock_reasons.py``). A quiet chamber
-  that stays quiet goes a shorter way still (:func:`_stays_quiet`).
+  that stays quiet goes a shorter way still (at the top of :func:`evaluate_values`).
 """
 
 from __future__ import annotations
@@ -365,43 +365,23 @@ def evaluate_values(
         raise ValueError(f"t_s must be finite, got {t_s!r}")
     if state.last_t_s is not None and t_s < state.last_t_s:
         raise ValueError(f"t_s {t_s!r} is before the previous evaluation at {state.last_t_s!r}")
-    quiet = _stays_quiet(state, temperature_c, level_ok, comm_ok, e_stop, limits, t_s)
-    if quiet is not None:
-        return quiet, quiet.actions, ()  # type: ignore[return-value]  # set when quiet
-    return _evaluate_full(state, temperature_c, level_ok, comm_ok, e_stop, limits, t_s)
-
-
-def _stays_quiet(
-    state: InterlockState,
-    temperature_c: float | None,
-    level_ok: bool | None,
-    comm_ok: bool | None,
-    e_stop: bool | None,
-    limits: InterlockLimits,
-    t_s: float,
-) -> InterlockState | None:
-    """The next state of a quiet chamber that stays quiet this tick, or None: then
-    :func:`_evaluate_full` decides (arguments as :func:`evaluate_values`'s, t_s checked).
-
-    Quiet: nothing holds (the shared :data:`_ALL_CLEAR`), a healthy evaluation was seen and
-    actions were decided. It stays quiet when no condition is present this tick, and then
-    :func:`_evaluate_full` would change no condition (CLEAR stays CLEAR on CLEAR or on no
-    news), conclude nothing anew (``healthy_seen`` already true: safety and actions are
-    kept) and report no event; only the memory moves. No condition is present when:
-
-    - the probe replied inside the temperature limits (``floor < reply < high``; the
-      limits lie inside the sensor range, so the reply is valid, neither hot nor cold, and
-      the hysteresis bands do not matter while nothing holds), so it is not stale either
-      (its reply is this tick's, ``stale_after_s`` > 0);
-    - the devices answered (``comm_ok``; ``comm_loss_after_s`` > 0), the level is not
-      reported low and the E-stop not reported pressed;
-    - the probe is not frozen and has not moved too fast, tested below exactly as
-      :func:`_signals` tests them, on the memory exactly as :func:`_remember` moves it.
-
-    Anything else goes the full way; ``tests/control/test_fast_paths.py`` walks both ways
-    through random faults and compares every state, action and event.
-    """
-    if not (
+    # A quiet chamber that stays quiet takes a short way. Quiet: nothing holds (the shared
+    # _ALL_CLEAR), a healthy evaluation was seen and actions were decided. It stays quiet
+    # when no condition is present this tick; then the full way (_evaluate_full) would
+    # change no condition (CLEAR stays CLEAR on CLEAR or on no news), conclude nothing anew
+    # (healthy_seen already true: safety and actions are kept) and report no event; only
+    # the memory moves. No condition is present when:
+    # - the probe replied inside the temperature limits (floor < reply < high; the limits
+    #   lie inside the sensor range, so the reply is valid, neither hot nor cold, and the
+    #   hysteresis bands do not matter while nothing holds), so it is not stale either
+    #   (its reply is this tick's, stale_after_s > 0);
+    # - the devices answered (comm_ok; comm_loss_after_s > 0), the level is not reported
+    #   low and the E-stop not reported pressed;
+    # - the probe is neither frozen nor moving too fast, tested as _signals tests them, on
+    #   the memory as _remember moves it.
+    # Anything else goes the full way. tests/control/test_fast_paths.py walks both ways
+    # through random faults and compares every state, action and event.
+    if (
         state.conditions is _ALL_CLEAR
         and state.healthy_seen
         and state.actions is not None
@@ -411,43 +391,44 @@ def _stays_quiet(
         and temperature_c is not None
         and limits.min_temperature_c < temperature_c < limits.max_temperature_c  # NaN fails
     ):
-        return None
-    reply = temperature_c
-    frozen_ref, frozen_since = state.frozen_ref_c, state.frozen_since_s
-    if frozen_ref is None or abs(reply - frozen_ref) > limits.frozen_epsilon_c:
-        frozen_ref, frozen_since = reply, t_s
-    assert frozen_since is not None  # set together with frozen_ref
-    if t_s - frozen_since >= limits.frozen_after_s:
-        return None  # frozen
-    anchor_c, anchor_s = state.rate_anchor_c, state.rate_anchor_s
-    window_s = limits.rate_window_s
-    if anchor_s is None or t_s - anchor_s >= window_s:
-        if anchor_s is not None and anchor_c is not None:
-            span_s = t_s - anchor_s
-            if abs((reply - anchor_c) / span_s * 3600.0) >= limits.max_rate_c_per_h:
-                return None  # too fast
-        anchor_c, anchor_s = reply, t_s
-    started = state.started_s
-    new = object.__new__(InterlockState)
-    object.__setattr__(  # as in :func:`_remember`: every field given, nothing to validate
-        new,
-        "__dict__",
-        {
-            "conditions": _ALL_CLEAR,
-            "safety": state.safety,
-            "started_s": t_s if started is None else started,
-            "last_t_s": t_s,
-            "last_reply_s": t_s,
-            "frozen_ref_c": frozen_ref,
-            "frozen_since_s": frozen_since,
-            "rate_anchor_c": anchor_c,
-            "rate_anchor_s": anchor_s,
-            "last_comm_ok_s": t_s,
-            "healthy_seen": True,
-            "actions": state.actions,
-        },
-    )
-    return new
+        reply = temperature_c
+        frozen_ref, frozen_since = state.frozen_ref_c, state.frozen_since_s
+        if frozen_ref is None or abs(reply - frozen_ref) > limits.frozen_epsilon_c:
+            frozen_ref, frozen_since = reply, t_s
+        assert frozen_since is not None  # set together with frozen_ref
+        anchor_c, anchor_s = state.rate_anchor_c, state.rate_anchor_s
+        renew = anchor_s is None or t_s - anchor_s >= limits.rate_window_s
+        fast = (
+            renew
+            and anchor_s is not None
+            and anchor_c is not None
+            and abs((reply - anchor_c) / (t_s - anchor_s) * 3600.0) >= limits.max_rate_c_per_h
+        )
+        if not fast and t_s - frozen_since < limits.frozen_after_s:
+            if renew:
+                anchor_c, anchor_s = reply, t_s
+            started = state.started_s
+            new = object.__new__(InterlockState)
+            object.__setattr__(  # as in _remember: every field given, nothing to validate
+                new,
+                "__dict__",
+                {
+                    "conditions": _ALL_CLEAR,
+                    "safety": state.safety,
+                    "started_s": t_s if started is None else started,
+                    "last_t_s": t_s,
+                    "last_reply_s": t_s,
+                    "frozen_ref_c": frozen_ref,
+                    "frozen_since_s": frozen_since,
+                    "rate_anchor_c": anchor_c,
+                    "rate_anchor_s": anchor_s,
+                    "last_comm_ok_s": t_s,
+                    "healthy_seen": True,
+                    "actions": state.actions,
+                },
+            )
+            return new, state.actions, ()
+    return _evaluate_full(state, temperature_c, level_ok, comm_ok, e_stop, limits, t_s)
 
 
 def _evaluate_full(
