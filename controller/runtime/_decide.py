@@ -466,7 +466,12 @@ class Decider:
             value = readings[c].temperature_c
             if value is not None and low < value < high:
                 temps.append(value)
-        measured = math.fsum(temps) / len(temps) if temps else None
+        if not temps:
+            measured = None
+        elif len(temps) == 1:  # a chamber's own water
+            measured = temps[0] + 0.0  # math.fsum([x]) / 1, bit for bit (−0.0 becomes 0.0)
+        else:
+            measured = math.fsum(temps) / len(temps)
         target = None
         for member in node.members:
             target = targets[member.name].temperature_c
@@ -497,8 +502,8 @@ class Decider:
             change = target - previous
             change = change if change < step else step  # min(step, change)
             change = change if change > -step else -step  # max(-step, change)
-            node.setpoint_c = previous + change
-            node.output_pct = node.pid.step(measured, node.setpoint_c, dt_s)
+            node.setpoint_c = setpoint = previous + change
+            node.output_pct = node.pid.step(measured, setpoint, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
         if node.heater_on_off:
             settings = self._plan.settings

@@ -227,3 +227,9 @@ def test_the_applied_setpoint_ramps_as_rate_limit_says(decider: Decider) -> None
         assert applied is not None and repr(applied) == repr(want)
         seen.append(applied == setpoint)
     assert seen == [False, False, False, True, True] + [False] * 4 + [True] * 2 + [False] * 3
+
+
+@given(st.one_of(st.floats(allow_nan=False, allow_infinity=False), st.sampled_from([0.0, -0.0])))
+def test_one_probes_mean_is_its_reading_as_fsum_gives_it(value: float) -> None:
+    """A node of one chamber takes ``x + 0.0`` for the mean ``math.fsum([x]) / 1``."""
+    assert repr(value + 0.0) == repr(math.fsum([value]) / 1)
