@@ -240,7 +240,7 @@ def test_a_chamber_quiet_again_after_an_acknowledged_trip_still_sees_the_next_fa
 
 # A mostly quiet chamber: slow drifts inside the limits, held readings (the frozen check),
 # jumps (the rate check) and now and then a fault of any kind, so the quiet chamber's short
-# way (_stays_quiet) is taken often and left at every kind of condition.
+# way (at the top of evaluate_values) is taken often and left at every kind of condition.
 quiet_readings = st.one_of(
     st.builds(
         Readings,
