@@ -2,10 +2,11 @@
 
 Rules of this module
 --------------------
-- Everything that decides how a condition's state changes lives in ``_TRANSITIONS`` just
-  below the enums: one table keyed by (latching?, state, signal). Code and the docs
-  renderer (:func:`transition_table_markdown`) both read it. A signal with no entry is
-  illegal: it raises :class:`IllegalInterlockEvent` and the state is left as it was.
+- Everything that decides how a condition's state changes lives in ``_TRANSITIONS``, in
+  ``_interlock_table.py`` with the condition states and signals: one table keyed by
+  (latching?, state, signal). Code and the docs renderer (:func:`transition_table_markdown`)
+  both read it. A signal with no entry is illegal: it raises
+  :class:`IllegalInterlockEvent` and the state is left as it was.
 - Each tick, every :class:`Condition` yields the signal ACTIVE, CLEAR, or nothing (no new
   information, e.g. no probe reply this tick). A condition becomes active when its measure
   *reaches* its threshold (≥ for upper limits and durations, ≤ for lower limits); the
@@ -20,7 +21,8 @@ Rules of this module
 - Nothing here reads a clock or does I/O: the caller passes readings and the time.
 - A quiet tick is cheap (it runs for every chamber every tick): the per-tick path reads
   ``_NEXT``, the table re-indexed, and formats a reason text only when a signal changes a
-  condition's state (:func:`reason_text`, in ``_interlock_reasons.py``).
+  condition's state (:func:`reason_text`, in ``_interlock_reasons.py``). A quiet chamber
+  that stays quiet goes a shorter way still (at the top of :func:`evaluate_values`).
 """
 
 from __future__ import annotations
@@ -28,7 +30,6 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
-from enum import Enum
 from types import MappingProxyType
 
 from controller.control._interlock_config import (
@@ -43,6 +44,19 @@ from controller.control._interlock_config import (
     SafetyState,
 )
 from controller.control._interlock_reasons import reason_text
+from controller.control._interlock_table import (
+    _HOLDING,
+    _NEXT,
+    _PRESENT,
+    _QUIET,
+    _RANK,
+    _SAFETY_OF_LEVEL,
+    ConditionState,
+    IllegalInterlockEvent,
+    Signal,
+    _step,
+    transition_table_markdown,
+)
 
 __all__ = [
     "Actions",
@@ -60,80 +74,11 @@ __all__ = [
 ]
 
 
-class ConditionState(Enum):
-    """Where one condition stands (alarm-management style)."""
-
-    __hash__ = object.__hash__  # members are singletons; the C hash is 2x faster
-
-    CLEAR = "clear"  # not present
-    ACTIVE = "active"  # present, not acknowledged
-    ACKNOWLEDGED = "acknowledged"  # present, acknowledged (clears by itself when it goes)
-    LATCHED = "latched"  # gone, but latching and not yet acknowledged
-
-
-class Signal(Enum):
-    """What drives a condition's state."""
-
-    __hash__ = object.__hash__  # members are singletons; the C hash is 2x faster
-
-    ACTIVE = "active"  # the condition is present this tick
-    CLEAR = "clear"  # the condition is absent this tick
-    ACK = "ack"  # an operator acknowledges it
-
-
-_C, _S = ConditionState, Signal
-
-#: The one transition table: (latching, state, signal) -> next state. Missing = illegal.
-_TRANSITIONS: Mapping[tuple[bool, ConditionState, Signal], ConditionState] = MappingProxyType(
-    {
-        # Non-latching: follows the condition; there is nothing to acknowledge.
-        (False, _C.CLEAR, _S.ACTIVE): _C.ACTIVE,
-        (False, _C.CLEAR, _S.CLEAR): _C.CLEAR,
-        (False, _C.ACTIVE, _S.ACTIVE): _C.ACTIVE,
-        (False, _C.ACTIVE, _S.CLEAR): _C.CLEAR,
-        # Latching: holds after the condition goes until acknowledged.
-        (True, _C.CLEAR, _S.ACTIVE): _C.ACTIVE,
-        (True, _C.CLEAR, _S.CLEAR): _C.CLEAR,
-        (True, _C.ACTIVE, _S.ACTIVE): _C.ACTIVE,
-        (True, _C.ACTIVE, _S.CLEAR): _C.LATCHED,
-        (True, _C.ACTIVE, _S.ACK): _C.ACKNOWLEDGED,
-        (True, _C.ACKNOWLEDGED, _S.ACTIVE): _C.ACKNOWLEDGED,
-        (True, _C.ACKNOWLEDGED, _S.CLEAR): _C.CLEAR,
-        (True, _C.LATCHED, _S.ACTIVE): _C.ACTIVE,
-        (True, _C.LATCHED, _S.CLEAR): _C.LATCHED,
-        (True, _C.LATCHED, _S.ACK): _C.CLEAR,
-    }
-)
-
-_HOLDING = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED, _C.LATCHED})
-_PRESENT = frozenset({_C.ACTIVE, _C.ACKNOWLEDGED})
-
 #: Every condition CLEAR. States share this one read-only mapping whenever nothing holds
 #: (:func:`_frozen`), so :func:`evaluate_values` tells a quiet chamber by identity alone.
 _ALL_CLEAR: Mapping[Condition, ConditionState] = MappingProxyType(
-    dict.fromkeys(Condition, _C.CLEAR)
+    dict.fromkeys(Condition, ConditionState.CLEAR)
 )
-
-
-_SAFETY_OF_LEVEL = {
-    Level.WARNING: SafetyState.WARNING,
-    Level.ALARM: SafetyState.ALARM,
-    Level.TRIP: SafetyState.TRIPPED,
-}
-_RANK = {Level.WARNING: 1, Level.ALARM: 2, Level.TRIP: 3}
-
-
-class IllegalInterlockEvent(Exception):
-    """A signal the transition table does not allow (e.g. acknowledging a non-latching
-    condition); the state it was applied to is unchanged."""
-
-    def __init__(self, condition: Condition, state: ConditionState, signal: Signal) -> None:
-        super().__init__(
-            f"{signal.value} is not allowed for {condition.value} in state {state.value}"
-        )
-        self.condition = condition
-        self.state = state
-        self.signal = signal
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -183,39 +128,10 @@ class InterlockState:
 def _frozen(conditions: dict[Condition, ConditionState]) -> Mapping[Condition, ConditionState]:
     """A read-only view of a fresh dict of condition states; :data:`_ALL_CLEAR` when all
     are clear."""
-    if all(state is _C.CLEAR for state in conditions.values()):
+    if all(state is ConditionState.CLEAR for state in conditions.values()):
         return _ALL_CLEAR
     return MappingProxyType(conditions)
 
-
-def _step(
-    condition: Condition, latch: bool, state: ConditionState, signal: Signal
-) -> ConditionState:
-    try:
-        return _TRANSITIONS[(latch, state, signal)]
-    except KeyError:
-        raise IllegalInterlockEvent(condition, state, signal) from None
-
-
-#: ``_TRANSITIONS`` re-indexed (derived, never edited): ``_NEXT[latching][state]`` is (next
-#: state on CLEAR, next state on ACTIVE), None where the table has no entry.
-_NEXT: tuple[Mapping[ConditionState, tuple[ConditionState | None, ConditionState | None]], ...]
-_NEXT = tuple(
-    MappingProxyType(
-        {
-            state: (
-                _TRANSITIONS.get((latch, state, Signal.CLEAR)),
-                _TRANSITIONS.get((latch, state, Signal.ACTIVE)),
-            )
-            for state in ConditionState
-        }
-    )
-    for latch in (False, True)
-)
-
-#: A condition in this state that gets CLEAR stays in it whether it latches or not.
-_QUIET = ConditionState.CLEAR
-assert all(_NEXT[latch][_QUIET][False] is _QUIET for latch in (0, 1)), "table changed"
 
 #: The order in which a tick's signals are applied (and their events listed).
 _SIGNAL_ORDER = (
@@ -449,6 +365,82 @@ def evaluate_values(
         raise ValueError(f"t_s must be finite, got {t_s!r}")
     if state.last_t_s is not None and t_s < state.last_t_s:
         raise ValueError(f"t_s {t_s!r} is before the previous evaluation at {state.last_t_s!r}")
+    # A quiet chamber that stays quiet takes a short way. Quiet: nothing holds (the shared
+    # _ALL_CLEAR), a healthy evaluation was seen and actions were decided. It stays quiet
+    # when no condition is present this tick; then the full way (_evaluate_full) would
+    # change no condition (CLEAR stays CLEAR on CLEAR or on no news), conclude nothing anew
+    # (healthy_seen already true: safety and actions are kept) and report no event; only
+    # the memory moves. No condition is present when:
+    # - the probe replied inside the temperature limits (floor < reply < high; the limits
+    #   lie inside the sensor range, so the reply is valid, neither hot nor cold, and the
+    #   hysteresis bands do not matter while nothing holds), so it is not stale either
+    #   (its reply is this tick's, stale_after_s > 0);
+    # - the devices answered (comm_ok; comm_loss_after_s > 0), the level is not reported
+    #   low and the E-stop not reported pressed;
+    # - the probe is neither frozen nor moving too fast, tested as _signals tests them, on
+    #   the memory as _remember moves it.
+    # Anything else goes the full way. tests/control/test_fast_paths.py walks both ways
+    # through random faults and compares every state, action and event.
+    if (
+        state.conditions is _ALL_CLEAR
+        and state.healthy_seen
+        and state.actions is not None
+        and comm_ok
+        and level_ok is not False
+        and not e_stop
+        and temperature_c is not None
+        and limits.min_temperature_c < temperature_c < limits.max_temperature_c  # NaN fails
+    ):
+        reply = temperature_c
+        frozen_ref, frozen_since = state.frozen_ref_c, state.frozen_since_s
+        if frozen_ref is None or abs(reply - frozen_ref) > limits.frozen_epsilon_c:
+            frozen_ref, frozen_since = reply, t_s
+        assert frozen_since is not None  # set together with frozen_ref
+        anchor_c, anchor_s = state.rate_anchor_c, state.rate_anchor_s
+        renew = anchor_s is None or t_s - anchor_s >= limits.rate_window_s
+        fast = (
+            renew
+            and anchor_s is not None
+            and anchor_c is not None
+            and abs((reply - anchor_c) / (t_s - anchor_s) * 3600.0) >= limits.max_rate_c_per_h
+        )
+        if not fast and t_s - frozen_since < limits.frozen_after_s:
+            if renew:
+                anchor_c, anchor_s = reply, t_s
+            started = state.started_s
+            new = object.__new__(InterlockState)
+            object.__setattr__(  # as in _remember: every field given, nothing to validate
+                new,
+                "__dict__",
+                {
+                    "conditions": _ALL_CLEAR,
+                    "safety": state.safety,
+                    "started_s": t_s if started is None else started,
+                    "last_t_s": t_s,
+                    "last_reply_s": t_s,
+                    "frozen_ref_c": frozen_ref,
+                    "frozen_since_s": frozen_since,
+                    "rate_anchor_c": anchor_c,
+                    "rate_anchor_s": anchor_s,
+                    "last_comm_ok_s": t_s,
+                    "healthy_seen": True,
+                    "actions": state.actions,
+                },
+            )
+            return new, state.actions, ()
+    return _evaluate_full(state, temperature_c, level_ok, comm_ok, e_stop, limits, t_s)
+
+
+def _evaluate_full(
+    state: InterlockState,
+    temperature_c: float | None,
+    level_ok: bool | None,
+    comm_ok: bool | None,
+    e_stop: bool | None,
+    limits: InterlockLimits,
+    t_s: float,
+) -> tuple[InterlockState, Actions, tuple[InterlockEvent, ...]]:
+    """:func:`evaluate_values` the whole way, any state (arguments as its, t_s checked)."""
     reply = temperature_c
     if reply is not None and math.isnan(reply):
         reply = math.inf  # NaN is an implausible reading
@@ -556,33 +548,3 @@ def acknowledge(
         state, conditions=frozen, safety=safety, healthy_seen=healthy_seen, actions=actions
     )
     return new, actions, tuple(events)
-
-
-def transition_table_markdown() -> str:
-    """Render the transition table and the level map as Markdown for the docs.
-
-    Returns
-    -------
-    str
-        Two Markdown tables: condition-state transitions (anything not listed is illegal),
-        and how the most severe holding level sets the chamber's safety state.
-    """
-    lines = [
-        "| Latching | From | Signal | To |",
-        "|---|---|---|---|",
-    ]
-    for (latch, before, signal), after in _TRANSITIONS.items():
-        lines.append(
-            f"| {'yes' if latch else 'no'} | {before.value} | {signal.value} | {after.value} |"
-        )
-    lines += [
-        "",
-        "| Most severe holding level | Safety state | Outputs |",
-        "|---|---|---|",
-        "| none (before the first healthy evaluation) | starting | forced safe |",
-        "| none | normal | control |",
-    ]
-    for level, safety in _SAFETY_OF_LEVEL.items():
-        outputs = "forced safe" if level is Level.TRIP else "control"
-        lines.append(f"| {level.value} | {safety.value} | {outputs} |")
-    return "\n".join(lines) + "\n"

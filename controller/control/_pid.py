@@ -37,6 +37,9 @@ __all__ = [
 ]
 
 
+_INF = math.inf
+
+
 def _finite(value: float, name: str) -> float:
     value = float(value)
     if not math.isfinite(value):
@@ -224,15 +227,14 @@ class PidLoop:
         "_gain_i",
         "_has_integral",
         "_kc",
+        "_no_derivative",
         "_out_max",
         "_out_min",
         "_p",
         "_params",
         "_setpoint_weight",
-        "_td_s",
         "_ti_s",
         "_tt_s",
-        "_v",
         "derivative",
         "integral",
         "last_measured",
@@ -243,7 +245,7 @@ class PidLoop:
         state = PidState() if state is None else state
         self._params = params
         self._kc, self._setpoint_weight = params.kc, params.setpoint_weight
-        self._td_s, self._ti_s, self._tt_s = params.td_s, params.ti_s, params.tt_s
+        self._ti_s, self._tt_s = params.ti_s, params.tt_s
         self._out_min, self._out_max = params.out_min, params.out_max
         self._has_integral = params.has_integral
         self._dt_s = math.nan  # step length the two factors below are for (none yet), s
@@ -252,7 +254,8 @@ class PidLoop:
         self.derivative = state.derivative
         self.last_measured = state.last_measured
         self.last_output = state.last_output
-        self._p = self._v = 0.0  # P term and unlimited output of the latest call, output unit
+        self._no_derivative = params.td_s == 0.0
+        self._p = 0.0  # P term of the latest track, output unit
 
     @property
     def params(self) -> PidParams:
@@ -286,31 +289,27 @@ class PidLoop:
         float
             Output after limiting, output unit.
         """
-        if not (
-            math.isfinite(measured) and math.isfinite(setpoint) and math.isfinite(dt_s) and dt_s > 0
-        ):
+        error = setpoint - measured
+        # one test for the usual case: 0·x is 0 only for a finite x, so this fails for any
+        # non-finite input (or an overflowing product); the checks name the bad input then
+        if not (error * dt_s * 0.0 == 0.0 and dt_s > 0.0):
             _check_inputs(measured, setpoint, dt_s)
-        kc = self._kc
-        p = kc * (self._setpoint_weight * setpoint - measured)
-        last = self.last_measured
-        d = (
-            0.0
-            if self._td_s == 0.0 or last is None
-            else _derivative(self._params, self.derivative, last, measured, dt_s)
-        )
+        p = self._kc * (self._setpoint_weight * setpoint - measured)
+        if self._no_derivative or self.last_measured is None:
+            d = 0.0
+        else:
+            d = _derivative(self._params, self.derivative, self.last_measured, measured, dt_s)
         i = self.integral
         v = p + i + d
-        high, low = self._out_max, self._out_min
-        u = high if v > high else low if v < low else v
+        u = self._out_max if v > self._out_max else self._out_min if v < self._out_min else v
         if self._has_integral:
             if dt_s != self._dt_s:
                 self._dt_s = dt_s
-                self._gain_i = kc * dt_s / self._ti_s
+                self._gain_i = self._kc * dt_s / self._ti_s
                 self._back = math.expm1(-dt_s / self._tt_s)
-            i = i + self._gain_i * (setpoint - measured) - self._back * (u - v)
+            i = i + self._gain_i * error - self._back * (u - v)
         self.integral, self.derivative = i, d
         self.last_measured, self.last_output = measured, u
-        self._p, self._v = p, v
         return u
 
     def track(self, manual_output: float, measured: float, setpoint: float, dt_s: float) -> float:
@@ -340,7 +339,7 @@ class PidLoop:
         d = _derivative(params, self.derivative, self.last_measured, measured, dt_s)
         self.integral, self.derivative = u - p - d, d
         self.last_measured, self.last_output = measured, u
-        self._p, self._v = p, u
+        self._p = p
         return u
 
 
@@ -378,13 +377,14 @@ def pid_step(
     """
     loop = PidLoop(params, state)
     u = loop.step(measured, setpoint, dt_s)
+    p = params.kc * (params.setpoint_weight * setpoint - measured)  # as the step took it
     return PidResult(
         state=loop.state,
         output=u,
-        p=loop._p,
+        p=p,
         i=state.integral,
         d=loop.derivative,
-        saturated=u != loop._v,
+        saturated=u != p + state.integral + loop.derivative,
     )
 
 

@@ -49,7 +49,6 @@ from controller.control import (
     cycle_step,
     end_window,
     evaluate_values,
-    rate_limit,
     time_proportion_step,
 )
 from controller.runtime._decide_state import ChamberMemory, NodeMemory
@@ -378,9 +377,12 @@ class Decider:
                 ch.limits,
                 t_s,
             )
-            ch.force, ch.alarm = action.force, action.alarm
+            ch.alarm = action.alarm
             if action.force is not None:
+                ch.force = action.force
                 forcing = True
+            elif ch.force is not None:
+                ch.force = None
             if happened:
                 events.extend((ch.name, event) for event in happened)
         windows = self._cycles(readings, targets, t_s, schedule)
@@ -389,14 +391,15 @@ class Decider:
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
         unchecked = Outputs.unchecked  # every drive below is clipped or from checked outputs
+        closed = IncubationStatus.CLOSED
         for ch in self._order:
-            name, node, force, cycle = ch.name, ch.node, ch.force, ch.cycle
-            if force is not None:
-                lamp, pump = force.lamp_pct, force.pump_pct
+            name, node, cycle = ch.name, ch.node, ch.cycle
+            if forcing and ch.force is not None:
+                lamp, pump = ch.force.lamp_pct, ch.force.pump_pct
             else:
                 target, reading = targets[name], readings[name]
                 lamp = ch.lamp.drive(target.par, reading.par, dt_s)
-                if cycle is not None and cycle.status is IncubationStatus.CLOSED:
+                if cycle is not None and cycle.status is closed:
                     pump = 0.0  # flushing pump off; the flow trim waits for the window's end
                 else:
                     pump = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
@@ -463,7 +466,12 @@ class Decider:
             value = readings[c].temperature_c
             if value is not None and low < value < high:
                 temps.append(value)
-        measured = math.fsum(temps) / len(temps) if temps else None
+        if not temps:
+            measured = None
+        elif len(temps) == 1:  # a chamber's own water
+            measured = temps[0] + 0.0  # math.fsum([x]) / 1, bit for bit (−0.0 becomes 0.0)
+        else:
+            measured = math.fsum(temps) / len(temps)
         target = None
         for member in node.members:
             target = targets[member.name].temperature_c
@@ -488,10 +496,16 @@ class Decider:
             return
         if measured is not None:
             previous = measured if node.setpoint_c is None else node.setpoint_c
-            node.setpoint_c = rate_limit(previous, target, node.ramp_per_s, dt_s)
-            node.output_pct = node.pid.step(measured, node.setpoint_c, dt_s)
+            # rate_limit(previous, target, node.ramp_per_s, dt_s) written out: both setpoints
+            # are finite floats (a probe mean or an earlier setpoint; the protocol's), dt_s > 0
+            step = node.ramp_per_s * dt_s
+            change = target - previous
+            change = change if change < step else step  # min(step, change)
+            change = change if change > -step else -step  # max(-step, change)
+            node.setpoint_c = setpoint = previous + change
+            node.output_pct = node.pid.step(measured, setpoint, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
-        if node.settings.heater_on_off:
+        if node.heater_on_off:
             settings = self._plan.settings
             node.cycle, on = time_proportion_step(
                 node.cycle,

@@ -8,6 +8,7 @@ them; an actuator computes its drive here (feed-forward on its curve plus its PI
 from __future__ import annotations
 
 import math
+from bisect import bisect_right
 
 from controller.control import (
     Condition,
@@ -63,6 +64,7 @@ class NodeMemory:
         "chiller",
         "cycle",
         "heater",
+        "heater_on_off",
         "members",
         "output_pct",
         "pid",
@@ -80,6 +82,7 @@ class NodeMemory:
             (c.name, c.limits.sensor_min_c, c.limits.sensor_max_c) for c in members
         )
         self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
+        self.heater_on_off = settings.heater_on_off
         self.pid = PidLoop(settings.pid)
         self.setpoint_c: float | None = None
         self.output_pct = 0.0
@@ -95,16 +98,49 @@ class Actuator:
     drive of the latest setpoint.
 
     That drive is kept with the setpoint it was computed for and recomputed whenever the
-    setpoint differs; the curve is frozen and never replaced, so it cannot go stale.
+    setpoint differs. The curve's segments are taken once for the measured side (start and
+    differences, as :meth:`DriveCurve.equivalent_drive` computes them); the curve is frozen
+    and never replaced, so neither can go stale.
     """
 
-    __slots__ = ("_drive", "_setpoint", "curve", "trim")
+    __slots__ = ("_drive", "_edge", "_last", "_segments", "_setpoint", "_values", "curve", "trim")
 
     def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
         self.curve = curve
         self.trim = None if trim is None else PidLoop(trim)
         self._setpoint = math.nan  # equal to no setpoint: the first one computes its drive
         self._drive = 0.0
+        xs, ys = curve.value, curve.drive_pct
+        self._values, self._last = xs, len(xs) - 1  # quantity's unit; index of the last point
+        # segment k (from point k − 1 to point k; 0 repeats 1): x0, y0, y1 − y0, x1 − x0
+        # (quantity's unit, %, %, quantity's unit)
+        segments = [
+            (xs[k - 1], ys[k - 1], ys[k] - ys[k - 1], xs[k] - xs[k - 1]) for k in range(1, len(xs))
+        ]
+        self._segments = (segments[0], *segments)
+        self._edge = ys[0]  # the dead band's edge: the least drive a setpoint above 0 gets, %
+
+    def equivalent_drive(self, measured: float) -> float:
+        """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
+
+        Parameters
+        ----------
+        measured
+            Quantity (its unit).
+
+        Returns
+        -------
+        float
+            Drive, %, not clipped.
+        """
+        last = self._last
+        if last == 1:  # a straight line: its one segment, whichever side the value is
+            k = 1
+        else:
+            k = bisect_right(self._values, measured)
+            k = 1 if k < 1 else last if k > last else k
+        x0, y0, dy, dx = self._segments[k]
+        return y0 + (measured - x0) * dy / dx
 
     def drive(self, setpoint: float | None, measured: float | None, dt_s: float) -> float:
         """Drive, %: the curve's feed-forward for the setpoint plus the PI trim on the sensor,
@@ -122,7 +158,10 @@ class Actuator:
         if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
             return 0.0
         if setpoint != self._setpoint:
-            self._setpoint, self._drive = setpoint, self.curve.drive_for(setpoint)
+            # self.curve.drive_for(setpoint) (the setpoint is above 0), on the kept segments
+            drive = self.equivalent_drive(setpoint)
+            drive = drive if drive > self._edge else self._edge  # min(100, max(edge, drive))
+            self._setpoint, self._drive = setpoint, drive if drive < 100.0 else 100.0
         drive = self._drive
         if drive <= 0.0:
             return 0.0
@@ -132,7 +171,15 @@ class Actuator:
         elif measured is None:
             correction = trim.last_output or 0.0
         else:
-            correction = trim.step(self.curve.equivalent_drive(measured), drive, dt_s)
+            # self.equivalent_drive(measured), written out
+            last = self._last
+            if last == 1:
+                k = 1
+            else:
+                k = bisect_right(self._values, measured)
+                k = 1 if k < 1 else last if k > last else k
+            x0, y0, dy, dx = self._segments[k]
+            correction = trim.step(y0 + (measured - x0) * dy / dx, drive, dt_s)
         drive = 100.0 * (drive + correction) / 100.0
         drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
         return drive if drive < 100.0 else 100.0

@@ -274,9 +274,22 @@ class NodeSettings:
             ``(heater_pct, chiller_pct)``, each 0–100 %: the chiller's drive is the cooling
             demand divided by ``chiller_ratio``, so a watt of demand is a watt either side.
         """
-        if output_pct >= 0.0 or self.chiller_ratio <= 0.0:
-            return split_range(max(0.0, output_pct), deadband_pct)
-        return split_range(output_pct / self.chiller_ratio, deadband_pct)
+        ratio = self.chiller_ratio
+        if output_pct >= 0.0 or ratio <= 0.0:
+            u = output_pct if output_pct > 0.0 else 0.0  # max(0.0, output_pct)
+        else:
+            u = output_pct / ratio
+        if not (-100.0 < u < 100.0 and 0.0 <= deadband_pct < 100.0):
+            return split_range(u, deadband_pct)  # clips to ±100 %, or names the bad input
+        # split_range(u, deadband_pct) for a u inside ±100 % (every tick's case), written out:
+        # the same arithmetic without its input checks and clipping
+        if u > deadband_pct:
+            drive = 100.0 * (u - deadband_pct) / (100.0 - deadband_pct)
+            return (drive if drive < 100.0 else 100.0), 0.0
+        if u < -deadband_pct:
+            drive = 100.0 * (-u - deadband_pct) / (100.0 - deadband_pct)
+            return 0.0, (drive if drive < 100.0 else 100.0)
+        return 0.0, 0.0
 
 
 @dataclass(frozen=True, kw_only=True)

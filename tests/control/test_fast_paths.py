@@ -26,6 +26,7 @@ from controller.control import (
     PidState,
     Readings,
     SafetyState,
+    _interlocks,
     acknowledge,
     evaluate,
     evaluate_values,
@@ -34,6 +35,7 @@ from controller.control import (
     rate_limit,
     split_range,
 )
+from controller.control._interlocks import _ALL_CLEAR, _evaluate_full
 from controller.rig import DriveCurve
 
 LIMITS = InterlockLimits(
@@ -101,6 +103,9 @@ def test_pid_loop_starts_from_a_given_state_and_its_gains_cannot_be_swapped() ->
         (1.0, math.inf, 10.0, "setpoint must be finite"),
         (1.0, 1.0, 0.0, "dt_s must be finite and above 0"),
         (1.0, 1.0, math.nan, "dt_s must be finite and above 0"),
+        (1.0, 1.0, math.inf, "dt_s must be finite and above 0"),
+        (1.0, 1.0, -10.0, "dt_s must be finite and above 0"),
+        (-math.inf, -math.inf, 10.0, "measured must be finite"),
     ],
 )
 def test_pid_loop_refuses_what_pid_step_refuses_and_keeps_its_state(
@@ -114,6 +119,16 @@ def test_pid_loop_refuses_what_pid_step_refuses_and_keeps_its_state(
     with pytest.raises(ValueError, match=message):
         loop.step(measured, setpoint, dt_s)
     assert loop.state == before
+
+
+def test_pid_loop_takes_finite_inputs_whose_error_overflows() -> None:
+    """The step's one-test check fails on an error times dt_s beyond the float range; the
+    named checks then find every input finite and the step goes on as pid_step's."""
+    params = PidParams(kc=1e-300, ti_s=100.0, out_min=-50.0, out_max=50.0)
+    loop = PidLoop(params)
+    result = pid_step(PidState(), params, -1e307, 1e307, 10.0)
+    assert loop.step(-1e307, 1e307, 10.0) == result.output == 50.0
+    assert loop.state == result.state and math.isfinite(loop.integral)
 
 
 def test_rate_limit_and_split_range_still_name_the_bad_input() -> None:
@@ -221,6 +236,115 @@ def test_a_chamber_quiet_again_after_an_acknowledged_trip_still_sees_the_next_fa
     assert [(e.kind, e.condition) for e in events if e.condition is not None] == [
         (EventKind.RAISED, Condition.UNDER_TEMPERATURE)
     ]
+
+
+# A mostly quiet chamber: slow drifts inside the limits, held readings (the frozen check),
+# jumps (the rate check) and now and then a fault of any kind, so the quiet chamber's short
+# way (at the top of evaluate_values) is taken often and left at every kind of condition.
+quiet_readings = st.one_of(
+    st.builds(
+        Readings,
+        temperature_c=st.sampled_from([20.0, 20.0, 20.0, 20.05, 20.1, 19.95, 25.0, 10.05]),
+        level_ok=st.sampled_from([True, None]),
+        comm_ok=st.just(True),
+        e_stop=st.sampled_from([False, None]),
+    ),
+    readings_strategy,
+)
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            quiet_readings,
+            st.sampled_from([0.0, 10.0, 10.0, 30.0, 64.0, 120.0]),
+            st.one_of(st.none(), st.sampled_from(list(Condition))),
+        ),
+        min_size=1,
+        max_size=60,
+    )
+)
+def test_the_quiet_chambers_short_way_walks_the_same_states_as_the_full_way(
+    ticks: list[tuple[Readings, float, Condition | None]],
+) -> None:
+    a = b = InterlockState()
+    t_s = 0.0
+    for reading, step_s, ack in ticks:
+        t_s += step_s
+        values = (reading.temperature_c, reading.level_ok, reading.comm_ok, reading.e_stop)
+        a, actions_a, events_a = evaluate_values(a, *values, LIMITS, t_s)
+        b, actions_b, events_b = _evaluate_full(b, *values, LIMITS, t_s)
+        assert (a, actions_a, events_a) == (b, actions_b, events_b)
+        assert (a.conditions is _ALL_CLEAR) == (b.conditions is _ALL_CLEAR)
+        pending = ack is not None and a.conditions[ack] in _ACKNOWLEDGEABLE
+        if ack is not None and pending and LIMITS.policies[ack].latch:
+            a = acknowledge(a, ack, LIMITS, t_s)[0]
+            b = acknowledge(b, ack, LIMITS, t_s)[0]
+
+
+_ACKNOWLEDGEABLE = (ConditionState.ACTIVE, ConditionState.LATCHED)
+
+
+def test_the_short_way_is_left_at_the_tick_a_quiet_chamber_gets_a_condition(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Each way out of quiet: the full way raises the condition at the same tick."""
+    full_ways = []
+
+    def full(*args: object) -> object:
+        full_ways.append(args)
+        return _evaluate_full(*args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(_interlocks, "_evaluate_full", full)
+
+    def walk(temps: list[float | None], step_s: float = 10.0, **other: bool | None) -> list:
+        state, t_s, shorts, raised = InterlockState(), 0.0, [], []
+        for k, temp in enumerate(temps):
+            last = k == len(temps) - 1
+            values = (
+                temp,
+                other.get("level_ok", True) if last else True,
+                other.get("comm_ok", True) if last else True,
+                other.get("e_stop", False) if last else False,
+            )
+            before = len(full_ways)
+            state, _, events = evaluate_values(state, *values, LIMITS, t_s)
+            shorts.append(len(full_ways) == before)
+            raised += [(k, e.condition) for e in events if e.kind is EventKind.RAISED]
+            t_s += step_s
+        return [shorts[1:], raised]
+
+    quiet = [True] * 4
+    assert walk([20.0, 20.1, 20.0, 20.1, 20.0]) == [quiet, []]
+    assert walk([20.0, 20.1, 20.0, 20.1, 30.0]) == [
+        [True, True, True, False],
+        [(4, Condition.OVER_TEMPERATURE)],  # 40 s: the 64 s rate window is not over yet
+    ]
+    assert walk([20.0, 20.1, 20.0, 20.1, 10.0])[1][0] == (4, Condition.UNDER_TEMPERATURE)
+    assert walk([20.0, 20.1, 20.0, 20.1, None], step_s=40.0) == [
+        [True, True, True, False],
+        [(4, Condition.SENSOR_STALE)],
+    ]
+    for fault, condition in (
+        ({"level_ok": False}, Condition.LOW_LEVEL),
+        ({"e_stop": True}, Condition.E_STOP),
+    ):
+        assert walk([20.0, 20.1, 20.0, 20.1, 20.0], **fault) == [
+            [True, True, True, False],
+            [(4, condition)],
+        ]
+    # comm not ok goes the full way; the loss is raised once comm_loss_after_s has passed
+    assert walk([20.0, 20.1, 20.0, 20.1, 20.0], step_s=20.0, comm_ok=False)[1] == [
+        (4, Condition.COMM_LOSS)
+    ]
+    held = [20.0] * 100  # the frozen check: 900 s without a change
+    shorts, raised = walk(held)
+    assert raised == [(90, Condition.SENSOR_FROZEN)] and shorts[88:90] == [True, False]
+    # 0.125 °C in 64 s is exactly the rate limit (7.03125 °C/h): raised on reaching it
+    shorts, raised = walk([20.0, 20.0, 20.125], step_s=64.0)
+    assert raised == [(2, Condition.RATE_OF_CHANGE)] and shorts == [True, False]
+    assert walk([20.0, 20.0, 20.124], step_s=64.0) == [[True, True], []]
 
 
 # ---------------------------------------------------------------------------- outputs
