@@ -388,10 +388,11 @@ class ControlLoop(OperatorHooks):
                 self._counter.missed += behind
                 k += behind
                 due = t0 + k * period
-            if pclock.elapsed(due) >= end_s:
+            elapsed_due = pclock.elapsed(due)
+            if elapsed_due >= end_s:
                 break
             self._counter.add(now - due)
-            await self._tick(k, now, due)
+            await self._tick(k, now, elapsed_due)
             k += 1
         if self._abort_by is None:
             finish = pclock.clock_time_of(self.compiled.duration_s)
@@ -404,9 +405,11 @@ class ControlLoop(OperatorHooks):
         """Read every chamber concurrently; whatever has not answered by the read timeout,
         or failed, is stale. One deadline bounds every read of the tick. I/O that can answer
         every read at once (:class:`ImmediateIO`) is asked so first."""
-        io = self.io
+        if self._turn_first():
+            await asyncio.sleep(0)
+        now_io = self._now_io
+        got = None if now_io is None else self._ask(now_io.read_now, self._chambers)
         found: dict[str, ChamberReadings] = {}
-        got = await self._at_once(lambda now_io: now_io.read_now(self._chambers))
         if got is not None:
             for chamber, value in got.items():
                 if isinstance(value, ChamberReadings):
@@ -414,6 +417,7 @@ class ControlLoop(OperatorHooks):
                 else:
                     self._failure(chamber, "read", value)
         else:
+            io = self.io
 
             async def one(chamber: str) -> None:
                 try:
@@ -428,11 +432,12 @@ class ControlLoop(OperatorHooks):
                             group.create_task(one(chamber))
             except TimeoutError:
                 pass
+        failing = self._failing
         for chamber in self._chambers:
             if chamber not in found:
                 self._failure(chamber, "read", None)
                 found[chamber] = stale_readings(chamber, now)
-            elif self._failing:  # (a success only ends a streak)
+            elif failing:  # (a success only ends a streak)
                 self._failure(chamber, "read", False)
         return found
 
@@ -440,9 +445,11 @@ class ControlLoop(OperatorHooks):
         """Write every chamber concurrently under one deadline; a timeout or error is a
         failed write. I/O that can take every write at once (:class:`ImmediateIO`) is
         given them so first."""
-        io = self.io
+        if self._turn_first():
+            await asyncio.sleep(0)
+        now_io = self._now_io
+        got = None if now_io is None else self._ask(now_io.write_now, outputs)
         done: dict[str, bool] = {}
-        got = await self._at_once(lambda now_io: now_io.write_now(outputs))
         if got is not None:
             for chamber, value in got.items():
                 if isinstance(value, bool):
@@ -450,6 +457,7 @@ class ControlLoop(OperatorHooks):
                 else:
                     self._failure(chamber, "write", value)
         else:
+            io = self.io
 
             async def one(chamber: str, value: Outputs) -> None:
                 try:
@@ -464,37 +472,36 @@ class ControlLoop(OperatorHooks):
                             group.create_task(one(chamber, value))
             except TimeoutError:
                 pass
+        failing = self._failing
         for chamber in outputs:
             if not done.setdefault(chamber, False):
                 self._failure(chamber, "write", None)
-            elif self._failing:  # (a success only ends a streak)
+            elif failing:  # (a success only ends a streak)
                 self._failure(chamber, "write", False)
         return done
 
-    async def _at_once(
-        self, ask: Callable[[ImmediateIO], Mapping[str, _T] | None]
-    ) -> dict[str, _T] | None:
-        """What the I/O answers for every chamber at once, or None to go chamber by chamber
-        (it cannot, it is not :class:`ImmediateIO`, or it failed: then nothing was done).
+    def _turn_first(self) -> bool:
+        """Whether to let the event loop turn once before asking the :class:`ImmediateIO`.
 
-        It lets the event loop turn once first, as starting a task per chamber did, so that
-        what else falls due at this very instant (an operator's E-stop, a fault a test
-        injects) still happens before the reads or writes; on the virtual clock's loop with
-        nothing else due at this instant the turn would change nothing and is skipped."""
-        if self._now_io is None:
-            return None
-        if self._quiet is None or not self._quiet():
-            await asyncio.sleep(0)
-        now_io = self._now_io
-        if now_io is None:  # the fast path failed meanwhile
-            return None
+        Starting a task per chamber did, so what else falls due at this very instant (an
+        operator's E-stop, a fault a test injects) still happens before the reads or writes;
+        on the virtual clock's loop with nothing else due at this instant the turn would
+        change nothing and is skipped. I/O that is not immediate goes chamber by chamber,
+        whose tasks turn the loop anyway."""
+        return self._now_io is not None and (self._quiet is None or not self._quiet())
+
+    def _ask(
+        self, method: Callable[[Any], Mapping[str, _T] | None], arg: Any
+    ) -> Mapping[str, _T] | None:
+        """What the :class:`ImmediateIO` answers for every chamber at once, or None to go
+        chamber by chamber (it cannot, or it failed: then nothing was done, and a failure
+        turns the fast path off for the rest of the run)."""
         try:
-            got = ask(now_io)
+            return method(arg)
         except Exception:  # a bug in the fast path: the chamber-by-chamber path still works
             _log.exception("reading or writing every chamber at once failed")
             self._now_io = None
             return None
-        return None if got is None else dict(got)
 
     def _failure(self, chamber: str, what: str, error: BaseException | bool | None) -> None:
         """Log the first failure of a streak (and its end) once, not every tick.
@@ -529,9 +536,9 @@ class ControlLoop(OperatorHooks):
             },
         )
 
-    async def _tick(self, k: int, now: float, due: float) -> None:
+    async def _tick(self, k: int, now: float, elapsed_due: float) -> None:
+        """Tick ``k`` at clock time ``now`` (s), due at protocol time ``elapsed_due`` (s)."""
         assert self._pclock is not None
-        elapsed_due = self._pclock.elapsed(due)
         elapsed = self._pclock.elapsed(now)
         utc_s = self._utc_of(now)
         phase, targets = self._table.at_elapsed(elapsed_due)
