@@ -61,7 +61,6 @@ from controller.storage import (
     RunEnd,
     RunEndReason,
     RunLogWriter,
-    SampleRow,
 )
 
 __all__ = ["ControlLoop", "ImmediateIO", "RunSummary", "TickStats", "TickStatus"]
@@ -174,7 +173,7 @@ class ControlLoop(OperatorHooks):
         self._utc0_s = 0.0
         self._pclock: ProtocolClock | None = None
         self._state = RunState.STARTING
-        self._latest_values: tuple[tuple[Any, ...], ...] = ()
+        self._latest_values: Sequence[tuple[Any, ...]] = ()
         self._abort_by: str | None = None
         self._windows = 0
         self._sleeping = False
@@ -236,12 +235,6 @@ class ControlLoop(OperatorHooks):
             self._state = RunState.FINISHED
             self.done.set()
         return self._summary(reason, detail)
-
-    @property
-    def _latest(self) -> dict[str, SampleRow]:
-        """Each protocol chamber's row of the latest tick (built when asked: status)."""
-        rows = map(SampleRow.from_values, self._latest_values)
-        return {row.chamber: row for row in rows}
 
     def _summary(self, reason: RunEndReason, detail: str) -> RunSummary:
         end_s = self.clock.now_s()
@@ -545,8 +538,9 @@ class ControlLoop(OperatorHooks):
         readings = await self._read_all(now)
         decision = self.decider.decide(readings, targets, now, self._schedule(phase, elapsed_due))
         written = await self._write_all(decision.writes)
+        note_write = self.decider.note_write
         for chamber, ok in written.items():
-            self.decider.note_write(chamber, ok)
+            note_write(chamber, ok)
         sink = self.sink
         if phase != self._phase:
             sink.put(
@@ -565,12 +559,13 @@ class ControlLoop(OperatorHooks):
                 sink.put(record)
                 if record.action.value == "raise":
                     self._alarms.append((chamber, record.code))
-        self._record_windows(decision.windows)
+        if decision.windows:
+            self._record_windows(decision.windows)
         holding = self._holding
         rows = tick_values(
             (now, utc_s, elapsed, phase), self._chambers, readings, targets, decision, holding
         )
-        self._latest_values = tuple(rows)
+        self._latest_values = rows  # nobody changes a tick's rows once made (LogSink)
         sink.put_samples(rows)
         if self.progress is not None:
             self.progress(
