@@ -25,6 +25,11 @@ Rules
   (``hardware-notes/mqtt-topics.md``), and takes remote commands if the table enables them.
   The control loop never waits for the broker. A simulated run at ``--speed max`` does not
   publish and says so (its clock would jump over the broker's answers).
+- While the run goes on, what start-up built (parsed files, compiled protocol, control plan,
+  imported modules: about 130 000 objects that live as long as the run) is kept out of the
+  cyclic garbage collector's scans (``gc.freeze``); each full collection of a long run would
+  otherwise walk all of it again (about 0.1 s each, several in a simulated week at full
+  speed). They are handed back to the collector when the run ends.
 - On a terminal a progress bar shows phase, simulated time and alarms; otherwise the run is
   quiet. The log's path is printed at the end; exit 0 when the protocol ran to its end, 1 if
   the run failed (the outputs were made safe and the log closed first).
@@ -33,6 +38,8 @@ Rules
 from __future__ import annotations
 
 import argparse
+import contextlib
+import gc
 import logging
 import math
 import sys
@@ -48,7 +55,7 @@ from controller.errors import RuntimeFailure, SquallError
 from controller.protocol import format_duration
 
 if TYPE_CHECKING:
-    from collections.abc import Awaitable, Callable
+    from collections.abc import Awaitable, Callable, Iterator
 
     from controller.runtime import (
         ControlLoop,
@@ -231,6 +238,17 @@ class _Bar:
         self.progress.update(self.task, completed=status.elapsed_s, **fields)
 
 
+@contextlib.contextmanager
+def _start_up_frozen() -> Iterator[None]:
+    """Keep every object that exists now out of the cyclic garbage collector's scans until
+    the block ends (``gc.freeze``; :func:`gc.unfreeze` after)."""
+    gc.freeze()
+    try:
+        yield
+    finally:
+        gc.unfreeze()
+
+
 def _report(console: Console, summary: RunSummary, wall_s: float, interactive: bool) -> None:
     ratio = summary.run_s / wall_s if wall_s > 0 else math.inf
     if interactive:
@@ -366,11 +384,12 @@ def _handle(args: argparse.Namespace) -> int:
         console.print(f"operator commands: squall ctl --log {run.writer.path} status|hold|...")
     wall0 = time.perf_counter()
     try:
-        if bar is not None:
-            with bar.progress:
-                summary = run.run(progress=bar, runner=runner)
-        else:
-            summary = run.run(runner=runner)
+        with _start_up_frozen():
+            if bar is not None:
+                with bar.progress:
+                    summary = run.run(progress=bar, runner=runner)
+            else:
+                summary = run.run(runner=runner)
     except (SquallError, RuntimeFailure, KeyboardInterrupt):
         print(f"log: {run.writer.path}", file=sys.stderr)
         raise

@@ -22,7 +22,7 @@ Rules of this module
 from __future__ import annotations
 
 import asyncio
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from enum import StrEnum
 from types import TracebackType
 from typing import Protocol, Self, runtime_checkable
@@ -43,7 +43,10 @@ class Quantity(StrEnum):
     E_STOP = "e-stop"
 
 
-@dataclass(frozen=True, slots=True, kw_only=True)
+_NO_FAILURES: frozenset[Quantity] = frozenset()
+
+
+@dataclass(frozen=True, slots=True, kw_only=True, init=False)
 class ChamberReadings:
     """What one chamber's devices reported at one read.
 
@@ -90,6 +93,36 @@ class ChamberReadings:
     comm_ok: bool = True
     failed: frozenset[Quantity] = field(default_factory=frozenset)
 
+    def __init__(
+        self,
+        *,
+        chamber: str,
+        t_s: float,
+        temperature_c: float | None = None,
+        o2_umol_l: float | None = None,
+        o2_sat_pct: float | None = None,
+        par: float | None = None,
+        flow_cm_s: float | None = None,
+        level_ok: bool | None = None,
+        e_stop: bool | None = None,
+        comm_ok: bool = True,
+        failed: frozenset[Quantity] = _NO_FAILURES,
+    ) -> None:
+        # Built for every chamber at every tick: each slot is set through its own descriptor,
+        # which costs half of what a frozen dataclass's __init__ pays per field (a lookup and
+        # object.__setattr__); from outside the instance stays frozen (dataclass __setattr__).
+        _SET_CHAMBER(self, chamber)
+        _SET_T_S(self, t_s)
+        _SET_TEMPERATURE_C(self, temperature_c)
+        _SET_O2_UMOL_L(self, o2_umol_l)
+        _SET_O2_SAT_PCT(self, o2_sat_pct)
+        _SET_PAR(self, par)
+        _SET_FLOW_CM_S(self, flow_cm_s)
+        _SET_LEVEL_OK(self, level_ok)
+        _SET_E_STOP(self, e_stop)
+        _SET_COMM_OK(self, comm_ok)
+        _SET_FAILED(self, failed)
+
     def fresh(self, quantity: Quantity) -> bool:
         """Whether a quantity arrived fresh in this read.
 
@@ -112,6 +145,21 @@ class ChamberReadings:
             Quantity.E_STOP: self.e_stop,
         }[quantity]
         return value is not None and quantity not in self.failed
+
+
+(
+    _SET_CHAMBER,
+    _SET_T_S,
+    _SET_TEMPERATURE_C,
+    _SET_O2_UMOL_L,
+    _SET_O2_SAT_PCT,
+    _SET_PAR,
+    _SET_FLOW_CM_S,
+    _SET_LEVEL_OK,
+    _SET_E_STOP,
+    _SET_COMM_OK,
+    _SET_FAILED,
+) = (getattr(ChamberReadings, f.name).__set__ for f in fields(ChamberReadings))
 
 
 def stale_readings(chamber: str, t_s: float) -> ChamberReadings:

@@ -140,6 +140,7 @@ def tick_values(
     now, utc_s, elapsed, phase = when
     chosen_of = decision.chambers
     rows = []
+    append = rows.append
     for chamber in chambers:
         reading, target, chosen = readings[chamber], targets[chamber], chosen_of[chamber]
         out = chosen.outputs
@@ -152,7 +153,7 @@ def tick_values(
             incubation = _INCUBATION[chosen.incubation.value]
         else:
             incubation = _OPEN if out.pump_pct > 0 else _CLOSED
-        rows.append(
+        append(
             (
                 now,
                 utc_s,

@@ -61,7 +61,6 @@ from controller.storage import (
     RunEnd,
     RunEndReason,
     RunLogWriter,
-    SampleRow,
 )
 
 __all__ = ["ControlLoop", "ImmediateIO", "RunSummary", "TickStats", "TickStatus"]
@@ -174,7 +173,7 @@ class ControlLoop(OperatorHooks):
         self._utc0_s = 0.0
         self._pclock: ProtocolClock | None = None
         self._state = RunState.STARTING
-        self._latest_values: tuple[tuple[Any, ...], ...] = ()
+        self._latest_values: Sequence[tuple[Any, ...]] = ()
         self._abort_by: str | None = None
         self._windows = 0
         self._sleeping = False
@@ -236,12 +235,6 @@ class ControlLoop(OperatorHooks):
             self._state = RunState.FINISHED
             self.done.set()
         return self._summary(reason, detail)
-
-    @property
-    def _latest(self) -> dict[str, SampleRow]:
-        """Each protocol chamber's row of the latest tick (built when asked: status)."""
-        rows = map(SampleRow.from_values, self._latest_values)
-        return {row.chamber: row for row in rows}
 
     def _summary(self, reason: RunEndReason, detail: str) -> RunSummary:
         end_s = self.clock.now_s()
@@ -388,10 +381,11 @@ class ControlLoop(OperatorHooks):
                 self._counter.missed += behind
                 k += behind
                 due = t0 + k * period
-            if pclock.elapsed(due) >= end_s:
+            elapsed_due = pclock.elapsed(due)
+            if elapsed_due >= end_s:
                 break
             self._counter.add(now - due)
-            await self._tick(k, now, due)
+            await self._tick(k, now, elapsed_due)
             k += 1
         if self._abort_by is None:
             finish = pclock.clock_time_of(self.compiled.duration_s)
@@ -404,9 +398,11 @@ class ControlLoop(OperatorHooks):
         """Read every chamber concurrently; whatever has not answered by the read timeout,
         or failed, is stale. One deadline bounds every read of the tick. I/O that can answer
         every read at once (:class:`ImmediateIO`) is asked so first."""
-        io = self.io
+        if self._turn_first():
+            await asyncio.sleep(0)
+        now_io = self._now_io
+        got = None if now_io is None else self._ask(now_io.read_now, self._chambers)
         found: dict[str, ChamberReadings] = {}
-        got = await self._at_once(lambda now_io: now_io.read_now(self._chambers))
         if got is not None:
             for chamber, value in got.items():
                 if isinstance(value, ChamberReadings):
@@ -414,6 +410,7 @@ class ControlLoop(OperatorHooks):
                 else:
                     self._failure(chamber, "read", value)
         else:
+            io = self.io
 
             async def one(chamber: str) -> None:
                 try:
@@ -428,11 +425,12 @@ class ControlLoop(OperatorHooks):
                             group.create_task(one(chamber))
             except TimeoutError:
                 pass
+        failing = self._failing
         for chamber in self._chambers:
             if chamber not in found:
                 self._failure(chamber, "read", None)
                 found[chamber] = stale_readings(chamber, now)
-            elif self._failing:  # (a success only ends a streak)
+            elif failing:  # (a success only ends a streak)
                 self._failure(chamber, "read", False)
         return found
 
@@ -440,9 +438,11 @@ class ControlLoop(OperatorHooks):
         """Write every chamber concurrently under one deadline; a timeout or error is a
         failed write. I/O that can take every write at once (:class:`ImmediateIO`) is
         given them so first."""
-        io = self.io
+        if self._turn_first():
+            await asyncio.sleep(0)
+        now_io = self._now_io
+        got = None if now_io is None else self._ask(now_io.write_now, outputs)
         done: dict[str, bool] = {}
-        got = await self._at_once(lambda now_io: now_io.write_now(outputs))
         if got is not None:
             for chamber, value in got.items():
                 if isinstance(value, bool):
@@ -450,6 +450,7 @@ class ControlLoop(OperatorHooks):
                 else:
                     self._failure(chamber, "write", value)
         else:
+            io = self.io
 
             async def one(chamber: str, value: Outputs) -> None:
                 try:
@@ -464,37 +465,36 @@ class ControlLoop(OperatorHooks):
                             group.create_task(one(chamber, value))
             except TimeoutError:
                 pass
+        failing = self._failing
         for chamber in outputs:
             if not done.setdefault(chamber, False):
                 self._failure(chamber, "write", None)
-            elif self._failing:  # (a success only ends a streak)
+            elif failing:  # (a success only ends a streak)
                 self._failure(chamber, "write", False)
         return done
 
-    async def _at_once(
-        self, ask: Callable[[ImmediateIO], Mapping[str, _T] | None]
-    ) -> dict[str, _T] | None:
-        """What the I/O answers for every chamber at once, or None to go chamber by chamber
-        (it cannot, it is not :class:`ImmediateIO`, or it failed: then nothing was done).
+    def _turn_first(self) -> bool:
+        """Whether to let the event loop turn once before asking the :class:`ImmediateIO`.
 
-        It lets the event loop turn once first, as starting a task per chamber did, so that
-        what else falls due at this very instant (an operator's E-stop, a fault a test
-        injects) still happens before the reads or writes; on the virtual clock's loop with
-        nothing else due at this instant the turn would change nothing and is skipped."""
-        if self._now_io is None:
-            return None
-        if self._quiet is None or not self._quiet():
-            await asyncio.sleep(0)
-        now_io = self._now_io
-        if now_io is None:  # the fast path failed meanwhile
-            return None
+        Starting a task per chamber did, so what else falls due at this very instant (an
+        operator's E-stop, a fault a test injects) still happens before the reads or writes;
+        on the virtual clock's loop with nothing else due at this instant the turn would
+        change nothing and is skipped. I/O that is not immediate goes chamber by chamber,
+        whose tasks turn the loop anyway."""
+        return self._now_io is not None and (self._quiet is None or not self._quiet())
+
+    def _ask(
+        self, method: Callable[[Any], Mapping[str, _T] | None], arg: Any
+    ) -> Mapping[str, _T] | None:
+        """What the :class:`ImmediateIO` answers for every chamber at once, or None to go
+        chamber by chamber (it cannot, or it failed: then nothing was done, and a failure
+        turns the fast path off for the rest of the run)."""
         try:
-            got = ask(now_io)
+            return method(arg)
         except Exception:  # a bug in the fast path: the chamber-by-chamber path still works
             _log.exception("reading or writing every chamber at once failed")
             self._now_io = None
             return None
-        return None if got is None else dict(got)
 
     def _failure(self, chamber: str, what: str, error: BaseException | bool | None) -> None:
         """Log the first failure of a streak (and its end) once, not every tick.
@@ -529,17 +529,18 @@ class ControlLoop(OperatorHooks):
             },
         )
 
-    async def _tick(self, k: int, now: float, due: float) -> None:
+    async def _tick(self, k: int, now: float, elapsed_due: float) -> None:
+        """Tick ``k`` at clock time ``now`` (s), due at protocol time ``elapsed_due`` (s)."""
         assert self._pclock is not None
-        elapsed_due = self._pclock.elapsed(due)
         elapsed = self._pclock.elapsed(now)
         utc_s = self._utc_of(now)
         phase, targets = self._table.at_elapsed(elapsed_due)
         readings = await self._read_all(now)
         decision = self.decider.decide(readings, targets, now, self._schedule(phase, elapsed_due))
         written = await self._write_all(decision.writes)
+        note_write = self.decider.note_write
         for chamber, ok in written.items():
-            self.decider.note_write(chamber, ok)
+            note_write(chamber, ok)
         sink = self.sink
         if phase != self._phase:
             sink.put(
@@ -558,12 +559,13 @@ class ControlLoop(OperatorHooks):
                 sink.put(record)
                 if record.action.value == "raise":
                     self._alarms.append((chamber, record.code))
-        self._record_windows(decision.windows)
+        if decision.windows:
+            self._record_windows(decision.windows)
         holding = self._holding
         rows = tick_values(
             (now, utc_s, elapsed, phase), self._chambers, readings, targets, decision, holding
         )
-        self._latest_values = tuple(rows)
+        self._latest_values = rows  # nobody changes a tick's rows once made (LogSink)
         sink.put_samples(rows)
         if self.progress is not None:
             self.progress(

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import asyncio
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import replace
 from enum import StrEnum
 from typing import Any
@@ -123,11 +123,17 @@ class OperatorHooks:
     _utc0_s: float
     _state: RunState
     _phase: str | None
-    _latest: dict[str, SampleRow]
+    _latest_values: Sequence[tuple[Any, ...]]  # the latest tick's rows, SampleRow field order
     _abort_by: str | None
     _windows: int
     _sleeping: bool
     _control_task: asyncio.Task[None] | None
+
+    @property
+    def _latest(self) -> dict[str, SampleRow]:
+        """Each protocol chamber's row of the latest tick (built when asked: status)."""
+        rows = map(SampleRow.from_values, self._latest_values)
+        return {row.chamber: row for row in rows}
 
     # ------------------------------------------------------------------ shared helpers
     def _utc_of(self, t_s: float) -> float:

@@ -3,6 +3,7 @@ and the one-line refusals."""
 
 from __future__ import annotations
 
+import gc
 import re
 from datetime import UTC, datetime
 from pathlib import Path
@@ -168,3 +169,28 @@ def test_the_progress_bar_skips_ticks_between_redraws_but_never_a_change() -> No
         wall[0] += 2 * bar.every_s
         assert tick(5, phase="storm", alarms={"C6": "e-stop"}) == 50.0  # time to redraw
         assert tick(9, phase="storm", alarms={"C6": "e-stop"}) == 90.0  # the last tick
+
+
+def test_the_run_keeps_start_up_objects_out_of_the_collector_and_hands_them_back(
+    repo_root: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from controller.runtime import SimulatedRun
+
+    protocol = shortened_storm(repo_root, tmp_path, hours=1)
+    rig = repo_root / "rigs" / "saltmarrow-rack8.toml"
+    frozen_during: list[int] = []
+    real_run = SimulatedRun.run
+
+    def run(self: SimulatedRun, *args: object, **kwargs: object) -> object:
+        frozen_during.append(gc.get_freeze_count())
+        return real_run(self, *args, **kwargs)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(SimulatedRun, "run", run)
+    assert gc.get_freeze_count() == 0
+    code = main(
+        ["run", str(protocol), "--rig", str(rig), "--sim", "--log", str(tmp_path / "f.sqlite")]
+    )
+    assert code == 0
+    # the protocol, plan and modules built before the run: frozen while it runs ...
+    assert len(frozen_during) == 1 and frozen_during[0] > 10_000
+    assert gc.get_freeze_count() == 0  # ... and collectable again afterwards
