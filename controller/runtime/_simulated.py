@@ -43,7 +43,44 @@ from controller.runtime._sim_io import SimulatedIO
 from controller.storage import ClockKind, RunLogWriter
 from simulator import Rack
 
-__all__ = ["SimulatedRun", "run_simulated"]
+__all__ = ["SimulatedRun", "run_simulated", "simulated_io"]
+
+
+def simulated_io(
+    rack: Rack, clock: Clock, inputs: RunInputs, plan: ControlPlan, speed: float | None
+) -> SimulatedIO:
+    """The chamber I/O of a simulated run: a view of ``rack`` on ``clock``.
+
+    Parameters
+    ----------
+    rack
+        The simulated rack (no unit).
+    clock
+        The run's clock (no unit).
+    inputs
+        The run's protocol and rig; the rig's ``[io]`` settings (optode cadence, module
+        watchdog) apply to its simulated modules too (no unit).
+    plan
+        The control plan (tick period, safe outputs) (no unit).
+    speed
+        None for as fast as possible (the rack is then stepped every tick), else simulated
+        s per real s.
+
+    Returns
+    -------
+    SimulatedIO
+        The I/O.
+    """
+    settings, wiring = plan.settings, inputs.rig.io
+    return SimulatedIO(
+        rack,
+        clock,
+        step_s=settings.period_s if speed is None else None,
+        optode_period_s=wiring.optode_period_s if wiring is not None else 30.0,
+        watchdog_s=(wiring.watchdog_timeout_s if wiring is not None else None)
+        or 3.0 * settings.period_s,
+        safe={c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()},
+    )
 
 
 @dataclass(kw_only=True)
@@ -172,21 +209,9 @@ class SimulatedRun:
         start: StartPoint | None = None,
     ) -> SimulatedRun:
         """The clock, rack and I/O of a run whose log is open."""
-        settings, rig = plan.settings, inputs.rig
         clock = VirtualClock(clock_start, speed)
-        rack = Rack(rig, seed=seed, start_utc=clock_start)
-        step_s = settings.period_s if speed is None else None
-        safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}
-        wiring = rig.io  # the rig's [io] settings apply to its simulated modules too
-        watchdog_s = wiring.watchdog_timeout_s if wiring is not None else None
-        io = SimulatedIO(
-            rack,
-            clock,
-            step_s=step_s,
-            optode_period_s=wiring.optode_period_s if wiring is not None else 30.0,
-            watchdog_s=watchdog_s or 3.0 * settings.period_s,
-            safe=safe,
-        )
+        rack = Rack(inputs.rig, seed=seed, start_utc=clock_start)
+        io = simulated_io(rack, clock, inputs, plan, speed)
         return cls(
             inputs=inputs,
             plan=plan,

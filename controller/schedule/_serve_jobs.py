@@ -116,25 +116,13 @@ def _sim_io(
     inputs: RunInputs, plan: ControlPlan, clock: Clock, *, speed: float | None, seed: int | None
 ) -> Callable[[], ChamberIO]:
     """A fresh simulated rack for the run; every I/O made is a view of it."""
-    from controller.runtime import SimulatedIO
+    from controller.runtime._simulated import simulated_io
     from simulator import Rack
 
-    rig, settings = inputs.rig, plan.settings
-    rack = Rack(rig, seed=seed, start_utc=clock.utc())
-    step_s = settings.period_s if speed is None else None
-    safe = {c: cs.interlocks.safe_outputs() for c, cs in plan.chambers.items()}
-    wiring = rig.io  # the rig's [io] settings apply to its simulated modules too
-    watchdog_s = wiring.watchdog_timeout_s if wiring is not None else None
+    rack = Rack(inputs.rig, seed=seed, start_utc=clock.utc())
 
     def make() -> ChamberIO:
-        return SimulatedIO(
-            rack,
-            clock,
-            step_s=step_s,
-            optode_period_s=wiring.optode_period_s if wiring is not None else 30.0,
-            watchdog_s=watchdog_s or 3.0 * settings.period_s,
-            safe=safe,
-        )
+        return simulated_io(rack, clock, inputs, plan, speed)
 
     return make
 
