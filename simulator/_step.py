@@ -120,11 +120,14 @@ class _Grid:
     probe_end: F  # a^n of each probe, (N,)
     optode_w: F  # lag weights of the O2 at t = 0..n·h, (N, n + 1)
     optode_end: F
+    lag_w: F  # probe_w stacked over optode_w: both sensors' lags in one dot, (2N, n + 1)
+    lag_end: F  # probe_end then optode_end, (2N,)
+    inv_k: F  # scratch: 1/T of the water at the sub-step starts, K⁻¹, (N, n)
     warm_decay: F  # e^(−m·h/τ_warm-up) for m = 0..n, (N, n + 1)
     back: F  # −m for m = 0..n, (n + 1,)
     terms: F  # scratch: production and respiration per sub-step, (N, 2, n)
     sums: F  # scratch: 0, then running sums of the scaled O2 inputs, (N, n + 1)
-    lags: dict[tuple[int, ...], F]  # arrival pattern → max(m − k_j, 0), (M, n + 1)
+    lags: dict[tuple[int, ...], F]  # arrival pattern → −max(m − k_j, 0), (M, n + 1)
 
 
 class _Water(NamedTuple):
@@ -132,6 +135,7 @@ class _Water(NamedTuple):
     pumps change every control tick and a frozen dataclass costs more to build."""
 
     rate: list[float]  # h/τ of each node, M values
+    rate_col: F  # the same as a column, (M, 1)
     tau_s: list[float]  # τ = C/(UA + G), s
     inv_g: list[float]  # 1/(UA + G), K W⁻¹
     t_base_c: list[float]  # (UA·T_room + G·T_in)/(UA + G), °C
@@ -216,10 +220,13 @@ class Stepper:
         grid = self._grids.get((n, h)) or self._grid(n, h)
         water = self._waters.get((n, h, drive.water_key)) or self._water(n, h, drive)
         path, excess, bound = self._thermal(state.temp_c, drive, grid, water, n, h)
-
-        chambers = path if self._own_water else path.take(self._node_of, axis=0)
+        # each chamber's temperature path above its O2 path: one dot gives both sensors' lags
+        size = len(self._node_of)
+        sensed = np.empty((2 * size, n + 1))
+        chambers = sensed[:size]
+        path.take(self._node_of, axis=0, out=chambers)
         starts = chambers[:, :-1]
-        inv = np.add(starts, ZERO_CELSIUS_K)
+        inv = np.add(starts, ZERO_CELSIUS_K, out=grid.inv_k)
         np.divide(1.0, inv, out=inv)
         light, warmth_end = self._light(state.warmth, drive, grid)
         bio = self._bio
@@ -233,12 +240,13 @@ class Stepper:
             hottest = float(path.max())
             if hottest > bio.lowest_threshold_c:
                 bio.stress(starts, terms, hottest)
-        o2 = self._oxygen(state.o2_umol_l, starts, grid, water)
-        optode = np.vecdot(grid.optode_w, o2)
-        optode += grid.optode_end * state.optode_umol_l
-        probe = np.vecdot(grid.probe_w, chambers)
-        probe += grid.probe_end * state.probe_c
-        return WaterState(path[:, -1], o2[:, -1], probe, optode, warmth_end), excess
+        o2 = self._oxygen(state.o2_umol_l, starts, grid, water, sensed[size:])
+        if o2.base is not sensed:  # stepped with the floor: a path of its own
+            sensed[size:] = o2
+        lagged = np.vecdot(grid.lag_w, sensed)
+        lagged += grid.lag_end * np.concatenate((state.probe_c, state.optode_umol_l))
+        end = WaterState(path[:, -1], o2[:, -1], lagged[:size], lagged[size:], warmth_end)
+        return end, excess
 
     # ------------------------------------------------------------------ pieces
     def _thermal(
@@ -272,7 +280,6 @@ class Stepper:
         if not drive.arrivals:
             return path, excess, max(max(starts), max(path[:, -1].tolist()))
         bound = max(max(starts), max(t_inf))
-        neg_rate = np.array([-r for r in water.rate])[:, None]
         settling = t_inf
         for ks, delta in drive.arrivals:
             change = [d * g for d, g in zip(delta, inv_g, strict=True)]
@@ -284,14 +291,17 @@ class Stepper:
                     integral = left * h + water.tau_s[j] * math.expm1(-left * water.rate[j])
                     excess[j] += change[j] * integral
             # Δ·(1 − a^(m−k)) = −Δ·expm1(−(m − k)·h/τ) for m > k, 0 before
-            rise = np.multiply(self._lags(grid, ks, n), neg_rate)
+            rise = np.multiply(self._lags(grid, ks, n), water.rate_col)
             np.expm1(rise, out=rise)
             rise *= np.array(change)[:, None]
             path -= rise
         return path, excess, bound
 
-    def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water) -> F:
-        """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)``.
+    def _oxygen(
+        self, o2_0: F, starts: F, grid: _Grid, water: _Water, out: F | None = None
+    ) -> F:
+        """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)`` (into ``out``,
+        shape ``(N, n + 1)``, unless the floored recurrence had to be stepped).
 
         C_m = a_o·C_(m−1) + φ·S_(m−1) + (1 − a_o)·C_sat,(m−1) summed in closed form,
         C_m = a_o^m·(C_0 + Σ_(j<m) a_o^(−(j+1))·u_j), with the net source S and saturation
@@ -306,10 +316,10 @@ class Stepper:
             if saturation is not None:
                 inputs += saturation * water.o2_scaled[:, 1]
             sums = grid.sums
-            np.cumsum(inputs, axis=1, out=sums[:, 1:])
-            path = np.add(sums, o2_0[:, None])
+            np.add.accumulate(inputs, axis=1, out=sums[:, 1:])  # the running sums (cumsum)
+            path = np.add(sums, o2_0[:, None], out=out)
             path *= water.o2_powers
-            if float(path.min()) >= 0.0:
+            if np.minimum.reduce(path, axis=None) >= 0.0:
                 return path
         gain = water.o2_gain
         inputs = net * gain[:, 0]
@@ -319,13 +329,14 @@ class Stepper:
         return np.concatenate((o2_0[:, None], stepped), axis=1)
 
     def _lags(self, grid: _Grid, ks: tuple[int, ...], n: int) -> F:
-        """max(m − k_j, 0) for m = 0..n of every node (cached per arrival pattern)."""
+        """−max(m − k_j, 0) for m = 0..n of every node (cached per arrival pattern; the
+        sign makes its product with h/τ the exponent −(m − k)·h/τ itself)."""
         found = grid.lags.get(ks)
         if found is None:
             if len(grid.lags) >= _CACHE_SIZE:
                 grid.lags.clear()
             k = np.array(ks, dtype=float)[:, None]
-            found = grid.lags[ks] = np.maximum(-grid.back[None, :] - k, 0.0)
+            found = grid.lags[ks] = -np.maximum(-grid.back[None, :] - k, 0.0)
         return found
 
     def _light(self, warmth: F, drive: Drive, grid: _Grid) -> tuple[F, F]:
@@ -382,11 +393,15 @@ class Stepper:
         optode_end, optode_w = lag_weights(p.optode_tau_s, h, n)
         tau = np.maximum(p.warmup_tau_s, 1e-9)
         decay = np.exp(-(np.arange(n + 1, dtype=float)[None, :] * h) / tau[:, None])
+        probe_rows, optode_rows = probe_w.T, optode_w.T
         return _Grid(
-            probe_w=np.ascontiguousarray(probe_w.T),
+            probe_w=np.ascontiguousarray(probe_rows),
             probe_end=probe_end,
-            optode_w=np.ascontiguousarray(optode_w.T),
+            optode_w=np.ascontiguousarray(optode_rows),
             optode_end=optode_end,
+            lag_w=np.concatenate((probe_rows, optode_rows)),
+            lag_end=np.concatenate((probe_end, optode_end)),
+            inv_k=np.zeros((chambers, n)),
             warm_decay=decay,
             back=-np.arange(n + 1, dtype=float),
             terms=np.zeros((chambers, 2, n)),
@@ -427,8 +442,9 @@ class Stepper:
             phi.append(f / k if x > 0.0 else h)
             fresh.append(f)
         # a^m and a_o^m for m = 0..n, both as e^(−m·h/τ) and e^(−m·k·h), in one exp
-        powers = np.exp(np.multiply.outer(rate + kh, grid.back))
         m = len(rate)
+        rates = np.array(rate + kh)[:, None]
+        powers = np.exp(rates * grid.back)
         o2_powers = powers[m:]
         gains = np.array((phi, fresh)).T[:, :, None]
         fastest = max(kh, default=0.0)
@@ -436,6 +452,7 @@ class Stepper:
         o2_scaled = gains / o2_powers[:, None, 1:] if scaled else gains
         return _Water(
             rate=rate,
+            rate_col=rates[:m],
             tau_s=tau,
             inv_g=inv_g,
             t_base_c=t_base,
