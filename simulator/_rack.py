@@ -139,6 +139,7 @@ class Rack:
         self._lamp_keep: list[float] = (1.0 - p.ageing_frac_per_1000_h).tolist()
         self._sweep_consts: object | None = None  # sensor constants of Rack.sweep (fixed)
         self._book = FaultBook(p.chamber_ids)
+        self._fault_version = 0  # raised by _settle whenever the active faults change
         for fault in p.faults:
             self._book.add(fault, 0.0)
         self._settle()
@@ -260,6 +261,13 @@ class Rack:
             lamp_pct=act.lamp_pct[i],
             pump_pct=act.pump_pct[i],
         )
+
+    @property
+    def fault_version(self) -> int:
+        """A counter raised whenever the set of active faults changes (a fault beginning or
+        ending as time passes, injected or cleared), dimensionless: equal values promise the
+        same active faults, so whatever depends only on them may be kept meanwhile."""
+        return self._fault_version
 
     @property
     def powered(self) -> bool:
@@ -419,6 +427,8 @@ class Rack:
     def _settle(self) -> None:
         """Bring faults, actuators and the delay lines up to the present time."""
         began, changed = self._book.update(self._t)
+        if changed:
+            self._fault_version += 1
         for entry in began:
             self._freeze(entry)
         if changed or self._act.dirty:

@@ -297,9 +297,7 @@ class Stepper:
             path -= rise
         return path, excess, bound
 
-    def _oxygen(
-        self, o2_0: F, starts: F, grid: _Grid, water: _Water, out: F | None = None
-    ) -> F:
+    def _oxygen(self, o2_0: F, starts: F, grid: _Grid, water: _Water, out: F | None = None) -> F:
         """O2 of every chamber at t = 0..n·h, µmol L⁻¹, shape ``(N, n + 1)`` (into ``out``,
         shape ``(N, n + 1)``, unless the floored recurrence had to be stepped).
 

@@ -104,6 +104,7 @@ class SimulatedIO:
         self._e_stop: set[str] = set()
         self._optode: dict[str, tuple[float, float | None, float | None]] = {}
         self._comm_at_s: float | None = None
+        self._comm_version = -1  # the rack's fault_version the answers below are for
         self._comm: dict[tuple[str, str], bool] = {}
         self._comm_of: dict[str, tuple[bool, ...]] = {}  # by device, in rig order
         self._all_up = (False, False)  # every module, every optode answered at _comm_at_s
@@ -252,14 +253,20 @@ class SimulatedIO:
         simulated instant (the rack brings pending commands into effect on every question,
         which is costly). What a device answers changes only with the rack's time (faults
         begin and end as it advances; an injected fault starts at the present instant, so
-        the rack answers for it once its time has moved on), which keys this cache."""
+        the rack answers for it once its time has moved on), which keys this cache; and at
+        a new instant only when the rack's active faults changed (its ``fault_version``,
+        the second key: the answers depend on nothing else)."""
         rack = self._rack
-        if self._comm_at_s != rack.t_s:
-            modbus, optode = rack.comm_ok_all(_MODBUS), rack.comm_ok_all(_OPTODE)
-            self._comm_of = {_MODBUS: modbus, _OPTODE: optode}
-            self._comm.clear()  # filled as asked (_answers)
-            self._all_up = (all(modbus), all(optode))
-            self._comm_at_s = rack.t_s
+        t_s = rack.t_s
+        if self._comm_at_s != t_s:
+            self._comm_at_s = t_s
+            version = rack.fault_version
+            if version != self._comm_version:
+                modbus, optode = rack.comm_ok_all(_MODBUS), rack.comm_ok_all(_OPTODE)
+                self._comm_of = {_MODBUS: modbus, _OPTODE: optode}
+                self._comm.clear()  # filled as asked (_answers)
+                self._all_up = (all(modbus), all(optode))
+                self._comm_version = version
         return self._all_up
 
     def _answers(self, chamber: str, device: str) -> bool:
@@ -378,15 +385,24 @@ class SimulatedIO:
         sweep = self._rack.sweep(chambers, polls)
         found: dict[str, ChamberReadings | Exception] = {}
         e_stop = self._e_stop
-        for k, chamber in enumerate(chambers):
-            error = sweep.errors[k]
+        for chamber, poll, temperature, par, flow, level_ok, o2_new, sat_new, error in zip(
+            chambers,
+            polls,
+            sweep.temperature_c,
+            sweep.par,
+            sweep.flow_cm_s,
+            sweep.level_ok,
+            sweep.o2_umol_l,
+            sweep.o2_sat_pct,
+            sweep.errors,
+            strict=True,
+        ):
             if error is not None:
                 found[chamber] = error
                 continue
-            if polls[k]:
-                latest[chamber] = (now, sweep.o2_umol_l[k], sweep.o2_sat_pct[k])
+            if poll:
+                latest[chamber] = (now, o2_new, sat_new)
             _, o2_umol_l, o2_sat_pct = latest[chamber]
-            temperature, par, flow = sweep.temperature_c[k], sweep.par[k], sweep.flow_cm_s[k]
             failed = _NONE_FAILED
             if temperature is None or par is None or flow is None or o2_umol_l is None:
                 failed = frozenset(
@@ -405,7 +421,7 @@ class SimulatedIO:
                 temperature_c=temperature,
                 par=par,
                 flow_cm_s=flow,
-                level_ok=sweep.level_ok[k],
+                level_ok=level_ok,
                 e_stop=chamber in e_stop,
                 o2_umol_l=o2_umol_l,
                 o2_sat_pct=o2_sat_pct,
@@ -455,8 +471,13 @@ class SimulatedIO:
                 for chamber, value in outputs.items()
             ]
         )
+        t_s = rack.t_s
+        if not any(errors):  # every row taken (an error is an exception, never falsy)
+            self.last_written.update(outputs)
+            self._fed_at.update(dict.fromkeys(outputs, t_s))
+            return dict.fromkeys(outputs, True)
         done: dict[str, bool | Exception] = {}
-        last_written, fed_at, t_s = self.last_written, self._fed_at, rack.t_s
+        last_written, fed_at = self.last_written, self._fed_at
         for (chamber, value), error in zip(outputs.items(), errors, strict=True):
             if error is not None:
                 done[chamber] = error

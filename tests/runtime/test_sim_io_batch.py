@@ -9,6 +9,7 @@ from pathlib import Path
 
 from controller.cli.cmd_check import load_rig
 from controller.control import Outputs
+from controller.rig import Fault, FaultKind
 from controller.runtime import SimulatedIO
 from simulator import Rack
 
@@ -69,3 +70,29 @@ def test_write_now_matches_write_chamber_by_chamber() -> None:
         for cid in a.chambers:
             assert a.rack.outputs(cid) == b.rack.outputs(cid)
             assert a.rack.truth(cid) == b.rack.truth(cid)
+
+
+def test_read_now_hears_a_device_fall_silent_and_answer_again_after_quiet_ticks() -> None:
+    # Who answers is kept while the rack's active faults stay the same (Rack.fault_version):
+    # a timeout beginning, then ending, between two ticks must still be heard at once.
+    clock = StillClock()
+    rack = Rack(load_rig(EXAMPLE), seed=3)
+    io = SimulatedIO(rack, clock)  # type: ignore[arg-type]
+    ids = io.chambers
+    for _ in range(5):
+        clock.t_s += 10.0
+        assert io.read_now(ids) is not None
+    version = rack.fault_version
+    timeout = Fault(
+        kind=FaultKind.COMM_TIMEOUT, chamber=ids[3], at_s=rack.t_s + 15.0, duration_s=20.0
+    )
+    rack.inject(timeout)
+    clock.t_s += 10.0
+    assert io.read_now(ids) is not None  # not begun yet
+    assert io.write_now({ids[3]: Outputs.unchecked(0.0, 0.0, 0.0, 0.0)}) is not None
+    clock.t_s += 10.0
+    assert io.read_now(ids) is None  # began as the rack advanced: the module is silent
+    assert io.write_now({ids[3]: Outputs.unchecked(0.0, 0.0, 0.0, 0.0)}) is None
+    assert rack.fault_version > version
+    clock.t_s += 30.0
+    assert io.read_now(ids) is not None  # ended: it answers again
