@@ -225,6 +225,24 @@ class Rack:
             then left as it was; the other rows still take effect).
         """
         index = self._index
+        try:  # the usual case, every row good: checked and stored in one pass each
+            if all(
+                cid in index
+                and 0.0 <= heater <= 100.0
+                and 0.0 <= chiller <= 100.0
+                and 0.0 <= lamp <= 100.0
+                and 0.0 <= pump <= 100.0
+                for cid, heater, chiller, lamp, pump in commands
+            ):
+                self._act.command_all(
+                    [
+                        (index[cid], float(heater), float(chiller), float(lamp), float(pump))
+                        for cid, heater, chiller, lamp, pump in commands
+                    ]
+                )
+                return [None] * len(commands)
+        except TypeError:  # a drive that is not a number: found and named row by row below
+            pass
         rows: list[tuple[int, float, float, float, float]] = []
         errors: list[Exception | None] = []
         for cid, heater, chiller, lamp, pump in commands:

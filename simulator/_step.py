@@ -411,7 +411,12 @@ class Stepper:
         key = (n, h, drive.water_key)
         water = self._waters.get(key)
         if water is None:
-            if len(self._waters) >= _CACHE_SIZE:
+            # Kept for the present water configuration only: the rack numbers each new one
+            # afresh, so the tables of an earlier configuration are never asked for again
+            # (and a control tick brings a new one, the pumps trimming); a new key clears them.
+            if len(self._waters) >= _CACHE_SIZE or any(
+                k[2] != drive.water_key for k in self._waters
+            ):
                 self._waters.clear()
             water = self._waters[key] = self._make_water(n, h, drive)
         return water

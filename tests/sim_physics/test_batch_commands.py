@@ -128,3 +128,15 @@ def test_the_flushing_loss_folded_per_epoch_is_the_loss_summed_per_segment() -> 
     got = np.array(r._heat.flush_loss_j())
     assert np.abs(summed).max() > 0.0
     np.testing.assert_allclose(got, summed, rtol=1e-9)
+
+
+def test_a_drive_that_is_not_a_number_fails_its_row_alone() -> None:
+    # the all-good pass stops at the comparison; the row-by-row pass names the culprit
+    r = Rack(load_rig(EXAMPLE), seed=1)
+    a, b = r.chamber_ids[4:6]
+    errors = r.set_outputs_all(
+        [(a, 10.0, 0.0, 20.0, 30.0), (b, 10.0, "warm", 20.0, 30.0)]  # type: ignore[list-item]
+    )
+    assert errors[0] is None and isinstance(errors[1], TypeError)
+    r.advance(1.0)
+    assert r.outputs(a).lamp_pct == 20.0 and r.outputs(b).lamp_pct == 0.0
