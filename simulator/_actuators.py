@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
+from collections.abc import Mapping, Sequence
 from typing import NamedTuple
 
 import numpy as np
@@ -21,7 +22,15 @@ from numpy.typing import NDArray
 from simulator._faults import ActuatorMasks, FaultBook
 from simulator._params import RackParams
 
-__all__ = ["Actuators", "Arrivals", "Effective", "effective_drives", "substeps"]
+__all__ = [
+    "Actuators",
+    "Arrivals",
+    "Effective",
+    "checked_rows",
+    "drive_pct",
+    "effective_drives",
+    "substeps",
+]
 
 F = NDArray[np.float64]
 
@@ -91,6 +100,75 @@ def effective_drives(
     heater_e = np.where(stuck_off | ~node_powered, 0.0, heater_e)
     chiller_e = np.where(chiller_dead | ~node_powered, 0.0, chiller_n)
     return Effective(heater_e, chiller_e, lamp_e, pump_e)
+
+
+def drive_pct(value: float, name: str) -> float:
+    """A drive (%) checked to lie within 0–100 % (NaN and infinities fail the comparison);
+    ``name`` names it in the error."""
+    if not 0.0 <= value <= 100.0:
+        raise ValueError(f"{name} must be within 0–100 %, got {value!r}")
+    return float(value)
+
+
+def checked_rows(
+    index: Mapping[str, int], commands: Sequence[tuple[str, float, float, float, float]]
+) -> tuple[list[tuple[int, float, float, float, float]], list[Exception | None]]:
+    """Rows of drives checked as :func:`drive_pct` checks each drive, for
+    :meth:`Actuators.command_all`.
+
+    Parameters
+    ----------
+    index
+        Chamber identifier to chamber index, dimensionless.
+    commands
+        Per row: chamber identifier, then heater, chiller, lamp and pump drive, % each.
+
+    Returns
+    -------
+    tuple
+        The good rows (chamber index, then the four drives as floats, %), and per row None
+        or the error that refuses it (KeyError for an unknown chamber, ValueError for a
+        drive outside 0–100 %, TypeError for one that is not a number).
+    """
+    try:  # the usual case, every row good: checked and converted in one pass each
+        if all(
+            cid in index
+            and 0.0 <= heater <= 100.0
+            and 0.0 <= chiller <= 100.0
+            and 0.0 <= lamp <= 100.0
+            and 0.0 <= pump <= 100.0
+            for cid, heater, chiller, lamp, pump in commands
+        ):
+            good = [
+                (index[cid], float(heater), float(chiller), float(lamp), float(pump))
+                for cid, heater, chiller, lamp, pump in commands
+            ]
+            return good, [None] * len(commands)
+    except TypeError:  # a drive that is not a number: found and named row by row below
+        pass
+    rows: list[tuple[int, float, float, float, float]] = []
+    errors: list[Exception | None] = []
+    for cid, heater, chiller, lamp, pump in commands:
+        i = index.get(cid)
+        try:
+            if i is None:
+                raise KeyError(f"no chamber {cid!r} in this rack")
+            if not (
+                0.0 <= heater <= 100.0
+                and 0.0 <= chiller <= 100.0
+                and 0.0 <= lamp <= 100.0
+                and 0.0 <= pump <= 100.0
+            ):  # the checks of drive_pct without a call per drive; drive_pct names the culprit
+                drive_pct(heater, "heater_pct")
+                drive_pct(chiller, "chiller_pct")
+                drive_pct(lamp, "lamp_pct")
+                drive_pct(pump, "pump_pct")
+        except (KeyError, TypeError, ValueError) as error:
+            errors.append(error)
+            continue
+        rows.append((i, float(heater), float(chiller), float(lamp), float(pump)))
+        errors.append(None)
+    return rows, errors
 
 
 def substeps(span_s: float, step_s: float) -> tuple[int, float]:

@@ -31,7 +31,7 @@ from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
 from controller.science.oxygen import solubility_umol_l_scalar
-from simulator._actuators import Actuators, Arrivals, substeps
+from simulator._actuators import Actuators, Arrivals, checked_rows, drive_pct, substeps
 from simulator._faults import FaultBook, ScheduledFault
 from simulator._heat import HeatLedger
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
@@ -53,13 +53,6 @@ _LEAK_SEGMENT_S = 60.0
 _MAX_SUBSTEPS = 3600  # sub-steps per vectorised segment: bounds memory on long advances
 _MIN_VOLUME_FRAC = 0.05
 _DEVICE_OF_SENSOR = {"temperature": "modbus", "par": "modbus", "flow": "modbus", "optode": "optode"}
-
-
-def _drive(value: float, name: str) -> float:
-    """A drive checked to lie within 0–100 % (NaN and infinities fail the comparison)."""
-    if not 0.0 <= value <= 100.0:
-        raise ValueError(f"{name} must be within 0–100 %, got {value!r}")
-    return float(value)
 
 
 class Rack:
@@ -201,10 +194,10 @@ class Rack:
             raise KeyError(f"no chamber {chamber_id!r} in this rack")
         self._act.command(
             i,
-            None if heater_pct is None else _drive(heater_pct, "heater_pct"),
-            None if chiller_pct is None else _drive(chiller_pct, "chiller_pct"),
-            None if lamp_pct is None else _drive(lamp_pct, "lamp_pct"),
-            None if pump_pct is None else _drive(pump_pct, "pump_pct"),
+            None if heater_pct is None else drive_pct(heater_pct, "heater_pct"),
+            None if chiller_pct is None else drive_pct(chiller_pct, "chiller_pct"),
+            None if lamp_pct is None else drive_pct(lamp_pct, "lamp_pct"),
+            None if pump_pct is None else drive_pct(pump_pct, "pump_pct"),
         )
 
     def set_outputs_all(
@@ -224,47 +217,7 @@ class Rack:
             Per row None, or the error :meth:`set_outputs` would raise for it (that chamber is
             then left as it was; the other rows still take effect).
         """
-        index = self._index
-        try:  # the usual case, every row good: checked and stored in one pass each
-            if all(
-                cid in index
-                and 0.0 <= heater <= 100.0
-                and 0.0 <= chiller <= 100.0
-                and 0.0 <= lamp <= 100.0
-                and 0.0 <= pump <= 100.0
-                for cid, heater, chiller, lamp, pump in commands
-            ):
-                self._act.command_all(
-                    [
-                        (index[cid], float(heater), float(chiller), float(lamp), float(pump))
-                        for cid, heater, chiller, lamp, pump in commands
-                    ]
-                )
-                return [None] * len(commands)
-        except TypeError:  # a drive that is not a number: found and named row by row below
-            pass
-        rows: list[tuple[int, float, float, float, float]] = []
-        errors: list[Exception | None] = []
-        for cid, heater, chiller, lamp, pump in commands:
-            i = index.get(cid)
-            try:
-                if i is None:
-                    raise KeyError(f"no chamber {cid!r} in this rack")
-                if not (
-                    0.0 <= heater <= 100.0
-                    and 0.0 <= chiller <= 100.0
-                    and 0.0 <= lamp <= 100.0
-                    and 0.0 <= pump <= 100.0
-                ):  # the checks of _drive without a call per drive; _drive names the culprit
-                    _drive(heater, "heater_pct")
-                    _drive(chiller, "chiller_pct")
-                    _drive(lamp, "lamp_pct")
-                    _drive(pump, "pump_pct")
-            except (KeyError, TypeError, ValueError) as error:
-                errors.append(error)
-                continue
-            rows.append((i, float(heater), float(chiller), float(lamp), float(pump)))
-            errors.append(None)
+        rows, errors = checked_rows(self._index, commands)
         self._act.command_all(rows)
         return errors
 
