@@ -13,7 +13,7 @@ from bisect import bisect_right
 from controller.control import (
     Condition,
     CycleState,
-    InterlockState,
+    InterlockMemory,
     Outputs,
     PidLoop,
     PidParams,
@@ -27,7 +27,8 @@ __all__ = ["Actuator", "ChamberMemory", "NodeMemory"]
 
 class ChamberMemory:
     """One protocol chamber: its settings, taken from the (frozen) plan once, and the loop's
-    memory of it (interlocks, lamp and pump trims, write result, forced outputs, cycle)."""
+    memory of it (interlocks, lamp and pump trims, write result, forced outputs, cycle) and
+    this tick's lamp and pump drives."""
 
     __slots__ = (
         "alarm",
@@ -36,10 +37,12 @@ class ChamberMemory:
         "force",
         "interlock",
         "lamp",
+        "lamp_pct",
         "limits",
         "name",
         "node",
         "pump",
+        "pump_pct",
         "write_ok",
     )
 
@@ -48,9 +51,12 @@ class ChamberMemory:
         self.limits = settings.interlocks
         self.driver = driver  # whether its module carries its node's heater and chiller
         self.node: NodeMemory  # set by the node that holds it
-        self.interlock = InterlockState()
+        self.interlock = InterlockMemory(settings.interlocks)
         self.lamp = Actuator(settings.lamp_curve, settings.lamp_trim)
         self.pump = Actuator(settings.pump_curve, settings.flow_trim)
+        # this tick's lamp and pump drives, %
+        self.lamp_pct = 0.0
+        self.pump_pct = 0.0
         self.write_ok = True
         self.force: Outputs | None = None
         self.alarm: Condition | None = None
