@@ -470,22 +470,30 @@ class Decider:
     ) -> None:
         """Set the node's heater and chiller drives (%) and shown setpoint (°C) of this tick;
         ``forcing``: whether any chamber's outputs are forced this tick."""
-        temps = []
-        for c, low, high in node.probes:
-            value = readings[c].temperature_c
-            if value is not None and low < value < high:
-                temps.append(value)
-        if not temps:
-            measured = None
-        elif len(temps) == 1:  # a chamber's own water
-            measured = temps[0] + 0.0  # math.fsum([x]) / 1, bit for bit (−0.0 becomes 0.0)
+        lone = node.lone
+        if lone is not None:  # a chamber's own water: its probe and its setpoint
+            name, low, high = lone
+            value = readings[name].temperature_c
+            # math.fsum([value]) / 1, bit for bit (−0.0 becomes 0.0)
+            measured = value + 0.0 if value is not None and low < value < high else None
+            target = targets[name].temperature_c
         else:
-            measured = math.fsum(temps) / len(temps)
-        target = None
-        for member in node.members:
-            target = targets[member.name].temperature_c
-            if target is not None:
-                break
+            temps = []
+            for c, low, high in node.probes:
+                value = readings[c].temperature_c
+                if value is not None and low < value < high:
+                    temps.append(value)
+            if not temps:
+                measured = None
+            elif len(temps) == 1:
+                measured = temps[0] + 0.0  # as above
+            else:
+                measured = math.fsum(temps) / len(temps)
+            target = None
+            for member in node.members:
+                target = targets[member.name].temperature_c
+                if target is not None:
+                    break
         forced = forcing and any(member.force is not None for member in node.members)
         if forced or target is None:
             forces = [f for member in node.members if (f := member.force) is not None]

@@ -71,6 +71,7 @@ class NodeMemory:
         "cycle",
         "heater",
         "heater_on_off",
+        "lone",
         "members",
         "output_pct",
         "pid",
@@ -87,6 +88,7 @@ class NodeMemory:
         self.probes = tuple(  # each chamber with its probe's plausible range, °C
             (c.name, c.limits.sensor_min_c, c.limits.sensor_max_c) for c in members
         )
+        self.lone = self.probes[0] if len(members) == 1 else None  # a chamber's own water
         self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
         self.heater_on_off = settings.heater_on_off
         self.pid = PidLoop(settings.pid)
@@ -107,9 +109,37 @@ class Actuator:
     setpoint differs. The curve's segments are taken once for the measured side (start and
     differences, as :meth:`DriveCurve.equivalent_drive` computes them); the curve is frozen
     and never replaced, so neither can go stale.
+
+    A trim without derivative action (every trim the plan builds) is stepped here, in
+    :meth:`drive`: :meth:`PidLoop.step`'s arithmetic and state updates on :attr:`trim`,
+    written out without the derivative term, with the gains copied once from the trim's
+    frozen parameters. Its integral gain and back-calculation factor are kept for the latest
+    step length and recomputed whenever a step comes with another one, as the loop keeps
+    them.
     """
 
-    __slots__ = ("_drive", "_edge", "_last", "_segments", "_setpoint", "_values", "curve", "trim")
+    __slots__ = (
+        "_back",
+        "_drive",
+        "_dt_s",
+        "_edge",
+        "_gain_i",
+        "_has_integral",
+        "_kc",
+        "_last",
+        "_line",
+        "_out_max",
+        "_out_min",
+        "_pi",
+        "_segments",
+        "_setpoint",
+        "_setpoint_weight",
+        "_ti_s",
+        "_tt_s",
+        "_values",
+        "curve",
+        "trim",
+    )
 
     def __init__(self, curve: DriveCurve, trim: PidParams | None) -> None:
         self.curve = curve
@@ -124,7 +154,18 @@ class Actuator:
             (xs[k - 1], ys[k - 1], ys[k] - ys[k - 1], xs[k] - xs[k - 1]) for k in range(1, len(xs))
         ]
         self._segments = (segments[0], *segments)
+        self._line = segments[0] if len(segments) == 1 else None  # a straight line's segment
         self._edge = ys[0]  # the dead band's edge: the least drive a setpoint above 0 gets, %
+        # the PI trim's gains (% of drive per % of drive, s) and limits (%), as PidLoop takes
+        # them; PidLoop.step steps a trim with derivative action
+        self._pi = trim is not None and trim.td_s == 0.0
+        params = trim or PidParams(kc=1.0, ti_s=math.inf, out_min=0.0, out_max=1.0)  # unused
+        self._kc, self._setpoint_weight = params.kc, params.setpoint_weight
+        self._ti_s, self._tt_s = params.ti_s, params.tt_s
+        self._out_min, self._out_max = params.out_min, params.out_max
+        self._has_integral = params.has_integral
+        self._dt_s = math.nan  # step length the two factors below are for (none yet), s
+        self._gain_i = self._back = 0.0  # Kc·h/Ti, e^{−h/Tt} − 1
 
     def equivalent_drive(self, measured: float) -> float:
         """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
@@ -160,6 +201,11 @@ class Actuator:
             The sensor's reading in the same unit, or None.
         dt_s
             Time since the previous tick, s.
+
+        Returns
+        -------
+        float
+            Drive, %, 0–100.
         """
         if setpoint is None or setpoint <= 0.0:  # the curve gives 0 % for these
             return 0.0
@@ -178,14 +224,34 @@ class Actuator:
             correction = trim.last_output or 0.0
         else:
             # self.equivalent_drive(measured), written out
-            last = self._last
-            if last == 1:
-                k = 1
-            else:
+            line = self._line
+            if line is None:
+                last = self._last
                 k = bisect_right(self._values, measured)
                 k = 1 if k < 1 else last if k > last else k
-            x0, y0, dy, dx = self._segments[k]
-            correction = trim.step(y0 + (measured - x0) * dy / dx, drive, dt_s)
+                x0, y0, dy, dx = self._segments[k]
+            else:
+                x0, y0, dy, dx = line
+            equivalent = y0 + (measured - x0) * dy / dx
+            error = drive - equivalent
+            if self._pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+                # trim.step(equivalent, drive, dt_s) without derivative action, written out
+                # (the test above is the step's own test for finite inputs)
+                p = self._kc * (self._setpoint_weight * drive - equivalent)
+                i = trim.integral
+                v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
+                high, low = self._out_max, self._out_min
+                correction = high if v > high else low if v < low else v
+                if self._has_integral:
+                    if dt_s != self._dt_s:
+                        self._dt_s = dt_s
+                        self._gain_i = self._kc * dt_s / self._ti_s
+                        self._back = math.expm1(-dt_s / self._tt_s)
+                    i = i + self._gain_i * error - self._back * (correction - v)
+                trim.integral, trim.derivative = i, 0.0
+                trim.last_measured, trim.last_output = equivalent, correction
+            else:  # derivative action, or an input the step names (or an overflowing error)
+                correction = trim.step(equivalent, drive, dt_s)
         drive = 100.0 * (drive + correction) / 100.0
         drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
         return drive if drive < 100.0 else 100.0
