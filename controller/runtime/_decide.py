@@ -180,6 +180,9 @@ class Decider:
         )
         # cycling chambers: their pump is decided after their cycle's step
         self._cycling = tuple(c for c in self._order if c.cycle is not None)
+        # what each tick's passes over the chambers read, in rig order (all fixed objects)
+        self._inputs = tuple((c, c.name, c.interlock, c.lamp, c.pump) for c in self._order)
+        self._outputs = tuple((c, c.name, c.interlock, c.node, c.driver) for c in self._order)
         settings = plan.settings
         self._deadband_pct = settings.split_deadband_pct
         self._period_s = settings.period_s
@@ -352,10 +355,8 @@ class Decider:
         # actuator's drive depends only on its own chamber's forced outputs, its setpoint,
         # its sensor and its own trim, so it can be decided as soon as the chamber's
         # interlocks are. A cycling chamber's pump waits for its cycle's step (below).
-        for ch in self._order:
-            name = ch.name
+        for ch, name, interlock, lamp, pump in self._inputs:
             reading = readings[name]
-            interlock = ch.interlock
             happened = interlock.evaluate(
                 reading.temperature_c,
                 reading.level_ok,
@@ -365,16 +366,15 @@ class Decider:
             )
             if happened:
                 events.extend((name, event) for event in happened)
-            ch.alarm = interlock.alarm
             force = ch.force = interlock.force
             if force is not None:
                 forcing = True
                 ch.lamp_pct, ch.pump_pct = force.lamp_pct, force.pump_pct
             else:
                 target = targets[name]
-                ch.lamp_pct = ch.lamp.drive(target.par, reading.par, dt_s)
+                ch.lamp_pct = lamp.drive(target.par, reading.par, dt_s)
                 if ch.cycle is None:
-                    ch.pump_pct = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
+                    ch.pump_pct = pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
         windows = self._cycles(readings, targets, t_s, schedule)
         closed = IncubationStatus.CLOSED
         for ch in self._cycling:
@@ -394,9 +394,8 @@ class Decider:
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
         new = object.__new__
-        for ch in self._order:
-            name, node, cycle = ch.name, ch.node, ch.cycle
-            lamp, pump = ch.lamp_pct, ch.pump_pct
+        for ch, name, interlock, node, driver in self._outputs:
+            lamp, pump, cycle = ch.lamp_pct, ch.pump_pct, ch.cycle
             shown = new(Outputs)
             fields = shown.__dict__  # filled in place: a frozen instance refuses writes
             fields["heater_pct"] = node.heater
@@ -406,12 +405,12 @@ class Decider:
             decision = new(ChamberDecision)
             fields = decision.__dict__
             fields["outputs"] = shown
-            fields["alarm"] = ch.alarm
-            fields["safety"] = ch.interlock.safety
+            fields["alarm"] = interlock.alarm
+            fields["safety"] = interlock.safety
             fields["setpoint_c"] = node.shown_setpoint_c
             fields["incubation"] = None if cycle is None else cycle.status
             decided[name] = decision
-            if ch.driver:
+            if driver:
                 writes[name] = shown
             else:
                 own = writes[name] = new(Outputs)
@@ -520,7 +519,25 @@ class Decider:
             change = change if change < step else step  # min(step, change)
             change = change if change > -step else -step  # max(-step, change)
             node.setpoint_c = setpoint = previous + change
-            node.output_pct = node.pid.step(measured, setpoint, dt_s)
+            pid, pi = node.pid, node.pi
+            error = setpoint - measured
+            if pi is not None and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+                # pid.step(measured, setpoint, dt_s) without derivative action, written out
+                # as Actuator.drive writes it (the test is the step's own for finite inputs)
+                p = pi.kc * (pi.setpoint_weight * setpoint - measured)
+                i = pid.integral
+                v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
+                high, low = pi.out_max, pi.out_min
+                u = high if v > high else low if v < low else v
+                if pi.has_integral:
+                    if dt_s != pi.dt_s:
+                        pi.renew(dt_s)
+                    i = i + pi.gain_i * error - pi.back * (u - v)
+                pid.integral, pid.derivative = i, 0.0
+                pid.last_measured, pid.last_output = measured, u
+                node.output_pct = u
+            else:  # derivative action, or an input the step names (or an overflowing error)
+                node.output_pct = pid.step(measured, setpoint, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
         if node.heater_on_off:
             settings = self._plan.settings

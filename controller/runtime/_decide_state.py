@@ -11,7 +11,6 @@ import math
 from bisect import bisect_right
 
 from controller.control import (
-    Condition,
     CycleState,
     InterlockMemory,
     Outputs,
@@ -22,7 +21,7 @@ from controller.control import (
 from controller.rig import DriveCurve
 from controller.runtime._settings import ChamberSettings, NodeSettings
 
-__all__ = ["Actuator", "ChamberMemory", "NodeMemory"]
+__all__ = ["Actuator", "ChamberMemory", "NodeMemory", "PiGains"]
 
 
 class ChamberMemory:
@@ -31,7 +30,6 @@ class ChamberMemory:
     this tick's lamp and pump drives."""
 
     __slots__ = (
-        "alarm",
         "cycle",
         "driver",
         "force",
@@ -59,7 +57,6 @@ class ChamberMemory:
         self.pump_pct = 0.0
         self.write_ok = True
         self.force: Outputs | None = None
-        self.alarm: Condition | None = None
         self.cycle = CycleState() if cycles else None
 
 
@@ -74,6 +71,7 @@ class NodeMemory:
         "lone",
         "members",
         "output_pct",
+        "pi",
         "pid",
         "probes",
         "ramp_per_s",
@@ -92,6 +90,7 @@ class NodeMemory:
         self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
         self.heater_on_off = settings.heater_on_off
         self.pid = PidLoop(settings.pid)
+        self.pi = PiGains.of(settings.pid)  # None: PidLoop.step steps it (derivative action)
         self.setpoint_c: float | None = None
         self.output_pct = 0.0
         self.cycle = TimeProportionState()
@@ -99,6 +98,87 @@ class NodeMemory:
         self.heater = 0.0
         self.chiller = 0.0
         self.shown_setpoint_c: float | None = None
+
+
+class PiGains:
+    """The gains and limits of a PI loop (no derivative action), taken once from its frozen
+    parameters, for a step written out where the loop is stepped every tick.
+
+    The step is :meth:`PidLoop.step`'s arithmetic without the derivative term, on the
+    loop's own state (see :meth:`Actuator.drive` and ``Decider._node``). The integral gain
+    Kc·h/Ti and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step
+    length h and renewed (:meth:`renew`) whenever a step comes with another one, as the
+    loop keeps them; the parameters are frozen, so nothing else can make them stale.
+
+    Parameters
+    ----------
+    params
+        Gains and limits of a loop without derivative action (``td_s`` 0).
+
+    Attributes
+    ----------
+    kc, setpoint_weight
+        Controller gain (output unit per measurement unit) and setpoint weight b
+        (dimensionless).
+    out_min, out_max
+        Output limits, output unit.
+    has_integral
+        Whether the loop integrates.
+    dt_s
+        Step length the two factors below are for, s (NaN before the first step).
+    gain_i, back
+        Kc·h/Ti (output unit per measurement unit) and e^{−h/Tt} − 1 (dimensionless).
+    """
+
+    __slots__ = (
+        "back",
+        "dt_s",
+        "gain_i",
+        "has_integral",
+        "kc",
+        "out_max",
+        "out_min",
+        "setpoint_weight",
+        "ti_s",
+        "tt_s",
+    )
+
+    def __init__(self, params: PidParams) -> None:
+        assert params.td_s == 0.0, "a PI step has no derivative term"
+        self.kc, self.setpoint_weight = params.kc, params.setpoint_weight
+        self.ti_s, self.tt_s = params.ti_s, params.tt_s
+        self.out_min, self.out_max = params.out_min, params.out_max
+        self.has_integral = params.has_integral
+        self.dt_s = math.nan
+        self.gain_i = self.back = 0.0
+
+    def renew(self, dt_s: float) -> None:
+        """Compute the integral gain and back-calculation factor for a new step length.
+
+        Parameters
+        ----------
+        dt_s
+            Step length, s.
+        """
+        self.dt_s = dt_s
+        self.gain_i = self.kc * dt_s / self.ti_s
+        self.back = math.expm1(-dt_s / self.tt_s)
+
+    @classmethod
+    def of(cls, params: PidParams | None) -> PiGains | None:
+        """The gains of a PI loop; None without a loop or for one with derivative action.
+
+        Parameters
+        ----------
+        params
+            Gains and limits, or None.
+
+        Returns
+        -------
+        PiGains or None
+            The gains to step it written out, or None to step it with :meth:`PidLoop.step`.
+        """
+        return None if params is None or params.td_s != 0.0 else cls(params)
 
 
 class Actuator:
@@ -112,30 +192,17 @@ class Actuator:
 
     A trim without derivative action (every trim the plan builds) is stepped here, in
     :meth:`drive`: :meth:`PidLoop.step`'s arithmetic and state updates on :attr:`trim`,
-    written out without the derivative term, with the gains copied once from the trim's
-    frozen parameters. Its integral gain and back-calculation factor are kept for the latest
-    step length and recomputed whenever a step comes with another one, as the loop keeps
-    them.
+    written out without the derivative term, with the gains of :class:`PiGains`.
     """
 
     __slots__ = (
-        "_back",
         "_drive",
-        "_dt_s",
         "_edge",
-        "_gain_i",
-        "_has_integral",
-        "_kc",
         "_last",
         "_line",
-        "_out_max",
-        "_out_min",
         "_pi",
         "_segments",
         "_setpoint",
-        "_setpoint_weight",
-        "_ti_s",
-        "_tt_s",
         "_values",
         "curve",
         "trim",
@@ -156,16 +223,7 @@ class Actuator:
         self._segments = (segments[0], *segments)
         self._line = segments[0] if len(segments) == 1 else None  # a straight line's segment
         self._edge = ys[0]  # the dead band's edge: the least drive a setpoint above 0 gets, %
-        # the PI trim's gains (% of drive per % of drive, s) and limits (%), as PidLoop takes
-        # them; PidLoop.step steps a trim with derivative action
-        self._pi = trim is not None and trim.td_s == 0.0
-        params = trim or PidParams(kc=1.0, ti_s=math.inf, out_min=0.0, out_max=1.0)  # unused
-        self._kc, self._setpoint_weight = params.kc, params.setpoint_weight
-        self._ti_s, self._tt_s = params.ti_s, params.tt_s
-        self._out_min, self._out_max = params.out_min, params.out_max
-        self._has_integral = params.has_integral
-        self._dt_s = math.nan  # step length the two factors below are for (none yet), s
-        self._gain_i = self._back = 0.0  # Kc·h/Ti, e^{−h/Tt} − 1
+        self._pi = PiGains.of(trim)  # None: no trim, or one PidLoop.step steps
 
     def equivalent_drive(self, measured: float) -> float:
         """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
@@ -234,20 +292,19 @@ class Actuator:
                 x0, y0, dy, dx = line
             equivalent = y0 + (measured - x0) * dy / dx
             error = drive - equivalent
-            if self._pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+            pi = self._pi
+            if pi is not None and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
                 # trim.step(equivalent, drive, dt_s) without derivative action, written out
                 # (the test above is the step's own test for finite inputs)
-                p = self._kc * (self._setpoint_weight * drive - equivalent)
+                p = pi.kc * (pi.setpoint_weight * drive - equivalent)
                 i = trim.integral
                 v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
-                high, low = self._out_max, self._out_min
+                high, low = pi.out_max, pi.out_min
                 correction = high if v > high else low if v < low else v
-                if self._has_integral:
-                    if dt_s != self._dt_s:
-                        self._dt_s = dt_s
-                        self._gain_i = self._kc * dt_s / self._ti_s
-                        self._back = math.expm1(-dt_s / self._tt_s)
-                    i = i + self._gain_i * error - self._back * (correction - v)
+                if pi.has_integral:
+                    if dt_s != pi.dt_s:
+                        pi.renew(dt_s)
+                    i = i + pi.gain_i * error - pi.back * (correction - v)
                 trim.integral, trim.derivative = i, 0.0
                 trim.last_measured, trim.last_output = equivalent, correction
             else:  # derivative action, or an input the step names (or an overflowing error)
