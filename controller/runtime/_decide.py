@@ -519,20 +519,20 @@ class Decider:
             change = change if change < step else step  # min(step, change)
             change = change if change > -step else -step  # max(-step, change)
             node.setpoint_c = setpoint = previous + change
-            pid, pi = node.pid, node.pi
+            pid = node.pid
             error = setpoint - measured
-            if pi is not None and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+            if node.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
                 # pid.step(measured, setpoint, dt_s) without derivative action, written out
                 # as Actuator.drive writes it (the test is the step's own for finite inputs)
-                p = pi.kc * (pi.setpoint_weight * setpoint - measured)
+                p = node.kc * (node.setpoint_weight * setpoint - measured)
                 i = pid.integral
                 v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
-                high, low = pi.out_max, pi.out_min
+                high, low = node.out_max, node.out_min
                 u = high if v > high else low if v < low else v
-                if pi.has_integral:
-                    if dt_s != pi.dt_s:
-                        pi.renew(dt_s)
-                    i = i + pi.gain_i * error - pi.back * (u - v)
+                if node.has_integral:
+                    if dt_s != node.pi_dt_s:
+                        node.renew(dt_s)
+                    i = i + node.gain_i * error - node.back * (u - v)
                 pid.integral, pid.derivative = i, 0.0
                 pid.last_measured, pid.last_output = measured, u
                 node.output_pct = u

@@ -24,6 +24,78 @@ from controller.runtime._settings import ChamberSettings, NodeSettings
 __all__ = ["Actuator", "ChamberMemory", "NodeMemory", "PiGains"]
 
 
+class PiGains:
+    """Base of the decider's holders of a loop stepped every tick: the gains and limits of
+    the loop, taken once from its frozen parameters, for a PI step written out there.
+
+    The step (:meth:`Actuator.drive`, ``Decider._node``) is :meth:`PidLoop.step`'s
+    arithmetic without the derivative term, on the loop's own state. The gains sit on the
+    holder itself (no object of their own to reach every tick). The integral gain Kc·h/Ti
+    and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step length h and
+    renewed (:meth:`renew`) whenever a step comes with another one, as the loop keeps them;
+    the parameters are frozen, so nothing else can make them stale.
+
+    Attributes
+    ----------
+    pi
+        Whether the loop is stepped written out: it exists and has no derivative action
+        (else :meth:`PidLoop.step` steps it).
+    kc, setpoint_weight
+        Controller gain (output unit per measurement unit) and setpoint weight b
+        (dimensionless).
+    out_min, out_max
+        Output limits, output unit.
+    has_integral
+        Whether the loop integrates.
+    pi_dt_s
+        Step length the two factors below are for, s (NaN before the first step).
+    gain_i, back
+        Kc·h/Ti (output unit per measurement unit) and e^{−h/Tt} − 1 (dimensionless).
+    """
+
+    __slots__ = (
+        "back",
+        "gain_i",
+        "has_integral",
+        "kc",
+        "out_max",
+        "out_min",
+        "pi",
+        "pi_dt_s",
+        "setpoint_weight",
+        "ti_s",
+        "tt_s",
+    )
+
+    def _take_gains(self, params: PidParams | None) -> None:
+        """Take the gains of the loop (None: no loop)."""
+        self.pi = params is not None and params.td_s == 0.0
+        if params is None:
+            params = _NO_LOOP
+        self.kc, self.setpoint_weight = params.kc, params.setpoint_weight
+        self.ti_s, self.tt_s = params.ti_s, params.tt_s
+        self.out_min, self.out_max = params.out_min, params.out_max
+        self.has_integral = params.has_integral
+        self.pi_dt_s = math.nan
+        self.gain_i = self.back = 0.0
+
+    def renew(self, dt_s: float) -> None:
+        """Compute the integral gain and back-calculation factor for a new step length.
+
+        Parameters
+        ----------
+        dt_s
+            Step length, s.
+        """
+        self.pi_dt_s = dt_s
+        self.gain_i = self.kc * dt_s / self.ti_s
+        self.back = math.expm1(-dt_s / self.tt_s)
+
+
+_NO_LOOP = PidParams(kc=1.0, ti_s=math.inf, out_min=0.0, out_max=1.0)
+"""Gains a holder without a loop carries (never used: its ``pi`` is False)."""
+
+
 class ChamberMemory:
     """One protocol chamber: its settings, taken from the (frozen) plan once, and the loop's
     memory of it (interlocks, lamp and pump trims, write result, forced outputs, cycle) and
@@ -60,7 +132,7 @@ class ChamberMemory:
         self.cycle = CycleState() if cycles else None
 
 
-class NodeMemory:
+class NodeMemory(PiGains):
     """One thermal node: its settings, taken from the plan once, and its loop's memory."""
 
     __slots__ = (
@@ -71,7 +143,6 @@ class NodeMemory:
         "lone",
         "members",
         "output_pct",
-        "pi",
         "pid",
         "probes",
         "ramp_per_s",
@@ -90,7 +161,7 @@ class NodeMemory:
         self.ramp_per_s = settings.max_ramp_c_per_h / 3600.0  # °C s⁻¹
         self.heater_on_off = settings.heater_on_off
         self.pid = PidLoop(settings.pid)
-        self.pi = PiGains.of(settings.pid)  # None: PidLoop.step steps it (derivative action)
+        self._take_gains(settings.pid)
         self.setpoint_c: float | None = None
         self.output_pct = 0.0
         self.cycle = TimeProportionState()
@@ -100,88 +171,7 @@ class NodeMemory:
         self.shown_setpoint_c: float | None = None
 
 
-class PiGains:
-    """The gains and limits of a PI loop (no derivative action), taken once from its frozen
-    parameters, for a step written out where the loop is stepped every tick.
-
-    The step is :meth:`PidLoop.step`'s arithmetic without the derivative term, on the
-    loop's own state (see :meth:`Actuator.drive` and ``Decider._node``). The integral gain
-    Kc·h/Ti and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step
-    length h and renewed (:meth:`renew`) whenever a step comes with another one, as the
-    loop keeps them; the parameters are frozen, so nothing else can make them stale.
-
-    Parameters
-    ----------
-    params
-        Gains and limits of a loop without derivative action (``td_s`` 0).
-
-    Attributes
-    ----------
-    kc, setpoint_weight
-        Controller gain (output unit per measurement unit) and setpoint weight b
-        (dimensionless).
-    out_min, out_max
-        Output limits, output unit.
-    has_integral
-        Whether the loop integrates.
-    dt_s
-        Step length the two factors below are for, s (NaN before the first step).
-    gain_i, back
-        Kc·h/Ti (output unit per measurement unit) and e^{−h/Tt} − 1 (dimensionless).
-    """
-
-    __slots__ = (
-        "back",
-        "dt_s",
-        "gain_i",
-        "has_integral",
-        "kc",
-        "out_max",
-        "out_min",
-        "setpoint_weight",
-        "ti_s",
-        "tt_s",
-    )
-
-    def __init__(self, params: PidParams) -> None:
-        assert params.td_s == 0.0, "a PI step has no derivative term"
-        self.kc, self.setpoint_weight = params.kc, params.setpoint_weight
-        self.ti_s, self.tt_s = params.ti_s, params.tt_s
-        self.out_min, self.out_max = params.out_min, params.out_max
-        self.has_integral = params.has_integral
-        self.dt_s = math.nan
-        self.gain_i = self.back = 0.0
-
-    def renew(self, dt_s: float) -> None:
-        """Compute the integral gain and back-calculation factor for a new step length.
-
-        Parameters
-        ----------
-        dt_s
-            Step length, s.
-        """
-        self.dt_s = dt_s
-        self.gain_i = self.kc * dt_s / self.ti_s
-        self.back = math.expm1(-dt_s / self.tt_s)
-
-    @classmethod
-    def of(cls, params: PidParams | None) -> PiGains | None:
-        """The gains of a PI loop; None without a loop or for one with derivative action.
-
-        Parameters
-        ----------
-        params
-            Gains and limits, or None.
-
-        Returns
-        -------
-        PiGains or None
-            The gains to step it written out, or None to step it with :meth:`PidLoop.step`.
-        """
-        return None if params is None or params.td_s != 0.0 else cls(params)
-
-
-class Actuator:
+class Actuator(PiGains):
     """A lamp or pump: its drive curve, its PI trim (None: open loop) and the feed-forward
     drive of the latest setpoint.
 
@@ -192,7 +182,7 @@ class Actuator:
 
     A trim without derivative action (every trim the plan builds) is stepped here, in
     :meth:`drive`: :meth:`PidLoop.step`'s arithmetic and state updates on :attr:`trim`,
-    written out without the derivative term, with the gains of :class:`PiGains`.
+    written out without the derivative term, with the gains it holds as a :class:`PiGains`.
     """
 
     __slots__ = (
@@ -200,7 +190,6 @@ class Actuator:
         "_edge",
         "_last",
         "_line",
-        "_pi",
         "_segments",
         "_setpoint",
         "_values",
@@ -223,7 +212,7 @@ class Actuator:
         self._segments = (segments[0], *segments)
         self._line = segments[0] if len(segments) == 1 else None  # a straight line's segment
         self._edge = ys[0]  # the dead band's edge: the least drive a setpoint above 0 gets, %
-        self._pi = PiGains.of(trim)  # None: no trim, or one PidLoop.step steps
+        self._take_gains(trim)
 
     def equivalent_drive(self, measured: float) -> float:
         """:meth:`DriveCurve.equivalent_drive` of the actuator's curve, the same numbers.
@@ -292,19 +281,18 @@ class Actuator:
                 x0, y0, dy, dx = line
             equivalent = y0 + (measured - x0) * dy / dx
             error = drive - equivalent
-            pi = self._pi
-            if pi is not None and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+            if self.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
                 # trim.step(equivalent, drive, dt_s) without derivative action, written out
                 # (the test above is the step's own test for finite inputs)
-                p = pi.kc * (pi.setpoint_weight * drive - equivalent)
+                p = self.kc * (self.setpoint_weight * drive - equivalent)
                 i = trim.integral
                 v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
-                high, low = pi.out_max, pi.out_min
+                high, low = self.out_max, self.out_min
                 correction = high if v > high else low if v < low else v
-                if pi.has_integral:
-                    if dt_s != pi.dt_s:
-                        pi.renew(dt_s)
-                    i = i + pi.gain_i * error - pi.back * (correction - v)
+                if self.has_integral:
+                    if dt_s != self.pi_dt_s:
+                        self.renew(dt_s)
+                    i = i + self.gain_i * error - self.back * (correction - v)
                 trim.integral, trim.derivative = i, 0.0
                 trim.last_measured, trim.last_output = equivalent, correction
             else:  # derivative action, or an input the step names (or an overflowing error)

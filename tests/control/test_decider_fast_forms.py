@@ -20,7 +20,7 @@ from controller.files import load_model
 from controller.rig import DriveCurve, Rig
 from controller.runtime import ChamberReadings, RunSettings, plan_control
 from controller.runtime._decide import Decider, Target
-from controller.runtime._decide_state import Actuator, PiGains
+from controller.runtime._decide_state import Actuator
 
 CURVES = (
     DriveCurve.linear(30.0),
@@ -71,7 +71,7 @@ def test_an_actuator_steps_its_trim_as_pid_loop_does(
     """Drives equal to the reference (repr: −0.0 too) and the trim's state field for field,
     through changing step lengths (the kept integral gain is renewed at each change)."""
     actuator, trim = Actuator(curve, params), PidLoop(params)
-    assert actuator.trim is not None
+    assert actuator.trim is not None and actuator.pi is (params.td_s == 0.0)
     for setpoint, measured, dt_s in ticks:
         want = reference_drive(curve, trim, setpoint, measured, dt_s)
         assert repr(actuator.drive(setpoint, measured, dt_s)) == repr(want)
@@ -159,8 +159,8 @@ def test_a_node_steps_its_pi_loop_as_pid_loop_does(
     path.write_text(RIG)
     plan = plan_control(load_model(path, Rig), ["B"], RunSettings(period_s=10.0))
     node_settings = plan.nodes[0]
-    assert node_settings.pid.td_s == 0.0 and PiGains.of(node_settings.pid) is not None
     decider, loop = Decider(plan), PidLoop(node_settings.pid)
+    assert node_settings.pid.td_s == 0.0 and decider._nodes[0].pi  # stepped written out
     ramp_per_s = node_settings.max_ramp_c_per_h / 3600.0
     deadband = plan.settings.split_deadband_pct
     setpoint: float | None = None
