@@ -388,9 +388,10 @@ class Decider:
                     )
         for node in self._nodes:
             self._node(node, readings, targets, t_s, dt_s, forcing)
-        # Outputs and ChamberDecision built as Outputs.unchecked and _decided build them
-        # (every drive is clipped or from checked outputs; the decider's own values), written
-        # out here: a call each would cost more than the building.
+        # Outputs and ChamberDecision built as Outputs.unchecked builds outputs: every drive
+        # is clipped or from checked outputs, the other fields are the decider's own values,
+        # so nothing needs the checks of __init__; written out here, as a call each would
+        # cost more than the building.
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
         new = object.__new__
