@@ -367,6 +367,7 @@ class _TimerWake:
     def __init__(self, loop: VirtualTimeEventLoop, t_s: float) -> None:
         self._loop = loop
         self._state = 0  # 0 waiting, 1 woken, 2 cancelled
+        self._cancel_message: Any = None
         self._callbacks: list[tuple[Callable[[Any], object], Any]] = []
         self._handle = loop.call_at(t_s, self._fire)
 
@@ -384,8 +385,9 @@ class _TimerWake:
 
     def result(self) -> None:
         """None once woken; raises CancelledError if cancelled, InvalidStateError if waiting."""
-        if self._state == 2:
-            raise asyncio.CancelledError
+        if self._state == 2:  # as an asyncio future: the cancel's message, if any
+            message = self._cancel_message
+            raise asyncio.CancelledError() if message is None else asyncio.CancelledError(message)
         if self._state == 0:
             raise asyncio.InvalidStateError("the wait has not ended")
 
@@ -413,6 +415,7 @@ class _TimerWake:
         if self._state != 0:
             return False
         self._state = 2
+        self._cancel_message = msg
         self._handle.cancel()
         callbacks, self._callbacks = self._callbacks, []
         for fn, context in callbacks:

@@ -483,7 +483,15 @@ def test_a_cancelled_sleeper_wakes_through_the_queue_and_leaves_no_timer() -> No
 
     async def main(c: Clock) -> None:
         loop = asyncio.get_running_loop()
-        task = asyncio.ensure_future(c.sleep_until(100.0))
+
+        async def sleeper() -> None:
+            try:
+                await c.sleep_until(100.0)
+            except asyncio.CancelledError as cancelled:
+                seen["message"] = cancelled.args
+                raise
+
+        task = asyncio.ensure_future(sleeper())
         await asyncio.sleep(0)
         assert loop._next_deadline() == 100.0  # type: ignore[attr-defined]
         task.cancel("stop")
@@ -498,4 +506,4 @@ def test_a_cancelled_sleeper_wakes_through_the_queue_and_leaves_no_timer() -> No
             seen["timeout at"] = c.now_s()
 
     run_with_clock(clock, main)
-    assert seen == {"now": 0.0, "timers": [], "timeout at": 3.0}
+    assert seen == {"message": ("stop",), "now": 0.0, "timers": [], "timeout at": 3.0}
