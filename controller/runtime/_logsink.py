@@ -202,7 +202,7 @@ class LogSink:
         self._queue: deque[Values | Record] = deque()
         self._wake = asyncio.Event()
         self.rows_written = 0
-        """Sample rows in the log (or pending in its open transaction), dimensionless."""
+        """Sample rows in the log (or handed to its writer, not yet committed), dimensionless."""
         self.rows_lost = 0
         """Sample rows a failed write dropped, dimensionless."""
         self.records_lost = 0
