@@ -16,6 +16,12 @@ Rules of this module
   deadline (autojump, ``speed=None``) or really waits ``timeout / speed`` seconds while
   virtual time runs at ``speed`` times real time. With no timer pending (``timeout=None``)
   the selector really blocks, so sockets, pipes and other threads still wake the loop.
+- A task waiting in :meth:`VirtualClock.sleep_until` is resumed by the timer itself, inside
+  the loop turn the timer fires in, when nothing else is ready or due at that instant (the
+  usual way, a future's result, costs one more turn of the loop per wake-up: the task's
+  step is queued for the next turn). When anything else is ready or due, the task first
+  yields once, so it resumes exactly where the usual way would have put it: after the
+  callbacks queued before its timer fired and before those queued after.
 - While work submitted through ``loop.run_in_executor`` (and so ``asyncio.to_thread``) is
   still running, an autojumping loop does not jump: a busy thread is a task that is not
   waiting. Threads started any other way, and peers in other processes, run on real time and
@@ -33,7 +39,7 @@ import asyncio
 import math
 import selectors
 import time
-from collections.abc import Awaitable, Callable, Coroutine, Mapping
+from collections.abc import Awaitable, Callable, Coroutine, Generator, Mapping
 from concurrent.futures import Executor
 from datetime import UTC, datetime, timedelta
 from typing import Any, Protocol, TypeVar, runtime_checkable
@@ -271,12 +277,7 @@ class VirtualClock:
         if t_s <= self.now_s():
             await asyncio.sleep(0)
             return
-        waiter: asyncio.Future[None] = loop.create_future()
-        handle = loop.call_at(t_s, _wake, waiter)
-        try:
-            await waiter
-        finally:
-            handle.cancel()
+        await _TimerWake(loop, t_s)
 
     async def sleep(self, dt_s: float) -> None:
         """Wait ``dt_s`` virtual seconds.
@@ -343,9 +344,106 @@ class VirtualClock:
         self._base_s = max(now, target)
 
 
-def _wake(waiter: asyncio.Future[None]) -> None:
-    if not waiter.done():
-        waiter.set_result(None)
+class _TimerWake:
+    """What a task waiting for a virtual time awaits: a future-like object (asyncio's
+    duck-typed future protocol, as a task sees it) whose timer resumes the task directly.
+
+    The task's step runs inside the timer's own loop turn, not queued for the next one, and
+    then yields once more unless the loop has nothing else ready or due at that instant
+    (:meth:`VirtualTimeEventLoop.nothing_due_now`), so everything that would have run before
+    the task still does. A cancellation (from anywhere) wakes the task the usual way, through
+    the loop's queue.
+
+    Parameters
+    ----------
+    loop
+        The clock's running loop.
+    t_s
+        Virtual time to wake at, s.
+    """
+
+    _asyncio_future_blocking = False  # the protocol's marker (asyncio.isfuture)
+
+    def __init__(self, loop: VirtualTimeEventLoop, t_s: float) -> None:
+        self._loop = loop
+        self._state = 0  # 0 waiting, 1 woken, 2 cancelled
+        self._cancel_message: Any = None
+        self._callbacks: list[tuple[Callable[[Any], object], Any]] = []
+        self._handle = loop.call_at(t_s, self._fire)
+
+    def get_loop(self) -> VirtualTimeEventLoop:
+        """The loop the timer runs in."""
+        return self._loop
+
+    def done(self) -> bool:
+        """Whether the timer fired or the wait was cancelled."""
+        return self._state != 0
+
+    def cancelled(self) -> bool:
+        """Whether the wait was cancelled."""
+        return self._state == 2
+
+    def result(self) -> None:
+        """None once woken; raises CancelledError if cancelled, InvalidStateError if waiting."""
+        if self._state == 2:  # as an asyncio future: the cancel's message, if any
+            message = self._cancel_message
+            raise asyncio.CancelledError() if message is None else asyncio.CancelledError(message)
+        if self._state == 0:
+            raise asyncio.InvalidStateError("the wait has not ended")
+
+    def exception(self) -> BaseException | None:
+        """None (a timer has no error); raises as :meth:`result` does when cancelled."""
+        self.result()
+        return None
+
+    def add_done_callback(self, fn: Callable[[Any], object], *, context: Any = None) -> None:
+        """Call ``fn(self)`` when the wait ends (at once, through the loop, if it has)."""
+        if self._state != 0:
+            self._loop.call_soon(fn, self, context=context)
+        else:
+            self._callbacks.append((fn, context))
+
+    def remove_done_callback(self, fn: Callable[[Any], object]) -> int:
+        """Forget every pending ``fn``; return how many, dimensionless."""
+        kept = [(f, c) for f, c in self._callbacks if f != fn]
+        removed = len(self._callbacks) - len(kept)
+        self._callbacks = kept
+        return removed
+
+    def cancel(self, msg: Any = None) -> bool:
+        """End the wait as cancelled; the waiting task is woken through the loop's queue."""
+        if self._state != 0:
+            return False
+        self._state = 2
+        self._cancel_message = msg
+        self._handle.cancel()
+        callbacks, self._callbacks = self._callbacks, []
+        for fn, context in callbacks:
+            self._loop.call_soon(fn, self, context=context)
+        return True
+
+    def _fire(self) -> None:
+        """The timer: end the wait and run the waiting task's step right here."""
+        if self._state != 0:
+            return
+        self._state = 1
+        callbacks, self._callbacks = self._callbacks, []
+        for fn, context in callbacks:
+            if context is None:
+                fn(self)
+            else:
+                context.run(fn, self)
+
+    def __await__(self) -> Generator[Any, None, None]:
+        if self._state == 0:
+            self._asyncio_future_blocking = True
+            try:
+                yield self
+            finally:
+                self._handle.cancel()  # a task closed while waiting leaves no timer
+        self.result()
+        if not self._loop.nothing_due_now():
+            yield  # as asyncio.sleep(0): let what is ready or due now run first
 
 
 class _VirtualTimeSelector(selectors.BaseSelector):

@@ -424,3 +424,86 @@ def test_nothing_due_now_sees_ready_tasks_and_timers_due_at_this_instant() -> No
         "timer due now": False,
         "timer due later": True,
     }
+
+
+class _TurnCounter(VirtualTimeEventLoop):
+    """A virtual-time loop that counts its turns (``_run_once`` calls)."""
+
+    turns = 0
+
+    def _run_once(self) -> None:
+        type(self).turns += 1
+        super()._run_once()  # type: ignore[misc]
+
+
+def test_a_sleeper_with_nothing_else_due_wakes_in_its_timer_s_own_turn() -> None:
+    clock = VirtualClock(START)
+    woke: list[float] = []
+
+    async def main(c: Clock) -> None:
+        for k in range(1, 101):
+            await c.sleep_until(10.0 * k)
+            woke.append(c.now_s())
+
+    _TurnCounter.turns = 0
+    clock.new_event_loop = lambda: _TurnCounter(clock)  # type: ignore[method-assign]
+    run_with_clock(clock, main)
+    assert woke == [10.0 * k for k in range(1, 101)]
+    # one turn a wake-up (a future's result would take two), and a few to start and stop
+    assert _TurnCounter.turns < 100 + 10
+
+
+def test_a_sleeper_still_runs_after_what_was_queued_before_its_timer_and_before_the_rest() -> None:
+    clock = VirtualClock(START)
+    order: list[str] = []
+
+    async def sleeper(c: Clock) -> None:
+        await c.sleep_until(5.0)
+        order.append("sleeper")
+
+    async def main(c: Clock) -> None:
+        loop = asyncio.get_running_loop()
+        # due at the same instant: the first timer queues a callback for the next turn, the
+        # other one (set after the sleeper's) runs in the same turn as the sleeper's timer
+        loop.call_at(5.0, lambda: loop.call_soon(order.append, "queued before"))
+        task = asyncio.ensure_future(sleeper(c))
+        await asyncio.sleep(0)  # the sleeper sets its timer
+        loop.call_at(5.0, order.append, "timer after")
+        await task
+
+    run_with_clock(clock, main)
+    # with a future's result the sleeper's step would be queued for the next turn: after
+    # everything of the timers' turn and after what was queued before it
+    assert order == ["timer after", "queued before", "sleeper"]
+
+
+def test_a_cancelled_sleeper_wakes_through_the_queue_and_leaves_no_timer() -> None:
+    clock = VirtualClock(START)
+    seen: dict[str, object] = {}
+
+    async def main(c: Clock) -> None:
+        loop = asyncio.get_running_loop()
+
+        async def sleeper() -> None:
+            try:
+                await c.sleep_until(100.0)
+            except asyncio.CancelledError as cancelled:
+                seen["message"] = cancelled.args
+                raise
+
+        task = asyncio.ensure_future(sleeper())
+        await asyncio.sleep(0)
+        assert loop._next_deadline() == 100.0  # type: ignore[attr-defined]
+        task.cancel("stop")
+        with pytest.raises(asyncio.CancelledError):
+            await task
+        seen["now"] = c.now_s()
+        seen["timers"] = [h for h in loop._scheduled if not h.cancelled()]  # type: ignore[attr-defined]
+        try:
+            async with asyncio.timeout(3.0):
+                await c.sleep_until(50.0)
+        except TimeoutError:
+            seen["timeout at"] = c.now_s()
+
+    run_with_clock(clock, main)
+    assert seen == {"message": ("stop",), "now": 0.0, "timers": [], "timeout at": 3.0}

@@ -30,6 +30,7 @@ from controller.control._interlock_config import (
     Readings,
     default_policies,
 )
+from controller.control._interlock_memory import InterlockMemory
 from controller.control._interlocks import (
     Actions,
     ConditionState,
@@ -92,6 +93,7 @@ __all__ = [
     "IncubationStatus",
     "InterlockEvent",
     "InterlockLimits",
+    "InterlockMemory",
     "InterlockState",
     "Level",
     "Outputs",

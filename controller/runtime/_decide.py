@@ -45,10 +45,8 @@ from controller.control import (
     Outputs,
     SafetyState,
     WindowEnd,
-    acknowledge,
     cycle_step,
     end_window,
-    evaluate_values,
     time_proportion_step,
 )
 from controller.runtime._decide_state import ChamberMemory, NodeMemory
@@ -82,7 +80,7 @@ class Target:
     flow_cm_s: float | None
 
 
-@dataclass(frozen=True, kw_only=True)  # no slots: :func:`_decided` fills its __dict__
+@dataclass(frozen=True, kw_only=True)  # no slots: Decider.decide fills its __dict__
 class ChamberDecision:
     """What was decided for one protocol chamber.
 
@@ -106,25 +104,6 @@ class ChamberDecision:
     safety: SafetyState
     setpoint_c: float | None
     incubation: IncubationStatus | None = None
-
-
-def _decided(
-    outputs: Outputs,
-    alarm: Condition | None,
-    safety: SafetyState,
-    setpoint_c: float | None,
-    incubation: IncubationStatus | None,
-) -> ChamberDecision:
-    """``ChamberDecision(outputs=..., ...)`` for the decider's own values (nothing to check),
-    four times faster than the frozen dataclass's __init__."""
-    decision = object.__new__(ChamberDecision)
-    fields = decision.__dict__  # filled in place: a frozen instance refuses attribute writes
-    fields["outputs"] = outputs
-    fields["alarm"] = alarm
-    fields["safety"] = safety
-    fields["setpoint_c"] = setpoint_c
-    fields["incubation"] = incubation
-    return decision
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -199,8 +178,14 @@ class Decider:
         self._idle_drivers = tuple(  # an idle chamber carries the bath's heater
             (n.settings.driver, n) for n in self._nodes if n.settings.driver not in plan.chambers
         )
+        # cycling chambers: their pump is decided after their cycle's step
+        self._cycling = tuple(c for c in self._order if c.cycle is not None)
+        # what each tick's passes over the chambers read, in rig order (all fixed objects)
+        self._inputs = tuple((c, c.name, c.interlock, c.lamp, c.pump) for c in self._order)
+        self._outputs = tuple((c, c.name, c.interlock, c.node, c.driver) for c in self._order)
         settings = plan.settings
         self._deadband_pct = settings.split_deadband_pct
+        self._period_s = settings.period_s
         self._last_t_s: float | None = None
 
     @property
@@ -261,7 +246,7 @@ class Decider:
         InterlockState
             Condition states, overall safety and the interlocks' memory (times in s).
         """
-        return self._chambers[chamber].interlock
+        return self._chambers[chamber].interlock.state
 
     def incubation(self, chamber: str) -> IncubationStatus | None:
         """The incubation status of a protocol chamber after the latest tick.
@@ -303,9 +288,7 @@ class Decider:
         IllegalInterlockEvent
             Nothing to acknowledge; the state is unchanged.
         """
-        state = self._chambers[chamber]
-        state.interlock, _, events = acknowledge(state.interlock, condition, state.limits, t_s)
-        return events
+        return self._chambers[chamber].interlock.acknowledge(condition, t_s)
 
     def end_windows(
         self, t_s: float, reason: WindowEnd, detail: str = ""
@@ -361,57 +344,83 @@ class Decider:
         Decision
             Outputs to write, per-chamber decisions, interlock events and ended windows.
         """
-        dt_s = self._plan.settings.period_s if self._last_t_s is None else t_s - self._last_t_s
-        dt_s = max(dt_s, 1e-6)
+        last_t_s = self._last_t_s
+        dt_s = self._period_s if last_t_s is None else t_s - last_t_s
+        if 1e-6 > dt_s:  # max(dt_s, 1e-6), NaN kept as max keeps it
+            dt_s = 1e-6
         self._last_t_s = t_s
         events: list[tuple[str, InterlockEvent]] = []
         forcing = False  # whether any chamber's outputs are forced this tick
-        for ch in self._order:
-            reading = readings[ch.name]
-            ch.interlock, action, happened = evaluate_values(
-                ch.interlock,
+        # Interlocks of every chamber, and with them each chamber's lamp and pump: an
+        # actuator's drive depends only on its own chamber's forced outputs, its setpoint,
+        # its sensor and its own trim, so it can be decided as soon as the chamber's
+        # interlocks are. A cycling chamber's pump waits for its cycle's step (below).
+        for ch, name, interlock, lamp, pump in self._inputs:
+            reading = readings[name]
+            happened = interlock.evaluate(
                 reading.temperature_c,
                 reading.level_ok,
                 reading.comm_ok and ch.write_ok,
                 reading.e_stop,
-                ch.limits,
                 t_s,
             )
-            ch.alarm = action.alarm
-            if action.force is not None:
-                ch.force = action.force
-                forcing = True
-            elif ch.force is not None:
-                ch.force = None
             if happened:
-                events.extend((ch.name, event) for event in happened)
+                events.extend((name, event) for event in happened)
+            force = ch.force = interlock.force
+            if force is not None:
+                forcing = True
+                ch.lamp_pct, ch.pump_pct = force.lamp_pct, force.pump_pct
+            else:
+                target = targets[name]
+                ch.lamp_pct = lamp.drive(target.par, reading.par, dt_s)
+                if ch.cycle is None:
+                    ch.pump_pct = pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
         windows = self._cycles(readings, targets, t_s, schedule)
+        closed = IncubationStatus.CLOSED
+        for ch in self._cycling:
+            if ch.force is None:
+                if ch.cycle is not None and ch.cycle.status is closed:
+                    ch.pump_pct = 0.0  # flushing pump off; the trim waits for the window's end
+                else:
+                    name = ch.name
+                    ch.pump_pct = ch.pump.drive(
+                        targets[name].flow_cm_s, readings[name].flow_cm_s, dt_s
+                    )
         for node in self._nodes:
             self._node(node, readings, targets, t_s, dt_s, forcing)
+        # Outputs and ChamberDecision built as Outputs.unchecked builds outputs: every drive
+        # is clipped or from checked outputs, the other fields are the decider's own values,
+        # so nothing needs the checks of __init__; written out here, as a call each would
+        # cost more than the building.
         writes: dict[str, Outputs] = {}
         decided: dict[str, ChamberDecision] = {}
-        unchecked = Outputs.unchecked  # every drive below is clipped or from checked outputs
-        closed = IncubationStatus.CLOSED
-        for ch in self._order:
-            name, node, cycle = ch.name, ch.node, ch.cycle
-            if forcing and ch.force is not None:
-                lamp, pump = ch.force.lamp_pct, ch.force.pump_pct
+        new = object.__new__
+        for ch, name, interlock, node, driver in self._outputs:
+            lamp, pump, cycle = ch.lamp_pct, ch.pump_pct, ch.cycle
+            shown = new(Outputs)
+            fields = shown.__dict__  # filled in place: a frozen instance refuses writes
+            fields["heater_pct"] = node.heater
+            fields["chiller_pct"] = node.chiller
+            fields["lamp_pct"] = lamp
+            fields["pump_pct"] = pump
+            decision = new(ChamberDecision)
+            fields = decision.__dict__
+            fields["outputs"] = shown
+            fields["alarm"] = interlock.alarm
+            fields["safety"] = interlock.safety
+            fields["setpoint_c"] = node.shown_setpoint_c
+            fields["incubation"] = None if cycle is None else cycle.status
+            decided[name] = decision
+            if driver:
+                writes[name] = shown
             else:
-                target, reading = targets[name], readings[name]
-                lamp = ch.lamp.drive(target.par, reading.par, dt_s)
-                if cycle is not None and cycle.status is closed:
-                    pump = 0.0  # flushing pump off; the flow trim waits for the window's end
-                else:
-                    pump = ch.pump.drive(target.flow_cm_s, reading.flow_cm_s, dt_s)
-            shown = unchecked(node.heater, node.chiller, lamp, pump)
-            decided[name] = _decided(
-                shown,
-                ch.alarm,
-                ch.interlock.safety,
-                node.shown_setpoint_c,
-                None if cycle is None else cycle.status,
-            )
-            writes[name] = shown if ch.driver else unchecked(0.0, 0.0, lamp, pump)
+                own = writes[name] = new(Outputs)
+                fields = own.__dict__
+                fields["heater_pct"] = 0.0
+                fields["chiller_pct"] = 0.0
+                fields["lamp_pct"] = lamp
+                fields["pump_pct"] = pump
+        unchecked = Outputs.unchecked  # the node's drives are clipped
         for driver, node in self._idle_drivers:
             writes[driver] = unchecked(node.heater, node.chiller, 0.0, 0.0)
         return Decision(writes=writes, chambers=decided, events=tuple(events), windows=windows)
@@ -461,22 +470,30 @@ class Decider:
     ) -> None:
         """Set the node's heater and chiller drives (%) and shown setpoint (°C) of this tick;
         ``forcing``: whether any chamber's outputs are forced this tick."""
-        temps = []
-        for c, low, high in node.probes:
-            value = readings[c].temperature_c
-            if value is not None and low < value < high:
-                temps.append(value)
-        if not temps:
-            measured = None
-        elif len(temps) == 1:  # a chamber's own water
-            measured = temps[0] + 0.0  # math.fsum([x]) / 1, bit for bit (−0.0 becomes 0.0)
+        lone = node.lone
+        if lone is not None:  # a chamber's own water: its probe and its setpoint
+            name, low, high = lone
+            value = readings[name].temperature_c
+            # math.fsum([value]) / 1, bit for bit (−0.0 becomes 0.0)
+            measured = value + 0.0 if value is not None and low < value < high else None
+            target = targets[name].temperature_c
         else:
-            measured = math.fsum(temps) / len(temps)
-        target = None
-        for member in node.members:
-            target = targets[member.name].temperature_c
-            if target is not None:
-                break
+            temps = []
+            for c, low, high in node.probes:
+                value = readings[c].temperature_c
+                if value is not None and low < value < high:
+                    temps.append(value)
+            if not temps:
+                measured = None
+            elif len(temps) == 1:
+                measured = temps[0] + 0.0  # as above
+            else:
+                measured = math.fsum(temps) / len(temps)
+            target = None
+            for member in node.members:
+                target = targets[member.name].temperature_c
+                if target is not None:
+                    break
         forced = forcing and any(member.force is not None for member in node.members)
         if forced or target is None:
             forces = [f for member in node.members if (f := member.force) is not None]
@@ -503,7 +520,25 @@ class Decider:
             change = change if change < step else step  # min(step, change)
             change = change if change > -step else -step  # max(-step, change)
             node.setpoint_c = setpoint = previous + change
-            node.output_pct = node.pid.step(measured, setpoint, dt_s)
+            pid = node.pid
+            error = setpoint - measured
+            if node.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
+                # pid.step(measured, setpoint, dt_s) without derivative action, written out
+                # as Actuator.drive writes it (the test is the step's own for finite inputs)
+                p = node.kc * (node.setpoint_weight * setpoint - measured)
+                i = pid.integral
+                v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
+                high, low = node.out_max, node.out_min
+                u = high if v > high else low if v < low else v
+                if node.has_integral:
+                    if dt_s != node.pi_dt_s:
+                        node.renew(dt_s)
+                    i = i + node.gain_i * error - node.back * (u - v)
+                pid.integral, pid.derivative = i, 0.0
+                pid.last_measured, pid.last_output = measured, u
+                node.output_pct = u
+            else:  # derivative action, or an input the step names (or an overflowing error)
+                node.output_pct = pid.step(measured, setpoint, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
         if node.heater_on_off:
             settings = self._plan.settings

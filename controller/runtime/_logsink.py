@@ -8,11 +8,12 @@ Rules of this module
   the sink's task writes them in the order they were queued (consecutive sample batches go
   down in one ``executemany``). The run log's writer commits alarms, events, windows and
   audit records at once and samples at its commit interval.
-- Samples that the writer would not commit yet, with nothing queued before them, go into its
-  open transaction at once (an insert that waits for no disk: only a commit writes) instead of
-  waking the task; the task is woken for every record and for samples whose commit is due.
-  The rows, their order and the commits are the same as through the task, and a simulated
-  run at full speed does not turn the event loop once a tick to log it.
+- Samples that the writer would not commit yet, with nothing queued before them, go to it at
+  once (it holds them until their commit, :mod:`controller.storage._writer`; nothing waits
+  for the disk) instead of waking the task; the task is woken for every record and for
+  samples whose commit is due. The rows, their order and the commits are the same as
+  through the task, and a simulated run at full speed does not turn the event loop once a
+  tick to log it.
 - A failed write (disk full, I/O error) is logged and counted, never raised into the loop:
   controlling the chambers matters more than recording them, and the writer stays usable
   for the next batch.
@@ -201,7 +202,7 @@ class LogSink:
         self._queue: deque[Values | Record] = deque()
         self._wake = asyncio.Event()
         self.rows_written = 0
-        """Sample rows in the log (or pending in its open transaction), dimensionless."""
+        """Sample rows in the log (or handed to its writer, not yet committed), dimensionless."""
         self.rows_lost = 0
         """Sample rows a failed write dropped, dimensionless."""
         self.records_lost = 0
@@ -253,8 +254,11 @@ class LogSink:
     def _enqueue_samples(self, values: Values) -> None:
         if not values:
             return
-        if not self._queue and not self.writer.commit_due(values[-1][_T_S]):
-            self._samples(values)  # into the open transaction: no commit, no disk write
+        writer = self.writer
+        if not self._queue and not writer.commit_due(values[-1][_T_S]):
+            # held by the writer until its commit: no SQLite call, so no write can fail now
+            writer.append_sample_values(values)
+            self.rows_written += len(values)
             return
         self._queue.append(values)
         self._wake.set()

@@ -7,6 +7,13 @@ Rules of this module
   ``commit_interval_s`` past that of the last commit, so a crash loses at most that much.
 - Alarms, events, closed windows and operator actions are rare and precious: they are
   committed at once, together with any samples still pending.
+- Sample rows given as value tuples (:meth:`RunLogWriter.append_sample_values`, the control
+  loop's rows) are held in memory until their commit and then inserted in one
+  ``executemany``, in the order they came: one SQLite call per commit instead of one per
+  tick. What a crash loses and what a reader sees do not change (both only ever concern
+  committed rows), nor does what a failed write drops (every row not yet committed); the
+  rows' ``seq`` and order are those of inserting them one batch at a time. Rows given as
+  records (:meth:`RunLogWriter.append_samples`) go to SQLite at once, after any held rows.
 - A failed write (disk full, I/O error) rolls back what was not yet committed and raises
   :class:`RuntimeFailure`; committed data is never touched (SQLite transactions are atomic,
   and in WAL mode an unfinished commit is ignored on recovery). The writer stays usable, so
@@ -27,7 +34,7 @@ from __future__ import annotations
 import contextlib
 import math
 import sqlite3
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from types import TracebackType
 from typing import Any, NoReturn, Self
@@ -211,6 +218,8 @@ class RunLogWriter:
         self._resume_point = resume_point
         self._not_after_utc_s = resume_point.last_utc_s if resume_point else None
         self._pending = 0
+        # sample value tuples handed in and not yet inserted, in order; all uncommitted
+        self._held: list[tuple[Any, ...]] = []
         self._last_commit_t_s: float | None = None
         self._last_t_s: float | None = None
 
@@ -264,7 +273,19 @@ class RunLogWriter:
             After a resume: a row is not later (UTC) than the log's last sample.
         """
         if rows:
-            self._append(map(_SAMPLE_ROW, rows), len(rows), rows[0].utc_s, rows[-1].t_s)
+            self._check_after_resume(rows[0].utc_s)
+            conn = self._open_conn()
+            n = len(rows)
+            try:  # as self._io, without a context manager
+                if not conn.in_transaction:
+                    conn.execute("BEGIN")
+                if self._held:
+                    self._insert_held(conn)
+                conn.executemany(_SAMPLE_SQL, map(_SAMPLE_ROW, rows))
+            except sqlite3.Error as exc:
+                self._fail(exc, f"append {n} sample row(s)", n)
+            self._pending += n
+            self._after_write(rows[-1].t_s)
 
     def append_sample_values(self, rows: Sequence[tuple[Any, ...]]) -> None:
         """As :meth:`append_samples`, each row given as the tuple of its values in
@@ -282,12 +303,36 @@ class RunLogWriter:
         Raises
         ------
         RuntimeFailure
-            The rows could not be written; uncommitted rows were dropped.
+            The rows (or the rows held with them) could not be written when their commit
+            came; every row not yet committed was dropped.
         ValueError
             After a resume: a row is not later (UTC) than the log's last sample.
+
+        Notes
+        -----
+        The rows are held until the commit that writes them (see the module's rules); the
+        tuples must not be changed afterwards. A malformed row (a bug) raises at that commit.
         """
-        if rows:
-            self._append(rows, len(rows), rows[0][_UTC_S], rows[-1][_T_S])
+        if not rows:
+            return
+        if self._not_after_utc_s is not None:
+            self._check_after_resume(rows[0][_UTC_S])
+        conn = self._conn
+        if conn is None:
+            conn = self._open_conn()  # raises: the writer is closed
+        n = len(rows)
+        self._held.extend(rows)
+        self._pending += n
+        t_s = rows[-1][_T_S]
+        self._last_t_s = t_s
+        if self.commit_due(t_s):
+            try:  # as self._io, without a context manager
+                if not conn.in_transaction:
+                    conn.execute("BEGIN")
+                self._insert_held(conn)
+            except sqlite3.Error as exc:
+                self._fail(exc, f"append {n} sample row(s)", 0)
+            self.flush()
 
     def commit_due(self, t_s: float) -> bool:
         """Whether sample rows up to clock time ``t_s`` would be committed when handed in now:
@@ -309,11 +354,9 @@ class RunLogWriter:
         dt_s = t_s - self._last_commit_t_s
         return dt_s >= self._interval_s or dt_s < 0
 
-    def _append(
-        self, params: Iterable[tuple[Any, ...]], n: int, first_utc_s: float, last_t_s: float
-    ) -> None:
-        """Insert ``n`` sample rows' column values; commit if the interval passed."""
-        conn = self._open_conn()
+    def _check_after_resume(self, first_utc_s: float) -> None:
+        """After a resume, refuse rows not later (UTC) than the log's last sample (until
+        the first rows are taken)."""
         if self._not_after_utc_s is not None:
             if not first_utc_s > self._not_after_utc_s:
                 raise ValueError(
@@ -321,14 +364,13 @@ class RunLogWriter:
                     f"({self._not_after_utc_s} s): it would log that time twice"
                 )
             self._not_after_utc_s = None
-        try:  # as self._io, without a context manager on the every-tick path
-            if not conn.in_transaction:
-                conn.execute("BEGIN")
-            conn.executemany(_SAMPLE_SQL, params)
-        except sqlite3.Error as exc:
-            self._fail(exc, f"append {n} sample row(s)", n)
-        self._pending += n
-        self._after_write(last_t_s)
+
+    def _insert_held(self, conn: sqlite3.Connection) -> None:
+        """Insert the held sample rows into the open transaction (raises sqlite3.Error;
+        the caller turns it into a failure, which drops them with the transaction)."""
+        held = self._held
+        conn.executemany(_SAMPLE_SQL, held)
+        held.clear()
 
     def record_alarm(self, alarm: AlarmRecord) -> None:
         """Write an alarm raise, clear or acknowledgement and commit at once.
@@ -399,6 +441,11 @@ class RunLogWriter:
             The commit failed; uncommitted rows were dropped.
         """
         conn = self._open_conn()
+        if self._held:
+            with self._io("commit", 0):
+                if not conn.in_transaction:
+                    conn.execute("BEGIN")
+                self._insert_held(conn)
         if conn.in_transaction:
             with self._io("commit", 0):
                 conn.execute("COMMIT")
@@ -479,6 +526,8 @@ class RunLogWriter:
         with self._io(what, 1):
             if not conn.in_transaction:
                 conn.execute("BEGIN")
+            if self._held:
+                self._insert_held(conn)
             conn.execute(_RARE_SQL[kind], _RARE_ROW[kind](record))
         if t_s is not None:
             self._see(t_s)
@@ -532,6 +581,7 @@ class RunLogWriter:
         if conn is not None and conn.in_transaction:
             with contextlib.suppress(sqlite3.Error):
                 conn.execute("ROLLBACK")
+        self._held.clear()
         self._pending = 0
 
 

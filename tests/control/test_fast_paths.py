@@ -1,7 +1,8 @@
 """The hot-path forms of the control core give exactly what the checked, immutable forms give.
 
 PidLoop against pid_step/pid_track, evaluate_values against evaluate (including the shared
-all-clear mapping a quiet chamber is recognised by), Outputs.unchecked against Outputs, the
+all-clear mapping a quiet chamber is recognised by), InterlockMemory against evaluate_values
+and acknowledge, Outputs.unchecked against Outputs, the
 cheaper input tests of rate_limit and split_range, and DriveCurve's straight-line shortcut.
 Exact equality throughout: these are the same arithmetic, not approximations of it.
 """
@@ -18,7 +19,9 @@ from controller.control import (
     Condition,
     ConditionState,
     EventKind,
+    IllegalInterlockEvent,
     InterlockLimits,
+    InterlockMemory,
     InterlockState,
     Outputs,
     PidLoop,
@@ -26,6 +29,7 @@ from controller.control import (
     PidState,
     Readings,
     SafetyState,
+    _interlock_memory,
     _interlocks,
     acknowledge,
     evaluate,
@@ -345,6 +349,99 @@ def test_the_short_way_is_left_at_the_tick_a_quiet_chamber_gets_a_condition(
     shorts, raised = walk([20.0, 20.0, 20.125], step_s=64.0)
     assert raised == [(2, Condition.RATE_OF_CHANGE)] and shorts == [True, False]
     assert walk([20.0, 20.0, 20.124], step_s=64.0) == [[True, True], []]
+
+
+@settings(max_examples=80, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            quiet_readings,
+            st.sampled_from([0.0, 10.0, 10.0, 30.0, 64.0, 120.0]),
+            st.one_of(st.none(), st.sampled_from(list(Condition))),
+            st.booleans(),  # look at the memory's state after this tick
+        ),
+        min_size=1,
+        max_size=60,
+    )
+)
+def test_the_interlock_memory_walks_the_same_states_as_evaluate_values(
+    ticks: list[tuple[Readings, float, Condition | None, bool]],
+) -> None:
+    """Mostly quiet ticks (the memory's in-place short way) and faults of every kind (its way
+    through evaluate_values), with operator acknowledgements: the same states, actions and
+    events, whether or not the immutable state was asked for in between."""
+    state, memory = InterlockState(), InterlockMemory(LIMITS)
+    assert memory.state == state and memory.limits is LIMITS
+    t_s = 0.0
+    for reading, step_s, ack, look in ticks:
+        t_s += step_s
+        values = (reading.temperature_c, reading.level_ok, reading.comm_ok, reading.e_stop)
+        state, actions, events = evaluate_values(state, *values, LIMITS, t_s)
+        assert memory.evaluate(*values, t_s) == events
+        assert (memory.actions, memory.force, memory.alarm) == (
+            actions,
+            actions.force,
+            actions.alarm,
+        )
+        assert memory.safety is state.safety
+        if look or ack is not None:
+            assert memory.state == state
+            assert (memory.state.conditions is _ALL_CLEAR) == (state.conditions is _ALL_CLEAR)
+        if ack is not None and state.conditions[ack] in _ACKNOWLEDGEABLE:
+            if LIMITS.policies[ack].latch:
+                state, actions, events = acknowledge(state, ack, LIMITS, t_s)
+                assert memory.acknowledge(ack, t_s) == events
+                assert (memory.actions, memory.force, memory.safety) == (
+                    actions,
+                    actions.force,
+                    state.safety,
+                )
+    assert memory.state == state
+
+
+def test_the_interlock_memory_shows_each_move_and_refuses_what_evaluate_values_refuses(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """The kept state is dropped whenever the memory moves: a state asked for after a quiet
+    tick (the in-place short way) shows that tick. A bad time changes nothing; so does an
+    illegal acknowledgement."""
+    full_ways: list[object] = []
+
+    def full(*args: object) -> object:
+        full_ways.append(args)
+        return evaluate_values(*args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(_interlock_memory, "evaluate_values", full)
+    memory = InterlockMemory(LIMITS)
+    (started,) = memory.evaluate(20.0, True, True, False, 0.0)
+    assert started.kind is EventKind.SAFETY_CHANGED and started.safety is SafetyState.NORMAL
+    for k in (1, 2):
+        assert memory.evaluate(20.0 + 0.1 * k, True, True, False, 10.0 * k) == ()
+    assert len(full_ways) == 1  # the first evaluation only: then the chamber was quiet
+    first = memory.state
+    assert first is memory.state  # kept while the memory stands still
+    assert first.last_t_s == 20.0 and first.safety is SafetyState.NORMAL
+    assert memory.evaluate(20.3, True, True, False, 30.0) == ()
+    assert len(full_ways) == 1  # the short way
+    second = memory.state
+    assert second is not first and second.last_t_s == 30.0 and second.frozen_ref_c == 20.3
+    assert second == evaluate_values(first, 20.3, True, True, False, LIMITS, 30.0)[0]
+    for t_s, message in ((29.0, "before the previous"), (math.nan, "finite"), (math.inf, "fin")):
+        with pytest.raises(ValueError, match=message):
+            memory.evaluate(20.3, True, True, False, t_s)
+        assert memory.state is second
+    with pytest.raises(IllegalInterlockEvent):
+        memory.acknowledge(Condition.OVER_TEMPERATURE, 30.0)
+    assert memory.state is second
+    # a trip forces outputs at once; acknowledging it after it cleared frees them
+    memory.evaluate(31.0, True, True, False, 40.0)
+    assert memory.force is not None and memory.alarm is Condition.OVER_TEMPERATURE
+    memory.evaluate(20.0, True, True, False, 50.0)
+    assert memory.state.conditions[Condition.OVER_TEMPERATURE] is ConditionState.LATCHED
+    assert memory.force is not None
+    memory.acknowledge(Condition.OVER_TEMPERATURE, 55.0)
+    assert memory.force is None and memory.alarm is None and memory.state.conditions is _ALL_CLEAR
+    assert memory.evaluate(20.0, True, True, False, 60.0) == ()
 
 
 # ---------------------------------------------------------------------------- outputs

@@ -112,7 +112,7 @@ def test_a_device_silenced_at_the_instant_of_a_tick_is_missing_from_that_tick(
     assert not np.isnan(a1.temperature_c[600.0])
 
 
-def test_a_quiet_tick_turns_the_event_loop_at_most_twice(files: Files) -> None:
+def test_a_quiet_tick_turns_the_event_loop_once(files: Files) -> None:
     run = prepare(files, hours=1.0)
     turns = [0]
 
@@ -130,9 +130,41 @@ def test_a_quiet_tick_turns_the_event_loop_at_most_twice(files: Files) -> None:
     summary = run.run(runner=counted)
     ticks = summary.ticks.ticks
     assert ticks == 360
-    # a turn to wake the control task (the rack's grid callback in the same turn) and one to
-    # jump to the next tick; the run log's task wakes only to commit (every 600 s)
-    assert turns[0] <= 2 * ticks + ticks // 60 + 20
+    # one turn a tick: the jump to it, whose timers (the rack's grid callback, then the
+    # control task's wake-up, which runs the tick at once) fire in that turn; the run log's
+    # task wakes only to commit (every 600 s)
+    assert turns[0] <= ticks + 2 * (ticks // 60) + 20
+
+
+def test_the_decider_hears_of_every_write_that_failed_and_of_the_first_taken_again(
+    files: Files,
+) -> None:
+    run = prepare(files)
+    loop = run.loop()
+    heard: list[tuple[float, str, bool]] = []
+    note_write = loop.decider.note_write
+
+    def noted(chamber: str, ok: bool) -> None:
+        heard.append((run.clock.now_s(), chamber, ok))
+        note_write(chamber, ok)
+
+    loop.decider.note_write = noted  # type: ignore[method-assign]
+    write_now = run.io.write_now
+
+    def refusing(outputs: Any) -> Any:
+        done = write_now(outputs)
+        if run.clock.now_s() in (600.0, 610.0) and done is not None:
+            return {**done, "B": False}  # B's module refuses two ticks' commands
+        return done
+
+    run.io.write_now = refusing  # type: ignore[method-assign]
+    run.run(loop=loop)
+    # the first tick tells it; ticks whose writes are all taken after an all-taken tick have
+    # nothing new to tell; a refusal is told, and so is the first tick taken again
+    assert {t for t, _, _ in heard} == {0.0, 600.0, 610.0, 620.0}
+    assert [(c, ok) for t, c, ok in heard if t == 610.0] == [("A1", True), ("B", False)]
+    assert [(c, ok) for t, c, ok in heard if t == 620.0] == [("A1", True), ("B", True)]
+    assert loop.decider._chambers["B"].write_ok  # type: ignore[attr-defined]
 
 
 def test_status_shows_the_latest_ticks_rows(files: Files) -> None:
