@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-__all__ = ["SquallError", "RuntimeFailure"]
+__all__ = ["RuntimeFailure", "SquallError"]
 
 
 class SquallError(Exception):
