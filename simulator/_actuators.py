@@ -262,7 +262,7 @@ class Actuators:
         dirty = self._dirty
         errors: list[Exception | None] = [None] * len(commands)
         for k, (cid, heater, chiller, lamp, pump) in enumerate(commands):
-            i = index.get(cid)
+            i = index[cid] if cid in index else None
             try:  # the checks of drive_pct without a call per drive (a non-number: TypeError)
                 good = (
                     i is not None

@@ -217,13 +217,17 @@ class SimulatedIO:
         advancing the rack to each; then set the exact time the next one is due."""
         rack = self._rack
         fed_at, watchdog_s = self._fed_at, self._watchdog_s
-        while fed_at and watchdog_s is not None:
-            chamber, fed = min(fed_at.items(), key=lambda item: item[1])
-            due = fed + watchdog_s
-            if due > target:
-                break
-            if due > rack.t_s + 1e-9:
-                rack.advance(due - rack.t_s)
+        if watchdog_s is None:
+            self._watchdog_due_s = math.inf
+            return
+        while fed_at:
+            earliest = min(fed_at.values()) + watchdog_s
+            if earliest > target:  # none due yet: the bound is exact again
+                self._watchdog_due_s = earliest
+                return
+            chamber = min(fed_at.items(), key=lambda item: item[1])[0]
+            if earliest > rack.t_s + 1e-9:
+                rack.advance(earliest - rack.t_s)
             safe = self._safe[chamber]
             rack.set_outputs(
                 chamber,
@@ -234,10 +238,7 @@ class SimulatedIO:
             )
             del fed_at[chamber]
             self.watchdog_trips.append((rack.t_s, chamber))
-        if fed_at and watchdog_s is not None:
-            self._watchdog_due_s = min(fed_at.values()) + watchdog_s
-        else:
-            self._watchdog_due_s = math.inf
+        self._watchdog_due_s = math.inf  # nobody fed: nothing due until a command arrives
 
     def _fed(self, t_s: float) -> None:
         """A command reached a module at rack time ``t_s`` (s): its watchdog is due at
