@@ -26,7 +26,6 @@ __all__ = [
     "Actuators",
     "Arrivals",
     "Effective",
-    "checked_rows",
     "drive_pct",
     "effective_drives",
     "substeps",
@@ -110,65 +109,22 @@ def drive_pct(value: float, name: str) -> float:
     return float(value)
 
 
-def checked_rows(
-    index: Mapping[str, int], commands: Sequence[tuple[str, float, float, float, float]]
-) -> tuple[list[tuple[int, float, float, float, float]], list[Exception | None]]:
-    """Rows of drives checked as :func:`drive_pct` checks each drive, for
-    :meth:`Actuators.command_all`.
-
-    Parameters
-    ----------
-    index
-        Chamber identifier to chamber index, dimensionless.
-    commands
-        Per row: chamber identifier, then heater, chiller, lamp and pump drive, % each.
-
-    Returns
-    -------
-    tuple
-        The good rows (chamber index, then the four drives as floats, %), and per row None
-        or the error that refuses it (KeyError for an unknown chamber, ValueError for a
-        drive outside 0–100 %, TypeError for one that is not a number).
-    """
-    try:  # the usual case, every row good: checked and converted in one pass each
-        if all(
-            cid in index
-            and 0.0 <= heater <= 100.0
-            and 0.0 <= chiller <= 100.0
-            and 0.0 <= lamp <= 100.0
-            and 0.0 <= pump <= 100.0
-            for cid, heater, chiller, lamp, pump in commands
-        ):
-            good = [
-                (index[cid], float(heater), float(chiller), float(lamp), float(pump))
-                for cid, heater, chiller, lamp, pump in commands
-            ]
-            return good, [None] * len(commands)
-    except TypeError:  # a drive that is not a number: found and named row by row below
-        pass
-    rows: list[tuple[int, float, float, float, float]] = []
-    errors: list[Exception | None] = []
-    for cid, heater, chiller, lamp, pump in commands:
-        i = index.get(cid)
-        try:
-            if i is None:
-                raise KeyError(f"no chamber {cid!r} in this rack")
-            if not (
-                0.0 <= heater <= 100.0
-                and 0.0 <= chiller <= 100.0
-                and 0.0 <= lamp <= 100.0
-                and 0.0 <= pump <= 100.0
-            ):  # the checks of drive_pct without a call per drive; drive_pct names the culprit
-                drive_pct(heater, "heater_pct")
-                drive_pct(chiller, "chiller_pct")
-                drive_pct(lamp, "lamp_pct")
-                drive_pct(pump, "pump_pct")
-        except (KeyError, TypeError, ValueError) as error:
-            errors.append(error)
-            continue
-        rows.append((i, float(heater), float(chiller), float(lamp), float(pump)))
-        errors.append(None)
-    return rows, errors
+def _row_error(
+    index: Mapping[str, int], cid: str, heater: float, chiller: float, lamp: float, pump: float
+) -> Exception | None:
+    """The error that refuses a row of :meth:`Actuators.command_rows`, or None when it is good:
+    KeyError for an unknown chamber, ValueError for a drive outside 0–100 % (NaN included, as
+    :func:`drive_pct` says, naming the culprit), TypeError for one that is not a number."""
+    if cid not in index:
+        return KeyError(f"no chamber {cid!r} in this rack")
+    try:
+        drive_pct(heater, "heater_pct")
+        drive_pct(chiller, "chiller_pct")
+        drive_pct(lamp, "lamp_pct")
+        drive_pct(pump, "pump_pct")
+    except (TypeError, ValueError) as error:
+        return error
+    return None
 
 
 def substeps(span_s: float, step_s: float) -> tuple[int, float]:
@@ -280,12 +236,47 @@ class Actuators:
             cmd[3][chamber] = pump
             self._dirty |= _PUMP
 
-    def command_all(self, rows: list[tuple[int, float, float, float, float]]) -> None:
-        """Store drives (%) for several chambers: per row (chamber, heater, chiller, lamp,
-        pump), as :meth:`command` on each row in turn."""
+    def command_rows(
+        self,
+        index: Mapping[str, int],
+        commands: Sequence[tuple[str, float, float, float, float]],
+    ) -> list[Exception | None]:
+        """Check and store drives for several chambers in one pass, as :meth:`command` after
+        :func:`drive_pct` on each row in turn.
+
+        Parameters
+        ----------
+        index
+            Chamber identifier to chamber index, dimensionless.
+        commands
+            Per row: chamber identifier, then heater, chiller, lamp and pump drive, % each.
+
+        Returns
+        -------
+        list
+            Per row None, or the error that refuses it (KeyError for an unknown chamber,
+            ValueError for a drive outside 0–100 %, TypeError for one that is not a number);
+            a refused row leaves its chamber as it was, the other rows still take effect.
+        """
         heater_c, chiller_c, lamp_c, pump_c = self._cmd
         dirty = self._dirty
-        for i, heater, chiller, lamp, pump in rows:
+        errors: list[Exception | None] = [None] * len(commands)
+        for k, (cid, heater, chiller, lamp, pump) in enumerate(commands):
+            i = index[cid] if cid in index else None
+            try:  # the checks of drive_pct without a call per drive (a non-number: TypeError)
+                good = (
+                    i is not None
+                    and 0.0 <= heater <= 100.0
+                    and 0.0 <= chiller <= 100.0
+                    and 0.0 <= lamp <= 100.0
+                    and 0.0 <= pump <= 100.0
+                )
+            except TypeError:
+                good = False
+            if not good or i is None:  # _row_error finds the culprit and names it
+                errors[k] = _row_error(index, cid, heater, chiller, lamp, pump)
+                continue
+            heater, chiller, lamp, pump = float(heater), float(chiller), float(lamp), float(pump)
             if heater_c[i] != heater:
                 heater_c[i] = heater
                 dirty |= _POWER
@@ -299,6 +290,7 @@ class Actuators:
                 pump_c[i] = pump
                 dirty |= _PUMP
         self._dirty = dirty
+        return errors
 
     def commands(self) -> F:
         """Commanded drives, %, shape ``(4, N)`` (heater, chiller, lamp, pump)."""

@@ -69,6 +69,15 @@ class HeatLedger:
         self._epoch_excess = self.excess_k_s
         self._epoch_span_s = span_s
 
+    def new_epoch(self, flush_w_k: list[float]) -> None:
+        """Close the open epoch now and open one at the flushing heat flow ``flush_w_k``
+        (W K⁻¹): :meth:`close` with the ledger's own totals, then :meth:`set_flow`, without
+        copying the totals (this ledger replaces its lists, never changes them in place)."""
+        self._done_j = self.flush_loss_j()
+        self._epoch_excess = self.excess_k_s
+        self._epoch_span_s = self.span_s
+        self._flush_w_k = flush_w_k
+
     def set_flow(self, flush_w_k: list[float]) -> None:
         """The flushing heat flow of the open epoch, W K⁻¹ (from its start on)."""
         self._flush_w_k = flush_w_k

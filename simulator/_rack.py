@@ -31,7 +31,7 @@ from numpy.typing import NDArray
 
 from controller.rig import Fault, FaultKind, Rig
 from controller.science.oxygen import solubility_umol_l_scalar
-from simulator._actuators import Actuators, Arrivals, checked_rows, drive_pct, substeps
+from simulator._actuators import Actuators, Arrivals, drive_pct, substeps
 from simulator._faults import FaultBook, ScheduledFault
 from simulator._heat import HeatLedger
 from simulator._openloop import OpenLoopRun, OpenLoopSchedule, run_open_loop
@@ -217,9 +217,7 @@ class Rack:
             Per row None, or the error :meth:`set_outputs` would raise for it (that chamber is
             then left as it was; the other rows still take effect).
         """
-        rows, errors = checked_rows(self._index, commands)
-        self._act.command_all(rows)
-        return errors
+        return self._act.command_rows(self._index, commands)
 
     def outputs(self, chamber_id: str) -> Outputs:
         """What a chamber's actuators do now (after faults); heater/chiller are its node's."""
@@ -461,21 +459,31 @@ class Rack:
         return np.asarray(self._par_warm * (cold + (1.0 - cold) * self._water.warmth))
 
     def _new_water(self, key: tuple[int, int]) -> None:
-        """Flows or volumes changed: close the flushing epoch and recompute what follows."""
-        self._heat.close(self._heat.flush_loss_j(), self._heat.excess_k_s, self._heat.span_s)
-        self._configure_water(key)
+        """Flows or volumes changed: close the flushing epoch and recompute what follows
+        (a control tick comes here every time, its pumps trimming)."""
+        flush_w_k, exchange = water_exchange(
+            self._act.flush_l_s, self._volume, self._node_list, self._rho_cp, self._reaeration
+        )
+        self._heat.new_epoch(flush_w_k)
+        self._set_water(key, flush_w_k, exchange)
 
     def _configure_water(self, key: tuple[int, int]) -> None:
-        """Flushing heat flow, O2 exchange and heat capacity (kept per volume version)."""
+        """Flushing heat flow, O2 exchange and heat capacity, without closing the epoch (the
+        open-loop integrator closes it with totals of its own)."""
+        flush_w_k, exchange = water_exchange(
+            self._act.flush_l_s, self._volume, self._node_list, self._rho_cp, self._reaeration
+        )
+        self._heat.set_flow(flush_w_k)
+        self._set_water(key, flush_w_k, exchange)
+
+    def _set_water(
+        self, key: tuple[int, int], flush_w_k: list[float], exchange: list[float]
+    ) -> None:
+        """Take a new water configuration (heat capacity kept per volume version)."""
         self._water_key = key
         self._water_id += 1
-        flows = (self._act.flush_l_s, self._volume)
-        flush_w_k, exchange = water_exchange(
-            *flows, self._node_list, self._rho_cp, self._reaeration
-        )
         self._flush_w_k = flush_w_k
         self._exchange = exchange
-        self._heat.set_flow(flush_w_k)
         if self._capacity_version != self._volume_version:
             self._node_capacity = self._capacity()
             self._capacity_version = self._volume_version

@@ -389,7 +389,9 @@ class ControlLoop(OperatorHooks):
             if elapsed_due >= end_s:
                 break
             self._counter.add(now - due)
-            await self._tick(k, now, elapsed_due)
+            # protocol time at ``now``: that of the due time when the tick is on time
+            elapsed = elapsed_due if now == due else pclock.elapsed(now)
+            await self._tick(k, now, elapsed_due, elapsed)
             k += 1
         if self._abort_by is None:
             finish = pclock.clock_time_of(self.compiled.duration_s)
@@ -539,10 +541,9 @@ class ControlLoop(OperatorHooks):
             },
         )
 
-    async def _tick(self, k: int, now: float, elapsed_due: float) -> None:
-        """Tick ``k`` at clock time ``now`` (s), due at protocol time ``elapsed_due`` (s)."""
-        assert self._pclock is not None
-        elapsed = self._pclock.elapsed(now)
+    async def _tick(self, k: int, now: float, elapsed_due: float, elapsed: float) -> None:
+        """Tick ``k`` at clock time ``now`` (s), due at protocol time ``elapsed_due`` (s);
+        ``elapsed`` is the protocol time at ``now`` (s)."""
         utc_s = self._utc_of(now)
         phase, targets = self._table.at_elapsed(elapsed_due)
         readings = await self._read_all(now)

@@ -112,6 +112,11 @@ class SimulatedIO:
         off = Outputs(heater_pct=0.0, chiller_pct=0.0, lamp_pct=0.0, pump_pct=0.0)
         self._safe = {c: (safe or {}).get(c, off) for c in rack.chamber_ids}
         self._fed_at: dict[str, float] = {}  # rack time of each module's latest command, s
+        # No watchdog can fire before this rack time (s): a lower bound of min(_fed_at) +
+        # watchdog_s, so that sync need not look at every module. Invalidated by a command
+        # (which lowers it to now + watchdog_s, see _fed) and made exact again by the look
+        # sync takes once the bound is reached (_trip_watchdogs).
+        self._watchdog_due_s = math.inf
         self.last_written: dict[str, Outputs] = {}
         """The latest command each chamber's module accepted, % each."""
         self.watchdog_trips: list[tuple[float, str]] = []
@@ -160,6 +165,8 @@ class SimulatedIO:
         clock = self._clock
         failed: asyncio.Future[None] = asyncio.get_running_loop().create_future()
         start_s = clock.now_s()
+        step_s = self._step_s
+        call_at = self._timer()  # the clock's own, or the event loop's (looked up once)
         handle: asyncio.TimerHandle
 
         def step(k: int) -> None:
@@ -171,40 +178,56 @@ class SimulatedIO:
                     failed.set_exception(error)
                 return
             # A late wake-up (real time) skips grid points instead of catching up on them.
-            k = max(k + 1, math.floor((clock.now_s() - start_s) / self._step_s) + 1)
-            handle = self._call_at(start_s + k * self._step_s, step, k)
+            k = max(k + 1, math.floor((clock.now_s() - start_s) / step_s) + 1)
+            handle = call_at(start_s + k * step_s, step, k)
 
-        handle = self._call_at(start_s + self._step_s, step, 1)
+        handle = call_at(start_s + step_s, step, 1)
         try:
             await failed
         finally:
             handle.cancel()
 
-    def _call_at(
-        self, t_s: float, callback: Callable[..., object], *args: Any
-    ) -> asyncio.TimerHandle:
-        """A timer calling ``callback(*args)`` at clock time ``t_s`` (exactly, on a clock that
-        can; otherwise after the clock time still to go)."""
+    def _timer(self) -> Callable[..., asyncio.TimerHandle]:
+        """A function ``(t_s, callback, *args)`` arming a timer that calls ``callback(*args)``
+        at clock time ``t_s``: exactly, on a clock that can (its ``call_at``); otherwise after
+        the clock time still to go, on the running event loop."""
         exact = getattr(self._clock, "call_at", None)
         if exact is not None:
-            return exact(t_s, callback, *args)  # type: ignore[no-any-return]
-        delay_s = max(0.0, t_s - self._clock.now_s())
-        return asyncio.get_running_loop().call_later(delay_s, callback, *args)
+            return exact  # type: ignore[no-any-return]
+        loop = asyncio.get_running_loop()
+        now_s = self._clock.now_s
+
+        def later(t_s: float, callback: Callable[..., object], *args: Any) -> asyncio.TimerHandle:
+            return loop.call_later(max(0.0, t_s - now_s()), callback, *args)
+
+        return later
 
     def sync(self) -> None:
         """Advance the rack to the clock's present, firing module watchdogs on the way."""
         rack = self._rack
         target = self._clock.now_s() - self._origin_s
+        if target >= self._watchdog_due_s:
+            self._trip_watchdogs(target)
+        dt = target - rack.t_s
+        if dt > 1e-9:
+            rack.advance(dt)
+
+    def _trip_watchdogs(self, target: float) -> None:
+        """Fire, in time order, every module watchdog due by rack time ``target`` (s),
+        advancing the rack to each; then set the exact time the next one is due."""
+        rack = self._rack
         fed_at, watchdog_s = self._fed_at, self._watchdog_s
-        while fed_at and watchdog_s is not None:
-            if min(fed_at.values()) + watchdog_s > target:  # quick: none due yet
-                break
-            chamber, fed = min(fed_at.items(), key=lambda item: item[1])
-            due = fed + self._watchdog_s
-            if due > target:
-                break
-            if due > rack.t_s + 1e-9:
-                rack.advance(due - rack.t_s)
+        if watchdog_s is None:
+            self._watchdog_due_s = math.inf
+            return
+        while fed_at:
+            earliest = min(fed_at.values()) + watchdog_s
+            if earliest > target:  # none due yet: the bound is exact again
+                self._watchdog_due_s = earliest
+                return
+            chamber = min(fed_at.items(), key=lambda item: item[1])[0]
+            if earliest > rack.t_s + 1e-9:
+                rack.advance(earliest - rack.t_s)
             safe = self._safe[chamber]
             rack.set_outputs(
                 chamber,
@@ -213,11 +236,15 @@ class SimulatedIO:
                 lamp_pct=safe.lamp_pct,
                 pump_pct=safe.pump_pct,
             )
-            del self._fed_at[chamber]
+            del fed_at[chamber]
             self.watchdog_trips.append((rack.t_s, chamber))
-        dt = target - rack.t_s
-        if dt > 1e-9:
-            rack.advance(dt)
+        self._watchdog_due_s = math.inf  # nobody fed: nothing due until a command arrives
+
+    def _fed(self, t_s: float) -> None:
+        """A command reached a module at rack time ``t_s`` (s): its watchdog is due at
+        ``t_s + watchdog_s`` at the earliest (keeps :attr:`_watchdog_due_s` a lower bound)."""
+        if self._watchdog_s is not None and t_s + self._watchdog_s < self._watchdog_due_s:
+            self._watchdog_due_s = t_s + self._watchdog_s
 
     # ------------------------------------------------------------------ operator inputs
     def press_e_stop(self, chamber: str | None = None) -> None:
@@ -475,6 +502,7 @@ class SimulatedIO:
         if not any(errors):  # every row taken (an error is an exception, never falsy)
             self.last_written.update(outputs)
             self._fed_at.update(dict.fromkeys(outputs, t_s))
+            self._fed(t_s)
             return dict.fromkeys(outputs, True)
         done: dict[str, bool | Exception] = {}
         last_written, fed_at = self.last_written, self._fed_at
@@ -485,6 +513,7 @@ class SimulatedIO:
             last_written[chamber] = value
             fed_at[chamber] = t_s
             done[chamber] = True
+        self._fed(t_s)
         return done
 
     async def write(self, chamber: str, outputs: Outputs) -> bool:
@@ -515,4 +544,5 @@ class SimulatedIO:
         )
         self.last_written[chamber] = outputs
         self._fed_at[chamber] = self._rack.t_s
+        self._fed(self._rack.t_s)
         return True

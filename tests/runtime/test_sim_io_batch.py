@@ -96,3 +96,37 @@ def test_read_now_hears_a_device_fall_silent_and_answer_again_after_quiet_ticks(
     assert rack.fault_version > version
     clock.t_s += 30.0
     assert io.read_now(ids) is not None  # ended: it answers again
+
+
+def test_the_watchdog_bound_sees_every_command_and_trips_at_the_exact_moment() -> None:
+    """SimulatedIO keeps a lower bound of the next watchdog trip so that a sync need not look
+    at every module; a command (write or write_now) must move the next trip, and a module fed
+    later than the others must trip at its own moment, not at the bound's."""
+    clock = StillClock()
+    io = SimulatedIO(Rack(load_rig(EXAMPLE), seed=1), clock, watchdog_s=30.0)  # type: ignore[arg-type]
+    ids = io.chambers
+    on = Outputs(heater_pct=30.0, chiller_pct=0.0, lamp_pct=50.0, pump_pct=40.0)
+    assert io.write_now({ids[0]: on, ids[1]: on}) is not None  # fed at rack time 0
+    clock.t_s += 20.0
+    asyncio.run(io.write(ids[1], on))  # fed again at 20: due at 50, not 30
+    clock.t_s += 9.0
+    io.sync()
+    assert io.watchdog_trips == []  # nothing due before 30
+    clock.t_s += 6.0  # rack time 35
+    io.sync()
+    assert io.watchdog_trips == [(30.0, ids[0])]
+    assert io.rack.outputs(ids[0]).lamp_pct == 0.0 and io.rack.outputs(ids[1]).lamp_pct == 50.0
+    clock.t_s += 5.0  # rack time 40: a new command after the trip feeds ids[0] again
+    assert io.write_now({ids[0]: on}) is not None
+    clock.t_s += 14.0  # rack time 54
+    io.sync()
+    assert io.watchdog_trips == [(30.0, ids[0]), (50.0, ids[1])]
+    clock.t_s += 20.0  # rack time 74: ids[0] fed at 40 trips at 70
+    io.sync()
+    assert io.watchdog_trips == [(30.0, ids[0]), (50.0, ids[1]), (70.0, ids[0])]
+    assert io.rack.t_s == 74.0
+    # every module tripped, none fed: nothing is due until a command arrives again
+    asyncio.run(io.write(ids[2], on))  # fed at 74: due at 104
+    clock.t_s += 40.0  # rack time 114
+    io.sync()
+    assert io.watchdog_trips[-1] == (104.0, ids[2])

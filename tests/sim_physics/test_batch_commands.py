@@ -23,6 +23,7 @@ import pytest
 
 from controller.cli.cmd_check import load_rig
 from simulator import Rack
+from simulator._heat import HeatLedger
 
 EXAMPLE = Path(__file__).parents[2] / "rigs" / "saltmarrow-rack8.toml"
 
@@ -140,3 +141,20 @@ def test_a_drive_that_is_not_a_number_fails_its_row_alone() -> None:
     assert errors[0] is None and isinstance(errors[1], TypeError)
     r.advance(1.0)
     assert r.outputs(a).lamp_pct == 20.0 and r.outputs(b).lamp_pct == 0.0
+
+
+def test_a_new_epoch_of_the_heat_ledger_is_close_then_set_flow() -> None:
+    """HeatLedger.new_epoch (what a control tick uses, its pumps trimming) must leave the
+    ledger where close with its own totals and set_flow leave it (invented numbers)."""
+    fast, slow = HeatLedger(3, 21.0, 17.5), HeatLedger(3, 21.0, 17.5)
+    for t in range(20):
+        excess = [0.1 * t - 0.3 * j for j in range(3)]
+        flow = [(t * 7 + j) % 5 * 0.31 for j in range(3)]
+        for ledger in (fast, slow):
+            ledger.add(excess, 10.0)
+        fast.new_epoch(flow)
+        slow.close(slow.flush_loss_j(), slow.excess_k_s, slow.span_s)
+        slow.set_flow(flow)
+        assert fast.flush_loss_j() == slow.flush_loss_j()
+        assert fast.excess_k_s == slow.excess_k_s and fast.span_s == slow.span_s
+    assert any(v != 0.0 for v in fast.flush_loss_j())
