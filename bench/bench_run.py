@@ -8,7 +8,9 @@ command a user types, control (interlocks, PID, lamps, pumps) and the SQLite run
 included, once per control tick period asked for (default 60 s and 10 s).
 
 Printed per tick period: wall seconds, simulated seconds per wall second, wall time per
-tick, and whether the goal (7 days in at most 30 s of wall time) is met. With
+tick, and whether the goal (7 days in at most 30 s of wall time) is met. Each period runs
+``--repeat`` times (default 3) and the median wall time is judged, every run's time printed
+beside it: the machine is shared, and a neighbour can slow one run by a fifth or more. With
 ``--breakdown`` a second, instrumented run of the first period splits the wall time into the
 simulated rack (physics; the sensor sweep with the devices' answers), the simulated I/O's
 glue around it (``SimulatedIO`` read_now, write_now and sync less the rack's calls), the
@@ -32,7 +34,7 @@ chamber and tick against the 8-chamber one. With ``--quick`` the protocol is cut
 wall time per tick; the line says so.
 
 Run: ``/work/venv/bin/python bench/bench_run.py [--periods 60,10] [--breakdown] [--quick]
-[--no-scale]``.
+[--no-scale] [--repeat N]``.
 """
 
 from __future__ import annotations
@@ -42,6 +44,7 @@ import contextlib
 import gc
 import io
 import re
+import statistics
 import tempfile
 import time
 import tomllib
@@ -321,7 +324,12 @@ def main() -> None:
         "--quick", action="store_true", help="run 1.5 days and estimate the 7-day wall time"
     )
     parser.add_argument("--no-scale", action="store_true", help="skip the 64-chamber comparison")
+    parser.add_argument(
+        "--repeat", type=int, default=3, help="runs per tick period; the median is judged"
+    )
     args = parser.parse_args()
+    if args.repeat < 1:
+        parser.error("--repeat must be at least 1")
     periods = [float(p) for p in args.periods.split(",")]
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -334,9 +342,14 @@ def main() -> None:
         widths = (6, 7, 8, 8, 9, 8)
         print(" ".join(f"{h:>{w}}" for h, w in zip(header, widths, strict=True)) + "  goal")
         for period_s in periods:
-            log = folder / f"run-{period_s:g}.sqlite"
-            wall_s = run_cli(protocol, log, period_s)
-            sim_s, rows = finished(log)
+            walls: list[float] = []
+            for attempt in range(args.repeat):
+                log = folder / f"run-{period_s:g}-{attempt}.sqlite"
+                walls.append(run_cli(protocol, log, period_s))
+                sim_s, rows = finished(log)
+            # the median of the repeats: the machine is shared, and one run can be slowed by
+            # a neighbour by 20 % or more; the median is neither the luckiest nor the unluckiest
+            wall_s = statistics.median(walls)
             ticks = rows // 8
             week_s = wall_s * DAYS * 86400.0 / sim_s if args.quick else wall_s
             verdict = "met" if week_s <= GOAL_WALL_S else f"missed (> {GOAL_WALL_S:g} s)"
@@ -346,10 +359,14 @@ def main() -> None:
                 f"{period_s:>5g}s {ticks:>7} {rows:>8} {wall_s:>8.1f} "
                 f"{sim_s / wall_s:>9.0f} {1000 * wall_s / ticks:>8.2f}  {verdict}"
             )
+            spread = ", ".join(f"{w:.1f}" for w in walls)
+            if len(walls) > 1:
+                print(f"        wall s of the {len(walls)} runs: {spread} (median above)")
             results.append(
                 f"RESULT: {DAYS}-day 8-chamber run wall time, {period_s:g} s tick"
                 + (f" (estimated from {sim_s / 86400.0:g} d)" if args.quick else "")
-                + f" | {week_s:.1f} s | <= {GOAL_WALL_S:g} s | {sim_s / wall_s:.0f}x "
+                + f" | {week_s:.1f} s | <= {GOAL_WALL_S:g} s | median of {len(walls)} runs"
+                f" ({spread} s{' for 1.5 d' if args.quick else ''}); {sim_s / wall_s:.0f}x "
                 "simulated/wall, control and logging included"
             )
         if not args.no_scale:
