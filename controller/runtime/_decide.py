@@ -520,25 +520,7 @@ class Decider:
             change = change if change < step else step  # min(step, change)
             change = change if change > -step else -step  # max(-step, change)
             node.setpoint_c = setpoint = previous + change
-            pid = node.pid
-            error = setpoint - measured
-            if node.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
-                # pid.step(measured, setpoint, dt_s) without derivative action, written out
-                # as Actuator.drive writes it (the test is the step's own for finite inputs)
-                p = node.kc * (node.setpoint_weight * setpoint - measured)
-                i = pid.integral
-                v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
-                high, low = node.out_max, node.out_min
-                u = high if v > high else low if v < low else v
-                if node.has_integral:
-                    if dt_s != node.pi_dt_s:
-                        node.renew(dt_s)
-                    i = i + node.gain_i * error - node.back * (u - v)
-                pid.integral, pid.derivative = i, 0.0
-                pid.last_measured, pid.last_output = measured, u
-                node.output_pct = u
-            else:  # derivative action, or an input the step names (or an overflowing error)
-                node.output_pct = pid.step(measured, setpoint, dt_s)
+            node.output_pct = node.pi_step(node.pid, measured, setpoint, dt_s)
         heater, chiller = node.settings.split(node.output_pct, self._deadband_pct)
         if node.heater_on_off:
             settings = self._plan.settings

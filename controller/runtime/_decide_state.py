@@ -28,11 +28,12 @@ class PiGains:
     """Base of the decider's holders of a loop stepped every tick: the gains and limits of
     the loop, taken once from its frozen parameters, for a PI step written out there.
 
-    The step (:meth:`Actuator.drive`, ``Decider._node``) is :meth:`PidLoop.step`'s
-    arithmetic without the derivative term, on the loop's own state. The gains sit on the
-    holder itself (no object of their own to reach every tick). The integral gain Kc·h/Ti
-    and the back-calculation factor e^{−h/Tt} − 1 are kept for the latest step length h and
-    renewed (:meth:`renew`) whenever a step comes with another one, as the loop keeps them;
+    The step, :meth:`pi_step` (used by :meth:`Actuator.drive` and the decider's node
+    step), is :meth:`PidLoop.step`'s arithmetic without the derivative term, on the loop's
+    own state. The gains sit on the holder itself (no object of their own to reach every
+    tick). The integral gain Kc·h/Ti and the back-calculation factor e^{−h/Tt} − 1 are kept
+    for the latest step length h and renewed (:meth:`renew`) whenever a step comes with
+    another one, as the loop keeps them;
     the parameters are frozen, so nothing else can make them stale.
 
     Attributes
@@ -90,6 +91,44 @@ class PiGains:
         self.pi_dt_s = dt_s
         self.gain_i = self.kc * dt_s / self.ti_s
         self.back = math.expm1(-dt_s / self.tt_s)
+
+    def pi_step(self, loop: PidLoop, measured: float, setpoint: float, dt_s: float) -> float:
+        """Step ``loop`` as ``loop.step(measured, setpoint, dt_s)`` does, written out when the
+        loop has no derivative action (:attr:`pi`).
+
+        Parameters
+        ----------
+        loop
+            The loop's state (its memory is updated in place).
+        measured
+            Measurement, measurement unit.
+        setpoint
+            Setpoint, measurement unit.
+        dt_s
+            Time since the last step, s.
+
+        Returns
+        -------
+        float
+            The controller output, output unit, bit for bit what :meth:`PidLoop.step` gives.
+        """
+        error = setpoint - measured
+        if not (self.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0):
+            # derivative action, or an input the step names (or an overflowing error)
+            return loop.step(measured, setpoint, dt_s)
+        # (the test above is the step's own test for finite inputs)
+        p = self.kc * (self.setpoint_weight * setpoint - measured)
+        i = loop.integral
+        v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
+        high, low = self.out_max, self.out_min
+        u = high if v > high else low if v < low else v
+        if self.has_integral:
+            if dt_s != self.pi_dt_s:
+                self.renew(dt_s)
+            i = i + self.gain_i * error - self.back * (u - v)
+        loop.integral, loop.derivative = i, 0.0
+        loop.last_measured, loop.last_output = measured, u
+        return u
 
 
 _NO_LOOP = PidParams(kc=1.0, ti_s=math.inf, out_min=0.0, out_max=1.0)
@@ -280,23 +319,7 @@ class Actuator(PiGains):
             else:
                 x0, y0, dy, dx = line
             equivalent = y0 + (measured - x0) * dy / dx
-            error = drive - equivalent
-            if self.pi and error * dt_s * 0.0 == 0.0 and dt_s > 0.0:
-                # trim.step(equivalent, drive, dt_s) without derivative action, written out
-                # (the test above is the step's own test for finite inputs)
-                p = self.kc * (self.setpoint_weight * drive - equivalent)
-                i = trim.integral
-                v = p + i + 0.0  # + D, which is 0.0: the same sum bit for bit (−0.0 → 0.0)
-                high, low = self.out_max, self.out_min
-                correction = high if v > high else low if v < low else v
-                if self.has_integral:
-                    if dt_s != self.pi_dt_s:
-                        self.renew(dt_s)
-                    i = i + self.gain_i * error - self.back * (correction - v)
-                trim.integral, trim.derivative = i, 0.0
-                trim.last_measured, trim.last_output = equivalent, correction
-            else:  # derivative action, or an input the step names (or an overflowing error)
-                correction = trim.step(equivalent, drive, dt_s)
+            correction = self.pi_step(trim, equivalent, drive, dt_s)
         drive = 100.0 * (drive + correction) / 100.0
         drive = drive if drive > 0.0 else 0.0  # min(100, max(0, drive)) without the calls
         return drive if drive < 100.0 else 100.0
