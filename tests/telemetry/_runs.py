@@ -153,6 +153,8 @@ class SimController:
         self._aio: asyncio.AbstractEventLoop | None = None
         self._loop: ControlLoop | None = None
         self._task: asyncio.Task[object] | None = None
+        #: What the last :meth:`abort` did in the run's loop (for a join that times out).
+        self.abort_outcome = "no abort asked"
         self._thread = threading.Thread(target=self._body, name=controller_id, daemon=True)
 
     # ------------------------------------------------------------------ thread
@@ -190,9 +192,13 @@ class SimController:
         def stop() -> None:
             try:
                 loop.abort(user)
-            except OperatorError:  # stopping or ended already: leave it; starting: cancel
-                if loop.status()["state"] == "starting":
+                self.abort_outcome = "aborted"
+            except OperatorError as refused:  # stopping or ended: leave it; starting: cancel
+                state = loop.status()["state"]
+                self.abort_outcome = f"refused in state {state}: {refused}"
+                if state == "starting":
                     main.cancel()  # the shutdown path still makes every chamber safe
+                    self.abort_outcome += "; cancelled instead"
 
         with contextlib.suppress(RuntimeError):  # its event loop closed meanwhile
             aio.call_soon_threadsafe(stop)
@@ -209,7 +215,15 @@ class SimController:
         """
         self._thread.join(timeout_s)
         if self._thread.is_alive():
-            raise AssertionError(f"{self.controller_id} did not stop within {timeout_s} s")
+            loop = self._loop
+            try:
+                state = "not started" if loop is None else loop.status()["state"]
+            except Exception as error:  # read from another thread: only for the message
+                state = f"unreadable ({error!r})"
+            raise AssertionError(
+                f"{self.controller_id} did not stop within {timeout_s} s "
+                f"(run state {state}; abort: {self.abort_outcome})"
+            )
         if isinstance(self.error, asyncio.CancelledError):
             return None
         if self.error is not None:
