@@ -60,6 +60,7 @@ Values = list[tuple[Any, ...]]
 """Sample rows as value tuples in :class:`SampleRow` field order."""
 Item = list[SampleRow] | AlarmRecord | EventRecord | WindowRecord | AuditRecord
 Record = AlarmRecord | EventRecord | WindowRecord | AuditRecord
+_T_S = 0  # index of t_s in a sample's values (the first field of SampleRow)
 
 _ACTIONS = {
     InterlockEventKind.RAISED: AlarmAction.RAISE,
@@ -253,8 +254,10 @@ class LogSink:
     def _enqueue_samples(self, values: Values) -> None:
         if not values:
             return
-        if not self._queue and self.writer.hold_sample_values(values):
+        writer = self.writer
+        if not self._queue and not writer.commit_due(values[-1][_T_S]):
             # held by the writer until its commit: no SQLite call, so no write can fail now
+            writer.append_sample_values(values)
             self.rows_written += len(values)
             return
         self._queue.append(values)

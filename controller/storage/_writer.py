@@ -334,50 +334,6 @@ class RunLogWriter:
                 self._fail(exc, f"append {n} sample row(s)", 0)
             self.flush()
 
-    def hold_sample_values(self, rows: Sequence[tuple[Any, ...]]) -> bool:
-        """Hold rows as :meth:`append_sample_values` would, if their commit is not due yet.
-
-        One call for the control loop's usual tick: :meth:`commit_due` and
-        :meth:`append_sample_values` in one, for rows that make no SQLite call.
-
-        Parameters
-        ----------
-        rows
-            As for :meth:`append_sample_values` (``t_s`` in s, ``utc_s`` in POSIX s, …), not
-            empty.
-
-        Returns
-        -------
-        bool
-            True when the rows are now held until a later commit (as
-            :meth:`append_sample_values` holds them); False, having done nothing, when their
-            commit is due (:meth:`commit_due`): then hand them to
-            :meth:`append_sample_values`, dimensionless.
-
-        Raises
-        ------
-        ValueError
-            As :meth:`append_sample_values` (a row not after a resumed log's last sample).
-        RuntimeError
-            The writer is closed.
-        """
-        last = self._last_commit_t_s
-        if last is None:
-            return False
-        t_s = rows[-1][_T_S]
-        dt_s = t_s - last  # as commit_due
-        if dt_s >= self._interval_s or dt_s < 0:
-            return False
-        # from here exactly as append_sample_values when no commit is due
-        if self._not_after_utc_s is not None:
-            self._check_after_resume(rows[0][_UTC_S])
-        if self._conn is None:
-            self._open_conn()  # raises: the writer is closed
-        self._held.extend(rows)
-        self._pending += len(rows)
-        self._last_t_s = t_s
-        return True
-
     def commit_due(self, t_s: float) -> bool:
         """Whether sample rows up to clock time ``t_s`` would be committed when handed in now:
         a session's first rows, ``commit_interval_s`` past the last commit, or a clock that

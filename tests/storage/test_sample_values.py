@@ -54,49 +54,6 @@ def test_value_tuples_log_what_rows_log_and_commit_at_the_same_moments(tmp_path:
         assert len(b.samples()) == 27
 
 
-def test_hold_is_commit_due_and_append_in_one(tmp_path: Path) -> None:
-    # the loop's one-call form against the two calls it replaces: same log, same commits
-    logs = {}
-    seen: dict[str, list[tuple[bool, int, float | None]]] = {"two": [], "one": []}
-    for how in ("two", "one"):
-        log = logs[how] = tmp_path / f"{how}.sqlite"
-        with RunLogWriter(log, meta=make_meta(3), commit_interval_s=1.0) as writer:
-            for t_s in (0.0, 0.25, 0.5, 1.0, 1.25, 0.75, 0.8, 2.5):  # 0.75: the clock went back
-                values = [r.values() for r in tick_rows(t_s, 3, alarm_chamber=1)]
-                if how == "two":
-                    held = not writer.commit_due(t_s)
-                    writer.append_sample_values(values)
-                else:
-                    held = writer.hold_sample_values(values)
-                    if not held:
-                        writer.append_sample_values(values)
-                seen[how].append((held, writer.pending_rows, writer.last_commit_t_s))
-    assert seen["one"] == seen["two"]
-    held_at = [held for held, _, _ in seen["one"]]
-    assert held_at == [False, True, True, False, True, False, True, False]
-    with RunLogReader(logs["two"]) as a, RunLogReader(logs["one"]) as b:
-        pd.testing.assert_frame_equal(a.samples(), b.samples(), check_exact=True)
-        assert len(b.samples()) == 24
-
-
-def test_hold_refuses_what_append_refuses(tmp_path: Path) -> None:
-    log = tmp_path / "run.sqlite"
-    writer = RunLogWriter(log, meta=make_meta(3), commit_interval_s=60.0)
-    writer.append_sample_values([r.values() for r in tick_rows(0.0)])  # first rows: committed
-    writer.close()
-    with pytest.raises(RuntimeError, match="closed"):
-        writer.hold_sample_values([r.values() for r in tick_rows(1.0)])
-    writer = RunLogWriter.resume(log, commit_interval_s=60.0)
-    try:
-        writer.append_sample_values([r.values() for r in tick_rows(0.0, utc_offset_s=10.0)])
-        writer._not_after_utc_s = START_UTC_S + 10.0  # as if the resume check were still due
-        with pytest.raises(ValueError, match="log that time twice"):
-            writer.hold_sample_values([r.values() for r in tick_rows(1.0, utc_offset_s=9.0)])
-        assert writer.pending_rows == 0  # refused rows are not held
-    finally:
-        writer.close()
-
-
 def test_commit_due_for_a_clock_that_went_back(tmp_path: Path) -> None:
     with RunLogWriter(tmp_path / "run.sqlite", meta=make_meta(3), commit_interval_s=5.0) as w:
         assert w.commit_due(100.0)  # nothing committed yet: a session's first rows go at once
